@@ -1,0 +1,123 @@
+// Package registry is modelgate's store: where artifacts live. One
+// interface, Store, is implemented by every backend (a local directory in
+// OCI image layout; later an OCI registry and a GCS bucket).
+//
+// Artifacts are OCI image manifests and their blobs. Every backend verifies
+// a blob's digest and size on every upload and every read, and writes names
+// last: blobs first, then the manifest, then the tag, so that a tag never
+// points at missing content.
+package registry
+
+import (
+	"context"
+	"errors"
+	"io"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/types"
+)
+
+// Errors that callers test with errors.Is. Backends wrap them with context
+// and with an errkind so that the CLI exits with the documented code.
+var (
+	// ErrNotFound: no such repository, tag, manifest or blob.
+	ErrNotFound = errors.New("not found")
+	// ErrDigestMismatch: stored or uploaded bytes do not match their digest
+	// or size (store damage when read, bad input when written).
+	ErrDigestMismatch = errors.New("digest mismatch")
+	// ErrConflict: a compare-and-swap lost (the tag moved).
+	ErrConflict = errors.New("conflict")
+)
+
+// MaxManifestSize bounds manifests read or written: the OCI distribution
+// spec only promises registries accept "at least 4 megabytes".
+const MaxManifestSize = 4_000_000
+
+// Store holds repositories of OCI manifests and blobs, and tags that name
+// manifests. Repository names follow the OCI distribution-spec pattern (see
+// ValidateRepository); tags follow ValidateTag.
+//
+// Contract for every implementation:
+//   - All methods are safe for concurrent use, also by several processes
+//     sharing the same backing store.
+//   - PutBlob and PutManifest are idempotent: putting content that is
+//     already present succeeds and writes nothing new.
+//   - Every read verifies content against its digest: Blob returns a reader
+//     whose Read fails with ErrDigestMismatch (before returning io.EOF) when
+//     the bytes do not hash to the digest or differ in size; Manifest
+//     returns ErrDigestMismatch instead of wrong bytes.
+//   - A manifest may be put only after every blob it references (config,
+//     layers) is present; its subject need not exist.
+//   - Tag makes a tag point at a manifest already present; it is atomic
+//     (readers see the old or the new target, never a torn state).
+//   - Missing things give an error wrapping ErrNotFound.
+type Store interface {
+	// String names the store for messages (never includes credentials).
+	String() string
+
+	// Resolve returns the descriptor of the manifest that tag points at.
+	Resolve(ctx context.Context, repo, tag string) (v1.Descriptor, error)
+	// Manifest returns the verified bytes and descriptor of a manifest.
+	Manifest(ctx context.Context, repo string, dgst v1.Hash) ([]byte, v1.Descriptor, error)
+	// PutManifest stores a manifest (all its blobs must be present) and
+	// returns its descriptor. It does not tag it.
+	PutManifest(ctx context.Context, repo string, mediaType types.MediaType, raw []byte) (v1.Descriptor, error)
+
+	// Blob opens a blob for reading; the reader verifies digest and size.
+	Blob(ctx context.Context, repo string, dgst v1.Hash) (io.ReadCloser, error)
+	// StatBlob returns a present blob's size.
+	StatBlob(ctx context.Context, repo string, dgst v1.Hash) (int64, error)
+	// PutBlob uploads a blob of the given digest and size from r. Bytes
+	// that do not match fail with ErrDigestMismatch and leave nothing behind.
+	PutBlob(ctx context.Context, repo string, dgst v1.Hash, size int64, r io.Reader) error
+
+	// Tag points tag at a manifest already present in repo.
+	Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) error
+	// Repositories lists the repositories, sorted.
+	Repositories(ctx context.Context) ([]string, error)
+	// Tags lists repo's tags, sorted.
+	Tags(ctx context.Context, repo string) ([]string, error)
+	// Referrers lists the manifests in repo whose subject is subject,
+	// filtered by artifactType unless it is empty.
+	Referrers(ctx context.Context, repo string, subject v1.Hash, artifactType string) ([]v1.Descriptor, error)
+}
+
+// TagSwapper is a Store that can move a tag by compare-and-swap.
+type TagSwapper interface {
+	// SwapTag points tag at desc only if it now points at old; a zero old
+	// means the tag must not exist yet. A lost race fails with ErrConflict.
+	SwapTag(ctx context.Context, repo, tag string, old v1.Hash, desc v1.Descriptor) error
+}
+
+// ManifestLister is a Store that can list every manifest it holds in a
+// repository, tagged or not (used by whole-store verification).
+type ManifestLister interface {
+	// Manifests lists every manifest descriptor recorded in repo.
+	Manifests(ctx context.Context, repo string) ([]v1.Descriptor, error)
+}
+
+// Finding is something a store-level check noticed.
+type Finding struct {
+	// Severity is "damage" (integrity lost) or "hint" (harmless, e.g. an
+	// unreferenced blob left by a crash).
+	Severity string `json:"severity"`
+	// Where names the object: a blob digest, a repository:tag, a file.
+	Where   string `json:"where"`
+	Message string `json:"message"`
+}
+
+// Severities of a Finding.
+const (
+	SeverityDamage = "damage"
+	SeverityHint   = "hint"
+)
+
+// Scrubber is a Store that can check its own storage below the level of
+// manifests: every blob re-hashed, leftovers of interrupted writes, blobs
+// no manifest references.
+type Scrubber interface {
+	// Scrub re-hashes every blob and reports findings. referenced is the set
+	// of blob digests that some manifest references; blobs outside it are
+	// reported as hints.
+	Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Finding, error)
+}

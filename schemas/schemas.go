@@ -1,0 +1,128 @@
+// Package schemas embeds modelgate's JSON Schemas and compiles them.
+package schemas
+
+import (
+	"bytes"
+	"embed"
+	"encoding/json"
+	"fmt"
+	"sort"
+	"strings"
+	"sync"
+
+	"github.com/santhosh-tekuri/jsonschema/v5"
+)
+
+//go:embed *.schema.json
+var files embed.FS
+
+// Names of the embedded schemas.
+const (
+	Spec = "spec.schema.json"
+)
+
+var (
+	mu       sync.Mutex
+	compiled = map[string]*jsonschema.Schema{}
+)
+
+// Raw returns the bytes of the named embedded schema.
+func Raw(name string) ([]byte, error) { return files.ReadFile(name) }
+
+func get(name string) (*jsonschema.Schema, error) {
+	mu.Lock()
+	defer mu.Unlock()
+	if s, ok := compiled[name]; ok {
+		return s, nil
+	}
+	raw, err := files.ReadFile(name)
+	if err != nil {
+		return nil, fmt.Errorf("schema %q: %w", name, err)
+	}
+	c := jsonschema.NewCompiler()
+	c.Draft = jsonschema.Draft2020
+	url := "mem:///" + name
+	if err := c.AddResource(url, bytes.NewReader(raw)); err != nil {
+		return nil, fmt.Errorf("schema %q: %w", name, err)
+	}
+	s, err := c.Compile(url)
+	if err != nil {
+		return nil, fmt.Errorf("compiling schema %q: %w", name, err)
+	}
+	compiled[name] = s
+	return s, nil
+}
+
+// Violation is one place where a document breaks a schema.
+type Violation struct {
+	// Pointer is the JSON pointer of the offending value ("" is the root).
+	Pointer string `json:"pointer"`
+	Message string `json:"message"`
+}
+
+func (v Violation) String() string {
+	p := v.Pointer
+	if p == "" {
+		p = "/"
+	}
+	return p + ": " + v.Message
+}
+
+// Validate checks doc (raw JSON) against the named schema and returns every
+// violation, sorted by pointer. A document that is not JSON gives one
+// violation at the root. err is non-nil only when the schema itself fails.
+func Validate(name string, doc []byte) ([]Violation, error) {
+	s, err := get(name)
+	if err != nil {
+		return nil, err
+	}
+	dec := json.NewDecoder(bytes.NewReader(doc))
+	dec.UseNumber()
+	var v any
+	if err := dec.Decode(&v); err != nil {
+		return []Violation{{Pointer: "", Message: "not valid JSON: " + err.Error()}}, nil
+	}
+	if dec.More() {
+		return []Violation{{Pointer: "", Message: "not valid JSON: data after the top-level value"}}, nil
+	}
+	err = s.Validate(v)
+	if err == nil {
+		return nil, nil
+	}
+	ve, ok := err.(*jsonschema.ValidationError)
+	if !ok {
+		return nil, err
+	}
+	var out []Violation
+	seen := map[string]bool{}
+	var walk func(e *jsonschema.ValidationError)
+	walk = func(e *jsonschema.ValidationError) {
+		if len(e.Causes) == 0 {
+			v := Violation{Pointer: e.InstanceLocation, Message: e.Message}
+			if k := v.String(); !seen[k] {
+				seen[k] = true
+				out = append(out, v)
+			}
+			return
+		}
+		for _, c := range e.Causes {
+			walk(c)
+		}
+	}
+	walk(ve)
+	sort.SliceStable(out, func(i, j int) bool { return out[i].Pointer < out[j].Pointer })
+	return out, nil
+}
+
+// Join renders violations one per line, each prefixed by prefix.
+func Join(prefix string, vs []Violation) string {
+	var b strings.Builder
+	for i, v := range vs {
+		if i > 0 {
+			b.WriteByte('\n')
+		}
+		b.WriteString(prefix)
+		b.WriteString(v.String())
+	}
+	return b.String()
+}
