@@ -200,6 +200,9 @@ type Lineage struct {
 	SourceRepository string `json:"sourceRepository,omitempty"`
 	SourceCommit     string `json:"sourceCommit,omitempty"`
 	CreatedBy        string `json:"createdBy,omitempty"`
+	// Created is when training produced the model (RFC 3339, UTC); it
+	// becomes the artifact's org.opencontainers.image.created annotation.
+	Created string `json:"created,omitempty"`
 	// FrozenFrom is the digest of the scorer a frozen scorer was made from.
 	FrozenFrom string `json:"frozenFrom,omitempty"`
 }

@@ -1,0 +1,65 @@
+package main
+
+import (
+	"context"
+	"fmt"
+
+	"github.com/spf13/cobra"
+
+	"modelgate/internal/artifact"
+)
+
+type pushOptions struct {
+	Kind string
+}
+
+func (o *pushOptions) AddFlags(cmd *cobra.Command) {
+	cmd.Flags().StringVar(&o.Kind, "kind", "model", "what to push: model (a model directory)")
+}
+
+func newPushCmd(g *globals) *cobra.Command {
+	o := &pushOptions{}
+	cmd := &cobra.Command{
+		Use:   "push DIR NAME:TAG",
+		Short: "Validate a model directory and store it as an OCI artifact",
+		Long: `push validates a model directory (spec.json, safetensors files, vocabulary,
+stats, probes) and stores it as one OCI artifact: blobs first, then the
+manifest, then the tag. Blobs already in the store are not written again.
+Prints the manifest digest.`,
+		Args: exactArgs(2, "DIR NAME:TAG"),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			return runPush(cmd.Context(), g, o, args[0], args[1])
+		},
+	}
+	o.AddFlags(cmd)
+	return cmd
+}
+
+func runPush(ctx context.Context, g *globals, o *pushOptions, dir, refStr string) error {
+	ref, err := parseRef(refStr)
+	if err != nil {
+		return err
+	}
+	if o.Kind != "model" {
+		return usageErr("--kind %q is not supported here; use model", o.Kind)
+	}
+	store, err := g.openStore()
+	if err != nil {
+		return err
+	}
+	res, err := artifact.PushModelDir(ctx, store, dir, ref, artifact.Options{Progress: g.progress()})
+	if err != nil {
+		return err
+	}
+	return printPush(g, res)
+}
+
+func printPush(g *globals, res *artifact.PushResult) error {
+	if g.JSON {
+		return g.printJSON(res)
+	}
+	g.logf("pushed %s %s: %d blob(s) written (%s), %d already present%s", res.Kind, res.Ref,
+		res.BlobsWritten, humanBytes(res.BytesWritten), res.BlobsSkipped, map[bool]string{true: ", identical manifest reused", false: ""}[res.ManifestReused])
+	_, err := fmt.Fprintln(g.Stdout, res.Digest)
+	return err
+}

@@ -1,0 +1,369 @@
+package artifact
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"math"
+	"sort"
+	"strings"
+
+	"modelgate/internal/model"
+	"modelgate/internal/registry"
+)
+
+// LayerRow is one row of a model's layer table.
+type LayerRow struct {
+	Name       string `json:"name"`
+	Op         string `json:"op"`
+	Inputs     string `json:"inputs"`
+	Weight     string `json:"weight,omitempty"`
+	Shape      []int  `json:"shape,omitempty"`
+	Activation string `json:"activation,omitempty"`
+	Width      int    `json:"width"`
+	Params     int64  `json:"params"`
+}
+
+// Description is what `show` prints about a model.
+type Description struct {
+	Ref          string               `json:"ref"`
+	Digest       string               `json:"digest"`
+	Kind         string               `json:"kind"`
+	ArtifactType string               `json:"artifactType"`
+	Name         string               `json:"name"`
+	Description  string               `json:"description,omitempty"`
+	Inputs       model.Inputs         `json:"inputs"`
+	Layers       []LayerRow           `json:"layers"`
+	Tensors      []model.Tensor       `json:"tensors"`
+	Params       int64                `json:"params"`
+	Encoder      *model.EncoderRef    `json:"encoder,omitempty"`
+	Training     *model.TrainingState `json:"training,omitempty"`
+	Lineage      model.Lineage        `json:"lineage"`
+	Blobs        []BlobRow            `json:"blobs"`
+	TotalSize    int64                `json:"totalSize"`
+	Annotations  map[string]string    `json:"annotations"`
+	Tags         []string             `json:"tags"`
+	Probes       int                  `json:"probes"`
+	Problems     []string             `json:"problems,omitempty"`
+}
+
+// BlobRow is one blob of an artifact.
+type BlobRow struct {
+	Title     string `json:"title"`
+	MediaType string `json:"mediaType"`
+	Digest    string `json:"digest"`
+	Size      int64  `json:"size"`
+}
+
+// Describe loads a model and summarises it, including the tags of its
+// repository that point at it.
+func Describe(ctx context.Context, store registry.Store, ref registry.Ref) (*Description, error) {
+	l, err := Load(ctx, store, ref)
+	if err != nil {
+		return nil, err
+	}
+	a := l.Artifact
+	d := &Description{
+		Ref: ref.String(), Digest: a.Desc.Digest.String(), Kind: a.Kind(), ArtifactType: a.Manifest.ArtifactType,
+		Annotations: a.Manifest.Annotations, Problems: l.Problems, Probes: len(l.Probes),
+	}
+	d.Blobs = append(d.Blobs, BlobRow{Title: "(config) spec.json", MediaType: string(a.Manifest.Config.MediaType), Digest: a.Manifest.Config.Digest.String(), Size: a.Manifest.Config.Size})
+	d.TotalSize = a.Desc.Size + a.Manifest.Config.Size
+	for _, b := range a.Manifest.Layers {
+		d.Blobs = append(d.Blobs, BlobRow{Title: b.Annotations[AnnotationTitle], MediaType: string(b.MediaType), Digest: b.Digest.String(), Size: b.Size})
+		d.TotalSize += b.Size
+	}
+	tags, err := store.Tags(ctx, ref.Repository)
+	if err == nil {
+		for _, t := range tags {
+			if td, err := store.Resolve(ctx, ref.Repository, t); err == nil && td.Digest == a.Desc.Digest {
+				d.Tags = append(d.Tags, ref.Repository+":"+t)
+			}
+		}
+	}
+	if l.Spec == nil {
+		return d, nil
+	}
+	s := l.Spec
+	d.Name, d.Description, d.Inputs, d.Tensors = s.Name, s.Description, s.Inputs, s.Tensors
+	d.Encoder, d.Training, d.Lineage = s.Encoder, s.Training, s.Lineage
+	var encSpec *model.Spec
+	if l.Encoder != nil {
+		encSpec = l.Encoder.Spec
+	}
+	d.Layers = LayerTable(s, encSpec)
+	for _, t := range s.Tensors {
+		d.Params += numel(t.Shape)
+	}
+	return d, nil
+}
+
+func numel(shape []int) int64 {
+	n := int64(1)
+	for _, x := range shape {
+		n *= int64(x)
+	}
+	return n
+}
+
+// LayerTable lists a spec's layers with their output widths and parameter
+// counts; enc (may be nil) resolves "encoder/…" inputs of a scorer.
+func LayerTable(s *model.Spec, enc *model.Spec) []LayerRow {
+	shapes := map[string][]int{}
+	for _, t := range s.Tensors {
+		shapes[t.Name] = t.Shape
+	}
+	width := map[string]int{}
+	if enc != nil {
+		for _, r := range LayerTable(enc, nil) {
+			width[model.EncoderPrefix+r.Name] = r.Width
+		}
+	}
+	for _, in := range s.Inputs.Sparse {
+		width[in.Name] = in.Rows()
+	}
+	for _, in := range s.Inputs.Dense {
+		width[in.Name] = in.Size
+	}
+	var rows []LayerRow
+	for _, l := range s.Layers {
+		r := LayerRow{Name: l.Name, Op: l.Op, Activation: l.Activation}
+		ins := l.Inputs
+		if l.Input != "" {
+			ins = []string{l.Input}
+		}
+		r.Inputs = strings.Join(ins, ", ")
+		switch l.Op {
+		case model.OpSparseDense, model.OpDense:
+			r.Weight, r.Shape = l.Weight, shapes[l.Weight]
+			if len(r.Shape) == 2 {
+				r.Width = r.Shape[1]
+			}
+			r.Params = numel(r.Shape)
+		case model.OpTiedDecoder:
+			r.Weight, r.Shape = l.TiedTo+"ᵀ", shapes[l.TiedTo]
+			if len(r.Shape) == 2 {
+				r.Width = r.Shape[0]
+			}
+		case model.OpConcat:
+			for _, in := range ins {
+				r.Width += width[in]
+			}
+		}
+		if l.Bias != "" {
+			r.Params += numel(shapes[l.Bias])
+		}
+		width[l.Name] = r.Width
+		rows = append(rows, r)
+	}
+	return rows
+}
+
+// TensorChange is how one tensor differs between two models.
+type TensorChange struct {
+	Name    string  `json:"name"`
+	Change  string  `json:"change"` // added, removed, shape, dtype, values, same
+	ShapeA  []int   `json:"shapeA,omitempty"`
+	ShapeB  []int   `json:"shapeB,omitempty"`
+	Changed int64   `json:"changedValues"`
+	MaxAbs  float64 `json:"maxAbsChange"`
+	MaxRel  float64 `json:"maxRelChange"`
+}
+
+// SpecChange is one differing JSON value of two specs.
+type SpecChange struct {
+	Pointer string          `json:"pointer"`
+	A       json.RawMessage `json:"a,omitempty"`
+	B       json.RawMessage `json:"b,omitempty"`
+}
+
+// Difference is what `diff` prints.
+type Difference struct {
+	A, B        string         `json:"-"`
+	DigestA     string         `json:"digestA"`
+	DigestB     string         `json:"digestB"`
+	Identical   bool           `json:"identical"`
+	Spec        []SpecChange   `json:"spec"`
+	Tensors     []TensorChange `json:"tensors"`
+	Vocabulary  VocabChange    `json:"vocabulary"`
+	SizeA       int64          `json:"sizeA"`
+	SizeB       int64          `json:"sizeB"`
+	SharedBlobs int            `json:"sharedBlobs"`
+}
+
+// VocabChange compares two vocabularies row by row.
+type VocabChange struct {
+	LenA int `json:"lenA"`
+	LenB int `json:"lenB"`
+	// Moved counts rows whose id differs between A and B at the same row.
+	RowsDiffer int `json:"rowsDiffer"`
+}
+
+// Diff compares two models: spec values by JSON pointer, tensors value by
+// value, vocabularies row by row, and blob sizes.
+func Diff(ctx context.Context, store registry.Store, ra, rb registry.Ref) (*Difference, error) {
+	la, err := Load(ctx, store, ra)
+	if err != nil {
+		return nil, err
+	}
+	lb, err := Load(ctx, store, rb)
+	if err != nil {
+		return nil, err
+	}
+	d := &Difference{A: ra.String(), B: rb.String(), DigestA: la.Artifact.Desc.Digest.String(), DigestB: lb.Artifact.Desc.Digest.String()}
+	d.Identical = d.DigestA == d.DigestB
+	blobsA := map[string]bool{}
+	for _, b := range append(la.Artifact.Manifest.Layers, la.Artifact.Manifest.Config) {
+		d.SizeA += b.Size
+		blobsA[b.Digest.String()] = true
+	}
+	for _, b := range append(lb.Artifact.Manifest.Layers, lb.Artifact.Manifest.Config) {
+		d.SizeB += b.Size
+		if blobsA[b.Digest.String()] {
+			d.SharedBlobs++
+		}
+	}
+	if la.Spec != nil && lb.Spec != nil {
+		d.Spec = diffJSON(la.Spec, lb.Spec)
+	}
+	d.Tensors = diffTensors(la, lb)
+	d.Vocabulary = VocabChange{LenA: len(la.Vocab), LenB: len(lb.Vocab)}
+	for i := 0; i < len(la.Vocab) && i < len(lb.Vocab); i++ {
+		if la.Vocab[i] != lb.Vocab[i] {
+			d.Vocabulary.RowsDiffer++
+		}
+	}
+	return d, nil
+}
+
+func diffTensors(la, lb *Loaded) []TensorChange {
+	specT := func(l *Loaded) map[string]model.Tensor {
+		m := map[string]model.Tensor{}
+		if l.Spec != nil {
+			for _, t := range l.Spec.Tensors {
+				m[t.Name] = t
+			}
+		}
+		return m
+	}
+	ta, tb := specT(la), specT(lb)
+	names := map[string]bool{}
+	for n := range ta {
+		names[n] = true
+	}
+	for n := range tb {
+		names[n] = true
+	}
+	sorted := make([]string, 0, len(names))
+	for n := range names {
+		sorted = append(sorted, n)
+	}
+	sort.Strings(sorted)
+	var out []TensorChange
+	for _, n := range sorted {
+		a, inA := ta[n]
+		b, inB := tb[n]
+		c := TensorChange{Name: n, ShapeA: a.Shape, ShapeB: b.Shape}
+		switch {
+		case !inA:
+			c.Change = "added"
+		case !inB:
+			c.Change = "removed"
+		case fmt.Sprint(a.Shape) != fmt.Sprint(b.Shape):
+			c.Change = "shape"
+		default:
+			va, vb := la.Tensors[n], lb.Tensors[n]
+			if len(va) != len(vb) {
+				c.Change = "unreadable"
+				break
+			}
+			for i := range va {
+				if va[i] == vb[i] {
+					continue
+				}
+				c.Changed++
+				abs := math.Abs(float64(va[i]) - float64(vb[i]))
+				c.MaxAbs = math.Max(c.MaxAbs, abs)
+				if den := math.Abs(float64(va[i])); den > 0 {
+					c.MaxRel = math.Max(c.MaxRel, abs/den)
+				} else {
+					c.MaxRel = math.Inf(1)
+				}
+			}
+			switch {
+			case c.Changed > 0:
+				c.Change = "values"
+			case a.DType != b.DType:
+				c.Change = "dtype"
+			default:
+				c.Change = "same"
+			}
+		}
+		out = append(out, c)
+	}
+	return out
+}
+
+// diffJSON compares two values through their JSON forms, leaf by leaf.
+func diffJSON(a, b any) []SpecChange {
+	fa, fb := map[string]json.RawMessage{}, map[string]json.RawMessage{}
+	flatten(toAny(a), "", fa)
+	flatten(toAny(b), "", fb)
+	keys := map[string]bool{}
+	for k := range fa {
+		keys[k] = true
+	}
+	for k := range fb {
+		keys[k] = true
+	}
+	sorted := make([]string, 0, len(keys))
+	for k := range keys {
+		sorted = append(sorted, k)
+	}
+	sort.Strings(sorted)
+	var out []SpecChange
+	for _, k := range sorted {
+		if string(fa[k]) != string(fb[k]) {
+			out = append(out, SpecChange{Pointer: k, A: fa[k], B: fb[k]})
+		}
+	}
+	return out
+}
+
+func toAny(v any) any {
+	b, _ := json.Marshal(v)
+	var out any
+	_ = json.Unmarshal(b, &out)
+	return out
+}
+
+func flatten(v any, ptr string, out map[string]json.RawMessage) {
+	switch x := v.(type) {
+	case map[string]any:
+		for k, e := range x {
+			flatten(e, ptr+"/"+strings.NewReplacer("~", "~0", "/", "~1").Replace(k), out)
+		}
+	case []any:
+		if isLeafArray(x) {
+			b, _ := json.Marshal(x)
+			out[ptr] = b
+			return
+		}
+		for i, e := range x {
+			flatten(e, fmt.Sprintf("%s/%d", ptr, i), out)
+		}
+	default:
+		b, _ := json.Marshal(x)
+		out[ptr] = b
+	}
+}
+
+func isLeafArray(x []any) bool {
+	for _, e := range x {
+		switch e.(type) {
+		case map[string]any, []any:
+			return false
+		}
+	}
+	return true
+}

@@ -1,0 +1,358 @@
+package artifact
+
+import (
+	"bytes"
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"fmt"
+	"sort"
+	"strings"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/types"
+
+	"modelgate/internal/errkind"
+	"modelgate/internal/model"
+	"modelgate/internal/model/modeldir"
+	"modelgate/internal/registry"
+)
+
+// MediaTypeManifest is the OCI image manifest media type; every artifact
+// modelgate writes is one.
+const MediaTypeManifest types.MediaType = "application/vnd.oci.image.manifest.v1+json"
+
+// Standard annotation keys (OCI image-spec annotations.md).
+const (
+	AnnotationCreated  = "org.opencontainers.image.created"
+	AnnotationSource   = "org.opencontainers.image.source"
+	AnnotationRevision = "org.opencontainers.image.revision"
+	AnnotationTitle    = "org.opencontainers.image.title"
+	AnnotationVersion  = "org.opencontainers.image.version"
+)
+
+// Event is a progress event of a long operation; Done and Total count bytes.
+type Event struct {
+	Phase string `json:"phase"` // "upload", "skip", "manifest", "tag", "download"
+	Name  string `json:"name"`
+	Done  int64  `json:"done"`
+	Total int64  `json:"total"`
+}
+
+// Options tune push and pull.
+type Options struct {
+	// Progress receives events; nil means none.
+	Progress func(Event)
+}
+
+func (o Options) emit(e Event) {
+	if o.Progress != nil {
+		o.Progress(e)
+	}
+}
+
+// Blob is one blob to upload.
+type Blob struct {
+	Desc  v1.Descriptor
+	Bytes []byte
+}
+
+// NewBlob describes b with the given media type.
+func NewBlob(mt types.MediaType, b []byte, annotations map[string]string) Blob {
+	sum := sha256.Sum256(b)
+	return Blob{
+		Desc: v1.Descriptor{MediaType: mt, Size: int64(len(b)),
+			Digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(sum[:])}, Annotations: annotations},
+		Bytes: b,
+	}
+}
+
+// PushResult says what a push wrote.
+type PushResult struct {
+	Ref          string        `json:"ref"`
+	Digest       string        `json:"digest"`
+	Kind         string        `json:"kind"`
+	Manifest     v1.Descriptor `json:"manifest"`
+	BlobsWritten int           `json:"blobsWritten"`
+	BlobsSkipped int           `json:"blobsSkipped"`
+	BytesWritten int64         `json:"bytesWritten"`
+	// ManifestReused is true when an identical artifact was already in the
+	// repository and only the tag moved.
+	ManifestReused bool `json:"manifestReused"`
+}
+
+// PushModelDir validates the model directory at dir and pushes it to
+// store as ref (NAME:TAG). A scorer that references its encoder by digest
+// must find that encoder in the store.
+//
+// A model's manifest is a pure function of its directory: pushing the same
+// directory anywhere gives the same digest (the creation time comes from
+// the spec's lineage, not the clock).
+func PushModelDir(ctx context.Context, store registry.Store, dir string, ref registry.Ref, opts Options) (*PushResult, error) {
+	if ref.Tag == "" || ref.HasDigest() {
+		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
+	}
+	d, err := modeldir.Read(dir)
+	if err != nil {
+		return nil, err
+	}
+	spec := d.Model.Spec
+	if spec.Encoder != nil && !spec.Encoder.Embedded {
+		if _, err := FindEncoder(ctx, store, spec.Encoder); err != nil {
+			return nil, err
+		}
+	}
+	if err := checkGraph(ctx, store, d); err != nil {
+		return nil, err
+	}
+	config, layers, ann, err := ModelBlobs(d)
+	if err != nil {
+		return nil, err
+	}
+	return PushArtifact(ctx, store, ref, ArtifactType(spec.Kind), config, layers, nil, ann, opts)
+}
+
+// ModelManifest returns the manifest bytes and digest that pushing the
+// validated model directory d gives.
+func ModelManifest(d *modeldir.Dir) ([]byte, v1.Hash, error) {
+	config, layers, ann, err := ModelBlobs(d)
+	if err != nil {
+		return nil, v1.Hash{}, err
+	}
+	raw, err := BuildManifest(ArtifactType(d.Model.Spec.Kind), config, layers, nil, ann)
+	if err != nil {
+		return nil, v1.Hash{}, err
+	}
+	h, _, err := v1.SHA256(bytes.NewReader(raw))
+	return raw, h, err
+}
+
+// ModelBlobs returns the config blob, the layer blobs and the manifest
+// annotations of a validated model directory.
+func ModelBlobs(d *modeldir.Dir) (Blob, []Blob, map[string]string, error) {
+	spec := d.Model.Spec
+	parts := map[string][]string{}
+	for _, t := range spec.Tensors {
+		parts[t.File] = appendUnique(parts[t.File], t.Part)
+	}
+	var layers []Blob
+	for _, f := range d.TensorFiles {
+		sort.Strings(parts[f.Name])
+		layers = append(layers, NewBlob(MediaTypeTensors, f.Bytes, map[string]string{
+			AnnotationTitle: f.Name, AnnotationPart: strings.Join(parts[f.Name], ","),
+		}))
+	}
+	layers = append(layers, NewBlob(MediaTypeVocabulary, d.VocabularyFile.Bytes, map[string]string{AnnotationTitle: d.VocabularyFile.Name}))
+	if d.StatsFile != nil {
+		layers = append(layers, NewBlob(MediaTypeStats, d.StatsFile.Bytes, map[string]string{AnnotationTitle: d.StatsFile.Name}))
+	}
+	if d.ProbesFile != nil {
+		layers = append(layers, NewBlob(MediaTypeProbes, d.ProbesFile.Bytes, map[string]string{AnnotationTitle: d.ProbesFile.Name}))
+	}
+	config := NewBlob(MediaTypeSpec, d.SpecBytes, nil)
+	ann := map[string]string{
+		AnnotationKind: spec.Kind,
+		AnnotationName: spec.Name,
+	}
+	if spec.Lineage.Created != "" {
+		ann[AnnotationCreated] = spec.Lineage.Created
+	}
+	if spec.Lineage.SourceRepository != "" {
+		ann[AnnotationSource] = spec.Lineage.SourceRepository
+	}
+	if spec.Lineage.SourceCommit != "" {
+		ann[AnnotationRevision] = spec.Lineage.SourceCommit
+	}
+	if spec.Lineage.TrainingData != "" {
+		ann[AnnotationTrainingData] = spec.Lineage.TrainingData
+	}
+	if spec.Encoder != nil {
+		ann[AnnotationEncoder] = spec.Encoder.Digest
+	}
+	return config, layers, ann, nil
+}
+
+func appendUnique(s []string, v string) []string {
+	for _, x := range s {
+		if x == v {
+			return s
+		}
+	}
+	return append(s, v)
+}
+
+// PushArtifact uploads config and layers (skipping blobs already present),
+// writes the manifest (reusing an identical one already in the
+// repository), then tags it — in that order, so the tag never points at
+// missing content. ann gets the creation time unless already set.
+func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, artifactType string, config Blob, layers []Blob, subject *v1.Descriptor, ann map[string]string, opts Options) (*PushResult, error) {
+	res := &PushResult{Ref: ref.String(), Kind: strings.TrimSuffix(strings.TrimPrefix(artifactType, "application/vnd.modelgate."), ".v1")}
+	for _, b := range append([]Blob{config}, layers...) {
+		if err := ctx.Err(); err != nil {
+			return nil, err
+		}
+		name := b.Desc.Annotations[AnnotationTitle]
+		if name == "" {
+			name = string(b.Desc.MediaType)
+		}
+		if _, err := store.StatBlob(ctx, ref.Repository, b.Desc.Digest); err == nil {
+			res.BlobsSkipped++
+			opts.emit(Event{Phase: "skip", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+			continue
+		}
+		opts.emit(Event{Phase: "upload", Name: name, Done: 0, Total: b.Desc.Size})
+		if err := store.PutBlob(ctx, ref.Repository, b.Desc.Digest, b.Desc.Size, bytes.NewReader(b.Bytes)); err != nil {
+			return nil, fmt.Errorf("uploading %s (%s): %w", name, b.Desc.Digest, err)
+		}
+		opts.emit(Event{Phase: "upload", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+		res.BlobsWritten++
+		res.BytesWritten += b.Desc.Size
+	}
+	layerDescs := make([]v1.Descriptor, len(layers))
+	for i, l := range layers {
+		layerDescs[i] = l.Desc
+	}
+	if existing, ok := findIdentical(ctx, store, ref, artifactType, config.Desc, layerDescs, subject); ok {
+		res.Manifest = existing
+		res.ManifestReused = true
+	} else {
+		raw, err := BuildManifest(artifactType, config, layers, subject, ann)
+		if err != nil {
+			return nil, err
+		}
+		desc, err := store.PutManifest(ctx, ref.Repository, MediaTypeManifest, raw)
+		if err != nil {
+			return nil, fmt.Errorf("writing manifest: %w", err)
+		}
+		res.BlobsWritten++
+		res.BytesWritten += desc.Size
+		res.Manifest = desc
+		opts.emit(Event{Phase: "manifest", Name: desc.Digest.String(), Done: desc.Size, Total: desc.Size})
+	}
+	res.Digest = res.Manifest.Digest.String()
+	if ref.Tag != "" {
+		if err := store.Tag(ctx, ref.Repository, ref.Tag, res.Manifest); err != nil {
+			return nil, fmt.Errorf("tagging %s: %w", ref, err)
+		}
+		opts.emit(Event{Phase: "tag", Name: ref.String()})
+	}
+	return res, nil
+}
+
+// BuildManifest renders an OCI image manifest v1.1 for an artifact.
+func BuildManifest(artifactType string, config Blob, layers []Blob, subject *v1.Descriptor, ann map[string]string) ([]byte, error) {
+	layerDescs := make([]v1.Descriptor, len(layers))
+	for i, l := range layers {
+		layerDescs[i] = l.Desc
+	}
+	m := v1.Manifest{
+		SchemaVersion: 2,
+		MediaType:     MediaTypeManifest,
+		ArtifactType:  artifactType,
+		Config:        config.Desc,
+		Layers:        layerDescs,
+		Subject:       subject,
+		Annotations:   ann,
+	}
+	raw, err := json.Marshal(m)
+	if err != nil {
+		return nil, err
+	}
+	if len(raw) > registry.MaxManifestSize {
+		return nil, errkind.New(errkind.BadInput, "manifest would be %d bytes, over the %d-byte limit", len(raw), registry.MaxManifestSize)
+	}
+	return raw, nil
+}
+
+// findIdentical looks for a manifest in the repository with the same
+// artifactType, config, layers and subject: pushing the same content twice
+// then writes nothing but (possibly) a tag.
+func findIdentical(ctx context.Context, store registry.Store, ref registry.Ref, artifactType string, config v1.Descriptor, layers []v1.Descriptor, subject *v1.Descriptor) (v1.Descriptor, bool) {
+	var candidates []v1.Descriptor
+	if ref.Tag != "" {
+		if d, err := store.Resolve(ctx, ref.Repository, ref.Tag); err == nil {
+			candidates = append(candidates, d)
+		}
+	}
+	if ml, ok := store.(registry.ManifestLister); ok {
+		if ds, err := ml.Manifests(ctx, ref.Repository); err == nil {
+			candidates = append(candidates, ds...)
+		}
+	}
+	want := manifestKey(artifactType, config, layers, subject)
+	seen := map[v1.Hash]bool{}
+	for _, c := range candidates {
+		if seen[c.Digest] || (c.ArtifactType != "" && c.ArtifactType != artifactType) {
+			continue
+		}
+		seen[c.Digest] = true
+		raw, desc, err := store.Manifest(ctx, ref.Repository, c.Digest)
+		if err != nil {
+			continue
+		}
+		var m v1.Manifest
+		if json.Unmarshal(raw, &m) != nil {
+			continue
+		}
+		if manifestKey(m.ArtifactType, m.Config, m.Layers, m.Subject) == want {
+			return desc, true
+		}
+	}
+	return v1.Descriptor{}, false
+}
+
+func manifestKey(artifactType string, config v1.Descriptor, layers []v1.Descriptor, subject *v1.Descriptor) string {
+	var b strings.Builder
+	b.WriteString(artifactType)
+	b.WriteString("|" + string(config.MediaType) + "@" + config.Digest.String())
+	for _, l := range layers {
+		b.WriteString("|" + string(l.MediaType) + "@" + l.Digest.String() + "#" + l.Annotations[AnnotationTitle])
+	}
+	if subject != nil {
+		b.WriteString("|subject@" + subject.Digest.String())
+	}
+	return b.String()
+}
+
+// FindEncoder locates the encoder a scorer references: by digest, in the
+// repository named by ref.Name (when it names one) or else in any
+// repository of the store. It fails with BadInput when the digest is absent
+// or names something other than an encoder.
+func FindEncoder(ctx context.Context, store registry.Store, ref *model.EncoderRef) (*Located, error) {
+	dg, err := registry.ParseDigest(ref.Digest)
+	if err != nil {
+		return nil, err
+	}
+	var repos []string
+	if ref.Name != "" {
+		if r, err := registry.ParseRef(ref.Name, true); err == nil {
+			repos = append(repos, r.Repository)
+		}
+	}
+	all, err := store.Repositories(ctx)
+	if err != nil {
+		return nil, err
+	}
+	repos = append(repos, all...)
+	for _, repo := range repos {
+		if _, _, err := store.Manifest(ctx, repo, dg); err == nil {
+			loc := &Located{Repository: repo, Digest: dg}
+			art, err := ReadArtifact(ctx, store, registry.Ref{Repository: repo, Digest: dg})
+			if err != nil {
+				return nil, err
+			}
+			if art.Manifest.ArtifactType != ArtifactType(model.KindEncoder) {
+				return nil, errkind.New(errkind.BadInput, "encoder %s (%s) is a %q artifact, not an encoder", ref.Digest, repo, art.Manifest.ArtifactType)
+			}
+			return loc, nil
+		}
+	}
+	return nil, errkind.New(errkind.BadInput, "the scorer's encoder %s (%s) is not in the store: push the encoder first", ref.Digest, ref.Name)
+}
+
+// Located is a manifest found in a repository.
+type Located struct {
+	Repository string
+	Digest     v1.Hash
+}

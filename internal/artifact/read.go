@@ -1,0 +1,279 @@
+package artifact
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"regexp"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"modelgate/internal/errkind"
+	"modelgate/internal/model"
+	"modelgate/internal/model/modeldir"
+	"modelgate/internal/registry"
+)
+
+// Artifact is a manifest read from a store.
+type Artifact struct {
+	Repository string
+	Desc       v1.Descriptor
+	Raw        []byte
+	Manifest   v1.Manifest
+}
+
+// Kind is the artifact kind from its artifactType ("" when not ours).
+func (a *Artifact) Kind() string { return KindOf(a.Manifest.ArtifactType) }
+
+var artifactTypePattern = regexp.MustCompile(`^application/vnd\.modelgate\.([a-z]+)\.v1$`)
+
+// KindOf returns the kind named by one of our artifactTypes, or "".
+func KindOf(artifactType string) string {
+	if m := artifactTypePattern.FindStringSubmatch(artifactType); m != nil {
+		return m[1]
+	}
+	return ""
+}
+
+// Resolve turns a reference into a manifest descriptor: by digest when it
+// has one, else through its tag.
+func Resolve(ctx context.Context, store registry.Store, ref registry.Ref) (v1.Descriptor, error) {
+	if ref.HasDigest() {
+		_, d, err := store.Manifest(ctx, ref.Repository, ref.Digest)
+		return d, err
+	}
+	d, err := store.Resolve(ctx, ref.Repository, ref.Tag)
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	return d, nil
+}
+
+// ReadArtifact reads and parses the manifest ref names.
+func ReadArtifact(ctx context.Context, store registry.Store, ref registry.Ref) (*Artifact, error) {
+	d, err := Resolve(ctx, store, ref)
+	if err != nil {
+		return nil, fmt.Errorf("resolving %s: %w", ref, err)
+	}
+	raw, d, err := store.Manifest(ctx, ref.Repository, d.Digest)
+	if err != nil {
+		return nil, fmt.Errorf("reading manifest of %s: %w", ref, err)
+	}
+	a := &Artifact{Repository: ref.Repository, Desc: d, Raw: raw}
+	if err := json.Unmarshal(raw, &a.Manifest); err != nil {
+		return nil, errkind.New(errkind.Integrity, "manifest %s of %s is not valid JSON: %v", d.Digest, ref, err)
+	}
+	a.Desc.ArtifactType = a.Manifest.ArtifactType
+	return a, nil
+}
+
+// ReadBlob reads a whole blob (verified by the store) up to limit bytes.
+func ReadBlob(ctx context.Context, store registry.Store, repo string, d v1.Descriptor, limit int64) ([]byte, error) {
+	if d.Size > limit {
+		return nil, errkind.New(errkind.Integrity, "blob %s claims %d bytes, over the %d-byte limit", d.Digest, d.Size, limit)
+	}
+	rc, err := store.Blob(ctx, repo, d.Digest)
+	if err != nil {
+		return nil, err
+	}
+	defer rc.Close()
+	b, err := io.ReadAll(io.LimitReader(rc, d.Size+1))
+	if err != nil {
+		return nil, fmt.Errorf("reading blob %s: %w", d.Digest, err)
+	}
+	if int64(len(b)) != d.Size {
+		return nil, errkind.New(errkind.Integrity, "blob %s has %d bytes, its descriptor says %d", d.Digest, len(b), d.Size)
+	}
+	return b, nil
+}
+
+// MaxBlobSize bounds any single blob modelgate reads into memory.
+const MaxBlobSize = 8 << 30
+
+var safeName = regexp.MustCompile(`^[A-Za-z0-9_][A-Za-z0-9_.-]{0,127}$`)
+
+// ModelFiles reads a model artifact's blobs back into the files of its
+// model directory (spec.json first), checking the layer titles are plain
+// file names.
+func ModelFiles(ctx context.Context, store registry.Store, a *Artifact) ([]modeldir.File, error) {
+	k := a.Kind()
+	if k != model.KindEncoder && k != model.KindScorer {
+		return nil, errkind.New(errkind.BadInput, "%s@%s is a %q artifact, not a model", a.Repository, a.Desc.Digest, a.Manifest.ArtifactType)
+	}
+	spec, err := ReadBlob(ctx, store, a.Repository, a.Manifest.Config, modeldir.MaxSpecSize)
+	if err != nil {
+		return nil, err
+	}
+	files := []modeldir.File{{Name: modeldir.SpecFile, Bytes: spec}}
+	seen := map[string]bool{modeldir.SpecFile: true}
+	for _, l := range a.Manifest.Layers {
+		name := l.Annotations[AnnotationTitle]
+		if !safeName.MatchString(name) || seen[name] {
+			return nil, errkind.New(errkind.Integrity, "layer %s of %s has an unsafe or repeated file name %q", l.Digest, a.Desc.Digest, name)
+		}
+		seen[name] = true
+		b, err := ReadBlob(ctx, store, a.Repository, l, MaxBlobSize)
+		if err != nil {
+			return nil, err
+		}
+		files = append(files, modeldir.File{Name: name, Bytes: b})
+	}
+	return files, nil
+}
+
+// Pull writes the model ref names into dir as a model directory (dir is
+// created; existing files of the same names are replaced) and validates it.
+func Pull(ctx context.Context, store registry.Store, ref registry.Ref, dir string, opts Options) (*Artifact, error) {
+	a, err := ReadArtifact(ctx, store, ref)
+	if err != nil {
+		return nil, err
+	}
+	files, err := ModelFiles(ctx, store, a)
+	if err != nil {
+		return nil, err
+	}
+	if err := os.MkdirAll(dir, 0o755); err != nil {
+		return nil, errkind.Wrap(errkind.BadInput, err)
+	}
+	for _, f := range files {
+		opts.emit(Event{Phase: "download", Name: f.Name, Done: int64(len(f.Bytes)), Total: int64(len(f.Bytes))})
+		if err := writeFileAtomic(filepath.Join(dir, f.Name), f.Bytes); err != nil {
+			return nil, err
+		}
+	}
+	if _, err := modeldir.Read(dir); err != nil {
+		return nil, fmt.Errorf("pulled model does not validate: %w", err)
+	}
+	return a, nil
+}
+
+func writeFileAtomic(path string, b []byte) error {
+	tmp, err := os.CreateTemp(filepath.Dir(path), ".pull-*")
+	if err != nil {
+		return err
+	}
+	defer os.Remove(tmp.Name())
+	if _, err := tmp.Write(b); err != nil {
+		tmp.Close()
+		return err
+	}
+	if err := tmp.Sync(); err != nil {
+		tmp.Close()
+		return err
+	}
+	if err := tmp.Close(); err != nil {
+		return err
+	}
+	if err := os.Chmod(tmp.Name(), 0o644); err != nil {
+		return err
+	}
+	return os.Rename(tmp.Name(), path)
+}
+
+// Loaded is a model read from the store and decoded, ready for the runtime.
+type Loaded struct {
+	Artifact *Artifact
+	Spec     *model.Spec
+	Tensors  map[string][]float32
+	Vocab    []string
+	Probes   []modeldir.Probe
+	Stats    map[string]any
+	// Encoder is the referenced encoder of a scorer that does not embed it.
+	Encoder *Loaded
+	// Problems lists what does not match the spec (empty when sound).
+	Problems []string
+}
+
+// Load reads a model artifact and decodes every blob, checking tensors
+// against the spec (shape, dtype, finite values), the vocabulary and the
+// probes; a scorer's referenced encoder is loaded too. Problems in the
+// content are listed in Loaded.Problems, not returned as an error.
+func Load(ctx context.Context, store registry.Store, ref registry.Ref) (*Loaded, error) {
+	a, err := ReadArtifact(ctx, store, ref)
+	if err != nil {
+		return nil, err
+	}
+	files, err := ModelFiles(ctx, store, a)
+	if err != nil {
+		return nil, err
+	}
+	l := &Loaded{Artifact: a, Tensors: map[string][]float32{}}
+	spec, vs, err := modeldir.ParseSpec(files[0].Bytes)
+	if err != nil {
+		return nil, err
+	}
+	if spec == nil || len(vs) > 0 {
+		l.Problems = append(l.Problems, prefixAll("spec: ", vs)...)
+		return l, nil
+	}
+	l.Spec = spec
+	byName := map[string][]byte{}
+	for _, f := range files[1:] {
+		byName[f.Name] = f.Bytes
+	}
+	byFile := map[string][]model.Tensor{}
+	for _, t := range spec.Tensors {
+		byFile[t.File] = append(byFile[t.File], t)
+	}
+	for _, name := range modeldir.TensorFileNames(spec) {
+		b, ok := byName[name]
+		if !ok {
+			l.Problems = append(l.Problems, fmt.Sprintf("%s: tensor file named by the spec is not a layer of the artifact", name))
+			continue
+		}
+		ts, probs := modeldir.DecodeTensors(name, b, byFile[name])
+		l.Problems = append(l.Problems, probs...)
+		for k, v := range ts {
+			l.Tensors[k] = v
+		}
+	}
+	in := spec.Inputs.Sparse[0]
+	if b, ok := byName[in.Vocabulary]; ok {
+		ids, probs := modeldir.ParseVocabulary(in.Vocabulary, b, in.VocabularySize)
+		l.Vocab = ids
+		l.Problems = append(l.Problems, probs...)
+	} else {
+		l.Problems = append(l.Problems, fmt.Sprintf("%s: vocabulary named by the spec is not a layer of the artifact", in.Vocabulary))
+	}
+	if name := spec.Files.Probes; name != "" {
+		if b, ok := byName[name]; ok {
+			ps, probs := modeldir.ParseProbes(name, b, spec)
+			l.Probes = ps
+			l.Problems = append(l.Problems, probs...)
+		} else {
+			l.Problems = append(l.Problems, fmt.Sprintf("%s: probes named by the spec are not a layer of the artifact", name))
+		}
+	}
+	if name := spec.Files.Stats; name != "" {
+		if b, ok := byName[name]; ok {
+			if err := json.Unmarshal(b, &l.Stats); err != nil {
+				l.Problems = append(l.Problems, fmt.Sprintf("%s: %v", name, err))
+			}
+		}
+	}
+	if spec.Encoder != nil && !spec.Encoder.Embedded {
+		loc, err := FindEncoder(ctx, store, spec.Encoder)
+		if err != nil {
+			l.Problems = append(l.Problems, err.Error())
+		} else {
+			enc, err := Load(ctx, store, registry.Ref{Repository: loc.Repository, Digest: loc.Digest})
+			if err != nil {
+				return nil, fmt.Errorf("loading encoder %s: %w", spec.Encoder.Digest, err)
+			}
+			l.Encoder = enc
+			l.Problems = append(l.Problems, prefixAll("encoder: ", enc.Problems)...)
+		}
+	}
+	return l, nil
+}
+
+func prefixAll(p string, xs []string) []string {
+	out := make([]string, len(xs))
+	for i, x := range xs {
+		out[i] = p + x
+	}
+	return out
+}

@@ -1,0 +1,133 @@
+package artifact
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"sort"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"modelgate/internal/model"
+	"modelgate/internal/registry"
+)
+
+// VerifyReport is the result of verifying a whole store.
+type VerifyReport struct {
+	Store        string             `json:"store"`
+	Repositories int                `json:"repositories"`
+	Tags         int                `json:"tags"`
+	Manifests    int                `json:"manifests"`
+	Models       int                `json:"models"`
+	Findings     []registry.Finding `json:"findings"`
+	Damage       int                `json:"damage"`
+	Hints        int                `json:"hints"`
+}
+
+// OK reports whether no damage was found (hints are harmless).
+func (r *VerifyReport) OK() bool { return r.Damage == 0 }
+
+func (r *VerifyReport) add(sev, where, format string, args ...any) {
+	r.Findings = append(r.Findings, registry.Finding{Severity: sev, Where: where, Message: fmt.Sprintf(format, args...)})
+}
+
+// VerifyStore checks a whole store: every tag resolves, every manifest
+// parses and references present blobs, every model's spec validates and its
+// tensors match the spec with finite values, and (when the store can scrub)
+// every blob re-hashes to its digest. Unreferenced blobs are hints.
+func VerifyStore(ctx context.Context, store registry.Store, progress func(Event)) (*VerifyReport, error) {
+	rep := &VerifyReport{Store: store.String()}
+	repos, err := store.Repositories(ctx)
+	if err != nil {
+		return nil, err
+	}
+	rep.Repositories = len(repos)
+	referenced := map[v1.Hash]bool{}
+	for _, repo := range repos {
+		manifests := map[v1.Hash]bool{}
+		tags, err := store.Tags(ctx, repo)
+		if err != nil {
+			rep.add(registry.SeverityDamage, repo, "listing tags: %v", err)
+			continue
+		}
+		for _, tag := range tags {
+			rep.Tags++
+			d, err := store.Resolve(ctx, repo, tag)
+			if err != nil {
+				rep.add(registry.SeverityDamage, repo+":"+tag, "tag does not resolve: %v", err)
+				continue
+			}
+			manifests[d.Digest] = true
+		}
+		if ml, ok := store.(registry.ManifestLister); ok {
+			ds, err := ml.Manifests(ctx, repo)
+			if err != nil {
+				rep.add(registry.SeverityDamage, repo, "listing manifests: %v", err)
+			}
+			for _, d := range ds {
+				manifests[d.Digest] = true
+			}
+		}
+		digests := make([]v1.Hash, 0, len(manifests))
+		for d := range manifests {
+			digests = append(digests, d)
+		}
+		sort.Slice(digests, func(i, j int) bool { return digests[i].String() < digests[j].String() })
+		for _, d := range digests {
+			rep.Manifests++
+			where := repo + "@" + d.String()
+			if progress != nil {
+				progress(Event{Phase: "verify", Name: where, Done: int64(rep.Manifests)})
+			}
+			referenced[d] = true
+			raw, _, err := store.Manifest(ctx, repo, d)
+			if err != nil {
+				rep.add(registry.SeverityDamage, where, "manifest unreadable: %v", err)
+				continue
+			}
+			var m v1.Manifest
+			if err := json.Unmarshal(raw, &m); err != nil {
+				rep.add(registry.SeverityDamage, where, "manifest is not valid JSON: %v", err)
+				continue
+			}
+			referenced[m.Config.Digest] = true
+			for _, l := range append([]v1.Descriptor{m.Config}, m.Layers...) {
+				referenced[l.Digest] = true
+				size, err := store.StatBlob(ctx, repo, l.Digest)
+				if err != nil {
+					rep.add(registry.SeverityDamage, where, "blob %s (%s) missing: %v", l.Digest, l.MediaType, err)
+				} else if size != l.Size {
+					rep.add(registry.SeverityDamage, where, "blob %s is %d bytes, the manifest says %d", l.Digest, size, l.Size)
+				}
+			}
+			k := KindOf(m.ArtifactType)
+			if k != model.KindEncoder && k != model.KindScorer {
+				continue
+			}
+			rep.Models++
+			l, err := Load(ctx, store, registry.Ref{Repository: repo, Digest: d})
+			if err != nil {
+				rep.add(registry.SeverityDamage, where, "model unreadable: %v", err)
+				continue
+			}
+			for _, p := range l.Problems {
+				rep.add(registry.SeverityDamage, where, "%s", p)
+			}
+		}
+	}
+	if sc, ok := store.(registry.Scrubber); ok {
+		fs, err := sc.Scrub(ctx, referenced)
+		if err != nil {
+			return nil, err
+		}
+		rep.Findings = append(rep.Findings, fs...)
+	}
+	for _, f := range rep.Findings {
+		if f.Severity == registry.SeverityDamage {
+			rep.Damage++
+		} else {
+			rep.Hints++
+		}
+	}
+	return rep, nil
+}

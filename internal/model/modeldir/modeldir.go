@@ -1,0 +1,547 @@
+// Package modeldir reads and writes model directories: what a training job
+// produces and what `modelgate push` reads.
+//
+// A model directory holds:
+//
+//	spec.json            the spec (schemas/spec.schema.json)
+//	*.safetensors        the tensors, one file per group named by the spec
+//	vocabulary file      named by the sparse input: one raw item id per line,
+//	                     line i (from 0) is weight row i
+//	stats file           optional (spec files.stats): training statistics, a JSON object
+//	probes file          optional (spec files.probes): JSON Lines of probe rows, each
+//	                     {"items": [...], "values": [...], "dense": {...}, "expect": {layer: [...]}}
+//
+// Read validates everything it can without running the model and reports
+// every problem it finds, each naming its file and place.
+package modeldir
+
+import (
+	"bufio"
+	"bytes"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"path/filepath"
+	"sort"
+	"strconv"
+	"strings"
+	"unicode/utf8"
+
+	"modelgate/internal/errkind"
+	"modelgate/internal/model"
+	"modelgate/internal/model/safetensors"
+	"modelgate/schemas"
+)
+
+// SpecFile is the spec's file name inside a model directory.
+const SpecFile = "spec.json"
+
+// Limits on the small files of a model directory (tensors are bounded by the
+// safetensors reader and the filesystem).
+const (
+	MaxSpecSize   = 4 << 20
+	MaxStatsSize  = 4 << 20
+	MaxProbesSize = 64 << 20
+	MaxProbeLine  = 4 << 20
+	MaxVocabSize  = 1 << 30
+)
+
+// Probe is one probe row: an input given as raw item ids and values, and
+// the outputs the training side computed for it, by layer name.
+type Probe struct {
+	Items  []string             `json:"items"`
+	Values []float32            `json:"values"`
+	Dense  map[string][]float32 `json:"dense,omitempty"`
+	Expect map[string][]float32 `json:"expect"`
+}
+
+// UnmarshalJSON accepts item ids given as strings or integers; integers are
+// kept in their decimal form.
+func (p *Probe) UnmarshalJSON(b []byte) error {
+	var raw struct {
+		Items  []json.RawMessage    `json:"items"`
+		Values []float32            `json:"values"`
+		Dense  map[string][]float32 `json:"dense"`
+		Expect map[string][]float32 `json:"expect"`
+	}
+	if err := json.Unmarshal(b, &raw); err != nil {
+		return err
+	}
+	p.Items = make([]string, len(raw.Items))
+	for i, it := range raw.Items {
+		id, err := ParseItemID(it)
+		if err != nil {
+			return fmt.Errorf("items[%d]: %w", i, err)
+		}
+		p.Items[i] = id
+	}
+	p.Values, p.Dense, p.Expect = raw.Values, raw.Dense, raw.Expect
+	return nil
+}
+
+// ParseItemID turns a JSON string or integer into a raw item id.
+func ParseItemID(raw json.RawMessage) (string, error) {
+	raw = bytes.TrimSpace(raw)
+	if len(raw) > 0 && raw[0] == '"' {
+		var s string
+		if err := json.Unmarshal(raw, &s); err != nil {
+			return "", err
+		}
+		if s == "" {
+			return "", errors.New("empty item id")
+		}
+		return s, nil
+	}
+	n, err := strconv.ParseInt(string(raw), 10, 64)
+	if err != nil {
+		return "", fmt.Errorf("item id %s is neither a string nor an int64", raw)
+	}
+	return strconv.FormatInt(n, 10), nil
+}
+
+// Model is a model directory in memory.
+type Model struct {
+	Spec *model.Spec
+	// Tensors holds every tensor named by the spec, decoded to float32.
+	Tensors map[string][]float32
+	// Vocabulary lists raw item ids; Vocabulary[i] names weight row i.
+	Vocabulary []string
+	// Stats is the training statistics object (nil when absent).
+	Stats  map[string]any
+	Probes []Probe
+}
+
+// File is one file of a model directory as read from disk.
+type File struct {
+	Name  string
+	Bytes []byte
+}
+
+// Dir is a validated model directory: the model and the exact bytes of its
+// files, in the order a push stores them (spec first).
+type Dir struct {
+	Path  string
+	Model *Model
+	// SpecBytes is spec.json as written.
+	SpecBytes []byte
+	// TensorFiles, VocabularyFile, StatsFile, ProbesFile hold the raw files.
+	TensorFiles    []File
+	VocabularyFile File
+	StatsFile      *File
+	ProbesFile     *File
+}
+
+// Problems gathers every problem found in a model directory.
+type Problems struct {
+	Dir  string
+	List []string
+}
+
+func (p *Problems) add(format string, args ...any) {
+	p.List = append(p.List, fmt.Sprintf(format, args...))
+}
+
+func (p *Problems) Error() string {
+	return fmt.Sprintf("model directory %s has %d problem(s):\n  %s", p.Dir, len(p.List), strings.Join(p.List, "\n  "))
+}
+
+func (p *Problems) err() error {
+	if len(p.List) == 0 {
+		return nil
+	}
+	return errkind.Wrap(errkind.BadInput, p)
+}
+
+// ParseSpec validates raw spec JSON against schemas/spec.schema.json and
+// the cross-field rules of CheckSpec, returning every violation.
+func ParseSpec(raw []byte) (*model.Spec, []string, error) {
+	vs, err := schemas.Validate(schemas.Spec, raw)
+	if err != nil {
+		return nil, nil, err
+	}
+	if len(vs) > 0 {
+		out := make([]string, len(vs))
+		for i, v := range vs {
+			out[i] = v.String()
+		}
+		return nil, out, nil
+	}
+	var s model.Spec
+	if err := json.Unmarshal(raw, &s); err != nil {
+		return nil, []string{"/: " + err.Error()}, nil
+	}
+	return &s, CheckSpec(&s), nil
+}
+
+// CheckSpec applies the rules a JSON Schema cannot express: unique names,
+// tensors referenced by layers and training state exist, the named output,
+// code and reconstruction layers exist.
+func CheckSpec(s *model.Spec) []string {
+	var out []string
+	tensors := map[string]model.Tensor{}
+	for i, t := range s.Tensors {
+		if _, dup := tensors[t.Name]; dup {
+			out = append(out, fmt.Sprintf("/tensors/%d/name: tensor %q is declared twice", i, t.Name))
+		}
+		tensors[t.Name] = t
+	}
+	names := map[string]bool{}
+	for _, in := range s.Inputs.Sparse {
+		names[in.Name] = true
+	}
+	for i, in := range s.Inputs.Dense {
+		if names[in.Name] {
+			out = append(out, fmt.Sprintf("/inputs/dense/%d/name: input name %q is used twice", i, in.Name))
+		}
+		names[in.Name] = true
+	}
+	layers := map[string]bool{}
+	for i, l := range s.Layers {
+		if names[l.Name] || layers[l.Name] {
+			out = append(out, fmt.Sprintf("/layers/%d/name: name %q is used twice", i, l.Name))
+		}
+		layers[l.Name] = true
+		for _, f := range []struct{ field, name string }{{"weight", l.Weight}, {"tiedTo", l.TiedTo}, {"bias", l.Bias}} {
+			if f.name == "" {
+				continue
+			}
+			t, ok := tensors[f.name]
+			if !ok {
+				out = append(out, fmt.Sprintf("/layers/%d/%s: tensor %q is not declared in /tensors", i, f.field, f.name))
+			} else if t.Part == "training" {
+				out = append(out, fmt.Sprintf("/layers/%d/%s: tensor %q has part \"training\" and cannot be used by a layer", i, f.field, f.name))
+			}
+		}
+	}
+	for _, f := range []struct{ ptr, name string }{{"/output", s.Output}, {"/code", s.Code}, {"/reconstruction", s.Reconstruction}} {
+		if f.name != "" && !layers[f.name] {
+			out = append(out, fmt.Sprintf("%s: layer %q does not exist", f.ptr, f.name))
+		}
+	}
+	if s.Encoder != nil && s.Encoder.Embedded && !layers[s.Encoder.Output] {
+		out = append(out, fmt.Sprintf("/encoder/output: embedded encoder layer %q does not exist", s.Encoder.Output))
+	}
+	if t := s.Training; t != nil {
+		for i, r := range t.Regularization {
+			if _, ok := tensors[r.Tensor]; !ok {
+				out = append(out, fmt.Sprintf("/training/regularization/%d/tensor: tensor %q is not declared", i, r.Tensor))
+			}
+		}
+		for i, o := range t.OptimizerSlots {
+			if _, ok := tensors[o.Tensor]; !ok {
+				out = append(out, fmt.Sprintf("/training/optimizerSlots/%d/tensor: tensor %q is not declared", i, o.Tensor))
+			}
+			if _, ok := tensors[o.Of]; !ok {
+				out = append(out, fmt.Sprintf("/training/optimizerSlots/%d/of: tensor %q is not declared", i, o.Of))
+			}
+		}
+		for i, d := range t.Dropout {
+			if !layers[d.Layer] {
+				out = append(out, fmt.Sprintf("/training/dropout/%d/layer: layer %q does not exist", i, d.Layer))
+			}
+		}
+	}
+	return out
+}
+
+// TensorFileNames returns the distinct safetensors files the spec names, sorted.
+func TensorFileNames(s *model.Spec) []string {
+	seen := map[string]bool{}
+	var out []string
+	for _, t := range s.Tensors {
+		if !seen[t.File] {
+			seen[t.File] = true
+			out = append(out, t.File)
+		}
+	}
+	sort.Strings(out)
+	return out
+}
+
+func readLimited(path string, limit int64) ([]byte, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, err
+	}
+	defer f.Close()
+	b, err := io.ReadAll(io.LimitReader(f, limit+1))
+	if err != nil {
+		return nil, err
+	}
+	if int64(len(b)) > limit {
+		return nil, fmt.Errorf("larger than %d bytes", limit)
+	}
+	return b, nil
+}
+
+// Read reads and validates the model directory at dir. All problems found
+// are returned together as one error of kind BadInput.
+func Read(dir string) (*Dir, error) {
+	probs := &Problems{Dir: dir}
+	st, err := os.Stat(dir)
+	if err != nil {
+		return nil, errkind.New(errkind.BadInput, "model directory %s: %w", dir, err)
+	}
+	if !st.IsDir() {
+		return nil, errkind.New(errkind.BadInput, "model directory %s: not a directory", dir)
+	}
+	specBytes, err := readLimited(filepath.Join(dir, SpecFile), MaxSpecSize)
+	if err != nil {
+		return nil, errkind.New(errkind.BadInput, "model directory %s: reading %s: %w", dir, SpecFile, err)
+	}
+	spec, vs, err := ParseSpec(specBytes)
+	if err != nil {
+		return nil, err
+	}
+	for _, v := range vs {
+		probs.add("%s %s", SpecFile, v)
+	}
+	if spec == nil || len(vs) > 0 {
+		return nil, probs.err()
+	}
+	d := &Dir{Path: dir, SpecBytes: specBytes, Model: &Model{Spec: spec, Tensors: map[string][]float32{}}}
+	d.readTensors(probs)
+	d.readVocabulary(probs)
+	d.readStats(probs)
+	d.readProbes(probs)
+	if err := probs.err(); err != nil {
+		return nil, err
+	}
+	return d, nil
+}
+
+func (d *Dir) readTensors(probs *Problems) {
+	spec := d.Model.Spec
+	byFile := map[string][]model.Tensor{}
+	for _, t := range spec.Tensors {
+		byFile[t.File] = append(byFile[t.File], t)
+	}
+	for _, name := range TensorFileNames(spec) {
+		b, err := os.ReadFile(filepath.Join(d.Path, name))
+		if err != nil {
+			probs.add("%s: %v", name, err)
+			continue
+		}
+		d.TensorFiles = append(d.TensorFiles, File{Name: name, Bytes: b})
+		tensors, problems := DecodeTensors(name, b, byFile[name])
+		probs.List = append(probs.List, problems...)
+		for k, v := range tensors {
+			d.Model.Tensors[k] = v
+		}
+	}
+}
+
+// DecodeTensors parses one safetensors file and checks it against the
+// spec's tensors declared in it: same names, dtype, shape, all values
+// finite. It returns the decoded tensors and every problem found.
+func DecodeTensors(file string, b []byte, declared []model.Tensor) (map[string][]float32, []string) {
+	var problems []string
+	f, err := safetensors.Parse(bytes.NewReader(b), int64(len(b)))
+	if err != nil {
+		return nil, []string{fmt.Sprintf("%s: %v", file, err)}
+	}
+	out := map[string][]float32{}
+	want := map[string]bool{}
+	for _, t := range declared {
+		want[t.Name] = true
+		info, ok := f.Info(t.Name)
+		if !ok {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q declared in spec.json is missing", file, t.Name))
+			continue
+		}
+		if info.DType != t.DType {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q has dtype %s, spec.json says %s", file, t.Name, info.DType, t.DType))
+		}
+		if !equalInts(info.Shape, t.Shape) {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q has shape %v, spec.json says %v", file, t.Name, info.Shape, t.Shape))
+			continue
+		}
+		vals, err := f.Float32s(t.Name)
+		if err != nil {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q: %v", file, t.Name, err))
+			continue
+		}
+		if i, bad := firstNonFinite(vals); bad {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q has a non-finite value (%v) at flat index %d", file, t.Name, vals[i], i))
+			continue
+		}
+		out[t.Name] = vals
+	}
+	for _, info := range f.Tensors {
+		if !want[info.Name] {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q is not declared in spec.json", file, info.Name))
+		}
+	}
+	return out, problems
+}
+
+func firstNonFinite(v []float32) (int, bool) {
+	for i, x := range v {
+		if math.IsNaN(float64(x)) || math.IsInf(float64(x), 0) {
+			return i, true
+		}
+	}
+	return 0, false
+}
+
+func equalInts(a, b []int) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if a[i] != b[i] {
+			return false
+		}
+	}
+	return true
+}
+
+func (d *Dir) readVocabulary(probs *Problems) {
+	in := d.Model.Spec.Inputs.Sparse[0]
+	b, err := readLimited(filepath.Join(d.Path, in.Vocabulary), MaxVocabSize)
+	if err != nil {
+		probs.add("%s: %v", in.Vocabulary, err)
+		return
+	}
+	d.VocabularyFile = File{Name: in.Vocabulary, Bytes: b}
+	ids, problems := ParseVocabulary(in.Vocabulary, b, in.VocabularySize)
+	probs.List = append(probs.List, problems...)
+	d.Model.Vocabulary = ids
+}
+
+// ParseVocabulary splits a vocabulary file into ids and checks it: valid
+// UTF-8, no CR, no empty or duplicate ids, exactly size lines.
+func ParseVocabulary(file string, b []byte, size int) ([]string, []string) {
+	var problems []string
+	if !utf8.Valid(b) {
+		return nil, []string{file + ": not valid UTF-8"}
+	}
+	text := strings.TrimSuffix(string(b), "\n")
+	var ids []string
+	if text != "" {
+		ids = strings.Split(text, "\n")
+	}
+	seen := make(map[string]int, len(ids))
+	for i, id := range ids {
+		switch {
+		case id == "":
+			problems = append(problems, fmt.Sprintf("%s:%d: empty item id", file, i+1))
+		case strings.ContainsAny(id, "\r\t"):
+			problems = append(problems, fmt.Sprintf("%s:%d: item id contains a CR or tab", file, i+1))
+		default:
+			if j, dup := seen[id]; dup {
+				problems = append(problems, fmt.Sprintf("%s:%d: item id %q repeats line %d", file, i+1, id, j+1))
+			}
+			seen[id] = i
+		}
+		if len(problems) >= 20 {
+			problems = append(problems, file+": more problems not listed")
+			return ids, problems
+		}
+	}
+	if len(ids) != size {
+		problems = append(problems, fmt.Sprintf("%s: %d ids, spec.json vocabularySize says %d", file, len(ids), size))
+	}
+	return ids, problems
+}
+
+func (d *Dir) readStats(probs *Problems) {
+	name := d.Model.Spec.Files.Stats
+	if name == "" {
+		return
+	}
+	b, err := readLimited(filepath.Join(d.Path, name), MaxStatsSize)
+	if err != nil {
+		probs.add("%s: %v", name, err)
+		return
+	}
+	d.StatsFile = &File{Name: name, Bytes: b}
+	if err := json.Unmarshal(b, &d.Model.Stats); err != nil || d.Model.Stats == nil {
+		probs.add("%s: not a JSON object: %v", name, err)
+	}
+}
+
+func (d *Dir) readProbes(probs *Problems) {
+	name := d.Model.Spec.Files.Probes
+	if name == "" {
+		return
+	}
+	b, err := readLimited(filepath.Join(d.Path, name), MaxProbesSize)
+	if err != nil {
+		probs.add("%s: %v", name, err)
+		return
+	}
+	d.ProbesFile = &File{Name: name, Bytes: b}
+	ps, problems := ParseProbes(name, b, d.Model.Spec)
+	probs.List = append(probs.List, problems...)
+	d.Model.Probes = ps
+}
+
+// ParseProbes parses a probes file (JSON Lines) and checks each row's shape
+// against the spec: items and values of equal length, finite values,
+// dense inputs of the declared sizes, expected outputs for existing layers.
+func ParseProbes(file string, b []byte, s *model.Spec) ([]Probe, []string) {
+	var problems []string
+	dense := map[string]int{}
+	for _, in := range s.Inputs.Dense {
+		dense[in.Name] = in.Size
+	}
+	layers := map[string]bool{}
+	for _, l := range s.Layers {
+		layers[l.Name] = true
+	}
+	sc := bufio.NewScanner(bytes.NewReader(b))
+	sc.Buffer(make([]byte, 64<<10), MaxProbeLine)
+	var out []Probe
+	line := 0
+	for sc.Scan() {
+		line++
+		text := bytes.TrimSpace(sc.Bytes())
+		if len(text) == 0 {
+			continue
+		}
+		var p Probe
+		if err := json.Unmarshal(text, &p); err != nil {
+			problems = append(problems, fmt.Sprintf("%s:%d: %v", file, line, err))
+			continue
+		}
+		if len(p.Items) != len(p.Values) {
+			problems = append(problems, fmt.Sprintf("%s:%d: %d items but %d values", file, line, len(p.Items), len(p.Values)))
+		}
+		for _, v := range p.Values {
+			if math.IsNaN(float64(v)) || math.IsInf(float64(v), 0) || v < 0 {
+				problems = append(problems, fmt.Sprintf("%s:%d: value %v is negative or not finite", file, line, v))
+				break
+			}
+		}
+		for name, size := range dense {
+			if got := len(p.Dense[name]); got != size {
+				problems = append(problems, fmt.Sprintf("%s:%d: dense input %q has %d values, spec.json says %d", file, line, name, got, size))
+			}
+		}
+		for name := range p.Dense {
+			if _, ok := dense[name]; !ok {
+				problems = append(problems, fmt.Sprintf("%s:%d: dense input %q is not in spec.json", file, line, name))
+			}
+		}
+		if len(p.Expect) == 0 {
+			problems = append(problems, fmt.Sprintf("%s:%d: no expected outputs (\"expect\")", file, line))
+		}
+		for name := range p.Expect {
+			if !layers[name] && !strings.HasPrefix(name, model.EncoderPrefix) {
+				problems = append(problems, fmt.Sprintf("%s:%d: expected output for unknown layer %q", file, line, name))
+			}
+		}
+		out = append(out, p)
+		if len(problems) >= 50 {
+			return out, append(problems, file+": more problems not listed")
+		}
+	}
+	if err := sc.Err(); err != nil {
+		problems = append(problems, fmt.Sprintf("%s:%d: %v", file, line+1, err))
+	}
+	return out, problems
+}
