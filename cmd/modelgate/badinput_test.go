@@ -1,0 +1,398 @@
+package main
+
+import (
+	"bytes"
+	"encoding/binary"
+	"encoding/json"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"strings"
+	"sync"
+	"syscall"
+	"testing"
+	"time"
+
+	"modelgate/internal/fixture"
+	"modelgate/internal/model/modeldir"
+	"modelgate/internal/model/safetensors"
+)
+
+// copyDir copies a flat model directory.
+func copyDir(t *testing.T, src string) string {
+	t.Helper()
+	dst := filepath.Join(t.TempDir(), filepath.Base(src))
+	if err := os.MkdirAll(dst, 0o755); err != nil {
+		t.Fatal(err)
+	}
+	es, err := os.ReadDir(src)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, e := range es {
+		b, err := os.ReadFile(filepath.Join(src, e.Name()))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(filepath.Join(dst, e.Name()), b, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	return dst
+}
+
+func editJSON(t *testing.T, path string, edit func(m map[string]any)) {
+	t.Helper()
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var m map[string]any
+	if err := json.Unmarshal(b, &m); err != nil {
+		t.Fatal(err)
+	}
+	edit(m)
+	out, _ := json.MarshalIndent(m, "", "  ")
+	if err := os.WriteFile(path, out, 0o644); err != nil {
+		t.Fatal(err)
+	}
+}
+
+// rawSafetensors builds a safetensors file by hand from a header and a buffer.
+func rawSafetensors(header string, buf []byte) []byte {
+	var b bytes.Buffer
+	binary.Write(&b, binary.LittleEndian, uint64(len(header)))
+	b.WriteString(header)
+	b.Write(buf)
+	return b.Bytes()
+}
+
+func TestBadInputChangesNothing(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "store")
+	encDir, scorerDir := fixtures(t)
+	mustMG(t, store, "push", encDir, "tiny-encoder:v1")
+
+	cases := []struct {
+		name  string
+		setup func(t *testing.T) (dir, ref string)
+		code  int
+		want  []string // every string must appear in stderr
+	}{
+		{"spec not JSON", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			os.WriteFile(filepath.Join(d, "spec.json"), []byte(`{"kind": "encoder",`), 0o644)
+			return d, "bad:v1"
+		}, 2, []string{"spec.json", "not valid JSON"}},
+		{"schema violations all listed with pointers", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+				m["kind"] = "decoder"
+				m["tensors"].([]any)[0].(map[string]any)["dtype"] = "F64"
+				delete(m, "output")
+			})
+			return d, "bad:v1"
+		}, 2, []string{"spec.json", "/kind", "/tensors/0/dtype", "output"}},
+		{"tensor shape disagrees with spec", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+				m["tensors"].([]any)[1].(map[string]any)["shape"] = []any{5}
+			})
+			return d, "bad:v1"
+		}, 2, []string{"encoder.safetensors", "enc.b", "shape [4]", "[5]"}},
+		{"truncated safetensors", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			p := filepath.Join(d, "encoder.safetensors")
+			b, _ := os.ReadFile(p)
+			os.WriteFile(p, b[:len(b)-10], 0o644)
+			return d, "bad:v1"
+		}, 2, []string{"encoder.safetensors"}},
+		{"overlapping safetensors", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			// dec.b is 13 floats = 52 bytes; a second tensor overlapping it.
+			h := `{"dec.b":{"dtype":"F32","shape":[13],"data_offsets":[0,52]},"x":{"dtype":"F32","shape":[1],"data_offsets":[48,52]}}`
+			os.WriteFile(filepath.Join(d, "decoder.safetensors"), rawSafetensors(h, make([]byte, 52)), 0o644)
+			return d, "bad:v1"
+		}, 2, []string{"decoder.safetensors", "overlap"}},
+		{"NaN weight", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			vals := make([]float32, 13)
+			vals[7] = float32(math.NaN())
+			b, err := safetensors.Encode([]safetensors.Tensor{{Name: "dec.b", DType: "F32", Shape: []int{13}, Data: vals}}, nil)
+			if err != nil {
+				t.Fatal(err)
+			}
+			os.WriteFile(filepath.Join(d, "decoder.safetensors"), b, 0o644)
+			return d, "bad:v1"
+		}, 2, []string{"decoder.safetensors", "dec.b", "non-finite", "index 7"}},
+		{"Inf weight in F16", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+				m["tensors"].([]any)[2].(map[string]any)["dtype"] = "F16"
+			})
+			vals := make([]float32, 13)
+			vals[2] = 1e6 // overflows F16 to +Inf
+			b, err := safetensors.Encode([]safetensors.Tensor{{Name: "dec.b", DType: "F16", Shape: []int{13}, Data: vals}}, nil)
+			if err != nil {
+				t.Fatal(err)
+			}
+			os.WriteFile(filepath.Join(d, "decoder.safetensors"), b, 0o644)
+			return d, "bad:v1"
+		}, 2, []string{"decoder.safetensors", "non-finite", "index 2"}},
+		{"missing vocabulary", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			os.Remove(filepath.Join(d, "vocabulary.txt"))
+			return d, "bad:v1"
+		}, 2, []string{"vocabulary.txt", "no such file"}},
+		{"duplicate vocabulary id and wrong count", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			os.WriteFile(filepath.Join(d, "vocabulary.txt"), []byte("a\nb\na\n"), 0o644)
+			return d, "bad:v1"
+		}, 2, []string{"vocabulary.txt:3", "repeats line 1", "3 ids", "12"}},
+		{"probe row lengths differ", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			os.WriteFile(filepath.Join(d, "probes.jsonl"), []byte(`{"items":["show-003","show-010"],"values":[1],"expect":{"code":[0,0,0,0]}}`+"\n"), 0o644)
+			return d, "bad:v1"
+		}, 2, []string{"probes.jsonl:1", "2 items but 1 values"}},
+		{"missing directory", func(t *testing.T) (string, string) {
+			return filepath.Join(t.TempDir(), "nope"), "bad:v1"
+		}, 2, []string{"nope"}},
+		{"invalid repository name", func(t *testing.T) (string, string) { return encDir, "Listener_Encoder:v1" }, 2, []string{"invalid repository name", "Listener_Encoder"}},
+		{"invalid tag", func(t *testing.T) (string, string) { return encDir, "listener-encoder:-v1" }, 2, []string{"invalid tag", "-v1"}},
+		{"no tag", func(t *testing.T) (string, string) { return encDir, "listener-encoder" }, 2, []string{"NAME:TAG"}},
+		{"scorer whose encoder is not in the store", func(t *testing.T) (string, string) {
+			d := copyDir(t, scorerDir)
+			editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+				m["encoder"].(map[string]any)["digest"] = "sha256:" + strings.Repeat("ab", 32)
+			})
+			return d, "bad:v1"
+		}, 2, []string{"not in the store", "push the encoder first"}},
+	}
+	before := listing(t, store)
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			dir, ref := c.setup(t)
+			r := mg(t, store, "push", dir, ref)
+			if r.code != c.code {
+				t.Fatalf("exit %d, want %d\nstderr: %s", r.code, c.code, r.stderr)
+			}
+			for _, w := range c.want {
+				if !strings.Contains(r.stderr, w) {
+					t.Errorf("message lacks %q:\n%s", w, r.stderr)
+				}
+			}
+			if r.stdout != "" {
+				t.Errorf("stdout should be empty on failure, got %q", r.stdout)
+			}
+			if after := listing(t, store); after != before {
+				t.Errorf("store changed after a refused push")
+			}
+			mustMG(t, store, "verify")
+		})
+	}
+	// Usage errors.
+	for _, args := range [][]string{{"push", encDir}, {"show"}, {"frobnicate"}, {"ls", "--nope"}, {"show", "x@sha256:12"}} {
+		if r := mg(t, store, args...); r.code != 2 {
+			t.Errorf("modelgate %v: exit %d, want 2 (%s)", args, r.code, r.stderr)
+		}
+	}
+	if r := mg(t, store, "show", "tiny-encoder:nope"); r.code != 2 || !strings.Contains(r.stderr, "tiny-encoder:nope") {
+		t.Errorf("show of a missing tag: exit %d, %s", r.code, r.stderr)
+	}
+}
+
+// TestStoreDamageDetected flips one byte of a stored tensor blob: verify,
+// show and pull must all refuse with exit 5, naming the blob.
+func TestStoreDamageDetected(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "store")
+	encDir, _ := fixtures(t)
+	mustMG(t, store, "push", encDir, "tiny-encoder:v1")
+	b, _ := os.ReadFile(filepath.Join(encDir, "encoder.safetensors"))
+	d, err := modeldir.Read(encDir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var hex string
+	for _, f := range d.TensorFiles {
+		if f.Name == "encoder.safetensors" {
+			hex = sha256Hex(f.Bytes)
+		}
+	}
+	p := filepath.Join(store, "blobs", "sha256", hex)
+	b[len(b)-1] ^= 0x01
+	if err := os.WriteFile(p, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	r := mg(t, store, "verify")
+	if r.code != 5 || !strings.Contains(r.stdout+r.stderr, hex) {
+		t.Errorf("verify after damage: exit %d\n%s%s", r.code, r.stdout, r.stderr)
+	}
+	if r := mg(t, store, "pull", "tiny-encoder:v1", t.TempDir()); r.code != 5 {
+		t.Errorf("pull of a damaged model: exit %d, want 5: %s", r.code, r.stderr)
+	}
+	if r := mg(t, store, "show", "tiny-encoder:v1"); r.code != 5 {
+		t.Errorf("show of a damaged model: exit %d, want 5: %s", r.code, r.stderr)
+	}
+}
+
+// variant writes an encoder whose name and weights differ by seed.
+func variant(t *testing.T, root string, i int) string {
+	t.Helper()
+	m := fixture.EncoderModel()
+	m.Spec.Name = "listener-encoder-" + string(rune('a'+i))
+	w := m.Tensors["enc.b"]
+	w[0] += float32(i)
+	dir := filepath.Join(root, m.Spec.Name)
+	if err := modeldir.Write(dir, m); err != nil {
+		t.Fatal(err)
+	}
+	return dir
+}
+
+// TestConcurrentPushes: 16 processes push different models into one store
+// at once; every model and tag is present afterwards and verify is clean.
+func TestConcurrentPushes(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "store")
+	root := t.TempDir()
+	const n = 16
+	dirs := make([]string, n)
+	for i := range dirs {
+		dirs[i] = variant(t, root, i)
+	}
+	var wg sync.WaitGroup
+	results := make([]result, n)
+	for i := 0; i < n; i++ {
+		wg.Add(1)
+		go func(i int) {
+			defer wg.Done()
+			repo := "listener-encoder"
+			if i%2 == 1 {
+				repo = "listener-encoder-odd"
+			}
+			results[i] = mg(t, store, "push", dirs[i], repo+":v"+string(rune('a'+i)))
+		}(i)
+	}
+	wg.Wait()
+	for i, r := range results {
+		if r.code != 0 {
+			t.Fatalf("push %d: exit %d: %s", i, r.code, r.stderr)
+		}
+	}
+	var rows []lsRow
+	if err := json.Unmarshal([]byte(mustMG(t, store, "ls", "--json").stdout), &rows); err != nil {
+		t.Fatal(err)
+	}
+	if len(rows) != n {
+		t.Fatalf("ls lists %d tags, want %d", len(rows), n)
+	}
+	for i, r := range results {
+		found := false
+		for _, row := range rows {
+			if row.Digest == strings.TrimSpace(r.stdout) {
+				found = true
+			}
+		}
+		if !found {
+			t.Errorf("push %d's digest %s is not tagged", i, r.stdout)
+		}
+	}
+	mustMG(t, store, "verify")
+}
+
+// bigEncoder writes an encoder with a vocabulary large enough that a push
+// takes long enough to be killed part way (a few MB of tensors).
+func bigEncoder(t *testing.T, root, name string, seed uint64, vocab int) string {
+	t.Helper()
+	m := fixture.EncoderModel()
+	m.Spec.Name = name
+	in := &m.Spec.Inputs.Sparse[0]
+	in.VocabularySize = vocab
+	const width = 64
+	m.Spec.Tensors[0].Shape = []int{vocab + 1, width}
+	m.Spec.Tensors[1].Shape = []int{width}
+	m.Spec.Tensors[2].Shape = []int{vocab + 1}
+	m.Spec.Files.Probes = ""
+	m.Probes = nil
+	r := rand.New(rand.NewPCG(seed, 9))
+	fill := func(n int) []float32 {
+		v := make([]float32, n)
+		for i := range v {
+			v[i] = float32(r.NormFloat64())
+		}
+		return v
+	}
+	m.Tensors = map[string][]float32{"enc.w": fill((vocab + 1) * width), "enc.b": fill(width), "dec.b": fill(vocab + 1)}
+	m.Vocabulary = make([]string, vocab)
+	for i := range m.Vocabulary {
+		m.Vocabulary[i] = fmt.Sprintf("show-%05d", i)
+	}
+	dir := filepath.Join(root, name)
+	if err := modeldir.Write(dir, m); err != nil {
+		t.Fatal(err)
+	}
+	return dir
+}
+
+// TestCrashDuringPush kills `push` with SIGKILL at many points; afterwards
+// verify passes and the tag points at its old or its new target.
+func TestCrashDuringPush(t *testing.T) {
+	if testing.Short() {
+		t.Skip("crash suite skipped with -short")
+	}
+	store := filepath.Join(t.TempDir(), "store")
+	root := t.TempDir()
+	const runs = 24
+	dirs := make([]string, 3)
+	for i := range dirs {
+		dirs[i] = bigEncoder(t, root, fmt.Sprintf("crash-encoder-%d", i), uint64(i+1), 20000)
+	}
+	old := strings.TrimSpace(mustMG(t, store, "push", dirs[0], "crash-encoder:prod").stdout)
+	// Measure one full push to spread the kill points over it (the timing
+	// only picks kill points; no assertion depends on it).
+	start := time.Now()
+	probe := filepath.Join(t.TempDir(), "probe-store")
+	mustMG(t, probe, "push", dirs[1], "crash-encoder:prod")
+	full := time.Since(start)
+	rng := rand.New(rand.NewPCG(42, 42))
+	targets := map[string]bool{old: true}
+	for i := 0; i < runs; i++ {
+		dir := dirs[1+i%2]
+		cmd := exec.Command(mgBinary, "push", dir, "crash-encoder:prod")
+		cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
+		var so bytes.Buffer
+		cmd.Stdout = &so
+		if err := cmd.Start(); err != nil {
+			t.Fatal(err)
+		}
+		delay := time.Duration(rng.Int64N(int64(full) + 1))
+		time.Sleep(delay)
+		_ = cmd.Process.Signal(syscall.SIGKILL)
+		err := cmd.Wait()
+		if err == nil {
+			targets[strings.TrimSpace(so.String())] = true
+		}
+		r := mg(t, store, "verify", "--json")
+		if r.code != 0 {
+			t.Fatalf("run %d (kill after %v): verify exit %d\n%s%s", i, delay, r.code, r.stdout, r.stderr)
+		}
+		var ls []lsRow
+		if err := json.Unmarshal([]byte(mustMG(t, store, "ls", "--json", "crash-encoder").stdout), &ls); err != nil {
+			t.Fatal(err)
+		}
+		if len(ls) != 1 {
+			t.Fatalf("run %d: %d tags, want 1", i, len(ls))
+		}
+		cur := ls[0].Digest
+		d, err := modeldir.Read(dir)
+		if err != nil {
+			t.Fatal(err)
+		}
+		newDigest := manifestDigest(t, d)
+		if !targets[cur] && cur != newDigest {
+			t.Fatalf("run %d: tag points at %s: neither an earlier target nor the new one %s", i, cur, newDigest)
+		}
+		targets[cur] = true
+	}
+}

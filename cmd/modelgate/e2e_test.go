@@ -1,0 +1,272 @@
+package main
+
+import (
+	"bytes"
+	"encoding/json"
+	"fmt"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"runtime"
+	"sort"
+	"strings"
+	"testing"
+
+	"github.com/google/go-containerregistry/pkg/v1/layout"
+	"github.com/google/go-containerregistry/pkg/v1/validate"
+
+	"modelgate/internal/fixture"
+)
+
+// mgBinary is the modelgate executable built once for the end-to-end tests.
+var mgBinary string
+
+func TestMain(m *testing.M) {
+	dir, err := os.MkdirTemp("", "modelgate-e2e-")
+	if err != nil {
+		fmt.Fprintln(os.Stderr, err)
+		os.Exit(1)
+	}
+	mgBinary = filepath.Join(dir, "modelgate")
+	if runtime.GOOS == "windows" {
+		mgBinary += ".exe"
+	}
+	out, err := exec.Command("go", "build", "-o", mgBinary, ".").CombinedOutput()
+	if err != nil {
+		fmt.Fprintf(os.Stderr, "building modelgate: %v\n%s", err, out)
+		os.Exit(1)
+	}
+	code := m.Run()
+	os.RemoveAll(dir)
+	os.Exit(code)
+}
+
+type result struct {
+	code           int
+	stdout, stderr string
+}
+
+// mg runs the built binary against store with args.
+func mg(t *testing.T, store string, args ...string) result {
+	t.Helper()
+	cmd := exec.Command(mgBinary, args...)
+	cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
+	var so, se bytes.Buffer
+	cmd.Stdout, cmd.Stderr = &so, &se
+	err := cmd.Run()
+	code := 0
+	if ee, ok := err.(*exec.ExitError); ok {
+		code = ee.ExitCode()
+	} else if err != nil {
+		t.Fatalf("running modelgate %v: %v", args, err)
+	}
+	return result{code, so.String(), se.String()}
+}
+
+func mustMG(t *testing.T, store string, args ...string) result {
+	t.Helper()
+	r := mg(t, store, args...)
+	if r.code != 0 {
+		t.Fatalf("modelgate %s: exit %d\nstdout: %s\nstderr: %s", strings.Join(args, " "), r.code, r.stdout, r.stderr)
+	}
+	return r
+}
+
+// fixtures writes the tiny encoder and scorer into a fresh directory.
+func fixtures(t *testing.T) (encDir, scorerDir string) {
+	t.Helper()
+	dir := t.TempDir()
+	if _, err := fixture.Write(dir); err != nil {
+		t.Fatal(err)
+	}
+	return filepath.Join(dir, fixture.EncoderDir), filepath.Join(dir, fixture.ScorerDir)
+}
+
+// listing describes every file of a directory tree (path, size, sha of
+// content) so tests can assert a store did not change.
+func listing(t *testing.T, root string) string {
+	t.Helper()
+	var lines []string
+	err := filepath.Walk(root, func(p string, info os.FileInfo, err error) error {
+		if err != nil {
+			return err
+		}
+		rel, _ := filepath.Rel(root, p)
+		if info.IsDir() {
+			lines = append(lines, rel+"/")
+			return nil
+		}
+		b, err := os.ReadFile(p)
+		if err != nil {
+			return err
+		}
+		lines = append(lines, fmt.Sprintf("%s %d %x", rel, len(b), b))
+		return nil
+	})
+	if err != nil && !os.IsNotExist(err) {
+		t.Fatal(err)
+	}
+	sort.Strings(lines)
+	return strings.Join(lines, "\n")
+}
+
+func countBlobs(t *testing.T, store string) int {
+	t.Helper()
+	es, err := os.ReadDir(filepath.Join(store, "blobs", "sha256"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return len(es)
+}
+
+func TestEndToEnd(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "store")
+	encDir, scorerDir := fixtures(t)
+
+	encDigest := strings.TrimSpace(mustMG(t, store, "push", encDir, "tiny-encoder:v1").stdout)
+	if !strings.HasPrefix(encDigest, "sha256:") {
+		t.Fatalf("push printed %q, want a digest", encDigest)
+	}
+	scorerDigest := strings.TrimSpace(mustMG(t, store, "push", scorerDir, "tiny-scorer:v1").stdout)
+
+	// A second push of the same model writes no new blob (manifests are blobs too).
+	before := countBlobs(t, store)
+	again := mustMG(t, store, "push", "--json", scorerDir, "tiny-scorer:v1")
+	var pr struct {
+		Digest         string `json:"digest"`
+		BlobsWritten   int    `json:"blobsWritten"`
+		ManifestReused bool   `json:"manifestReused"`
+	}
+	if err := json.Unmarshal([]byte(again.stdout), &pr); err != nil {
+		t.Fatalf("push --json: %v\n%s", err, again.stdout)
+	}
+	if pr.Digest != scorerDigest || pr.BlobsWritten != 0 || !pr.ManifestReused {
+		t.Errorf("second push: %+v, want same digest %s, 0 blobs written, manifest reused", pr, scorerDigest)
+	}
+	if after := countBlobs(t, store); after != before {
+		t.Errorf("second push changed the blob count from %d to %d", before, after)
+	}
+	// Pushing under a second tag also writes no blob and tags the same digest.
+	mustMG(t, store, "push", scorerDir, "tiny-scorer:candidate")
+	if after := countBlobs(t, store); after != before {
+		t.Errorf("push under a new tag changed the blob count from %d to %d", before, after)
+	}
+
+	// ls --json lists every tag with its kind and digest.
+	var rows []lsRow
+	if err := json.Unmarshal([]byte(mustMG(t, store, "ls", "--json").stdout), &rows); err != nil {
+		t.Fatal(err)
+	}
+	got := map[string]string{}
+	for _, r := range rows {
+		got[r.Repository+":"+r.Tag] = r.Kind + " " + r.Digest
+	}
+	want := map[string]string{
+		"tiny-encoder:v1":       "encoder " + encDigest,
+		"tiny-scorer:v1":        "scorer " + scorerDigest,
+		"tiny-scorer:candidate": "scorer " + scorerDigest,
+	}
+	for k, v := range want {
+		if got[k] != v {
+			t.Errorf("ls: %s = %q, want %q", k, got[k], v)
+		}
+	}
+
+	// show --json: layer table, tags pointing at the digest, encoder reference.
+	var d struct {
+		Kind   string `json:"kind"`
+		Tags   []string
+		Params int64
+		Layers []struct {
+			Name   string
+			Width  int
+			Params int64
+		}
+		Encoder struct{ Digest string }
+	}
+	if err := json.Unmarshal([]byte(mustMG(t, store, "show", "--json", "tiny-scorer:v1").stdout), &d); err != nil {
+		t.Fatal(err)
+	}
+	if d.Kind != "scorer" || d.Encoder.Digest != encDigest || len(d.Tags) != 2 || len(d.Layers) != 3 || d.Layers[0].Width != 6 || d.Params != 6*5+5+5+1 {
+		t.Errorf("show: %+v", d)
+	}
+	text := mustMG(t, store, "show", "tiny-encoder@"+encDigest).stdout
+	for _, s := range []string{"tied_decoder", "enc.wᵀ", "log1p", "training data:"} {
+		if !strings.Contains(text, s) {
+			t.Errorf("show text lacks %q:\n%s", s, text)
+		}
+	}
+
+	// pull gives back the model directory byte for byte.
+	out := filepath.Join(t.TempDir(), "pulled")
+	if r := mustMG(t, store, "pull", "tiny-scorer:v1", out); strings.TrimSpace(r.stdout) != scorerDigest {
+		t.Errorf("pull printed %q", r.stdout)
+	}
+	if a, b := listing(t, scorerDir), listing(t, out); a != b {
+		t.Errorf("pulled directory differs from the pushed one")
+	}
+
+	// diff of a model against itself and against another.
+	if r := mustMG(t, store, "diff", "tiny-scorer:v1", "tiny-scorer:candidate"); !strings.Contains(r.stdout, "identical") {
+		t.Errorf("diff of identical artifacts: %s", r.stdout)
+	}
+
+	// verify: clean.
+	var vr struct {
+		Damage, Models, Manifests int
+	}
+	if err := json.Unmarshal([]byte(mustMG(t, store, "verify", "--json").stdout), &vr); err != nil {
+		t.Fatal(err)
+	}
+	if vr.Damage != 0 || vr.Models != 2 || vr.Manifests != 2 {
+		t.Errorf("verify: %+v", vr)
+	}
+
+	// Interop (OCI image-spec v1.1 image layout): go-containerregistry's
+	// layout reader and validate accept every manifest in the store.
+	p, err := layout.FromPath(store)
+	if err != nil {
+		t.Fatal(err)
+	}
+	idx, err := p.ImageIndex()
+	if err != nil {
+		t.Fatal(err)
+	}
+	im, err := idx.IndexManifest()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(im.Manifests) < 3 {
+		t.Fatalf("index.json lists %d manifests, want ≥ 3 (2 artifacts, 3 tags)", len(im.Manifests))
+	}
+	for _, desc := range im.Manifests {
+		img, err := idx.Image(desc.Digest)
+		if err != nil {
+			t.Fatalf("layout image %s: %v", desc.Digest, err)
+		}
+		if err := validate.Image(img); err != nil {
+			t.Errorf("validate.Image(%s): %v", desc.Digest, err)
+		}
+	}
+
+	// Interop: skopeo (an independent OCI client) reads our manifest and
+	// sees its artifactType.
+	skopeo, err := exec.LookPath("skopeo")
+	if err != nil {
+		if os.Getenv("CI") != "" {
+			t.Fatal("skopeo is not installed; .ci/run installs it")
+		}
+		t.Log("skopeo not installed; interop check skipped outside CI")
+		return
+	}
+	sk, err := exec.Command(skopeo, "inspect", "--raw", "oci:"+store+":tiny-scorer:v1").CombinedOutput()
+	if err != nil {
+		t.Fatalf("skopeo inspect: %v\n%s", err, sk)
+	}
+	var m struct {
+		ArtifactType string `json:"artifactType"`
+	}
+	if err := json.Unmarshal(sk, &m); err != nil || m.ArtifactType != "application/vnd.modelgate.scorer.v1" {
+		t.Errorf("skopeo inspect --raw: artifactType %q (%v)\n%s", m.ArtifactType, err, sk)
+	}
+}
