@@ -93,7 +93,7 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 	if ref.Tag == "" || ref.HasDigest() {
 		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
 	}
-	d, err := modeldir.Read(dir)
+	d, err := modeldir.Check(dir)
 	if err != nil {
 		return nil, err
 	}

@@ -144,7 +144,7 @@ func Pull(ctx context.Context, store registry.Store, ref registry.Ref, dir strin
 			return nil, err
 		}
 	}
-	if _, err := modeldir.Read(dir); err != nil {
+	if _, err := modeldir.Check(dir); err != nil {
 		return nil, fmt.Errorf("pulled model does not validate: %w", err)
 	}
 	return a, nil

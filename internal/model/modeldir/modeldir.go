@@ -277,9 +277,16 @@ func readLimited(path string, limit int64) ([]byte, error) {
 	return b, nil
 }
 
-// Read reads and validates the model directory at dir. All problems found
-// are returned together as one error of kind BadInput.
-func Read(dir string) (*Dir, error) {
+// Read reads and validates the model directory at dir, decoding every
+// tensor into Model.Tensors. All problems found are returned together as
+// one error of kind BadInput.
+func Read(dir string) (*Dir, error) { return read(dir, true) }
+
+// Check is Read without decoding tensors (Model.Tensors stays empty): the
+// same validation at a fraction of the memory, for push and pull.
+func Check(dir string) (*Dir, error) { return read(dir, false) }
+
+func read(dir string, decode bool) (*Dir, error) {
 	probs := &Problems{Dir: dir}
 	st, err := os.Stat(dir)
 	if err != nil {
@@ -303,7 +310,7 @@ func Read(dir string) (*Dir, error) {
 		return nil, probs.err()
 	}
 	d := &Dir{Path: dir, SpecBytes: specBytes, Model: &Model{Spec: spec, Tensors: map[string][]float32{}}}
-	d.readTensors(probs)
+	d.readTensors(probs, decode)
 	d.readVocabulary(probs)
 	d.readStats(probs)
 	d.readProbes(probs)
@@ -313,7 +320,7 @@ func Read(dir string) (*Dir, error) {
 	return d, nil
 }
 
-func (d *Dir) readTensors(probs *Problems) {
+func (d *Dir) readTensors(probs *Problems, decode bool) {
 	spec := d.Model.Spec
 	byFile := map[string][]model.Tensor{}
 	for _, t := range spec.Tensors {
@@ -326,7 +333,7 @@ func (d *Dir) readTensors(probs *Problems) {
 			continue
 		}
 		d.TensorFiles = append(d.TensorFiles, File{Name: name, Bytes: b})
-		tensors, problems := DecodeTensors(name, b, byFile[name])
+		tensors, problems := checkTensors(name, b, byFile[name], decode)
 		probs.List = append(probs.List, problems...)
 		for k, v := range tensors {
 			d.Model.Tensors[k] = v
@@ -338,6 +345,17 @@ func (d *Dir) readTensors(probs *Problems) {
 // spec's tensors declared in it: same names, dtype, shape, all values
 // finite. It returns the decoded tensors and every problem found.
 func DecodeTensors(file string, b []byte, declared []model.Tensor) (map[string][]float32, []string) {
+	return checkTensors(file, b, declared, true)
+}
+
+// CheckTensors is DecodeTensors without keeping the decoded values: it
+// checks finiteness on the stored bytes, allocating nothing per element.
+func CheckTensors(file string, b []byte, declared []model.Tensor) []string {
+	_, problems := checkTensors(file, b, declared, false)
+	return problems
+}
+
+func checkTensors(file string, b []byte, declared []model.Tensor, decode bool) (map[string][]float32, []string) {
 	var problems []string
 	f, err := safetensors.Parse(bytes.NewReader(b), int64(len(b)))
 	if err != nil {
@@ -357,6 +375,13 @@ func DecodeTensors(file string, b []byte, declared []model.Tensor) (map[string][
 		}
 		if !equalInts(info.Shape, t.Shape) {
 			problems = append(problems, fmt.Sprintf("%s: tensor %q has shape %v, spec.json says %v", file, t.Name, info.Shape, t.Shape))
+			continue
+		}
+		if !decode {
+			raw := b[f.DataOffset()+info.Begin : f.DataOffset()+info.End]
+			if i, bad := firstNonFiniteRaw(info.DType, raw); bad {
+				problems = append(problems, fmt.Sprintf("%s: tensor %q has a non-finite value at flat index %d", file, t.Name, i))
+			}
 			continue
 		}
 		vals, err := f.Float32s(t.Name)
@@ -382,6 +407,32 @@ func firstNonFinite(v []float32) (int, bool) {
 	for i, x := range v {
 		if math.IsNaN(float64(x)) || math.IsInf(float64(x), 0) {
 			return i, true
+		}
+	}
+	return 0, false
+}
+
+// firstNonFiniteRaw finds a NaN or Inf in little-endian stored values: an
+// all-ones exponent field (IEEE 754 binary32/binary16, and bfloat16).
+func firstNonFiniteRaw(dtype string, raw []byte) (int, bool) {
+	switch dtype {
+	case "F32":
+		for i := 0; i+3 < len(raw); i += 4 {
+			if raw[i+3]&0x7f == 0x7f && raw[i+2]&0x80 == 0x80 {
+				return i / 4, true
+			}
+		}
+	case "F16":
+		for i := 0; i+1 < len(raw); i += 2 {
+			if raw[i+1]&0x7c == 0x7c {
+				return i / 2, true
+			}
+		}
+	case "BF16":
+		for i := 0; i+1 < len(raw); i += 2 {
+			if raw[i+1]&0x7f == 0x7f && raw[i]&0x80 == 0x80 {
+				return i / 2, true
+			}
 		}
 	}
 	return 0, false
