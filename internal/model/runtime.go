@@ -8,6 +8,7 @@ import (
 	"strings"
 
 	"modelgate/internal/errkind"
+	"modelgate/internal/model/kernel"
 )
 
 // This file is the reference runtime's compiler: it checks a spec (and the
@@ -77,9 +78,12 @@ type netLayer struct {
 	srcs  []source // dense, tied_decoder: one; concat: several; sparse_dense: none
 	width int
 	inW   int       // input width (dense, tied_decoder)
-	w     []float32 // weight, a copy owned by the Net
-	bias  []float32 // nil when absent
-	act   activation
+	w     []float32 // sparse_dense, tied_decoder: the [Rows(), H] weight, a copy owned by the Net
+	// packed is the weight of a dense layer, or the transposed weight of a
+	// tied_decoder, packed for the kernels.
+	packed *kernel.Packed
+	bias   []float32 // nil when absent
+	act    activation
 
 	plan      []int // layers needed to compute this one, ascending, ending with itself
 	denseUsed []int // dense inputs the plan reads
@@ -497,7 +501,7 @@ func (c *compiler) addLayer(l Layer, prefix string, refuseEncoderRefs bool) {
 			break
 		}
 		nl.width = wt.meta.Shape[1]
-		nl.w = slices.Clone(wt.values)
+		nl.packed = kernel.PackB(s.width, nl.width, wt.values)
 	case OpConcat:
 		forbid("input", l.Input)
 		forbid("weight", l.Weight)
@@ -547,6 +551,7 @@ func (c *compiler) addLayer(l Layer, prefix string, refuseEncoderRefs bool) {
 		}
 		nl.width = c.net.rows
 		nl.w = enc.w // shared, both immutable
+		nl.packed = kernel.PackBT(s.width, c.net.rows, enc.w)
 	default:
 		bad("unknown op %q", l.Op)
 	}

@@ -9,6 +9,7 @@ import (
 	"sync/atomic"
 
 	"modelgate/internal/errkind"
+	"modelgate/internal/model/kernel"
 )
 
 // DefaultTileRows is the number of rows a Runner computes together unless
@@ -34,7 +35,7 @@ type runState struct {
 	workers []*worker
 	start   []chan struct{} // one per worker goroutine (workers 1..threads-1)
 	wg      sync.WaitGroup
-	closed  bool
+	once    sync.Once
 
 	// The current job, written before workers are started.
 	canonPhase bool
@@ -106,13 +107,11 @@ func (r *Runner) SetTileRows(rows int) {
 func (r *Runner) Close() { r.s.stop() }
 
 func (s *runState) stop() {
-	if s.closed {
-		return
-	}
-	s.closed = true
-	for _, ch := range s.start {
-		close(ch)
-	}
+	s.once.Do(func() {
+		for _, ch := range s.start {
+			close(ch)
+		}
+	})
 }
 
 func (s *runState) serve(id int, ch chan struct{}) {
@@ -269,6 +268,7 @@ func (s *runState) release() {
 
 // execute checks and canonicalises every row, then computes.
 func (s *runState) execute() error {
+	s.reserve()
 	for _, w := range s.workers {
 		w.fault = rowFault{}
 	}
@@ -517,17 +517,57 @@ func (s *runState) canonRow(w *worker, r int) rowFault {
 	return rowFault{}
 }
 
+// plan lists the layers the job computes: the target's plan, except that
+// ReconstructionAt of a tied_decoder computes only its input's.
+func (s *runState) plan() []int {
+	t := s.target
+	if s.recon && t.op == OpTiedDecoder {
+		return t.plan[:len(t.plan)-1]
+	}
+	return t.plan
+}
+
+// reserve grows every worker's scratch to what the job can need, so that
+// the workers themselves never allocate.
+func (s *runState) reserve() {
+	b := s.b
+	longest, tileNNZ := 0, 0
+	for t := 0; t < s.ntiles; t++ {
+		r0, r1 := t*s.tile, min((t+1)*s.tile, s.rows)
+		for r := r0; r < r1; r++ {
+			longest = max(longest, int(b.Indptr[r+1]-b.Indptr[r]))
+		}
+		tileNNZ = max(tileNNZ, int(b.Indptr[r1]-b.Indptr[r0]))
+	}
+	m := min(s.tile, s.rows)
+	for _, w := range s.workers[:min(s.threads, s.ntiles)] {
+		if cap(w.pairs) < longest {
+			w.pairs = make([]pair, 0, longest)
+		}
+		if cap(w.tIdx) < tileNNZ {
+			w.tIdx = make([]int32, 0, tileNNZ)
+			w.tVal = make([]float32, 0, tileNNZ)
+		}
+		if cap(w.tIndptr) < m+1 {
+			w.tIndptr = make([]int32, 0, m+1)
+		}
+		for _, j := range s.plan() {
+			l := s.net.layers[j]
+			if l == s.target && !s.recon {
+				continue // written straight into dst
+			}
+			if cap(w.bufs[j]) < m*l.width {
+				w.bufs[j] = make([]float32, m*l.width)
+			}
+		}
+	}
+}
+
 // computeTile evaluates the job's layers for rows [r0, r1).
 func (s *runState) computeTile(w *worker, r0, r1 int) {
 	m := r1 - r0
 	t := s.target
-	plan := t.plan
-	if s.recon {
-		plan = plan[:len(plan)-1]
-		if t.op != OpTiedDecoder {
-			plan = t.plan // computed in full, then gathered
-		}
-	}
+	plan := s.plan()
 	// The tile's canonical rows as CSR.
 	needSparse := false
 	for _, j := range plan {
@@ -554,20 +594,14 @@ func (s *runState) computeTile(w *worker, r0, r1 int) {
 		if l == t && !s.recon {
 			out = s.dst[r0*ldc : r1*ldc]
 		} else {
-			if cap(w.bufs[j]) < m*ldc {
-				w.bufs[j] = make([]float32, max(m, s.tile)*ldc)
-			}
 			out = w.bufs[j][:m*ldc]
 		}
 		switch l.op {
 		case OpSparseDense:
-			kSparseDense(w.tIndptr, w.tIdx, w.tVal, l.w, l.width, l.bias, out, ldc, l.act)
-		case OpDense:
+			kernel.SparseDense(w.tIndptr, w.tIdx, w.tVal, l.w, l.width, l.bias, out, ldc, l.act)
+		case OpDense, OpTiedDecoder:
 			a, lda := s.input(w, l.srcs[0], r0)
-			kDense(m, l.width, l.inW, a, lda, l.w, l.bias, out, ldc, l.act)
-		case OpTiedDecoder:
-			a, lda := s.input(w, l.srcs[0], r0)
-			kDenseT(m, l.width, l.inW, a, lda, l.w, l.bias, out, ldc, l.act)
+			kernel.DensePacked(m, a, lda, l.packed, l.bias, out, ldc, l.act)
 		case OpConcat:
 			off := 0
 			for _, src := range l.srcs {
@@ -615,7 +649,10 @@ func (s *runState) gatherRecon(w *worker, t *netLayer, r0, r1 int) {
 			if t.bias != nil {
 				bias = t.bias[i : i+1]
 			}
-			kDenseT(1, 1, h, hr, lda, t.w[i*h:(i+1)*h], bias, s.dst[p:p+1], 1, t.act)
+			// Column i of Wᵀ is row i of W: a k×1 matrix. The kernels give
+			// every element the same value however the columns are grouped
+			// or packed, so this equals the full decoder's element.
+			kernel.Dense(1, 1, h, hr, lda, t.w[i*h:(i+1)*h], bias, s.dst[p:p+1], 1, t.act)
 		}
 	}
 }

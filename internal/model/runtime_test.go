@@ -591,3 +591,69 @@ func TestRuntimeAllocs(t *testing.T) {
 		re.Close()
 	}
 }
+
+// FuzzRuntimeRows feeds arbitrary rows to an encoder: Run must never panic,
+// must either refuse the batch with a RowError or return outputs (finite
+// when no value exceeds 1e6: larger ones may overflow float32 inside the
+// network), and reversing every row's pairs must not change a single bit.
+func FuzzRuntimeRows(f *testing.F) {
+	f.Add([]byte{1, 0, 0, 128, 63, 2, 0, 0, 0, 64}, uint8(0))
+	f.Add([]byte{0, 3, 0, 0, 128, 63, 3, 0, 0, 0, 63, 255, 0, 0, 128, 127}, uint8(1))
+	f.Add([]byte{10, 0, 0, 0, 0, 10, 0, 0, 0, 0, 0}, uint8(2))
+	f.Fuzz(func(t *testing.T, data []byte, rule uint8) {
+		rules := []string{DuplicatesSum, DuplicatesMax, DuplicatesRefuse}
+		transforms := []string{TransformIdentity, TransformLog1p, TransformBinary}
+		sp := SparseInput{Name: "plays", VocabularySize: 9, Unknown: UnknownBucket,
+			Duplicates: rules[int(rule)%3], Transform: transforms[int(rule/3)%3], Vocabulary: "v"}
+		m := newModel(KindEncoder, "e", sp).randTensor(rand.New(rand.NewPCG(3, 3)), "w", "encoder", 10, 5).
+			layer(Layer{Name: "code", Op: OpSparseDense, Input: "plays", Weight: "w", Activation: ActTanh}).
+			layer(Layer{Name: "recon", Op: OpTiedDecoder, Input: "code", TiedTo: "w", Activation: ActSigmoid})
+		m.spec.Code, m.spec.Output, m.spec.Reconstruction = "code", "code", "recon"
+		net := mustCompile(t, m.spec, m.w, nil)
+		// Each 5-byte record is (index byte − 2, float32 value); a record
+		// whose index byte is 255 ends the row.
+		var rows [][]pair
+		var cur []pair
+		for len(data) >= 5 {
+			if data[0] == 255 {
+				rows, cur = append(rows, cur), nil
+			} else {
+				v := math.Float32frombits(uint32(data[1]) | uint32(data[2])<<8 | uint32(data[3])<<16 | uint32(data[4])<<24)
+				cur = append(cur, pair{int32(data[0]) - 2, v})
+			}
+			data = data[5:]
+		}
+		rows = append(rows, cur)
+		r := net.NewRunner(2)
+		defer r.Close()
+		r.SetTileRows(2)
+		out, err := r.Run(batchOf(rows, nil), "recon", nil)
+		if err != nil {
+			var re *RowError
+			if !errors.As(err, &re) {
+				t.Fatalf("error without a RowError: %v", err)
+			}
+			return
+		}
+		small := true
+		for _, row := range rows {
+			for _, p := range row {
+				small = small && p.val <= 1e6
+			}
+		}
+		for i, v := range out {
+			if small && (math.IsNaN(float64(v)) || math.IsInf(float64(v), 0)) {
+				t.Fatalf("output %d is %v", i, v)
+			}
+		}
+		rev := make([][]pair, len(rows))
+		for i, row := range rows {
+			rev[i] = slices.Clone(row)
+			slices.Reverse(rev[i])
+		}
+		out2, err := r.Run(batchOf(rev, nil), "recon", nil)
+		if err != nil || !bitsEqual(out, out2) { // bitsEqual: NaN payloads too
+			t.Fatalf("reversed rows: %v, equal %v", err, bitsEqual(out, out2))
+		}
+	})
+}
