@@ -1,0 +1,1009 @@
+package registry
+
+import (
+	"bytes"
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"hash"
+	"io"
+	"io/fs"
+	"os"
+	"path/filepath"
+	"sort"
+	"strings"
+	"sync"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/types"
+	"golang.org/x/sys/unix"
+
+	"modelgate/internal/errkind"
+)
+
+// Annotation keys that the local store writes on index.json entries.
+const (
+	// annotationRepository names the repository an entry belongs to; every
+	// entry the store writes carries it.
+	annotationRepository = "dev.modelgate.repository"
+	// annotationSubject is the subject digest of a manifest that has one,
+	// so that Referrers needs no manifest reads.
+	annotationSubject = "dev.modelgate.subject"
+	// annotationRefName is the OCI image-layout tag annotation. The store
+	// writes "REPO:TAG" (the ref.name grammar allows ':' as a separator).
+	annotationRefName = "org.opencontainers.image.ref.name"
+)
+
+// Names of files and folders inside a local store.
+const (
+	layoutFile     = "oci-layout"
+	indexFile      = "index.json"
+	blobsDir       = "blobs/sha256"
+	privateDir     = ".modelgate"
+	tmpDir         = ".modelgate/tmp"
+	lockFile       = ".modelgate/lock"
+	layoutVersion  = "1.0.0"
+	blobCopyBuffer = 1 << 20
+)
+
+// Local is a store in a local directory laid out as an OCI image layout
+// (image-spec v1.1, image-layout.md): an `oci-layout` file, `index.json`
+// and `blobs/sha256/`. Other OCI tools can read it: every manifest is an
+// entry of index.json, and a tag is an entry whose
+// org.opencontainers.image.ref.name annotation is "REPO:TAG".
+//
+// One directory holds many repositories. Entries carry the annotation
+// dev.modelgate.repository; entries the store did not write (for example
+// added by another tool) are ignored and kept as they are. Each manifest
+// put into a repository has one entry without ref.name, which stays when
+// the manifest is tagged or untagged, so every manifest stays reachable
+// and listable; each tag adds one entry with ref.name. Entries copy the
+// manifest's artifactType (or, for an image manifest without one, its
+// config media type, the distribution spec's rule for referrers) and its
+// annotations (except ref.name), and carry dev.modelgate.subject when the
+// manifest has a subject.
+//
+// Other tools name a tag by its ref.name: skopeo reads
+// "oci:DIR:REPO:TAG" (it splits DIR off at the first ':', so DIR must not
+// contain one). The image-spec ref.name grammar (annotations.md:
+// components of [A-Za-z0-9]+ joined by one of -._:@+ or "--") is stricter
+// than the distribution spec's names, so a repository with "__" or "---",
+// or a tag that starts with '_', ends with '.' or '-', or has two
+// separators in a row, is stored and read back by modelgate but refused by
+// skopeo as an invalid image name.
+//
+// Blobs are content-addressed and shared by every repository of the
+// directory: Blob, StatBlob and PutBlob validate the repository name but
+// do not scope blobs to it. Manifests are scoped: Manifest finds only
+// manifests recorded for that repository.
+//
+// Writes are crash-safe and safe between processes: blobs are written to a
+// temporary file in .modelgate/tmp, verified, synced and renamed into
+// place; index.json is replaced atomically under an exclusive flock on
+// .modelgate/lock. Readers never see a partial index.json or blob.
+//
+// Errors: missing things wrap ErrNotFound and are marked errkind.BadInput
+// (the user named something that is not there); uploads that do not match
+// their digest wrap ErrDigestMismatch with errkind.BadInput; stored bytes
+// that do not match their digest wrap ErrDigestMismatch with
+// errkind.Integrity; a manifest recorded in index.json whose blob is gone
+// wraps ErrNotFound with errkind.Integrity (damage, not a user error); a
+// lost SwapTag wraps ErrConflict with errkind.Conflict.
+type Local struct {
+	dir string
+	mu  sync.Mutex // serialises this process's writers before the flock
+}
+
+var (
+	_ Store          = (*Local)(nil)
+	_ TagSwapper     = (*Local)(nil)
+	_ ManifestLister = (*Local)(nil)
+	_ Scrubber       = (*Local)(nil)
+)
+
+// OpenLocal opens the local store in dir, creating the directory and an
+// empty OCI image layout when they do not exist. A directory that has an
+// oci-layout file of another version is refused.
+func OpenLocal(dir string) (*Local, error) {
+	abs, err := filepath.Abs(dir)
+	if err != nil {
+		return nil, fmt.Errorf("opening store %q: %w", dir, err)
+	}
+	l := &Local{dir: abs}
+	for _, d := range []string{blobsDir, tmpDir} {
+		if err := os.MkdirAll(l.path(d), 0o755); err != nil {
+			return nil, fmt.Errorf("opening store %q: %w", abs, err)
+		}
+	}
+	unlock, err := l.lock(context.Background())
+	if err != nil {
+		return nil, fmt.Errorf("opening store %q: %w", abs, err)
+	}
+	defer unlock()
+
+	b, err := os.ReadFile(l.path(layoutFile))
+	switch {
+	case errors.Is(err, fs.ErrNotExist):
+		data, _ := json.Marshal(map[string]string{"imageLayoutVersion": layoutVersion})
+		if err := l.writeFileAtomic(l.path(layoutFile), data); err != nil {
+			return nil, fmt.Errorf("opening store %q: %w", abs, err)
+		}
+	case err != nil:
+		return nil, fmt.Errorf("opening store %q: %w", abs, err)
+	default:
+		var lf struct {
+			Version string `json:"imageLayoutVersion"`
+		}
+		if err := json.Unmarshal(b, &lf); err != nil || lf.Version != layoutVersion {
+			return nil, errkind.New(errkind.BadInput, "opening store %q: %s is not an OCI image layout version %s file (%.60q)", abs, layoutFile, layoutVersion, b)
+		}
+	}
+
+	if _, err := os.Stat(l.path(indexFile)); errors.Is(err, fs.ErrNotExist) {
+		if err := l.writeIndex(&v1.IndexManifest{SchemaVersion: 2, MediaType: types.OCIImageIndex}); err != nil {
+			return nil, fmt.Errorf("opening store %q: %w", abs, err)
+		}
+	} else if err != nil {
+		return nil, fmt.Errorf("opening store %q: %w", abs, err)
+	}
+	if _, err := l.readIndex(); err != nil {
+		return nil, fmt.Errorf("opening store %q: %w", abs, err)
+	}
+	return l, nil
+}
+
+// Dir returns the store's directory as an absolute path.
+func (l *Local) Dir() string { return l.dir }
+
+// String names the store as skopeo's oci transport would: "oci:DIR".
+func (l *Local) String() string { return "oci:" + l.dir }
+
+func (l *Local) path(rel string) string { return filepath.Join(l.dir, filepath.FromSlash(rel)) }
+
+func (l *Local) blobPath(h v1.Hash) string { return filepath.Join(l.dir, "blobs", "sha256", h.Hex) }
+
+// checkDigest refuses anything but a well-formed sha256 digest; the hex
+// part becomes a file name, so this also keeps paths inside blobs/.
+func checkDigest(h v1.Hash) error {
+	if h.Algorithm != "sha256" || !digestPattern.MatchString(h.String()) {
+		return errkind.New(errkind.BadInput, "invalid digest %q: want sha256: and 64 lower-case hex digits", h.String())
+	}
+	return nil
+}
+
+func notFound(format string, args ...any) error {
+	return errkind.New(errkind.BadInput, "%s: %w", fmt.Sprintf(format, args...), ErrNotFound)
+}
+
+// ---- blobs ----
+
+// Blob opens a blob. The reader hashes what it reads; at end of file it
+// returns an error wrapping ErrDigestMismatch (errkind.Integrity) instead
+// of io.EOF when the bytes do not hash to dgst.
+func (l *Local) Blob(ctx context.Context, repo string, dgst v1.Hash) (io.ReadCloser, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return nil, err
+	}
+	if err := checkDigest(dgst); err != nil {
+		return nil, err
+	}
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
+	f, _, err := l.openBlob(dgst)
+	if err != nil {
+		return nil, err
+	}
+	return &verifyingReader{f: f, h: sha256.New(), want: dgst}, nil
+}
+
+// openBlob opens a blob file, refusing anything but a regular file.
+func (l *Local) openBlob(dgst v1.Hash) (*os.File, int64, error) {
+	p := l.blobPath(dgst)
+	fi, err := os.Lstat(p)
+	if errors.Is(err, fs.ErrNotExist) {
+		return nil, 0, notFound("blob %s", dgst)
+	}
+	if err != nil {
+		return nil, 0, fmt.Errorf("reading blob %s: %w", dgst, err)
+	}
+	if !fi.Mode().IsRegular() {
+		return nil, 0, errkind.New(errkind.Integrity, "blob %s: %s is not a regular file", dgst, p)
+	}
+	f, err := os.Open(p)
+	if err != nil {
+		return nil, 0, fmt.Errorf("reading blob %s: %w", dgst, err)
+	}
+	return f, fi.Size(), nil
+}
+
+// StatBlob returns a present blob's size (of the file; its content is
+// verified on read and by Scrub).
+func (l *Local) StatBlob(ctx context.Context, repo string, dgst v1.Hash) (int64, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return 0, err
+	}
+	if err := checkDigest(dgst); err != nil {
+		return 0, err
+	}
+	if err := ctx.Err(); err != nil {
+		return 0, err
+	}
+	return l.statBlob(dgst)
+}
+
+func (l *Local) statBlob(dgst v1.Hash) (int64, error) {
+	fi, err := os.Lstat(l.blobPath(dgst))
+	if errors.Is(err, fs.ErrNotExist) {
+		return 0, notFound("blob %s", dgst)
+	}
+	if err != nil {
+		return 0, fmt.Errorf("stat blob %s: %w", dgst, err)
+	}
+	if !fi.Mode().IsRegular() {
+		return 0, errkind.New(errkind.Integrity, "blob %s is not a regular file", dgst)
+	}
+	return fi.Size(), nil
+}
+
+// PutBlob streams r into the store, hashing and counting as it writes.
+// Bytes that do not hash to dgst or are not exactly size long are refused
+// with ErrDigestMismatch (errkind.BadInput) and leave nothing behind. A
+// blob already present with that size is kept and r is not read; a present
+// file of another size is damage and is replaced by the verified upload.
+func (l *Local) PutBlob(ctx context.Context, repo string, dgst v1.Hash, size int64, r io.Reader) error {
+	if err := ValidateRepository(repo); err != nil {
+		return err
+	}
+	if err := checkDigest(dgst); err != nil {
+		return err
+	}
+	if size < 0 {
+		return errkind.New(errkind.BadInput, "blob %s: negative size %d", dgst, size)
+	}
+	return l.writeBlob(ctx, dgst, size, r)
+}
+
+func (l *Local) writeBlob(ctx context.Context, dgst v1.Hash, size int64, r io.Reader) (err error) {
+	if err := ctx.Err(); err != nil {
+		return err
+	}
+	final := l.blobPath(dgst)
+	if fi, err := os.Lstat(final); err == nil && fi.Mode().IsRegular() && fi.Size() == size {
+		return nil
+	}
+	f, err := os.CreateTemp(l.path(tmpDir), "blob-*")
+	if err != nil {
+		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	}
+	tmp := f.Name()
+	defer func() {
+		if f != nil {
+			f.Close()
+		}
+		if err != nil {
+			os.Remove(tmp)
+		}
+	}()
+
+	n, sum, err := copyHashing(ctx, &writebackWriter{f: f, fd: int(f.Fd())}, io.LimitReader(r, size+1))
+	if err != nil {
+		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	}
+	if n != size {
+		return errkind.New(errkind.BadInput, "writing blob %s: %w: got %d bytes, want %d", dgst, ErrDigestMismatch, n, size)
+	}
+	if sum != dgst.Hex {
+		return errkind.New(errkind.BadInput, "writing blob %s: %w: content hashes to sha256:%s", dgst, ErrDigestMismatch, sum)
+	}
+	if err := f.Sync(); err != nil {
+		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	}
+	if err := f.Close(); err != nil {
+		f = nil
+		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	}
+	f = nil
+	if err := os.Chmod(tmp, 0o644); err != nil {
+		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	}
+	if err := os.Rename(tmp, final); err != nil {
+		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	}
+	if err := syncDir(filepath.Dir(final)); err != nil {
+		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	}
+	return nil
+}
+
+// copyHashing copies r to w and returns the byte count and the hex sha256
+// of what was copied. Hashing runs in its own goroutine, one buffer behind
+// the writes, so that hashing and writing overlap.
+func copyHashing(ctx context.Context, w io.Writer, r io.Reader) (int64, string, error) {
+	const nbuf = 3
+	type chunk struct {
+		buf []byte
+		n   int
+	}
+	free := make(chan []byte, nbuf)
+	for range nbuf {
+		free <- make([]byte, blobCopyBuffer)
+	}
+	toHash := make(chan chunk, nbuf)
+	done := make(chan string)
+	h := sha256.New()
+	go func() {
+		for c := range toHash {
+			h.Write(c.buf[:c.n])
+			free <- c.buf
+		}
+		done <- hex.EncodeToString(h.Sum(nil))
+	}()
+
+	var total int64
+	var err error
+	for {
+		if err = ctx.Err(); err != nil {
+			break
+		}
+		buf := <-free
+		n, rerr := io.ReadFull(r, buf)
+		if n > 0 {
+			if _, werr := w.Write(buf[:n]); werr != nil {
+				err = werr
+				free <- buf
+				break
+			}
+			total += int64(n)
+			toHash <- chunk{buf, n}
+		} else {
+			free <- buf
+		}
+		if rerr == io.EOF || rerr == io.ErrUnexpectedEOF {
+			break
+		}
+		if rerr != nil {
+			err = rerr
+			break
+		}
+	}
+	close(toHash)
+	sum := <-done
+	return total, sum, err
+}
+
+// writebackWriter writes to a file and asks the kernel to start writing
+// back every writebackChunk bytes, so that disk writes overlap hashing and
+// the final fsync has little left to do. The hint's errors are ignored:
+// fsync reports real ones.
+type writebackWriter struct {
+	f            *os.File
+	fd           int
+	off, started int64
+}
+
+const writebackChunk = 8 << 20
+
+func (w *writebackWriter) Write(p []byte) (int, error) {
+	n, err := w.f.Write(p)
+	w.off += int64(n)
+	if w.off-w.started >= writebackChunk {
+		_ = unix.SyncFileRange(w.fd, w.started, w.off-w.started, unix.SYNC_FILE_RANGE_WRITE)
+		w.started = w.off
+	}
+	return n, err
+}
+
+// verifyingReader hashes what it reads and turns io.EOF into an integrity
+// error when the content does not hash to want.
+type verifyingReader struct {
+	f    *os.File
+	h    hash.Hash
+	n    int64
+	want v1.Hash
+	err  error // sticky: io.EOF or the mismatch
+}
+
+func (r *verifyingReader) Read(p []byte) (int, error) {
+	if r.err != nil {
+		return 0, r.err
+	}
+	n, err := r.f.Read(p)
+	r.h.Write(p[:n])
+	r.n += int64(n)
+	if err == io.EOF {
+		err = r.finish()
+	} else if err != nil {
+		err = fmt.Errorf("reading blob %s: %w", r.want, err)
+	}
+	return n, err
+}
+
+func (r *verifyingReader) finish() error {
+	if got := hex.EncodeToString(r.h.Sum(nil)); got != r.want.Hex {
+		r.err = errkind.New(errkind.Integrity, "reading blob %s: %w: stored content hashes to sha256:%s (%d bytes)", r.want, ErrDigestMismatch, got, r.n)
+	} else {
+		r.err = io.EOF
+	}
+	return r.err
+}
+
+// WriteTo copies the rest of the blob to w with large reads, verifying it;
+// it returns the mismatch error instead of nil when the content is wrong.
+func (r *verifyingReader) WriteTo(w io.Writer) (int64, error) {
+	if r.err != nil {
+		if r.err == io.EOF {
+			return 0, nil
+		}
+		return 0, r.err
+	}
+	buf := make([]byte, blobCopyBuffer)
+	var total int64
+	for {
+		n, err := io.ReadFull(r.f, buf)
+		if n > 0 {
+			r.h.Write(buf[:n])
+			r.n += int64(n)
+			m, werr := w.Write(buf[:n])
+			total += int64(m)
+			if werr != nil {
+				return total, werr
+			}
+		}
+		if err == io.EOF || err == io.ErrUnexpectedEOF {
+			if ferr := r.finish(); ferr != io.EOF {
+				return total, ferr
+			}
+			return total, nil
+		}
+		if err != nil {
+			return total, fmt.Errorf("reading blob %s: %w", r.want, err)
+		}
+	}
+}
+
+func (r *verifyingReader) Close() error { return r.f.Close() }
+
+// ---- manifests ----
+
+// manifestFields are the parts of an image manifest or index that the
+// store looks at.
+type manifestFields struct {
+	SchemaVersion int64             `json:"schemaVersion"`
+	MediaType     types.MediaType   `json:"mediaType"`
+	ArtifactType  string            `json:"artifactType"`
+	Config        *v1.Descriptor    `json:"config"`
+	Layers        []v1.Descriptor   `json:"layers"`
+	Manifests     []v1.Descriptor   `json:"manifests"`
+	Subject       *v1.Descriptor    `json:"subject"`
+	Annotations   map[string]string `json:"annotations"`
+}
+
+func isImageManifest(mt types.MediaType) bool {
+	return mt == types.OCIManifestSchema1 || mt == types.DockerManifestSchema2
+}
+
+func isIndexManifest(mt types.MediaType) bool {
+	return mt == types.OCIImageIndex || mt == types.DockerManifestList
+}
+
+// PutManifest stores a manifest in repo. It accepts OCI (and Docker
+// schema 2) image manifests and indexes up to MaxManifestSize bytes of
+// JSON, with schemaVersion 2 and, when the JSON names a mediaType, the same
+// one as mediaType (which may be empty to take the JSON's). An image
+// manifest's config and layers must be present blobs of the sizes the
+// manifest says; an index's manifests must be present in repo; the error
+// names every missing digest and wraps ErrNotFound. The subject need not
+// exist. Putting a manifest already in repo changes nothing.
+func (l *Local) PutManifest(ctx context.Context, repo string, mediaType types.MediaType, raw []byte) (v1.Descriptor, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return v1.Descriptor{}, err
+	}
+	if err := ctx.Err(); err != nil {
+		return v1.Descriptor{}, err
+	}
+	mf, mt, err := parseManifest(mediaType, raw)
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	sum := sha256.Sum256(raw)
+	dgst := v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(sum[:])}
+	desc := v1.Descriptor{MediaType: mt, Size: int64(len(raw)), Digest: dgst, ArtifactType: mf.ArtifactType}
+	if desc.ArtifactType == "" && isImageManifest(mt) {
+		desc.ArtifactType = string(mf.Config.MediaType)
+	}
+
+	idx, err := l.readIndex()
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	if i := findEntry(idx, repo, dgst); i >= 0 {
+		if _, err := l.statBlob(dgst); err == nil {
+			return desc, nil
+		}
+	}
+	if err := l.checkReferences(idx, repo, mt, mf); err != nil {
+		return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", dgst, repo, err)
+	}
+	if err := l.writeBlob(ctx, dgst, int64(len(raw)), bytes.NewReader(raw)); err != nil {
+		return v1.Descriptor{}, err
+	}
+
+	entry := desc
+	entry.Annotations = map[string]string{}
+	for k, v := range mf.Annotations {
+		if k != annotationRefName && k != annotationRepository && k != annotationSubject {
+			entry.Annotations[k] = v
+		}
+	}
+	entry.Annotations[annotationRepository] = repo
+	if mf.Subject != nil {
+		entry.Annotations[annotationSubject] = mf.Subject.Digest.String()
+	}
+	err = l.updateIndex(ctx, func(idx *v1.IndexManifest) (bool, error) {
+		for _, d := range idx.Manifests {
+			if d.Annotations[annotationRepository] == repo && d.Digest == dgst && d.Annotations[annotationRefName] == "" {
+				return false, nil
+			}
+		}
+		idx.Manifests = append(idx.Manifests, entry)
+		return true, nil
+	})
+	if err != nil {
+		return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", dgst, repo, err)
+	}
+	return desc, nil
+}
+
+// parseManifest checks raw is a manifest the store accepts and returns its
+// fields and media type.
+func parseManifest(mediaType types.MediaType, raw []byte) (manifestFields, types.MediaType, error) {
+	var mf manifestFields
+	if len(raw) > MaxManifestSize {
+		return mf, "", errkind.New(errkind.BadInput, "manifest of %d bytes is larger than %d bytes", len(raw), MaxManifestSize)
+	}
+	if err := json.Unmarshal(raw, &mf); err != nil {
+		return mf, "", errkind.New(errkind.BadInput, "manifest is not valid JSON of a manifest: %w", err)
+	}
+	if mf.SchemaVersion != 2 {
+		return mf, "", errkind.New(errkind.BadInput, "manifest has schemaVersion %d, want 2", mf.SchemaVersion)
+	}
+	mt := mediaType
+	switch {
+	case mt == "":
+		mt = mf.MediaType
+	case mf.MediaType != "" && mf.MediaType != mt:
+		return mf, "", errkind.New(errkind.BadInput, "manifest says mediaType %q but was put as %q", mf.MediaType, mt)
+	}
+	switch {
+	case isImageManifest(mt):
+		if mf.Config == nil {
+			return mf, "", errkind.New(errkind.BadInput, "image manifest has no config")
+		}
+		if err := checkDigest(mf.Config.Digest); err != nil {
+			return mf, "", errkind.New(errkind.BadInput, "manifest config: %w", err)
+		}
+		for i, d := range mf.Layers {
+			if err := checkDigest(d.Digest); err != nil {
+				return mf, "", errkind.New(errkind.BadInput, "manifest layer %d: %w", i, err)
+			}
+		}
+	case isIndexManifest(mt):
+		for i, d := range mf.Manifests {
+			if err := checkDigest(d.Digest); err != nil {
+				return mf, "", errkind.New(errkind.BadInput, "index manifest %d: %w", i, err)
+			}
+		}
+	default:
+		return mf, "", errkind.New(errkind.BadInput, "unsupported manifest media type %q", mt)
+	}
+	if mf.Subject != nil {
+		if err := checkDigest(mf.Subject.Digest); err != nil {
+			return mf, "", errkind.New(errkind.BadInput, "manifest subject: %w", err)
+		}
+	}
+	return mf, mt, nil
+}
+
+// checkReferences reports every blob (or, for an index, manifest) that mf
+// references and the store lacks or holds at another size.
+func (l *Local) checkReferences(idx *v1.IndexManifest, repo string, mt types.MediaType, mf manifestFields) error {
+	var missing, wrong []string
+	if isImageManifest(mt) {
+		refs := append([]v1.Descriptor{*mf.Config}, mf.Layers...)
+		for i, d := range refs {
+			role := "config"
+			if i > 0 {
+				role = fmt.Sprintf("layer %d", i-1)
+			}
+			size, err := l.statBlob(d.Digest)
+			switch {
+			case errors.Is(err, ErrNotFound):
+				missing = append(missing, fmt.Sprintf("%s %s", role, d.Digest))
+			case err != nil:
+				return err
+			case size != d.Size:
+				wrong = append(wrong, fmt.Sprintf("%s %s is %d bytes in the store, the manifest says %d", role, d.Digest, size, d.Size))
+			}
+		}
+	} else {
+		for i, d := range mf.Manifests {
+			if findEntry(idx, repo, d.Digest) < 0 {
+				missing = append(missing, fmt.Sprintf("manifest %d %s", i, d.Digest))
+			}
+		}
+	}
+	if len(missing) > 0 {
+		return errkind.New(errkind.BadInput, "missing from the store: %s: %w", strings.Join(missing, ", "), ErrNotFound)
+	}
+	if len(wrong) > 0 {
+		return errkind.New(errkind.BadInput, "%w: %s", ErrDigestMismatch, strings.Join(wrong, "; "))
+	}
+	return nil
+}
+
+// Manifest returns the bytes of a manifest recorded in repo, read through
+// a MaxManifestSize limit and verified against dgst (a mismatch wraps
+// ErrDigestMismatch with errkind.Integrity).
+func (l *Local) Manifest(ctx context.Context, repo string, dgst v1.Hash) ([]byte, v1.Descriptor, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return nil, v1.Descriptor{}, err
+	}
+	if err := checkDigest(dgst); err != nil {
+		return nil, v1.Descriptor{}, err
+	}
+	if err := ctx.Err(); err != nil {
+		return nil, v1.Descriptor{}, err
+	}
+	idx, err := l.readIndex()
+	if err != nil {
+		return nil, v1.Descriptor{}, err
+	}
+	i := findEntry(idx, repo, dgst)
+	if i < 0 {
+		return nil, v1.Descriptor{}, notFound("manifest %s in repository %s", dgst, repo)
+	}
+	desc := plainDescriptor(idx.Manifests[i])
+	raw, err := l.readManifestBlob(dgst)
+	if err != nil {
+		return nil, v1.Descriptor{}, err
+	}
+	if int64(len(raw)) != desc.Size {
+		return nil, v1.Descriptor{}, errkind.New(errkind.Integrity, "reading manifest %s: %w: %d bytes stored, index.json says %d", dgst, ErrDigestMismatch, len(raw), desc.Size)
+	}
+	return raw, desc, nil
+}
+
+// readManifestBlob reads and verifies a manifest's blob.
+func (l *Local) readManifestBlob(dgst v1.Hash) ([]byte, error) {
+	f, _, err := l.openBlob(dgst)
+	if err != nil {
+		if errors.Is(err, ErrNotFound) {
+			return nil, errkind.New(errkind.Integrity, "manifest %s is in index.json but its blob is missing: %w", dgst, ErrNotFound)
+		}
+		return nil, err
+	}
+	defer f.Close()
+	raw, err := io.ReadAll(io.LimitReader(f, MaxManifestSize+1))
+	if err != nil {
+		return nil, fmt.Errorf("reading manifest %s: %w", dgst, err)
+	}
+	if len(raw) > MaxManifestSize {
+		return nil, errkind.New(errkind.Integrity, "reading manifest %s: %w: stored manifest is larger than %d bytes", dgst, ErrDigestMismatch, MaxManifestSize)
+	}
+	sum := sha256.Sum256(raw)
+	if got := hex.EncodeToString(sum[:]); got != dgst.Hex {
+		return nil, errkind.New(errkind.Integrity, "reading manifest %s: %w: stored content hashes to sha256:%s", dgst, ErrDigestMismatch, got)
+	}
+	return raw, nil
+}
+
+// Manifests lists every manifest recorded in repo, tagged or not, sorted
+// by digest, with the manifest's artifactType and annotations.
+func (l *Local) Manifests(ctx context.Context, repo string) ([]v1.Descriptor, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return nil, err
+	}
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
+	idx, err := l.readIndex()
+	if err != nil {
+		return nil, err
+	}
+	return collectManifests(idx, func(d v1.Descriptor) bool {
+		return d.Annotations[annotationRepository] == repo
+	}), nil
+}
+
+// collectManifests returns one descriptor per distinct digest among the
+// entries keep accepts, sorted by digest.
+func collectManifests(idx *v1.IndexManifest, keep func(v1.Descriptor) bool) []v1.Descriptor {
+	seen := map[v1.Hash]bool{}
+	out := []v1.Descriptor{}
+	for _, d := range idx.Manifests {
+		if !keep(d) || seen[d.Digest] {
+			continue
+		}
+		seen[d.Digest] = true
+		out = append(out, annotatedDescriptor(d))
+	}
+	sort.Slice(out, func(i, j int) bool { return out[i].Digest.String() < out[j].Digest.String() })
+	return out
+}
+
+// Referrers lists the manifests in repo whose subject is subject, sorted
+// by digest, optionally only those of one artifactType. Descriptors carry
+// the referrer's artifactType and annotations (except ref.name).
+func (l *Local) Referrers(ctx context.Context, repo string, subject v1.Hash, artifactType string) ([]v1.Descriptor, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return nil, err
+	}
+	if err := checkDigest(subject); err != nil {
+		return nil, err
+	}
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
+	idx, err := l.readIndex()
+	if err != nil {
+		return nil, err
+	}
+	s := subject.String()
+	return collectManifests(idx, func(d v1.Descriptor) bool {
+		return d.Annotations[annotationRepository] == repo && d.Annotations[annotationSubject] == s &&
+			(artifactType == "" || d.ArtifactType == artifactType)
+	}), nil
+}
+
+// plainDescriptor is an entry without annotations.
+func plainDescriptor(d v1.Descriptor) v1.Descriptor {
+	return v1.Descriptor{MediaType: d.MediaType, Size: d.Size, Digest: d.Digest, ArtifactType: d.ArtifactType}
+}
+
+// annotatedDescriptor is an entry with the manifest's own annotations (the
+// store's bookkeeping annotations removed).
+func annotatedDescriptor(d v1.Descriptor) v1.Descriptor {
+	out := plainDescriptor(d)
+	for k, v := range d.Annotations {
+		if k == annotationRefName || k == annotationRepository || k == annotationSubject {
+			continue
+		}
+		if out.Annotations == nil {
+			out.Annotations = map[string]string{}
+		}
+		out.Annotations[k] = v
+	}
+	return out
+}
+
+// ---- tags ----
+
+func refName(repo, tag string) string { return repo + ":" + tag }
+
+// Resolve returns the descriptor (media type, size, digest, artifactType)
+// of the manifest that repo:tag points at.
+func (l *Local) Resolve(ctx context.Context, repo, tag string) (v1.Descriptor, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return v1.Descriptor{}, err
+	}
+	if err := ValidateTag(tag); err != nil {
+		return v1.Descriptor{}, err
+	}
+	if err := ctx.Err(); err != nil {
+		return v1.Descriptor{}, err
+	}
+	idx, err := l.readIndex()
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	if i := findTag(idx, repo, tag); i >= 0 {
+		return plainDescriptor(idx.Manifests[i]), nil
+	}
+	return v1.Descriptor{}, notFound("tag %s", refName(repo, tag))
+}
+
+// Tag points repo:tag at the manifest desc.Digest, which must already be
+// in repo (else ErrNotFound). A non-zero desc.Size must match the
+// manifest's. The change is one atomic replace of index.json.
+func (l *Local) Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) error {
+	return l.setTag(ctx, repo, tag, nil, desc)
+}
+
+// SwapTag points repo:tag at desc only if it now points at old, or, when
+// old is the zero Hash, only if the tag does not exist. The check and the
+// update happen under the store's lock; a lost race wraps ErrConflict
+// (errkind.Conflict) and changes nothing.
+func (l *Local) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, desc v1.Descriptor) error {
+	if old != (v1.Hash{}) {
+		if err := checkDigest(old); err != nil {
+			return err
+		}
+	}
+	return l.setTag(ctx, repo, tag, &old, desc)
+}
+
+func (l *Local) setTag(ctx context.Context, repo, tag string, old *v1.Hash, desc v1.Descriptor) error {
+	if err := ValidateRepository(repo); err != nil {
+		return err
+	}
+	if err := ValidateTag(tag); err != nil {
+		return err
+	}
+	if err := checkDigest(desc.Digest); err != nil {
+		return err
+	}
+	ref := refName(repo, tag)
+	err := l.updateIndex(ctx, func(idx *v1.IndexManifest) (bool, error) {
+		cur := findTag(idx, repo, tag)
+		if old != nil {
+			switch {
+			case *old == (v1.Hash{}) && cur >= 0:
+				return false, errkind.New(errkind.Conflict, "tag %s exists (points at %s), want it absent: %w", ref, idx.Manifests[cur].Digest, ErrConflict)
+			case *old != (v1.Hash{}) && cur < 0:
+				return false, errkind.New(errkind.Conflict, "tag %s does not exist, want it at %s: %w", ref, *old, ErrConflict)
+			case *old != (v1.Hash{}) && idx.Manifests[cur].Digest != *old:
+				return false, errkind.New(errkind.Conflict, "tag %s points at %s, want %s: %w", ref, idx.Manifests[cur].Digest, *old, ErrConflict)
+			}
+		}
+		base := findEntry(idx, repo, desc.Digest)
+		if base < 0 {
+			return false, notFound("manifest %s in repository %s", desc.Digest, repo)
+		}
+		entry := idx.Manifests[base]
+		if desc.Size != 0 && desc.Size != entry.Size {
+			return false, errkind.New(errkind.BadInput, "descriptor of %s says %d bytes, the stored manifest has %d", desc.Digest, desc.Size, entry.Size)
+		}
+		if size, err := l.statBlob(desc.Digest); err != nil || size != entry.Size {
+			return false, errkind.New(errkind.Integrity, "manifest %s is in index.json but its blob is missing or of the wrong size", desc.Digest)
+		}
+		if cur >= 0 && idx.Manifests[cur].Digest == desc.Digest {
+			return false, nil
+		}
+		tagged := entry
+		tagged.Annotations = map[string]string{}
+		for k, v := range entry.Annotations {
+			tagged.Annotations[k] = v
+		}
+		tagged.Annotations[annotationRefName] = ref
+		// One entry per ref.name: drop every entry with this name, also one
+		// another tool may have written without our repository annotation.
+		kept := idx.Manifests[:0]
+		for _, d := range idx.Manifests {
+			if d.Annotations[annotationRefName] != ref {
+				kept = append(kept, d)
+			}
+		}
+		idx.Manifests = append(kept, tagged)
+		return true, nil
+	})
+	if err != nil {
+		return fmt.Errorf("tagging %s: %w", ref, err)
+	}
+	return nil
+}
+
+// Untag removes repo:tag. The manifest stays in the repository (its
+// untagged entry remains). A missing tag wraps ErrNotFound.
+func (l *Local) Untag(ctx context.Context, repo, tag string) error {
+	if err := ValidateRepository(repo); err != nil {
+		return err
+	}
+	if err := ValidateTag(tag); err != nil {
+		return err
+	}
+	ref := refName(repo, tag)
+	err := l.updateIndex(ctx, func(idx *v1.IndexManifest) (bool, error) {
+		if findTag(idx, repo, tag) < 0 {
+			return false, notFound("tag %s", ref)
+		}
+		kept := idx.Manifests[:0]
+		for _, d := range idx.Manifests {
+			if !(d.Annotations[annotationRepository] == repo && d.Annotations[annotationRefName] == ref) {
+				kept = append(kept, d)
+			}
+		}
+		idx.Manifests = kept
+		return true, nil
+	})
+	if err != nil {
+		return fmt.Errorf("untagging %s: %w", ref, err)
+	}
+	return nil
+}
+
+// Tags lists repo's tags, sorted. A repository with no manifests gives an
+// error wrapping ErrNotFound; one with manifests but no tags gives an
+// empty list.
+func (l *Local) Tags(ctx context.Context, repo string) ([]string, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return nil, err
+	}
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
+	idx, err := l.readIndex()
+	if err != nil {
+		return nil, err
+	}
+	known := false
+	tags := []string{}
+	prefix := repo + ":"
+	for _, d := range idx.Manifests {
+		if d.Annotations[annotationRepository] != repo {
+			continue
+		}
+		known = true
+		if t, ok := strings.CutPrefix(d.Annotations[annotationRefName], prefix); ok && ValidateTag(t) == nil {
+			tags = append(tags, t)
+		}
+	}
+	if !known {
+		return nil, notFound("repository %s", repo)
+	}
+	sort.Strings(tags)
+	return compactStrings(tags), nil
+}
+
+// Repositories lists the repositories that hold at least one manifest,
+// sorted.
+func (l *Local) Repositories(ctx context.Context) ([]string, error) {
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
+	idx, err := l.readIndex()
+	if err != nil {
+		return nil, err
+	}
+	repos := []string{}
+	for _, d := range idx.Manifests {
+		if r, ok := d.Annotations[annotationRepository]; ok && ValidateRepository(r) == nil {
+			repos = append(repos, r)
+		}
+	}
+	sort.Strings(repos)
+	return compactStrings(repos), nil
+}
+
+func compactStrings(s []string) []string {
+	out := s[:0]
+	for i, v := range s {
+		if i == 0 || v != s[i-1] {
+			out = append(out, v)
+		}
+	}
+	return out
+}
+
+// findEntry returns the index of an entry of repo for dgst, preferring the
+// untagged one, or -1.
+func findEntry(idx *v1.IndexManifest, repo string, dgst v1.Hash) int {
+	found := -1
+	for i, d := range idx.Manifests {
+		if d.Digest != dgst || d.Annotations[annotationRepository] != repo {
+			continue
+		}
+		if d.Annotations[annotationRefName] == "" {
+			return i
+		}
+		if found < 0 {
+			found = i
+		}
+	}
+	return found
+}
+
+// findTag returns the index of repo:tag's entry, or -1.
+func findTag(idx *v1.IndexManifest, repo, tag string) int {
+	ref := refName(repo, tag)
+	for i := len(idx.Manifests) - 1; i >= 0; i-- {
+		d := idx.Manifests[i]
+		if d.Annotations[annotationRepository] == repo && d.Annotations[annotationRefName] == ref {
+			return i
+		}
+	}
+	return -1
+}

@@ -1,0 +1,512 @@
+package registry_test
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"errors"
+	"io"
+	"os"
+	"path/filepath"
+	"slices"
+	"strings"
+	"testing"
+
+	"github.com/google/go-cmp/cmp"
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/types"
+
+	"modelgate/internal/errkind"
+	"modelgate/internal/registry"
+	"modelgate/internal/registry/storetest"
+)
+
+func openLocal(t testing.TB) *registry.Local {
+	t.Helper()
+	l, err := registry.OpenLocal(filepath.Join(t.TempDir(), "store"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return l
+}
+
+func TestLocalConformance(t *testing.T) {
+	storetest.Run(t, func(t *testing.T) registry.Store { return openLocal(t) })
+}
+
+func readIndexFile(t *testing.T, dir string) v1.IndexManifest {
+	t.Helper()
+	b, err := os.ReadFile(filepath.Join(dir, "index.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var idx v1.IndexManifest
+	if err := json.Unmarshal(b, &idx); err != nil {
+		t.Fatalf("index.json is not valid JSON: %v", err)
+	}
+	return idx
+}
+
+// TestLocalLayoutFiles checks the files against the OCI image layout
+// (image-spec v1.1, image-layout.md): an oci-layout file with
+// imageLayoutVersion 1.0.0, index.json an image index, blobs under
+// blobs/sha256/<hex>; tags as org.opencontainers.image.ref.name
+// (annotations.md).
+func TestLocalLayoutFiles(t *testing.T) {
+	ctx := context.Background()
+	l := openLocal(t)
+	const repo = "podcast/listener-encoder"
+
+	b, err := os.ReadFile(filepath.Join(l.Dir(), "oci-layout"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var lf map[string]any
+	if err := json.Unmarshal(b, &lf); err != nil || !cmp.Equal(lf, map[string]any{"imageLayoutVersion": "1.0.0"}) {
+		t.Errorf("oci-layout = %s, want {\"imageLayoutVersion\":\"1.0.0\"}", b)
+	}
+	if idx := readIndexFile(t, l.Dir()); idx.SchemaVersion != 2 || idx.MediaType != types.OCIImageIndex || idx.Manifests == nil {
+		t.Errorf("empty index.json = %+v", idx)
+	}
+
+	model := storetest.NewArtifact(1, "application/vnd.modelgate.encoder.v1", nil, map[string]string{
+		"org.opencontainers.image.revision": "4f2a9c1",
+		"org.opencontainers.image.ref.name": "not-copied",
+	})
+	md := storetest.Push(t, l, repo, "prod", model)
+	subj := md
+	subj.ArtifactType = ""
+	report := storetest.NewArtifact(2, "application/vnd.modelgate.report.v1", &subj, nil)
+	rd := storetest.Push(t, l, repo, "", report)
+
+	for _, blob := range append([]storetest.Blob{model.Config, model.Manifest, report.Manifest}, model.Layers...) {
+		got, err := os.ReadFile(filepath.Join(l.Dir(), "blobs", "sha256", blob.Digest.Hex))
+		if err != nil || !bytes.Equal(got, blob.Data) {
+			t.Errorf("blobs/sha256/%s: %v", blob.Digest.Hex, err)
+		}
+	}
+
+	const at = "application/vnd.modelgate.encoder.v1"
+	want := []v1.Descriptor{
+		{MediaType: types.OCIManifestSchema1, Size: md.Size, Digest: md.Digest, ArtifactType: at, Annotations: map[string]string{
+			"dev.modelgate.repository":          repo,
+			"org.opencontainers.image.revision": "4f2a9c1",
+		}},
+		{MediaType: types.OCIManifestSchema1, Size: md.Size, Digest: md.Digest, ArtifactType: at, Annotations: map[string]string{
+			"dev.modelgate.repository":          repo,
+			"org.opencontainers.image.revision": "4f2a9c1",
+			"org.opencontainers.image.ref.name": repo + ":prod",
+		}},
+		{MediaType: types.OCIManifestSchema1, Size: rd.Size, Digest: rd.Digest, ArtifactType: "application/vnd.modelgate.report.v1", Annotations: map[string]string{
+			"dev.modelgate.repository": repo,
+			"dev.modelgate.subject":    md.Digest.String(),
+		}},
+	}
+	before, err := os.ReadFile(filepath.Join(l.Dir(), "index.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if diff := cmp.Diff(want, readIndexFile(t, l.Dir()).Manifests); diff != "" {
+		t.Errorf("index.json entries (-want +got):\n%s", diff)
+	}
+
+	// Repeating puts and the same tag leaves index.json byte-identical.
+	storetest.Push(t, l, repo, "prod", model)
+	storetest.Push(t, l, repo, "", report)
+	after, err := os.ReadFile(filepath.Join(l.Dir(), "index.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(before, after) {
+		t.Errorf("index.json changed on repeated puts:\n%s\n---\n%s", before, after)
+	}
+
+	// Retagging replaces the tag entry: still one entry per ref.name.
+	other := storetest.Push(t, l, repo, "", storetest.NewArtifact(3, at, nil, nil))
+	if err := l.Tag(ctx, repo, "prod", other); err != nil {
+		t.Fatal(err)
+	}
+	refs := map[string]int{}
+	for _, d := range readIndexFile(t, l.Dir()).Manifests {
+		if r := d.Annotations["org.opencontainers.image.ref.name"]; r != "" {
+			refs[r]++
+			if d.Digest != other.Digest {
+				t.Errorf("tag entry %s points at %s, want %s", r, d.Digest, other.Digest)
+			}
+		}
+	}
+	if !cmp.Equal(refs, map[string]int{repo + ":prod": 1}) {
+		t.Errorf("ref.name entries = %v, want one for %s:prod", refs, repo)
+	}
+	// The referrer descriptor carries the manifest's annotations but not
+	// the store's bookkeeping or ref.name.
+	ds, err := l.Manifests(ctx, repo)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, d := range ds {
+		if d.Digest == md.Digest && !cmp.Equal(d.Annotations, map[string]string{"org.opencontainers.image.revision": "4f2a9c1"}) {
+			t.Errorf("Manifests descriptor annotations = %v", d.Annotations)
+		}
+	}
+	if l.String() != "oci:"+l.Dir() {
+		t.Errorf("String() = %q", l.String())
+	}
+}
+
+func TestLocalUntag(t *testing.T) {
+	ctx := context.Background()
+	l := openLocal(t)
+	const repo = "podcast/promo-scorer"
+	d := storetest.Push(t, l, repo, "canary", storetest.NewArtifact(5, "application/vnd.modelgate.scorer.v1", nil, nil))
+	if err := l.Untag(ctx, repo, "canary"); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := l.Resolve(ctx, repo, "canary"); !errors.Is(err, registry.ErrNotFound) {
+		t.Errorf("Resolve after Untag: %v, want ErrNotFound", err)
+	}
+	if _, _, err := l.Manifest(ctx, repo, d.Digest); err != nil {
+		t.Errorf("manifest gone after Untag: %v", err)
+	}
+	if tags, err := l.Tags(ctx, repo); err != nil || len(tags) != 0 {
+		t.Errorf("Tags after Untag = %q, %v", tags, err)
+	}
+	if err := l.Untag(ctx, repo, "canary"); !errors.Is(err, registry.ErrNotFound) || errkind.Of(err) != errkind.BadInput {
+		t.Errorf("second Untag: %v, want ErrNotFound of kind bad input", err)
+	}
+	if err := l.Untag(ctx, repo, "-bad"); errkind.Of(err) != errkind.BadInput {
+		t.Errorf("Untag of an invalid tag: %v", err)
+	}
+}
+
+func TestLocalManifestScopedToRepository(t *testing.T) {
+	ctx := context.Background()
+	l := openLocal(t)
+	a := storetest.NewArtifact(6, "application/vnd.modelgate.encoder.v1", nil, nil)
+	storetest.Push(t, l, "podcast/shows", "prod", a)
+	_, _, err := l.Manifest(ctx, "podcast/episodes-played", a.Manifest.Digest)
+	if !errors.Is(err, registry.ErrNotFound) {
+		t.Errorf("Manifest from another repository: %v, want ErrNotFound", err)
+	}
+	// Putting the same manifest there records it (blobs are shared).
+	if _, err := l.PutManifest(ctx, "podcast/episodes-played", "", a.Manifest.Data); err != nil {
+		t.Fatal(err)
+	}
+	if _, _, err := l.Manifest(ctx, "podcast/episodes-played", a.Manifest.Digest); err != nil {
+		t.Errorf("Manifest after put into the second repository: %v", err)
+	}
+	if _, err := l.PutManifest(ctx, "podcast/shows", types.OCIImageIndex, a.Manifest.Data); errkind.Of(err) != errkind.BadInput {
+		t.Errorf("PutManifest under the wrong media type: %v, want bad input", err)
+	}
+}
+
+func TestLocalForeignEntriesKept(t *testing.T) {
+	ctx := context.Background()
+	l := openLocal(t)
+	a := storetest.NewArtifact(7, "application/vnd.modelgate.encoder.v1", nil, nil)
+	d := storetest.Push(t, l, "podcast/shows", "", a)
+
+	// An entry as another OCI tool would write it: ref.name only.
+	idx := readIndexFile(t, l.Dir())
+	foreign := v1.Descriptor{MediaType: d.MediaType, Size: d.Size, Digest: d.Digest,
+		Annotations: map[string]string{"org.opencontainers.image.ref.name": "latest"}}
+	idx.Manifests = append(idx.Manifests, foreign)
+	raw, _ := json.Marshal(idx)
+	if err := os.WriteFile(filepath.Join(l.Dir(), "index.json"), raw, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if err := l.Tag(ctx, "podcast/shows", "prod", d); err != nil {
+		t.Fatal(err)
+	}
+	got := readIndexFile(t, l.Dir()).Manifests
+	if !slices.ContainsFunc(got, func(x v1.Descriptor) bool { return cmp.Equal(x, foreign) }) {
+		t.Errorf("foreign entry lost: %+v", got)
+	}
+	if repos, err := l.Repositories(ctx); err != nil || !slices.Equal(repos, []string{"podcast/shows"}) {
+		t.Errorf("Repositories = %q, %v", repos, err)
+	}
+}
+
+func TestLocalReopen(t *testing.T) {
+	ctx := context.Background()
+	dir := filepath.Join(t.TempDir(), "store")
+	l, err := registry.OpenLocal(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	d := storetest.Push(t, l, "podcast/shows", "prod", storetest.NewArtifact(8, "application/vnd.modelgate.encoder.v1", nil, nil))
+	l2, err := registry.OpenLocal(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got, err := l2.Resolve(ctx, "podcast/shows", "prod"); err != nil || got.Digest != d.Digest {
+		t.Errorf("after reopen Resolve = %v, %v", got.Digest, err)
+	}
+
+	other := t.TempDir()
+	if err := os.WriteFile(filepath.Join(other, "oci-layout"), []byte(`{"imageLayoutVersion":"2.0.0"}`), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := registry.OpenLocal(other); errkind.Of(err) != errkind.BadInput {
+		t.Errorf("OpenLocal of a layout version 2.0.0: %v, want bad input", err)
+	}
+	file := filepath.Join(t.TempDir(), "plain-file")
+	if err := os.WriteFile(file, []byte("x"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := registry.OpenLocal(file); err == nil {
+		t.Error("OpenLocal of a plain file succeeded")
+	}
+}
+
+func TestLocalRefusedUploadLeavesNothing(t *testing.T) {
+	ctx := context.Background()
+	l := openLocal(t)
+	b := storetest.NewBlob(9, 3<<20)
+	bad := append(slices.Clone(b.Data[:len(b.Data)-1]), b.Data[len(b.Data)-1]^1)
+	if err := l.PutBlob(ctx, "podcast/shows", b.Digest, int64(len(bad)), bytes.NewReader(bad)); !errors.Is(err, registry.ErrDigestMismatch) {
+		t.Fatalf("PutBlob of wrong bytes: %v", err)
+	}
+	cctx, cancel := context.WithCancel(ctx)
+	cancel()
+	if err := l.PutBlob(cctx, "podcast/shows", b.Digest, int64(len(b.Data)), bytes.NewReader(b.Data)); !errors.Is(err, context.Canceled) {
+		t.Errorf("PutBlob with a cancelled context: %v", err)
+	}
+	if _, err := l.StatBlob(ctx, "podcast/shows", b.Digest); !errors.Is(err, registry.ErrNotFound) {
+		t.Errorf("StatBlob after refused uploads: %v", err)
+	}
+	ents, err := os.ReadDir(filepath.Join(l.Dir(), ".modelgate", "tmp"))
+	if err != nil || len(ents) != 0 {
+		t.Errorf("temporary files left: %v, %v", ents, err)
+	}
+}
+
+// A present blob of the wrong size is damage; a verified upload replaces it.
+func TestLocalUploadReplacesTruncatedBlob(t *testing.T) {
+	ctx := context.Background()
+	l := openLocal(t)
+	b := storetest.NewBlob(10, 50000)
+	p := filepath.Join(l.Dir(), "blobs", "sha256", b.Digest.Hex)
+	if err := os.WriteFile(p, b.Data[:1000], 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if err := l.PutBlob(ctx, "podcast/shows", b.Digest, int64(len(b.Data)), bytes.NewReader(b.Data)); err != nil {
+		t.Fatal(err)
+	}
+	got, err := os.ReadFile(p)
+	if err != nil || !bytes.Equal(got, b.Data) {
+		t.Errorf("truncated blob not replaced: %d bytes, %v", len(got), err)
+	}
+}
+
+func scrubFindings(t *testing.T, l *registry.Local, referenced map[v1.Hash]bool) []registry.Finding {
+	t.Helper()
+	fs, err := l.Scrub(context.Background(), referenced)
+	if err != nil {
+		t.Fatalf("Scrub: %v", err)
+	}
+	return fs
+}
+
+func referencedBy(arts ...storetest.Artifact) map[v1.Hash]bool {
+	m := map[v1.Hash]bool{}
+	for _, a := range arts {
+		m[a.Config.Digest] = true
+		for _, b := range a.Layers {
+			m[b.Digest] = true
+		}
+	}
+	return m
+}
+
+func TestLocalCorruption(t *testing.T) {
+	const repo = "podcast/listener-encoder"
+	type setup struct {
+		l   *registry.Local
+		art storetest.Artifact
+	}
+	blobFile := func(s setup, d v1.Hash) string { return filepath.Join(s.l.Dir(), "blobs", "sha256", d.Hex) }
+	cases := []struct {
+		name string
+		// damage changes the files and returns where Scrub must report
+		// findings (in its order) and their severity.
+		damage func(t *testing.T, s setup) (where []string, severity string)
+		check  func(t *testing.T, s setup) // asserts what reads of the damaged content return
+	}{
+		{
+			name: "flipped byte in a layer",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				p := blobFile(s, s.art.Layers[0].Digest)
+				b, _ := os.ReadFile(p)
+				b[len(b)/2] ^= 0x01
+				writeFile(t, p, b)
+				return []string{s.art.Layers[0].Digest.String()}, registry.SeverityDamage
+			},
+			check: func(t *testing.T, s setup) { wantIntegrity(t, readBothWays(s.l, repo, s.art.Layers[0].Digest)...) },
+		},
+		{
+			name: "truncated layer",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				p := blobFile(s, s.art.Layers[1].Digest)
+				writeFile(t, p, s.art.Layers[1].Data[:10])
+				return []string{s.art.Layers[1].Digest.String()}, registry.SeverityDamage
+			},
+			check: func(t *testing.T, s setup) { wantIntegrity(t, readBothWays(s.l, repo, s.art.Layers[1].Digest)...) },
+		},
+		{
+			name: "corrupt manifest",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				p := blobFile(s, s.art.Manifest.Digest)
+				b := bytes.Replace(s.art.Manifest.Data, []byte(`"schemaVersion":2`), []byte(`"schemaVersion":3`), 1)
+				writeFile(t, p, b)
+				return []string{s.art.Manifest.Digest.String()}, registry.SeverityDamage
+			},
+			check: func(t *testing.T, s setup) {
+				_, _, err := s.l.Manifest(context.Background(), repo, s.art.Manifest.Digest)
+				wantIntegrity(t, err)
+			},
+		},
+		{
+			name: "dangling tag",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				if err := os.Remove(blobFile(s, s.art.Manifest.Digest)); err != nil {
+					t.Fatal(err)
+				}
+				// Both the untagged entry and the tag now point at nothing.
+				return []string{repo + "@" + s.art.Manifest.Digest.String(), repo + ":prod"}, registry.SeverityDamage
+			},
+			check: func(t *testing.T, s setup) {
+				_, _, err := s.l.Manifest(context.Background(), repo, s.art.Manifest.Digest)
+				if !errors.Is(err, registry.ErrNotFound) || errkind.Of(err) != errkind.Integrity {
+					t.Errorf("Manifest of a dangling entry: %v, want ErrNotFound of kind integrity", err)
+				}
+			},
+		},
+		{
+			name: "leftover temp file",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				writeFile(t, filepath.Join(s.l.Dir(), ".modelgate", "tmp", "blob-123456"), []byte("half a blob"))
+				return []string{".modelgate/tmp/blob-123456"}, registry.SeverityHint
+			},
+		},
+		{
+			name: "unreferenced blob",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				b := storetest.NewBlob(77, 100)
+				if err := s.l.PutBlob(context.Background(), repo, b.Digest, 100, bytes.NewReader(b.Data)); err != nil {
+					t.Fatal(err)
+				}
+				return []string{b.Digest.String()}, registry.SeverityHint
+			},
+		},
+	}
+	for _, c := range cases {
+		t.Run(strings.ReplaceAll(c.name, " ", "_"), func(t *testing.T) {
+			l := openLocal(t)
+			s := setup{l: l, art: storetest.NewArtifact(11, "application/vnd.modelgate.encoder.v1", nil, nil)}
+			storetest.Push(t, l, repo, "prod", s.art)
+			referenced := referencedBy(s.art)
+			if fs := scrubFindings(t, l, referenced); len(fs) != 0 {
+				t.Fatalf("clean store: Scrub found %+v", fs)
+			}
+
+			where, severity := c.damage(t, s)
+			if c.check != nil {
+				c.check(t, s)
+			}
+			fs := scrubFindings(t, l, referenced)
+			var got []string
+			for _, f := range fs {
+				got = append(got, f.Where)
+				if f.Severity != severity {
+					t.Errorf("finding %+v: want severity %s", f, severity)
+				}
+			}
+			if !slices.Equal(got, where) {
+				t.Errorf("Scrub = %+v, want findings at %q", fs, where)
+			}
+		})
+	}
+}
+
+func writeFile(t *testing.T, p string, b []byte) {
+	t.Helper()
+	if err := os.WriteFile(p, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+}
+
+// readBothWays reads a blob to the end through WriteTo (io.Copy) and
+// through small Reads, and returns the error each path ended with.
+func readBothWays(l *registry.Local, repo string, d v1.Hash) []error {
+	var errs []error
+	rc, err := l.Blob(context.Background(), repo, d)
+	if err != nil {
+		return []error{err}
+	}
+	_, err = io.Copy(io.Discard, rc)
+	rc.Close()
+	errs = append(errs, err)
+
+	rc, err = l.Blob(context.Background(), repo, d)
+	if err != nil {
+		return append(errs, err)
+	}
+	defer rc.Close()
+	buf := make([]byte, 7)
+	for err == nil {
+		_, err = rc.Read(buf)
+	}
+	if err == io.EOF {
+		err = nil
+	}
+	return append(errs, err)
+}
+
+func wantIntegrity(t *testing.T, errs ...error) {
+	t.Helper()
+	for i, err := range errs {
+		if !errors.Is(err, registry.ErrDigestMismatch) || errkind.Of(err) != errkind.Integrity {
+			t.Errorf("read %d of damaged content: %v, want ErrDigestMismatch of kind integrity", i, err)
+		}
+	}
+}
+
+func TestLocalCorruptIndex(t *testing.T) {
+	l := openLocal(t)
+	writeFile(t, filepath.Join(l.Dir(), "index.json"), []byte(`{"schemaVersion":2,"manifests":[`))
+	if _, err := l.Repositories(context.Background()); errkind.Of(err) != errkind.Integrity {
+		t.Errorf("Repositories with a torn index.json: %v, want integrity", err)
+	}
+	fs := scrubFindings(t, l, nil)
+	if len(fs) != 1 || fs[0].Where != "index.json" || fs[0].Severity != registry.SeverityDamage {
+		t.Errorf("Scrub = %+v, want damage at index.json", fs)
+	}
+}
+
+// FuzzLocalPutManifest: any bytes given as a manifest are refused with bad
+// input or accepted and read back unchanged; nothing panics.
+func FuzzLocalPutManifest(f *testing.F) {
+	a := storetest.NewArtifact(12, "application/vnd.modelgate.encoder.v1", nil, nil)
+	f.Add(a.Manifest.Data)
+	f.Add([]byte(`{"schemaVersion":2,"mediaType":"application/vnd.oci.image.index.v1+json","manifests":[]}`))
+	f.Add([]byte(`{"schemaVersion":2,"config":{"digest":"sha256:../../x"}}`))
+	f.Add([]byte(`{"schemaVersion":2,"mediaType":"application/vnd.oci.image.manifest.v1+json","config":{"mediaType":"x","size":1,"digest":"sha256:` + strings.Repeat("0", 64) + `"}}`))
+	f.Add([]byte(`null`))
+	l := openLocal(f)
+	storetest.PushBlobs(f, l, "podcast/shows", a)
+	f.Fuzz(func(t *testing.T, raw []byte) {
+		ctx := context.Background()
+		d, err := l.PutManifest(ctx, "podcast/shows", "", raw)
+		if err != nil {
+			if errkind.Of(err) != errkind.BadInput {
+				t.Fatalf("PutManifest error of kind %v: %v", errkind.Of(err), err)
+			}
+			return
+		}
+		got, _, err := l.Manifest(ctx, "podcast/shows", d.Digest)
+		if err != nil || !bytes.Equal(got, raw) {
+			t.Fatalf("accepted manifest reads back as %q, %v", got, err)
+		}
+	})
+}
