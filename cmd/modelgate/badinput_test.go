@@ -156,6 +156,20 @@ func TestBadInputChangesNothing(t *testing.T) {
 			os.WriteFile(filepath.Join(d, "probes.jsonl"), []byte(`{"items":["show-003","show-010"],"values":[1],"expect":{"code":[0,0,0,0]}}`+"\n"), 0o644)
 			return d, "bad:v1"
 		}, 2, []string{"probes.jsonl:1", "2 items but 1 values"}},
+		{"layer input that does not exist", func(t *testing.T) (string, string) {
+			d := copyDir(t, encDir)
+			editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+				m["layers"].([]any)[1].(map[string]any)["input"] = "kode"
+			})
+			return d, "bad:v1"
+		}, 2, []string{"spec.json", "kode"}},
+		{"scorer's sparse input differs from its encoder's", func(t *testing.T) (string, string) {
+			d := copyDir(t, scorerDir)
+			editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+				m["inputs"].(map[string]any)["sparse"].([]any)[0].(map[string]any)["transform"] = "binary"
+			})
+			return d, "bad:v1"
+		}, 2, []string{"spec.json", "transform"}},
 		{"missing directory", func(t *testing.T) (string, string) {
 			return filepath.Join(t.TempDir(), "nope"), "bad:v1"
 		}, 2, []string{"nope"}},

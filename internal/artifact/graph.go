@@ -3,15 +3,58 @@ package artifact
 import (
 	"context"
 
+	"modelgate/internal/errkind"
+	"modelgate/internal/model"
 	"modelgate/internal/model/modeldir"
 	"modelgate/internal/registry"
 )
 
-// checkGraph compiles the model with the runtime so that a push refuses
-// shapes that disagree between layers and tensors.
-func checkGraph(ctx context.Context, store registry.Store, d *modeldir.Dir) error {
-	_ = ctx
-	_ = store
-	_ = d
-	return nil // wired to the runtime's Compile once it lands (same session)
+// zeroWeights gives every tensor of a spec a zero slice of its size: the
+// runtime's compiler checks shapes and references without the real values
+// (which push has already checked for NaN/Inf without decoding them).
+func zeroWeights(s *model.Spec) model.Weights {
+	w := model.Weights{}
+	for _, t := range s.Tensors {
+		n := 1
+		for _, d := range t.Shape {
+			n *= d
+		}
+		w[t.Name] = make([]float32, n)
+	}
+	return w
 }
+
+// checkGraph compiles the model with the runtime so that a push refuses
+// layers whose shapes or references disagree with the tensors, or a scorer
+// whose sparse input differs from its encoder's.
+func checkGraph(ctx context.Context, store registry.Store, d *modeldir.Dir) error {
+	spec := d.Model.Spec
+	var enc *model.Encoder
+	if spec.Encoder != nil && !spec.Encoder.Embedded {
+		loc, err := FindEncoder(ctx, store, spec.Encoder)
+		if err != nil {
+			return err
+		}
+		a, err := ReadArtifact(ctx, store, registry.Ref{Repository: loc.Repository, Digest: loc.Digest})
+		if err != nil {
+			return err
+		}
+		raw, err := ReadBlob(ctx, store, a.Repository, a.Manifest.Config, modeldir.MaxSpecSize)
+		if err != nil {
+			return err
+		}
+		es, vs, err := modeldir.ParseSpec(raw)
+		if err != nil {
+			return err
+		}
+		if es == nil || len(vs) > 0 {
+			return errkind.New(errkind.Integrity, "the encoder %s in the store has an invalid spec: %v", spec.Encoder.Digest, vs)
+		}
+		enc = &model.Encoder{Spec: es, Weights: zeroWeights(es)}
+	}
+	if _, err := model.Compile(spec, zeroWeights(spec), enc); err != nil {
+		return errkind.New(errkind.BadInput, "model directory %s: %s: %w", d.Path, modeldir.SpecFile, err)
+	}
+	return nil
+}
+
