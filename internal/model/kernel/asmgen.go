@@ -30,7 +30,7 @@ type isa struct {
 }
 
 var isas = []isa{
-	{name: "AVX512", reg: "Z", lanes: 16, maxRV: 24, maxR: 6, maxV: 4, sparse: 16},
+	{name: "AVX512", reg: "Z", lanes: 16, maxRV: 24, maxR: 6, maxV: 4, sparse: 8},
 	{name: "AVX2", reg: "Y", lanes: 8, maxRV: 12, maxR: 6, maxV: 2, sparse: 8},
 }
 

@@ -85,8 +85,9 @@ func DenseT(m, n, k int, a []float32, lda int, w []float32, bias []float32, c []
 //	c[r*ldc+j] = act(bias[j] + sum_{e = indptr[r]}^{indptr[r+1]-1} vals[e] * w[idx[e]*n+j])
 //
 // taking the terms in the order of e. w is a row-major matrix with n columns;
-// bias may be nil. Indices are trusted: the caller has checked that every
-// idx[e] names a row of w.
+// bias may be nil. The caller is expected to have checked that every idx[e]
+// names a row of w; SparseDense checks it again (a cheap pass over the indices)
+// and panics if one does not, so that a bad index can never read outside w.
 func SparseDense(indptr []int32, idx []int32, vals []float32, w []float32, n int, bias []float32, c []float32, ldc int, act Activation) {
 	rows := len(indptr) - 1
 	if rows <= 0 || n <= 0 {
@@ -94,8 +95,19 @@ func SparseDense(indptr []int32, idx []int32, vals []float32, w []float32, n int
 	}
 	checkBias(bias, n)
 	checkOut("c", c, rows, n, ldc)
-	if end := int(indptr[rows]); end > len(idx) || end > len(vals) {
-		panic(fmt.Sprintf("kernel: indptr ends at %d beyond %d indices and %d values", end, len(idx), len(vals)))
+	if start, end := int(indptr[0]), int(indptr[rows]); start < 0 || start > end || end > len(idx) || end > len(vals) {
+		panic(fmt.Sprintf("kernel: indptr spans %d..%d, outside %d indices and %d values", start, end, len(idx), len(vals)))
+	}
+	for r := 0; r < rows; r++ {
+		if indptr[r] > indptr[r+1] {
+			panic(fmt.Sprintf("kernel: indptr decreases at row %d", r))
+		}
+	}
+	rowsW := len(w) / n
+	for _, i := range idx[indptr[0]:indptr[rows]] {
+		if i < 0 || int(i) >= rowsW {
+			panic(fmt.Sprintf("kernel: index %d outside the %d rows of w", i, rowsW))
+		}
 	}
 	active.sparse(indptr, idx, vals, w, n, bias, c, ldc, act)
 }

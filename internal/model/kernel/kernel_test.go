@@ -447,6 +447,15 @@ func TestShapeErrorsPanic(t *testing.T) {
 		"small ldc": func() {
 			Dense(2, 3, 2, make([]float32, 4), 2, make([]float32, 6), nil, make([]float32, 6), 2, Identity)
 		},
+		"sparse index outside w": func() {
+			SparseDense([]int32{0, 1}, []int32{1}, []float32{1}, make([]float32, 4), 4, nil, make([]float32, 4), 4, Identity)
+		},
+		"sparse negative index": func() {
+			SparseDense([]int32{0, 1}, []int32{-1}, []float32{1}, make([]float32, 8), 4, nil, make([]float32, 4), 4, Identity)
+		},
+		"sparse decreasing indptr": func() {
+			SparseDense([]int32{0, 1, 0, 1}, []int32{0}, []float32{1}, make([]float32, 4), 4, nil, make([]float32, 12), 4, Identity)
+		},
 		"sparse short indices": func() {
 			SparseDense([]int32{0, 3}, []int32{0}, []float32{1}, make([]float32, 4), 4, nil, make([]float32, 4), 4, Identity)
 		},
