@@ -14,18 +14,19 @@ type pushOptions struct {
 }
 
 func (o *pushOptions) AddFlags(cmd *cobra.Command) {
-	cmd.Flags().StringVar(&o.Kind, "kind", "model", "what to push: model (a model directory)")
+	cmd.Flags().StringVar(&o.Kind, "kind", "model", "what to push: model (a model directory) or holdout (a Parquet or JSON Lines file)")
 }
 
 func newPushCmd(g *globals) *cobra.Command {
 	o := &pushOptions{}
 	cmd := &cobra.Command{
-		Use:   "push DIR NAME:TAG",
+		Use:   "push DIR|FILE NAME:TAG",
 		Short: "Validate a model directory and store it as an OCI artifact",
 		Long: `push validates a model directory (spec.json, safetensors files, vocabulary,
 stats, probes) and stores it as one OCI artifact: blobs first, then the
 manifest, then the tag. Blobs already in the store are not written again.
-Prints the manifest digest.`,
+With --kind holdout, push checks a holdout file (Parquet or JSON Lines) row
+by row and stores it, digest-pinned, for the gate. Prints the manifest digest.`,
 		Args: exactArgs(2, "DIR NAME:TAG"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runPush(cmd.Context(), g, o, args[0], args[1])
@@ -40,14 +41,19 @@ func runPush(ctx context.Context, g *globals, o *pushOptions, dir, refStr string
 	if err != nil {
 		return err
 	}
-	if o.Kind != "model" {
-		return usageErr("--kind %q is not supported here; use model", o.Kind)
+	if o.Kind != "model" && o.Kind != "holdout" {
+		return usageErr("--kind %q: use model or holdout", o.Kind)
 	}
 	store, err := g.openStore()
 	if err != nil {
 		return err
 	}
-	res, err := artifact.PushModelDir(ctx, store, dir, ref, artifact.Options{Progress: g.progress()})
+	var res *artifact.PushResult
+	if o.Kind == "holdout" {
+		res, err = artifact.PushHoldout(ctx, store, dir, ref, artifact.Options{Progress: g.progress()})
+	} else {
+		res, err = artifact.PushModelDir(ctx, store, dir, ref, artifact.Options{Progress: g.progress()})
+	}
 	if err != nil {
 		return err
 	}

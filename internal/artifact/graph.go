@@ -57,4 +57,3 @@ func checkGraph(ctx context.Context, store registry.Store, d *modeldir.Dir) erro
 	}
 	return nil
 }
-

@@ -1,0 +1,245 @@
+package artifact
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"sort"
+	"strings"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/types"
+
+	"modelgate/internal/data"
+	"modelgate/internal/errkind"
+	"modelgate/internal/model"
+	"modelgate/internal/registry"
+)
+
+// MediaTypeHoldoutInfo is the config blob of a holdout artifact: what the
+// holdout holds, computed when it was pushed.
+const MediaTypeHoldoutInfo types.MediaType = "application/vnd.modelgate.holdout.v1+json"
+
+// HoldoutInfo describes a holdout artifact (its config blob).
+type HoldoutInfo struct {
+	SchemaVersion int    `json:"schemaVersion"`
+	Format        string `json:"format"`
+	File          string `json:"file"`
+	Rows          int64  `json:"rows"`
+	HasLabels     bool   `json:"hasLabels"`
+	Positives     int64  `json:"positives"`
+	// Slices counts rows per slice value ("" for rows without one).
+	Slices map[string]int64 `json:"slices,omitempty"`
+	// Nonzeros is the total number of (item, value) pairs.
+	Nonzeros int64 `json:"nonzeros"`
+}
+
+// structuralSpec is a stand-in model for reading a holdout without one:
+// every id maps to the unknown bucket and no dense column is read, so the
+// reader checks items, values, labels, weights and slices.
+func structuralSpec() (*model.Spec, *data.Vocabulary, error) {
+	in := model.SparseInput{Name: "items", VocabularySize: 1, Unknown: model.UnknownBucket,
+		Transform: model.TransformIdentity, Duplicates: model.DuplicatesSum, Vocabulary: "v"}
+	v, err := data.ParseVocabulary(strings.NewReader("\x00structural\n"), in)
+	if err != nil {
+		return nil, nil, err
+	}
+	return &model.Spec{Inputs: model.Inputs{Sparse: []model.SparseInput{in}}}, v, nil
+}
+
+// ScanHoldout reads a holdout file once, checking every row's structure,
+// and summarises it.
+func ScanHoldout(path string, progress func(Event)) (*HoldoutInfo, error) {
+	format, err := data.FormatOf(path)
+	if err != nil {
+		return nil, err
+	}
+	spec, vocab, err := structuralSpec()
+	if err != nil {
+		return nil, err
+	}
+	r, err := data.Open(path, data.Options{Spec: spec, Vocab: vocab, Name: path})
+	if err != nil {
+		return nil, err
+	}
+	defer r.Close()
+	info := &HoldoutInfo{SchemaVersion: 1, Format: format, File: filepath.Base(path), Slices: map[string]int64{}}
+	var f data.Frame
+	for {
+		n, err := r.Read(&f, 8192)
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			return nil, err
+		}
+		info.Rows += int64(n)
+		info.HasLabels = f.HasLabels
+		info.Nonzeros += int64(len(f.Indices))
+		for i := 0; i < n; i++ {
+			if f.HasLabels && f.Labels[i] == 1 {
+				info.Positives++
+			}
+			info.Slices[f.Slices[i]]++
+		}
+		if progress != nil {
+			progress(Event{Phase: "scan", Name: path, Done: info.Rows, Total: r.Rows()})
+		}
+	}
+	if info.Rows == 0 {
+		return nil, errkind.New(errkind.BadInput, "holdout %s has no rows", path)
+	}
+	if len(info.Slices) == 1 && info.Slices[""] > 0 {
+		info.Slices = nil
+	}
+	return info, nil
+}
+
+var holdoutMediaTypes = map[string]types.MediaType{
+	data.FormatParquet: MediaTypeHoldoutParquet,
+	data.FormatJSONL:   MediaTypeHoldoutJSONL,
+}
+
+// PushHoldout checks a holdout file row by row and stores it as a holdout
+// artifact: the file as one blob (streamed, never held in memory), its
+// summary as the config.
+func PushHoldout(ctx context.Context, store registry.Store, path string, ref registry.Ref, opts Options) (*PushResult, error) {
+	if ref.Tag == "" || ref.HasDigest() {
+		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
+	}
+	info, err := ScanHoldout(path, opts.Progress)
+	if err != nil {
+		return nil, err
+	}
+	mt, ok := holdoutMediaTypes[info.Format]
+	if !ok {
+		return nil, errkind.New(errkind.BadInput, "holdout %s: format %q cannot be stored", path, info.Format)
+	}
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, errkind.Wrap(errkind.BadInput, err)
+	}
+	defer f.Close()
+	h := sha256.New()
+	size, err := io.Copy(h, f)
+	if err != nil {
+		return nil, fmt.Errorf("hashing %s: %w", path, err)
+	}
+	desc := v1.Descriptor{MediaType: mt, Size: size, Digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(h.Sum(nil))},
+		Annotations: map[string]string{AnnotationTitle: info.File}}
+	res := &PushResult{Ref: ref.String(), Kind: "holdout"}
+	if _, err := store.StatBlob(ctx, ref.Repository, desc.Digest); err == nil {
+		res.BlobsSkipped++
+	} else {
+		if _, err := f.Seek(0, io.SeekStart); err != nil {
+			return nil, err
+		}
+		opts.emit(Event{Phase: "upload", Name: info.File, Total: size})
+		if err := store.PutBlob(ctx, ref.Repository, desc.Digest, size, f); err != nil {
+			return nil, fmt.Errorf("uploading %s: %w", path, err)
+		}
+		opts.emit(Event{Phase: "upload", Name: info.File, Done: size, Total: size})
+		res.BlobsWritten++
+		res.BytesWritten += size
+	}
+	cfg, err := json.Marshal(info)
+	if err != nil {
+		return nil, err
+	}
+	config := NewBlob(MediaTypeHoldoutInfo, cfg, nil)
+	layer := Blob{Desc: desc}
+	ann := map[string]string{AnnotationKind: "holdout", AnnotationName: info.File}
+	r2, err := PushArtifact(ctx, store, ref, ArtifactType("holdout"), config, []Blob{layer}, nil, ann, opts)
+	if err != nil {
+		return nil, err
+	}
+	r2.BlobsWritten += res.BlobsWritten
+	r2.BytesWritten += res.BytesWritten
+	r2.BlobsSkipped += res.BlobsSkipped - 1 // the data blob is present now and was counted as skipped
+	return r2, nil
+}
+
+// Holdout is a holdout artifact fetched into a local file for reading.
+type Holdout struct {
+	Artifact *Artifact
+	Info     HoldoutInfo
+	// Path is a verified local copy of the data blob.
+	Path    string
+	cleanup func()
+}
+
+// Close removes the local copy.
+func (h *Holdout) Close() {
+	if h.cleanup != nil {
+		h.cleanup()
+	}
+}
+
+// FetchHoldout copies a holdout artifact's data blob into a temporary file
+// (verifying its digest while copying) so readers can seek in it.
+func FetchHoldout(ctx context.Context, store registry.Store, ref registry.Ref) (*Holdout, error) {
+	a, err := ReadArtifact(ctx, store, ref)
+	if err != nil {
+		return nil, err
+	}
+	if a.Kind() != "holdout" || len(a.Manifest.Layers) != 1 {
+		return nil, errkind.New(errkind.BadInput, "%s is a %q artifact, not a holdout", ref, a.Manifest.ArtifactType)
+	}
+	h := &Holdout{Artifact: a}
+	raw, err := ReadBlob(ctx, store, a.Repository, a.Manifest.Config, 1<<20)
+	if err != nil {
+		return nil, err
+	}
+	if err := json.Unmarshal(raw, &h.Info); err != nil {
+		return nil, errkind.New(errkind.Integrity, "holdout %s: config is not valid: %v", ref, err)
+	}
+	layer := a.Manifest.Layers[0]
+	dir, err := os.MkdirTemp("", "modelgate-holdout-")
+	if err != nil {
+		return nil, err
+	}
+	h.cleanup = func() { os.RemoveAll(dir) }
+	ext := map[types.MediaType]string{MediaTypeHoldoutParquet: ".parquet", MediaTypeHoldoutJSONL: ".jsonl"}[layer.MediaType]
+	if ext == "" {
+		h.Close()
+		return nil, errkind.New(errkind.Integrity, "holdout %s: unknown data media type %q", ref, layer.MediaType)
+	}
+	h.Path = filepath.Join(dir, "holdout"+ext)
+	rc, err := store.Blob(ctx, a.Repository, layer.Digest)
+	if err != nil {
+		h.Close()
+		return nil, err
+	}
+	defer rc.Close()
+	out, err := os.Create(h.Path)
+	if err != nil {
+		h.Close()
+		return nil, err
+	}
+	if _, err := io.Copy(out, rc); err != nil {
+		out.Close()
+		h.Close()
+		return nil, fmt.Errorf("fetching holdout %s: %w", ref, err)
+	}
+	if err := out.Close(); err != nil {
+		h.Close()
+		return nil, err
+	}
+	return h, nil
+}
+
+// SliceNames returns the slice names of a holdout summary, sorted.
+func (i *HoldoutInfo) SliceNames() []string {
+	out := make([]string, 0, len(i.Slices))
+	for k := range i.Slices {
+		out = append(out, k)
+	}
+	sort.Strings(out)
+	return out
+}
