@@ -471,3 +471,64 @@ func TestShapeErrorsPanic(t *testing.T) {
 		})
 	}
 }
+
+// TestDenseAcrossCacheBlocks uses a product large enough to span several row
+// chunks and column blocks of the cache blocking: rows on either side of a chunk
+// boundary must still equal themselves computed alone, and match the reference.
+func TestDenseAcrossCacheBlocks(t *testing.T) {
+	run(t, func(t *testing.T, be *backend) {
+		rng := rand.New(rand.NewPCG(15, 16))
+		m, n, k := 600, 200, 1024
+		a := randSlice(rng, m*k)
+		b := randSlice(rng, k*n)
+		bias := randSlice(rng, n)
+		full := make([]float32, m*n)
+		p := PackB(k, n, b)
+		DensePacked(m, a, k, p, bias, full, n, Sigmoid)
+		ref, scale := denseRef(m, n, k, a, k, func(q, j int) float32 { return b[q*n+j] }, bias, Sigmoid)
+		for i := range ref {
+			checkClose(t, fmt.Sprintf("element %d", i), full[i], ref[i], scale[i], k)
+		}
+		for _, i := range []int{0, 1, 41, 42, 251, 252, 253, 503, 504, 599} {
+			one := make([]float32, n)
+			Dense(1, n, k, a[i*k:], k, b, bias, one, n, Sigmoid)
+			sameBits(t, fmt.Sprintf("row %d alone", i), full[i*n:(i+1)*n], one)
+		}
+		tail := make([]float32, 7*n)
+		DensePacked(7, a[593*k:], k, p, bias, tail, n, Sigmoid)
+		sameBits(t, "last seven rows", full[593*n:], tail)
+	})
+}
+
+// FuzzDenseShapes tries arbitrary small shapes, strides and activations on every
+// path: each must match the reference, and each row must equal itself alone.
+func FuzzDenseShapes(f *testing.F) {
+	f.Add(uint8(7), uint8(17), uint8(33), uint8(1), uint8(2), uint8(1), uint64(1))
+	f.Add(uint8(1), uint8(65), uint8(1), uint8(0), uint8(0), uint8(3), uint64(2))
+	f.Add(uint8(13), uint8(130), uint8(64), uint8(5), uint8(0), uint8(2), uint64(3))
+	f.Fuzz(func(t *testing.T, m8, n8, k8, padA, padC, act8 uint8, seed uint64) {
+		m, n, k := int(m8%40)+1, int(n8)+1, int(k8)
+		lda, ldc := k+int(padA%4), n+int(padC%4)
+		act := acts[int(act8)%len(acts)]
+		rng := rand.New(rand.NewPCG(seed, 99))
+		a := randSlice(rng, (m-1)*lda+k)
+		b := randSlice(rng, k*n)
+		var bias []float32
+		if seed%2 == 0 {
+			bias = randSlice(rng, n)
+		}
+		ref, scale := denseRef(m, n, k, a, lda, func(p, j int) float32 { return b[p*n+j] }, bias, act)
+		for _, be := range backends() {
+			c := make([]float32, (m-1)*ldc+n)
+			be.dense(m, n, k, a, lda, matrix{data: b, k: k, n: n}, bias, c, ldc, act)
+			for i := 0; i < m; i++ {
+				for j := 0; j < n; j++ {
+					checkClose(t, fmt.Sprintf("%s c[%d,%d]", be.name, i, j), c[i*ldc+j], ref[i*n+j], scale[i*n+j], k)
+				}
+				one := make([]float32, n)
+				be.dense(1, n, k, a[i*lda:], lda, matrix{data: b, k: k, n: n}, bias, one, n, act)
+				sameBits(t, fmt.Sprintf("%s row %d alone", be.name, i), c[i*ldc:i*ldc+n], one)
+			}
+		}
+	})
+}
