@@ -1,0 +1,47 @@
+package data
+
+import (
+	"errors"
+	"io"
+	"path/filepath"
+	"testing"
+
+	"modelgate/internal/model"
+)
+
+// benchmarkRead reads a generated holdout of rows rows (up to 30 items
+// each, one dense input of size 4) in batches of 1024 and reports rows/s.
+func benchmarkRead(b *testing.B, ext string, rows int) {
+	v := testVocab(b, model.UnknownBucket, episodeIDs(20000)...)
+	path := filepath.Join(b.TempDir(), "holdout"+ext)
+	writeBig(b, path, rows, 20000, 30, denseAffinity)
+	opts := Options{Spec: testSpec(v, denseAffinity), Vocab: v}
+	var f Frame
+	b.ReportAllocs()
+	b.ResetTimer()
+	for b.Loop() {
+		r, err := Open(path, opts)
+		if err != nil {
+			b.Fatal(err)
+		}
+		total := 0
+		for {
+			n, err := r.Read(&f, 1024)
+			if errors.Is(err, io.EOF) {
+				break
+			}
+			if err != nil {
+				b.Fatal(err)
+			}
+			total += n
+		}
+		r.Close()
+		if total != rows {
+			b.Fatalf("read %d rows, want %d", total, rows)
+		}
+	}
+	b.ReportMetric(float64(rows)*float64(b.N)/b.Elapsed().Seconds(), "rows/s")
+}
+
+func BenchmarkReadParquet1M(b *testing.B) { benchmarkRead(b, ".parquet", 1_000_000) }
+func BenchmarkReadJSONL100k(b *testing.B) { benchmarkRead(b, ".jsonl", 100_000) }

@@ -1,0 +1,162 @@
+package data
+
+import (
+	"bytes"
+	"strings"
+	"testing"
+	"unicode/utf8"
+
+	"modelgate/internal/errkind"
+	"modelgate/internal/model"
+)
+
+func sparseInput(size int, unknown string) model.SparseInput {
+	return model.SparseInput{Name: "episodes", VocabularySize: size, Unknown: unknown,
+		Transform: model.TransformIdentity, Duplicates: model.DuplicatesSum, Vocabulary: "vocab.txt"}
+}
+
+func TestParseVocabulary(t *testing.T) {
+	for _, text := range []string{"ep-1\n42\nshow/é\n", "ep-1\n42\nshow/é"} {
+		v, err := ParseVocabulary(strings.NewReader(text), sparseInput(3, model.UnknownBucket))
+		if err != nil {
+			t.Fatalf("%q: %v", text, err)
+		}
+		if v.Len() != 3 {
+			t.Fatalf("%q: Len = %d, want 3", text, v.Len())
+		}
+		for i, id := range []string{"ep-1", "42", "show/é"} {
+			if got := v.ID(i); got != id {
+				t.Errorf("ID(%d) = %q, want %q", i, got, id)
+			}
+			if got, ok := v.Lookup(id); !ok || got != int32(i) {
+				t.Errorf("Lookup(%q) = %d, %v; want %d", id, got, ok, i)
+			}
+		}
+		if _, ok := v.Lookup("EP-1"); ok {
+			t.Errorf("Lookup is not case-sensitive")
+		}
+		if _, ok := v.Lookup("ep-1 "); ok {
+			t.Errorf("Lookup trims spaces")
+		}
+	}
+}
+
+func TestParseVocabularyLongLine(t *testing.T) {
+	long := strings.Repeat("x", 200<<10) // beyond the reader's 64 KiB buffer
+	v, err := ParseVocabulary(strings.NewReader("a\n"+long+"\nb"), sparseInput(3, model.UnknownDrop))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if i, ok := v.Lookup(long); !ok || i != 1 {
+		t.Errorf("long id: row %d, %v; want 1", i, ok)
+	}
+	if i, ok := v.Lookup("b"); !ok || i != 2 {
+		t.Errorf("id after the long one: row %d, %v; want 2", i, ok)
+	}
+}
+
+func TestParseVocabularyErrors(t *testing.T) {
+	cases := []struct {
+		name, text string
+		size       int
+		unknown    string
+		want       string
+	}{
+		{"empty id", "a\n\nb\n", 3, model.UnknownBucket, "line 2: empty id"},
+		{"blank line at end", "a\nb\n\n", 3, model.UnknownBucket, "line 3: empty id"},
+		{"duplicate", "a\nb\nc\nb\n", 4, model.UnknownBucket, `"b" appears on lines 2 and 4 (weight rows 1 and 3)`},
+		{"crlf", "a\r\nb\r\n", 2, model.UnknownBucket, "line 1: carriage return"},
+		{"invalid utf-8", "a\nb\xff\n", 2, model.UnknownBucket, "line 2: id is not valid UTF-8"},
+		{"bom", "\uFEFFa\nb\n", 2, model.UnknownBucket, "line 1: file starts with a byte order mark"},
+		{"too few", "a\nb\n", 3, model.UnknownBucket, "has 2 ids but the spec says vocabularySize 3"},
+		{"too many", "a\nb\nc", 2, model.UnknownBucket, "has 3 ids but the spec says vocabularySize 2"},
+		{"bad rule", "a\n", 1, "hash", `unknown-id rule "hash"`},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			_, err := ParseVocabulary(strings.NewReader(c.text), sparseInput(c.size, c.unknown))
+			if err == nil {
+				t.Fatalf("no error, want %q", c.want)
+			}
+			if !strings.Contains(err.Error(), c.want) {
+				t.Errorf("error %q does not contain %q", err, c.want)
+			}
+			if !errkind.Is(err, errkind.BadInput) {
+				t.Errorf("error kind %v, want bad input", errkind.Of(err))
+			}
+		})
+	}
+}
+
+func TestVocabularyMap(t *testing.T) {
+	ids := []string{"ep-1", "42", "007", "-5"}
+	for _, c := range []struct {
+		unknown string
+		idx     int32
+		keep    bool
+		err     bool
+	}{
+		{model.UnknownBucket, 4, true, false},
+		{model.UnknownDrop, 0, false, false},
+		{model.UnknownRefuse, 0, false, true},
+	} {
+		v := testVocab(t, c.unknown, ids...)
+		if i, keep, err := v.Map("42"); i != 1 || !keep || err != nil {
+			t.Errorf("%s: Map(42) = %d, %v, %v", c.unknown, i, keep, err)
+		}
+		i, keep, err := v.Map("ep-999")
+		if i != c.idx || keep != c.keep || (err != nil) != c.err {
+			t.Errorf("%s: Map(unknown) = %d, %v, %v; want %d, %v, error %v", c.unknown, i, keep, err, c.idx, c.keep, c.err)
+		}
+		if err != nil && (!errkind.Is(err, errkind.BadInput) || !strings.Contains(err.Error(), `"ep-999"`)) {
+			t.Errorf("%s: refusal %v is not a bad-input error naming the id", c.unknown, err)
+		}
+		// Integer ids match by their decimal form only: 42 and -5 are
+		// known, 7 is not "007".
+		if i, keep, err := v.mapInt(42); i != 1 || !keep || err != nil {
+			t.Errorf("%s: mapInt(42) = %d, %v, %v", c.unknown, i, keep, err)
+		}
+		if i, keep, err := v.mapInt(-5); i != 3 || !keep || err != nil {
+			t.Errorf("%s: mapInt(-5) = %d, %v, %v", c.unknown, i, keep, err)
+		}
+		if i, keep, err := v.mapInt(7); i != c.idx || keep != c.keep || (err != nil) != c.err {
+			t.Errorf("%s: mapInt(7) = %d, %v, %v; want the unknown rule", c.unknown, i, keep, err)
+		}
+	}
+}
+
+func FuzzVocabulary(f *testing.F) {
+	for _, s := range []string{"a\nb\nc\n", "a\nb", "", "\n", "x\r\ny", "1\n01\n-0\n", "é\n\xff", "a\na"} {
+		f.Add([]byte(s))
+	}
+	f.Fuzz(func(t *testing.T, text []byte) {
+		lines := bytes.Split(text, []byte{'\n'})
+		if len(lines) > 0 && len(lines[len(lines)-1]) == 0 {
+			lines = lines[:len(lines)-1] // the optional final newline
+		}
+		v, err := ParseVocabulary(bytes.NewReader(text), sparseInput(len(lines), model.UnknownBucket))
+		if err != nil {
+			if !errkind.Is(err, errkind.BadInput) {
+				t.Fatalf("error %v is not bad input", err)
+			}
+			return
+		}
+		if v.Len() != len(lines) {
+			t.Fatalf("Len %d, %d lines", v.Len(), len(lines))
+		}
+		for i, line := range lines {
+			id := v.ID(i)
+			if id != string(line) || id == "" || strings.ContainsRune(id, '\r') || !utf8.ValidString(id) {
+				t.Fatalf("line %d: id %q accepted from %q", i+1, id, line)
+			}
+			if j, ok := v.Lookup(id); !ok || j != int32(i) {
+				t.Fatalf("Lookup(%q) = %d, %v; want %d", id, j, ok, i)
+			}
+			if n, ok := canonicalInt(line); ok {
+				if j, keep, err := v.mapInt(n); j != int32(i) || !keep || err != nil {
+					t.Fatalf("mapInt(%d) = %d, %v, %v; want %d", n, j, keep, err, i)
+				}
+			}
+		}
+	})
+}
