@@ -1,7 +1,8 @@
 #!/usr/bin/env bash
 # Runs the runtime benchmark in Go and its numpy peer on the same workload and
 # prints rows/s side by side. Usage: bench/run.sh [COUNT]
-# COUNT (default 3) is how many processes each figure is the median of.
+# COUNT (default 3) is how many runs each figure is the median of (go test -count for Go,
+# separate processes for numpy).
 # Needs Go and Debian's /usr/bin/python3 with numpy and scipy.
 set -euo pipefail
 cd "$(dirname "$0")/.."
@@ -46,7 +47,7 @@ def numpy(core, t):
     for line in open(os.path.join(d, "numpy-%s-%d.txt" % (core, t))):
         f = line.split()
         vals.append(float(f[2]))
-        diffs.append(float(f[4]))
+        diffs.append(float(f[-1]))
     return statistics.median(vals), max(diffs)
 med = lambda v: statistics.median(v) if v else float("nan")
 rows = [
@@ -63,7 +64,7 @@ for core in ("default", "SkylakeX"):
     rows.append(("numpy+scipy+OpenBLAS, %s kernel" % ("default" if core == "default" else "OPENBLAS_CORETYPE=SkylakeX"), r))
 best = [max(rows[2][1][i], rows[3][1][i]) for i in (0, 1)]
 print("workload: %d rows, vocabulary %d, %d nonzeros; forward pass only (no loss)" % (meta["rows"], meta["vocab"], meta["nnz"]))
-print("rows/s, median of %d processes" % len(go.get(("BenchmarkForward", 1), [])))
+print("rows/s, median of %d runs (Go: go test -count; numpy: separate processes)" % len(go.get(("BenchmarkForward", 1), [])))
 print("%-50s %12s %12s" % ("implementation", "1 thread", "2 threads"))
 for name, (a, b) in rows:
     print("%-50s %12.0f %12.0f" % (name, a, b))
