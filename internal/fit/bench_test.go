@@ -1,0 +1,30 @@
+package fit
+
+import "testing"
+
+// BenchmarkFitPCA fits 16 components of a 20,000×800 activity-like matrix:
+// the size of the demo's encoders (the eigendecomposition dominates).
+func BenchmarkFitPCA(b *testing.B) {
+	x := randomSparse(1, 20000, 800, 8)
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		if _, err := FitPCA(x, 16); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
+
+// BenchmarkLogistic fits 20,000 rows × 27 features.
+func BenchmarkLogistic(b *testing.B) {
+	coef := make([]float64, 27)
+	for j := range coef {
+		coef[j] = 0.3 / float64(j+1)
+	}
+	x, y, _ := logisticData(2, 20000, coef, -2, false)
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		if _, err := Logistic(x, y, nil, nil); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
