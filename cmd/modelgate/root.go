@@ -126,6 +126,7 @@ Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
 		newDiffCmd(g),
 		newVerifyCmd(g),
 		newScoreCmd(g),
+		newDemoCmd(g),
 	)
 	root.SetFlagErrorFunc(func(c *cobra.Command, err error) error {
 		return errkind.Wrap(errkind.BadInput, err)
