@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"math"
 	"os"
+	"os/exec"
 	"path/filepath"
 	"strings"
 	"testing"
@@ -127,6 +128,31 @@ func TestScoreAndHoldouts(t *testing.T) {
 	}
 	if listing(t, store) != before {
 		t.Error("a refused holdout push changed the store")
+	}
+	mustMG(t, store, "verify")
+}
+
+// TestPushNumpyExport runs the numpy exporter example (Debian's
+// python3-numpy) and pushes, shows and verifies what it wrote.
+func TestPushNumpyExport(t *testing.T) {
+	py := "/usr/bin/python3"
+	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
+		if os.Getenv("CI") != "" {
+			t.Fatalf("%s with numpy is needed in CI: %v", py, err)
+		}
+		t.Skip("no Debian python3 with numpy")
+	}
+	dir := filepath.Join(t.TempDir(), "numpy-encoder")
+	if out, err := exec.Command(py, filepath.Join("..", "..", "examples", "export_numpy.py"), dir).CombinedOutput(); err != nil {
+		t.Fatalf("export_numpy.py: %v\n%s", err, out)
+	}
+	store := filepath.Join(t.TempDir(), "store")
+	d := strings.TrimSpace(mustMG(t, store, "push", dir, "listener-encoder:numpy").stdout)
+	if !strings.HasPrefix(d, "sha256:") {
+		t.Fatalf("push printed %q", d)
+	}
+	if r := mustMG(t, store, "show", "listener-encoder:numpy"); !strings.Contains(r.stdout, "tied_decoder") {
+		t.Errorf("show: %s", r.stdout)
 	}
 	mustMG(t, store, "verify")
 }
