@@ -65,9 +65,9 @@ for core in ("default", "SkylakeX"):
 best = [max(rows[2][1][i], rows[3][1][i]) for i in (0, 1)]
 print("workload: %d rows, vocabulary %d, %d nonzeros; forward pass only (no loss)" % (meta["rows"], meta["vocab"], meta["nnz"]))
 print("rows/s, median of %d runs (Go: go test -count; numpy: separate processes)" % len(go.get(("BenchmarkForward", 1), [])))
-print("%-50s %12s %12s" % ("implementation", "1 thread", "2 threads"))
+print("%-58s %12s %12s" % ("implementation", "1 thread", "2 threads"))
 for name, (a, b) in rows:
-    print("%-50s %12.0f %12.0f" % (name, a, b))
-print("%-50s %11.2fx %11.2fx" % ("Go runtime / best numpy", rows[0][1][0] / best[0], rows[0][1][1] / best[1]))
+    print("%-58s %12.0f %12.0f" % (name, a, b))
+print("%-58s %11.2fx %11.2fx" % ("Go runtime / best numpy", rows[0][1][0] / best[0], rows[0][1][1] / best[1]))
 print("largest |p_numpy - p_go| over all numpy runs: %.3g" % diff)
 PY
