@@ -1,0 +1,199 @@
+package checks
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"time"
+
+	"modelgate/internal/artifact"
+	"modelgate/internal/errkind"
+	"modelgate/internal/registry"
+	"modelgate/internal/score"
+	"modelgate/internal/version"
+)
+
+// Config is everything the checks need from a policy rule, with the
+// policy's defaults applied. The integrity check always runs.
+type Config struct {
+	// Kind the target tag accepts: encoder or scorer.
+	Kind     string
+	Freeze   FreezeConfig
+	Contract ContractConfig
+	Holdout  HoldoutConfig
+	Budget   BudgetConfig
+}
+
+// Event reports progress of a long phase.
+type Event struct {
+	Phase string // "load", "contract", "holdout", "budget"
+	Done  int64
+	Total int64 // -1 when unknown
+}
+
+// Gate is one gate run: a candidate asking to go to a target tag.
+type Gate struct {
+	Store     registry.Store
+	Candidate registry.Ref
+	// Target is the NAME:TAG the candidate asks to go to; what it points at
+	// now is the baseline (none on a first release).
+	Target registry.Ref
+	// Holdout names the holdout artifact (nil when the policy names none).
+	Holdout *registry.Ref
+	Policy  Policy
+	Config  Config
+	// Progress receives events of long phases; nil means none.
+	Progress func(Event)
+	// Now stamps the report (default time.Now).
+	Now func() time.Time
+}
+
+// Run runs every check and returns the report. An error means the gate
+// could not run at all (bad input, unreadable store); a failing check is
+// a report with verdict fail, not an error.
+func Run(ctx context.Context, g Gate) (*Report, error) {
+	now := time.Now
+	if g.Now != nil {
+		now = g.Now
+	}
+	if g.Target.Tag == "" || g.Target.HasDigest() {
+		return nil, errkind.New(errkind.BadInput, "the target must be NAME:TAG, got %q", g.Target)
+	}
+	rep := &Report{SchemaVersion: 1, Tool: Tool{Name: "modelgate", Version: version.Version},
+		Created: now().UTC().Format(time.RFC3339), Target: g.Target.String(), Policy: g.Policy}
+	emit := func(e Event) {
+		if g.Progress != nil {
+			g.Progress(e)
+		}
+	}
+
+	// Resolve the candidate and the baseline.
+	candDesc, err := artifact.Resolve(ctx, g.Store, g.Candidate)
+	if err != nil {
+		return nil, fmt.Errorf("candidate %s: %w", g.Candidate, err)
+	}
+	candRef := registry.Ref{Repository: g.Candidate.Repository, Digest: candDesc.Digest}
+	rep.Candidate = Subject{Ref: g.Candidate.String(), Digest: candDesc.Digest.String()}
+	var baseRef *registry.Ref
+	if bd, err := g.Store.Resolve(ctx, g.Target.Repository, g.Target.Tag); err == nil {
+		baseRef = &registry.Ref{Repository: g.Target.Repository, Tag: g.Target.Tag, Digest: bd.Digest}
+		rep.Baseline = &Subject{Ref: g.Target.String(), Digest: bd.Digest.String()}
+	} else if !errors.Is(err, registry.ErrNotFound) {
+		return nil, fmt.Errorf("resolving the target %s: %w", g.Target, err)
+	}
+
+	// 1. integrity: load (every blob re-hashed), spec, tensors, encoder.
+	emit(Event{Phase: "load"})
+	start := time.Now()
+	integ := CheckResult{Name: CheckIntegrity}
+	cand, candFoot, err := LoadAndPrepare(func() (*artifact.Loaded, error) { return artifact.Load(ctx, g.Store, candRef) })
+	if err != nil {
+		if !errkind.Is(err, errkind.Integrity) {
+			return nil, err
+		}
+		integ.Findings = append(integ.Findings, Finding{Status: StatusFail, Code: "integrity.candidate", Where: rep.Candidate.Digest, Message: err.Error()})
+	} else {
+		rep.Candidate.Kind, rep.Candidate.Name = cand.Loaded.Spec.Kind, cand.Loaded.Spec.Name
+		if g.Config.Kind != "" && cand.Loaded.Spec.Kind != g.Config.Kind {
+			integ.Findings = append(integ.Findings, Finding{Status: StatusFail, Code: "integrity.kind",
+				Message: fmt.Sprintf("the candidate is a %s; %s takes a %s", cand.Loaded.Spec.Kind, g.Target, g.Config.Kind)})
+		}
+	}
+	if g.Candidate.Repository != g.Target.Repository {
+		integ.Findings = append(integ.Findings, Finding{Status: StatusFail, Code: "integrity.repository",
+			Message: fmt.Sprintf("the candidate is in repository %s but the target tag is in %s: push or copy it there first", g.Candidate.Repository, g.Target.Repository)})
+	}
+	var base *score.Model
+	var baseFoot Footprint
+	if baseRef != nil {
+		base, baseFoot, err = LoadAndPrepare(func() (*artifact.Loaded, error) { return artifact.Load(ctx, g.Store, *baseRef) })
+		if err != nil {
+			if !errkind.Is(err, errkind.Integrity) {
+				return nil, err
+			}
+			integ.Findings = append(integ.Findings, Finding{Status: StatusFail, Code: "integrity.baseline", Where: rep.Baseline.Digest,
+				Message: "the baseline cannot be compared: " + err.Error()})
+			base = nil
+		} else {
+			rep.Baseline.Kind, rep.Baseline.Name = base.Loaded.Spec.Kind, base.Loaded.Spec.Name
+		}
+	}
+	var hold *artifact.Holdout
+	if g.Holdout != nil {
+		hold, err = artifact.FetchHoldout(ctx, g.Store, *g.Holdout)
+		if err != nil {
+			if !errkind.Is(err, errkind.Integrity) {
+				return nil, fmt.Errorf("holdout %s: %w", g.Holdout, err)
+			}
+			integ.Findings = append(integ.Findings, Finding{Status: StatusFail, Code: "integrity.holdout", Message: err.Error()})
+		} else {
+			defer hold.Close()
+			rep.Holdout = &Subject{Ref: g.Holdout.String(), Digest: hold.Artifact.Desc.Digest.String(), Kind: "holdout", Rows: hold.Info.Rows}
+		}
+	}
+	finish(&integ)
+	integ.Seconds = time.Since(start).Seconds()
+	if integ.Status == StatusPass {
+		integ.Summary = "every blob re-hashed; spec, tensors and encoder reference valid"
+		if cand != nil && cand.Loaded.Encoder != nil {
+			integ.Summary += "; encoder " + cand.Loaded.Spec.Encoder.Digest + " present"
+		}
+	} else {
+		integ.Summary = firstFail(integ.Findings)
+	}
+	rep.Checks = append(rep.Checks, integ)
+	if cand == nil {
+		for _, name := range []string{CheckFreeze, CheckContract, CheckHoldout, CheckBudget} {
+			rep.Checks = append(rep.Checks, CheckResult{Name: name, Status: StatusSkip, Summary: "not run: the candidate failed integrity"})
+		}
+		return conclude(rep), nil
+	}
+
+	run := func(name string, enabled bool, f func() CheckResult) {
+		if !enabled {
+			rep.Checks = append(rep.Checks, CheckResult{Name: name, Status: StatusSkip, Summary: "disabled by the policy"})
+			return
+		}
+		emit(Event{Phase: name})
+		t := time.Now()
+		r := f()
+		r.Seconds = time.Since(t).Seconds()
+		rep.Checks = append(rep.Checks, r)
+	}
+	run(CheckFreeze, g.Config.Freeze.Enabled, func() CheckResult { return Freeze(ctx, g.Store, cand.Loaded, g.Config.Freeze) })
+	run(CheckContract, g.Config.Contract.Enabled, func() CheckResult { return contract(cand, g.Config.Contract) })
+	run(CheckHoldout, g.Config.Holdout.Enabled, func() CheckResult {
+		if hold == nil {
+			return CheckResult{Name: CheckHoldout, Status: StatusFail, Summary: "no usable holdout",
+				Findings: []Finding{{Status: StatusFail, Code: "holdout.missing", Message: "the policy enables the holdout check but names no usable holdout"}}}
+		}
+		return Holdout(ctx, cand, base, hold, g.Config.Holdout, func(done, total int64) { emit(Event{Phase: CheckHoldout, Done: done, Total: total}) })
+	})
+	var bf *Footprint
+	if base != nil {
+		bf = &baseFoot
+	}
+	run(CheckBudget, g.Config.Budget.Enabled, func() CheckResult { return Budget(cand, candFoot, bf, g.Config.Budget) })
+	return conclude(rep), nil
+}
+
+// conclude sets the verdict: fail when any check failed.
+func conclude(rep *Report) *Report {
+	rep.Verdict = VerdictPass
+	rep.Reasons = []string{}
+	for _, c := range rep.Checks {
+		if c.Findings == nil {
+			c.Findings = []Finding{}
+		}
+		if c.Status == StatusFail {
+			rep.Verdict = VerdictFail
+			rep.Reasons = append(rep.Reasons, c.Name+": "+c.Summary)
+		}
+	}
+	for i := range rep.Checks {
+		if rep.Checks[i].Findings == nil {
+			rep.Checks[i].Findings = []Finding{}
+		}
+	}
+	return rep
+}

@@ -1,0 +1,603 @@
+package checks
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"sort"
+	"strconv"
+	"strings"
+
+	"modelgate/internal/artifact"
+	"modelgate/internal/checks/stats"
+	"modelgate/internal/data"
+	"modelgate/internal/errkind"
+	"modelgate/internal/model"
+	"modelgate/internal/score"
+)
+
+// HoldoutConfig holds the holdout check's rules.
+type HoldoutConfig struct {
+	Enabled bool
+	// Margin is the non-inferiority margin on the mean per-row loss
+	// difference (candidate − baseline); Confidence the one-sided level.
+	Margin     float64
+	Confidence float64
+	// Replicas of the Poisson bootstrap (reported beside the t test) and
+	// the seed of its counter-based draws.
+	Replicas int
+	Seed     uint64
+	// NonzeroQuantiles: rows are sliced by their nonzero count at these
+	// quantiles of the candidate's training statistics (stats.json
+	// nonzerosPerRow.qNN). Rows above AnomalyQuantile form an anomalous
+	// slice whose weights are multiplied by AnomalyWeight.
+	NonzeroQuantiles []float64
+	AnomalyQuantile  float64
+	AnomalyWeight    float64
+	// PerSliceMargin, when set, tests each slice too; FailOnSlice makes a
+	// failing slice fail the check (else it warns).
+	PerSliceMargin *float64
+	FailOnSlice    bool
+	// First-release thresholds for scorers (nil: not enforced).
+	MaxLogLoss, MaxNormalizedEntropy, MinAUC, MaxECE *float64
+	// Encoders: the reconstruction loss per row is
+	// Alpha·BCE(nonzero targets) + (1−Alpha)·BCE(all outputs); rows whose
+	// nonzero count n exceeds the WeightQuantile training quantile q are
+	// weighted (q/n)^WeightPower. MaxReconstruction is the first-release
+	// threshold.
+	Alpha             float64
+	WeightQuantile    float64
+	WeightPower       float64
+	MaxReconstruction *float64
+	// BatchSize rows per batch (default 4096); Threads for the runtime.
+	BatchSize int
+	Threads   int
+}
+
+// NonzeroQuantile reads a training quantile of nonzeros per row from a
+// model's stats: stats.json's "nonzerosPerRow" object with keys "q50",
+// "q90", "q99", "q999" for the 0.5, 0.9, 0.99, 0.999 quantiles.
+func NonzeroQuantile(st map[string]any, q float64) (float64, bool) {
+	nz, ok := st["nonzerosPerRow"].(map[string]any)
+	if !ok {
+		return 0, false
+	}
+	key := "q" + strings.ReplaceAll(strconv.FormatFloat(q*100, 'f', -1, 64), ".", "")
+	v, ok := nz[key].(float64)
+	return v, ok
+}
+
+type sliceAcc struct {
+	name       string
+	cand, base *stats.Binary
+	paired     *stats.Paired
+	rc, rb     *stats.Recon
+}
+
+// Holdout scores the candidate and the baseline on the same digest-pinned
+// holdout and compares them with a paired non-inferiority test (scorers:
+// log loss; encoders: reconstruction loss), overall and per slice. A
+// first release is held to the absolute thresholds.
+func Holdout(ctx context.Context, cand, base *score.Model, hold *artifact.Holdout, cfg HoldoutConfig, progress func(done, total int64)) CheckResult {
+	res := CheckResult{Name: CheckHoldout}
+	det, err := holdoutRun(ctx, cand, base, hold, cfg, progress, &res)
+	if err != nil {
+		res.Findings = append(res.Findings, Finding{Status: StatusFail, Code: "holdout.error", Message: err.Error()})
+		res.Status, res.Summary = StatusFail, err.Error()
+		return res
+	}
+	res.Holdout = det
+	finish(&res)
+	return res
+}
+
+func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Holdout, cfg HoldoutConfig, progress func(done, total int64), res *CheckResult) (*HoldoutDetail, error) {
+	kind := cand.Loaded.Spec.Kind
+	if base != nil && base.Loaded.Spec.Kind != kind {
+		return nil, errkind.New(errkind.BadInput, "the baseline is a %s, the candidate a %s", base.Loaded.Spec.Kind, kind)
+	}
+	if cfg.BatchSize <= 0 {
+		cfg.BatchSize = 4096
+	}
+	encoder := kind == model.KindEncoder
+	if encoder && cand.Net.Reconstruction() == "" {
+		return nil, errkind.New(errkind.BadInput, "the encoder %s has no reconstruction layer: its reconstruction loss cannot be measured", cand.Loaded.Spec.Name)
+	}
+	open := func(m *score.Model) (data.Reader, error) {
+		return data.Open(hold.Path, m.ReadOptions(hold.Artifact.Repository+"@"+hold.Artifact.Desc.Digest.String(), !encoder))
+	}
+	rc, err := open(cand)
+	if err != nil {
+		return nil, err
+	}
+	defer rc.Close()
+	var rb data.Reader
+	if base != nil {
+		if rb, err = open(base); err != nil {
+			return nil, err
+		}
+		defer rb.Close()
+	}
+	// Slices by nonzero count, from the candidate's training statistics.
+	type bound struct {
+		name  string
+		upper float64
+	}
+	var bounds []bound
+	lower := ""
+	for _, q := range cfg.NonzeroQuantiles {
+		v, ok := NonzeroQuantile(cand.Loaded.Stats, q)
+		if !ok {
+			res.Findings = append(res.Findings, Finding{Status: StatusWarn, Code: "holdout.stats",
+				Message: fmt.Sprintf("the candidate's stats.json has no nonzerosPerRow quantile %g: rows are not sliced by it", q)})
+			continue
+		}
+		if lower != "" && v <= bounds[len(bounds)-1].upper {
+			continue // equal quantiles make an empty slice
+		}
+		name := fmt.Sprintf("nonzeros ≤ %g", v)
+		if lower != "" {
+			name = fmt.Sprintf("nonzeros in (%s, %g]", lower, v)
+		}
+		bounds = append(bounds, bound{name, v})
+		lower = fmt.Sprintf("%g", v)
+	}
+	anomaly := math.Inf(1)
+	if cfg.AnomalyQuantile > 0 {
+		if v, ok := NonzeroQuantile(cand.Loaded.Stats, cfg.AnomalyQuantile); ok {
+			anomaly = v
+		} else {
+			res.Findings = append(res.Findings, Finding{Status: StatusWarn, Code: "holdout.stats",
+				Message: fmt.Sprintf("the candidate's stats.json has no nonzerosPerRow quantile %g: anomalous rows are not separated", cfg.AnomalyQuantile)})
+		}
+	}
+	weightQ := math.Inf(1)
+	if encoder && cfg.WeightQuantile > 0 {
+		if v, ok := NonzeroQuantile(cand.Loaded.Stats, cfg.WeightQuantile); ok {
+			weightQ = v
+		}
+	}
+	sliceOf := func(nnz int) string {
+		if float64(nnz) > anomaly {
+			return fmt.Sprintf("anomalous (nonzeros > %g)", anomaly)
+		}
+		for _, b := range bounds {
+			if float64(nnz) <= b.upper {
+				return b.name
+			}
+		}
+		if lower == "" {
+			return "all rows"
+		}
+		return fmt.Sprintf("nonzeros > %s", lower)
+	}
+	newAcc := func(name string) (*sliceAcc, error) {
+		a := &sliceAcc{name: name}
+		var err error
+		if a.paired, err = stats.NewPaired(cfg.Seed, cfg.Replicas); err != nil {
+			return nil, err
+		}
+		if encoder {
+			wf := func(n int) float64 {
+				if float64(n) <= weightQ {
+					return 1
+				}
+				return math.Pow(weightQ/float64(n), cfg.WeightPower)
+			}
+			if a.rc, err = stats.NewRecon(cfg.Alpha, wf); err != nil {
+				return nil, err
+			}
+			if a.rb, err = stats.NewRecon(cfg.Alpha, wf); err != nil {
+				return nil, err
+			}
+		} else {
+			a.cand, a.base = stats.NewBinary(), stats.NewBinary()
+		}
+		return a, nil
+	}
+	all, err := newAcc("all rows")
+	if err != nil {
+		return nil, err
+	}
+	slices := map[string]*sliceAcc{}
+	slice := func(name string) (*sliceAcc, error) {
+		if a, ok := slices[name]; ok {
+			return a, nil
+		}
+		a, err := newAcc(name)
+		slices[name] = a
+		return a, err
+	}
+	diffHist, err := stats.NewHistogram(-0.5, 0.5, 50)
+	if err != nil {
+		return nil, err
+	}
+	runC := cand.Net.NewRunner(cfg.Threads)
+	defer runC.Close()
+	var runB *model.Runner
+	if base != nil {
+		runB = base.Net.NewRunner(cfg.Threads)
+		defer runB.Close()
+	}
+	det := &HoldoutDetail{Kind: kind}
+	var (
+		fc, fb         data.Frame
+		pc, pb, qc, qb []float32
+		tc, tb         []float32
+		lc, lb, d      []float64
+		w              []float32
+		rows           int64
+	)
+	for {
+		if err := ctx.Err(); err != nil {
+			return nil, err
+		}
+		n, err := rc.Read(&fc, cfg.BatchSize)
+		if errors.Is(err, io.EOF) {
+			if rb != nil {
+				if m, err := rb.Read(&fb, 1); !errors.Is(err, io.EOF) || m != 0 {
+					return nil, errkind.New(errkind.Internal, "holdout readers disagree on the row count")
+				}
+			}
+			break
+		}
+		if err != nil {
+			return nil, err
+		}
+		if rb != nil {
+			m, err := rb.Read(&fb, cfg.BatchSize)
+			if err != nil {
+				return nil, fmt.Errorf("baseline's reading of the holdout: %w", err)
+			}
+			if m != n {
+				return nil, errkind.New(errkind.Internal, "holdout readers disagree: %d and %d rows", n, m)
+			}
+		}
+		w = append(w[:0], fc.Weights[:n]...)
+		nnz := make([]int, n)
+		for i := 0; i < n; i++ {
+			nnz[i] = int(fc.Indptr[i+1] - fc.Indptr[i])
+			if float64(nnz[i]) > anomaly {
+				w[i] *= float32(cfg.AnomalyWeight)
+			}
+		}
+		lc, lb, d = grow64(lc, n), grow64(lb, n), grow64(d, n)
+		if encoder {
+			if qc, tc, err = reconstruct(runC, cand, &fc.Batch, qc, tc); err != nil {
+				return nil, fmt.Errorf("candidate: %w", err)
+			}
+			if base != nil {
+				if qb, tb, err = reconstruct(runB, base, &fb.Batch, qb, tb); err != nil {
+					return nil, fmt.Errorf("baseline: %w", err)
+				}
+			}
+			wc, wb := cand.Net.Width(cand.Net.Reconstruction()), 0
+			if base != nil {
+				wb = base.Net.Width(base.Net.Reconstruction())
+			}
+			// Per row: accumulate overall and per slice.
+			for i := 0; i < n; i++ {
+				acc, err := slice(sliceOf(nnz[i]))
+				if err != nil {
+					return nil, err
+				}
+				for _, a := range []*sliceAcc{all, acc} {
+					c, err := a.rc.AddRow(qc[i*wc:(i+1)*wc], tc[i*wc:(i+1)*wc])
+					if err != nil {
+						return nil, fmt.Errorf("row %d: %w", rows+int64(i)+1, err)
+					}
+					lc[i] = c
+					if base != nil {
+						b, err := a.rb.AddRow(qb[i*wb:(i+1)*wb], tb[i*wb:(i+1)*wb])
+						if err != nil {
+							return nil, fmt.Errorf("row %d: %w", rows+int64(i)+1, err)
+						}
+						lb[i] = b
+					}
+				}
+				if len(det.Examples) < 4 && nnz[i] >= 2 {
+					det.Examples = append(det.Examples, example(cand, base, &fc, &fb, i, qc[i*wc:(i+1)*wc], tc[i*wc:(i+1)*wc], qb, wb))
+				}
+			}
+		} else {
+			if pc, err = runC.Run(&fc.Batch, cand.Net.Output(), pc); err != nil {
+				return nil, fmt.Errorf("candidate: %w", err)
+			}
+			if base != nil {
+				if pb, err = runB.Run(&fb.Batch, base.Net.Output(), pb); err != nil {
+					return nil, fmt.Errorf("baseline: %w", err)
+				}
+			}
+			y := fc.Labels[:n]
+			if err := all.cand.AddBatchLoss(pc[:n], y, w, lc); err != nil {
+				return nil, err
+			}
+			if base != nil {
+				if err := all.base.AddBatchLoss(pb[:n], y, w, lb); err != nil {
+					return nil, err
+				}
+			}
+			for i := 0; i < n; i++ {
+				acc, err := slice(sliceOf(nnz[i]))
+				if err != nil {
+					return nil, err
+				}
+				wi := []float32{w[i]}
+				if err := acc.cand.AddBatch(pc[i:i+1], y[i:i+1], wi); err != nil {
+					return nil, err
+				}
+				if base != nil {
+					if err := acc.base.AddBatch(pb[i:i+1], y[i:i+1], wi); err != nil {
+						return nil, err
+					}
+				}
+			}
+		}
+		if base != nil {
+			for i := 0; i < n; i++ {
+				d[i] = lc[i] - lb[i]
+			}
+			if err := all.paired.AddBatch(fc.RowIDs[:n], d, w); err != nil {
+				return nil, err
+			}
+			if err := diffHist.AddBatch(d, w); err != nil {
+				return nil, err
+			}
+			for i := 0; i < n; i++ {
+				acc, _ := slice(sliceOf(nnz[i]))
+				if err := acc.paired.Add(fc.RowIDs[i], d[i], w[i]); err != nil {
+					return nil, err
+				}
+			}
+		}
+		rows += int64(n)
+		if progress != nil {
+			progress(rows, hold.Info.Rows)
+		}
+	}
+	if rows == 0 {
+		return nil, errkind.New(errkind.BadInput, "the holdout has no rows")
+	}
+	det.Candidate = metricsOf(all, true)
+	if base != nil {
+		m := metricsOf(all, false)
+		det.Baseline = &m
+	}
+	if !encoder {
+		for _, b := range all.cand.Calibration() {
+			det.CalibrationCandidate = append(det.CalibrationCandidate, CalibrationBin(b))
+		}
+		if base != nil {
+			for _, b := range all.base.Calibration() {
+				det.CalibrationBaseline = append(det.CalibrationBaseline, CalibrationBin(b))
+			}
+		}
+	}
+	lossName := "log loss"
+	if encoder {
+		lossName = "reconstruction loss"
+	}
+	if base != nil {
+		det.LossDiff = &Histogram{Min: diffHist.Min, Max: diffHist.Max, Counts: diffHist.Counts}
+		t, err := all.paired.NonInferiority(cfg.Margin, cfg.Confidence)
+		if err != nil {
+			return nil, err
+		}
+		ni := NonInferiority(t)
+		det.Test = &ni
+		f := Finding{Status: StatusPass, Code: "holdout.noninferiority", Value: ptr(ni.Upper), Limit: ptr(cfg.Margin)}
+		if ni.Pass {
+			f.Message = fmt.Sprintf("mean %s difference %+.5f, upper %.0f%% bound %+.5f < margin %.5f (t = %.2f, p = %.3g, n = %d); bootstrap [%+.5f, %+.5f]",
+				lossName, ni.MeanDiff, 100*cfg.Confidence, ni.Upper, cfg.Margin, ni.T, ni.P, ni.N, ni.BootstrapLower, ni.BootstrapUpper)
+		} else {
+			f.Status = StatusFail
+			f.Message = fmt.Sprintf("the candidate may lose %s: mean difference %+.5f, upper %.0f%% bound %+.5f ≥ margin %.5f (p = %.3g, n = %d)",
+				lossName, ni.MeanDiff, 100*cfg.Confidence, ni.Upper, cfg.Margin, ni.P, ni.N)
+		}
+		res.Findings = append(res.Findings, f)
+		res.Summary = fmt.Sprintf("%s %.5f vs baseline %.5f; upper bound of the difference %+.5f vs margin %.5f",
+			lossName, lossOf(det.Candidate, encoder), lossOf(*det.Baseline, encoder), ni.Upper, cfg.Margin)
+	} else {
+		res.Summary = fmt.Sprintf("first release: %s %.5f", lossName, lossOf(det.Candidate, encoder))
+		firstRelease(det.Candidate, encoder, cfg, res)
+	}
+	// Slices, sorted by name.
+	names := make([]string, 0, len(slices))
+	for k := range slices {
+		names = append(names, k)
+	}
+	sort.Strings(names)
+	for _, name := range names {
+		a := slices[name]
+		sr := SliceResult{Name: name, Candidate: metricsOf(a, true), Status: StatusPass}
+		sr.Rows = sr.Candidate.Rows
+		if base != nil {
+			m := metricsOf(a, false)
+			sr.Baseline = &m
+			margin := cfg.Margin
+			if cfg.PerSliceMargin != nil {
+				margin = *cfg.PerSliceMargin
+			}
+			if t, err := a.paired.NonInferiority(margin, cfg.Confidence); err == nil {
+				ni := NonInferiority(t)
+				sr.Test = &ni
+				if cfg.PerSliceMargin != nil && !ni.Pass {
+					st := StatusWarn
+					if cfg.FailOnSlice {
+						st = StatusFail
+					}
+					sr.Status = st
+					res.Findings = append(res.Findings, Finding{Status: st, Code: "holdout.slice", Where: name,
+						Message: fmt.Sprintf("slice %q (%d rows): upper bound of the %s difference %+.5f ≥ slice margin %.5f", name, sr.Rows, lossName, ni.Upper, margin),
+						Value:   ptr(ni.Upper), Limit: ptr(margin)})
+				}
+			}
+		}
+		det.Slices = append(det.Slices, sr)
+	}
+	return det, nil
+}
+
+func lossOf(m Metrics, encoder bool) float64 {
+	if encoder {
+		return m.Reconstruct
+	}
+	return m.LogLoss
+}
+
+func firstRelease(m Metrics, encoder bool, cfg HoldoutConfig, res *CheckResult) {
+	check := func(name string, v float64, limit *float64, higherIsBetter bool) {
+		if limit == nil {
+			return
+		}
+		bad := v > *limit
+		rel := "≤"
+		if higherIsBetter {
+			bad, rel = v < *limit, "≥"
+		}
+		f := Finding{Status: StatusPass, Code: "holdout.first-release", Where: name, Value: ptr(v), Limit: ptr(*limit),
+			Message: fmt.Sprintf("%s %.5f, the policy asks %s %.5f", name, v, rel, *limit)}
+		if bad {
+			f.Status = StatusFail
+		}
+		res.Findings = append(res.Findings, f)
+	}
+	n := len(res.Findings)
+	if encoder {
+		check("reconstruction loss", m.Reconstruct, cfg.MaxReconstruction, false)
+	} else {
+		check("log loss", m.LogLoss, cfg.MaxLogLoss, false)
+		check("normalized entropy", m.NormalizedEntropy, cfg.MaxNormalizedEntropy, false)
+		check("AUC", m.AUC, cfg.MinAUC, true)
+		check("ECE", m.ECE, cfg.MaxECE, false)
+	}
+	if len(res.Findings) == n {
+		res.Findings = append(res.Findings, Finding{Status: StatusWarn, Code: "holdout.first-release",
+			Message: "first release and the policy sets no absolute threshold: nothing to hold the candidate to"})
+	}
+}
+
+func metricsOf(a *sliceAcc, candidate bool) Metrics {
+	if a.rc != nil {
+		r := a.rc
+		if !candidate {
+			r = a.rb
+		}
+		m := Metrics{Rows: r.Rows(), WeightSum: r.WeightSum()}
+		if r.Rows() > 0 {
+			m.BCEAll, m.BCENonzero, m.Reconstruct = finite(r.BCEAll()), finite(r.BCENonzero()), finite(r.Reconstruction())
+		}
+		return m
+	}
+	b := a.cand
+	if !candidate {
+		b = a.base
+	}
+	m := Metrics{Rows: b.Rows(), WeightSum: b.WeightSum()}
+	if b.Rows() == 0 {
+		return m
+	}
+	auc, _ := b.AUC()
+	m.LogLoss, m.NormalizedEntropy, m.AUC = finite(b.LogLoss()), finite(b.NormalizedEntropy()), finite(auc)
+	m.ECE, m.MCE, m.PredictedObserved = finite(b.ECE()), finite(b.MCE()), finite(b.PredictedObserved())
+	return m
+}
+
+// finite maps NaN and ±Inf (e.g. AUC of a slice with one class) to 0 so
+// that the report stays valid JSON.
+func finite(v float64) float64 {
+	if math.IsNaN(v) || math.IsInf(v, 0) {
+		return 0
+	}
+	return v
+}
+
+func grow64(s []float64, n int) []float64 {
+	if cap(s) < n {
+		return make([]float64, n)
+	}
+	return s[:n]
+}
+
+// reconstruct runs an encoder's reconstruction layer over a batch and
+// builds its targets. Targets: each row's sparse input after the
+// duplicates rule and the transform (as the runtime does), capped at 1
+// (BCE needs targets in [0, 1]). Predictions: the decoder output when its
+// activation is sigmoid, else the sigmoid of it (a decoder with a linear
+// output is read as giving logits).
+func reconstruct(r *model.Runner, m *score.Model, b *model.Batch, q, t []float32) ([]float32, []float32, error) {
+	layer := m.Net.Reconstruction()
+	var err error
+	if q, err = r.Run(b, layer, q); err != nil {
+		return q, t, err
+	}
+	sigmoid := true
+	for _, l := range m.Loaded.Spec.Layers {
+		if l.Name == layer && l.Activation == model.ActSigmoid {
+			sigmoid = false
+		}
+	}
+	if sigmoid {
+		for i, v := range q {
+			q[i] = float32(1 / (1 + math.Exp(-float64(v))))
+		}
+	}
+	width := m.Net.Width(layer)
+	rows := b.Rows()
+	if cap(t) < rows*width {
+		t = make([]float32, rows*width)
+	}
+	t = t[:rows*width]
+	clear(t)
+	in := m.Loaded.Spec.Inputs.Sparse[0]
+	for i := 0; i < rows; i++ {
+		merged := map[int32]float64{}
+		for p := b.Indptr[i]; p < b.Indptr[i+1]; p++ {
+			idx, v := b.Indices[p], float64(b.Values[p])
+			if old, ok := merged[idx]; ok && in.Duplicates == model.DuplicatesMax && idx != int32(in.VocabularySize) {
+				merged[idx] = math.Max(old, v)
+			} else {
+				merged[idx] = old + v
+			}
+		}
+		for idx, v := range merged {
+			switch in.Transform {
+			case model.TransformLog1p:
+				v = math.Log1p(v)
+			case model.TransformBinary:
+				if v > 0 {
+					v = 1
+				}
+			}
+			t[i*width+int(idx)] = float32(math.Min(v, 1))
+		}
+	}
+	return q, t, nil
+}
+
+// example records one encoder row's reconstruction at its nonzeros.
+func example(cand, base *score.Model, fc, fb *data.Frame, i int, q, t []float32, qb []float32, wb int) ReconstructionExample {
+	ex := ReconstructionExample{RowID: fc.RowIDs[i]}
+	for p := fc.Indptr[i]; p < fc.Indptr[i+1]; p++ {
+		idx := fc.Indices[p]
+		id := "(unknown)"
+		if int(idx) < cand.Vocab.Len() {
+			id = cand.Vocab.ID(int(idx))
+		}
+		ex.Items = append(ex.Items, id)
+		ex.Targets = append(ex.Targets, float64(t[idx]))
+		ex.Candidate = append(ex.Candidate, float64(q[idx]))
+	}
+	if base != nil && wb > 0 {
+		row := qb[i*wb : (i+1)*wb]
+		for p := fb.Indptr[i]; p < fb.Indptr[i+1]; p++ {
+			ex.Baseline = append(ex.Baseline, float64(row[fb.Indices[p]]))
+		}
+		if len(ex.Baseline) != len(ex.Candidate) {
+			ex.Baseline = nil
+		}
+	}
+	return ex
+}

@@ -1,0 +1,96 @@
+package checks
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/types"
+
+	"modelgate/internal/artifact"
+	"modelgate/internal/errkind"
+	"modelgate/internal/registry"
+)
+
+// Media types of a gate report artifact.
+const (
+	MediaTypeReport     types.MediaType = "application/vnd.modelgate.report.v1+json"
+	MediaTypeReportHTML types.MediaType = "text/html"
+)
+
+// Annotations of a gate report artifact.
+const (
+	AnnotationReportType = "dev.modelgate.report.type" // "gate"
+	AnnotationTarget     = "dev.modelgate.target"
+	AnnotationVerdict    = "dev.modelgate.verdict"
+	AnnotationBaseline   = "dev.modelgate.baseline.digest"
+	AnnotationHoldout    = "dev.modelgate.holdout.digest"
+	AnnotationPolicy     = "dev.modelgate.policy.digest"
+)
+
+// PushReport stores a gate report as an artifact whose subject is the
+// candidate, so the OCI referrers of the candidate find it. html, when
+// not nil, is stored beside the JSON. It returns the report's descriptor.
+func PushReport(ctx context.Context, store registry.Store, rep *Report, html []byte) (v1.Descriptor, error) {
+	ref, err := registry.ParseRef(rep.Target, false)
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	cd, err := registry.ParseDigest(rep.Candidate.Digest)
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	_, subject, err := store.Manifest(ctx, ref.Repository, cd)
+	if err != nil {
+		return v1.Descriptor{}, fmt.Errorf("the report's candidate %s: %w", rep.Candidate.Digest, err)
+	}
+	subject.Annotations, subject.ArtifactType = nil, ""
+	raw, err := json.Marshal(rep)
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	config := artifact.NewBlob(MediaTypeReport, raw, nil)
+	var layers []artifact.Blob
+	if html != nil {
+		layers = append(layers, artifact.NewBlob(MediaTypeReportHTML, html, map[string]string{artifact.AnnotationTitle: "report.html"}))
+	}
+	ann := map[string]string{
+		artifact.AnnotationCreated: rep.Created,
+		AnnotationReportType:       "gate",
+		AnnotationTarget:           rep.Target,
+		AnnotationVerdict:          rep.Verdict,
+		AnnotationPolicy:           rep.Policy.Digest,
+	}
+	if rep.Baseline != nil {
+		ann[AnnotationBaseline] = rep.Baseline.Digest
+	}
+	if rep.Holdout != nil {
+		ann[AnnotationHoldout] = rep.Holdout.Digest
+	}
+	res, err := artifact.PushArtifact(ctx, store, registry.Ref{Repository: ref.Repository}, artifact.ArtifactType("report"), config, layers, &subject, ann, artifact.Options{})
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	return res.Manifest, nil
+}
+
+// ReadReport reads a gate report artifact back.
+func ReadReport(ctx context.Context, store registry.Store, repo string, d v1.Hash) (*Report, error) {
+	a, err := artifact.ReadArtifact(ctx, store, registry.Ref{Repository: repo, Digest: d})
+	if err != nil {
+		return nil, err
+	}
+	if a.Kind() != "report" || a.Manifest.Config.MediaType != MediaTypeReport {
+		return nil, errkind.New(errkind.BadInput, "%s@%s is not a gate report", repo, d)
+	}
+	raw, err := artifact.ReadBlob(ctx, store, repo, a.Manifest.Config, 64<<20)
+	if err != nil {
+		return nil, err
+	}
+	var rep Report
+	if err := json.Unmarshal(raw, &rep); err != nil {
+		return nil, errkind.New(errkind.Integrity, "gate report %s is not valid JSON: %v", d, err)
+	}
+	return &rep, nil
+}
