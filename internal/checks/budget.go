@@ -154,7 +154,7 @@ func fmtUnit(v float64, unit string) string {
 		}
 		return fmt.Sprintf("%.0f B", v)
 	case "ms":
-		return fmt.Sprintf("%.3f ms", v)
+		return fmt.Sprintf("%.4g ms", v)
 	case "fraction":
 		return fmt.Sprintf("%+.1f%%", 100*v)
 	}

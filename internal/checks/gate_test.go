@@ -1,0 +1,268 @@
+package checks
+
+import (
+	"context"
+	"fmt"
+	"math"
+	"os"
+	"path/filepath"
+	"sync"
+	"testing"
+
+	"modelgate/internal/artifact"
+	"modelgate/internal/demo"
+	"modelgate/internal/model"
+	"modelgate/internal/policy"
+	"modelgate/internal/registry"
+	"modelgate/internal/score"
+)
+
+var (
+	demoOnce  sync.Once
+	demoStore *registry.Local
+	demoErr   error
+	demoDir   string
+)
+
+// demoScenario builds the demo scenario once per test binary into a
+// temporary local store.
+func demoScenario(t *testing.T) *registry.Local {
+	t.Helper()
+	demoOnce.Do(func() {
+		demoDir, demoErr = os.MkdirTemp("", "modelgate-checks-")
+		if demoErr != nil {
+			return
+		}
+		sc, err := demo.Build(filepath.Join(demoDir, "work"), demo.DefaultConfig(), nil)
+		if err != nil {
+			demoErr = err
+			return
+		}
+		demoStore, demoErr = registry.OpenLocal(filepath.Join(demoDir, "store"))
+		if demoErr != nil {
+			return
+		}
+		_, demoErr = demo.Publish(context.Background(), demoStore, sc, nil)
+	})
+	if demoErr != nil {
+		t.Fatal(demoErr)
+	}
+	return demoStore
+}
+
+func TestMain(m *testing.M) {
+	code := m.Run()
+	if demoDir != "" {
+		os.RemoveAll(demoDir)
+	}
+	os.Exit(code)
+}
+
+func gate(t *testing.T, store registry.Store, cand, target, policyFile string) *Report {
+	t.Helper()
+	return gateAs(t, store, cand, target, target, policyFile)
+}
+
+// gateAs gates cand towards target under the policy's rule for ruleTarget.
+func gateAs(t *testing.T, store registry.Store, cand, target, ruleTarget, policyFile string) *Report {
+	t.Helper()
+	pol, err := policy.Load(filepath.Join("..", "..", "policies", policyFile))
+	if err != nil {
+		t.Fatal(err)
+	}
+	rule, err := pol.Rule(ruleTarget)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := context.Background()
+	encTag := ""
+	if et := rule.Freeze.EncoderTag; et != nil {
+		if d, err := store.Resolve(ctx, et.Repository, et.Tag); err == nil {
+			encTag = d.Digest.String()
+		}
+	}
+	c, _ := registry.ParseRef(cand, false)
+	tg, _ := registry.ParseRef(target, false)
+	cfg := FromRule(rule, encTag)
+	cfg.Budget.P50ms, cfg.Budget.P99ms = nil, nil // timings are never pass/fail in tests
+	rep, err := Run(ctx, Gate{Store: store, Candidate: c, Target: tg, Holdout: rule.HoldoutRef, Config: cfg,
+		Policy: Policy{Name: pol.Name, Source: policyFile, Digest: pol.Digest()}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return rep
+}
+
+func status(rep *Report) map[string]string {
+	m := map[string]string{}
+	for _, c := range rep.Checks {
+		m[c.Name] = c.Status
+	}
+	return m
+}
+
+// TestDemoVerdicts: the demo's candidates get the verdicts they were built
+// for (issue: better → pass; worse → holdout; misaligned vocabulary →
+// contract; trainable encoder with a regulariser → freeze; oversize →
+// budget).
+func TestDemoVerdicts(t *testing.T) {
+	store := demoScenario(t)
+	cases := []struct {
+		cand    string
+		verdict string
+		failing string // a check that must fail ("" for none)
+	}{
+		{"promo-scorer:cand-better", VerdictPass, ""},
+		{"promo-scorer:cand-worse", VerdictFail, CheckHoldout},
+		{"promo-scorer:cand-shuffled-vocab", VerdictFail, CheckContract},
+		{"promo-scorer:cand-trainable-encoder", VerdictFail, CheckFreeze},
+		{"promo-scorer:cand-over-budget", VerdictFail, CheckBudget},
+	}
+	for _, c := range cases {
+		t.Run(c.cand, func(t *testing.T) {
+			rep := gate(t, store, c.cand, "promo-scorer:prod", "promo-scorer.yaml")
+			st := status(rep)
+			if rep.Verdict != c.verdict {
+				t.Fatalf("verdict %s, want %s; checks %v; reasons %v", rep.Verdict, c.verdict, st, rep.Reasons)
+			}
+			if c.failing != "" && st[c.failing] != StatusFail {
+				t.Errorf("check %s is %s, want FAIL (checks %v)", c.failing, st[c.failing], st)
+			}
+			if st[CheckIntegrity] != StatusPass {
+				t.Errorf("integrity %s", st[CheckIntegrity])
+			}
+			if rep.Baseline == nil || rep.Holdout == nil || rep.Policy.Digest == "" || rep.Candidate.Digest == "" {
+				t.Errorf("report not bound to its inputs: %+v", rep)
+			}
+		})
+	}
+	// The worse candidate fails on holdout alone (its other checks pass).
+	rep := gate(t, store, "promo-scorer:cand-worse", "promo-scorer:prod", "promo-scorer.yaml")
+	for name, s := range status(rep) {
+		if name != CheckHoldout && s == StatusFail {
+			t.Errorf("worse candidate: %s failed too", name)
+		}
+	}
+	// The shuffled vocabulary is caught by the probe rows, naming them.
+	rep = gate(t, store, "promo-scorer:cand-shuffled-vocab", "promo-scorer:prod", "promo-scorer.yaml")
+	found := false
+	for _, c := range rep.Checks {
+		for _, f := range c.Findings {
+			if f.Code == "contract.probe" && f.Status == StatusFail {
+				found = true
+			}
+		}
+	}
+	if !found {
+		t.Error("shuffled vocabulary: no failing contract.probe finding")
+	}
+}
+
+// TestEncoderGate: the refitted encoder passes against the production one;
+// the 256-wide encoder fails its budget.
+func TestEncoderGate(t *testing.T) {
+	store := demoScenario(t)
+	rep := gate(t, store, "listener-encoder:v2", "listener-encoder:prod", "listener-encoder.yaml")
+	if rep.Verdict != VerdictPass {
+		t.Errorf("v2: verdict %s, reasons %v", rep.Verdict, rep.Reasons)
+	}
+	var h *HoldoutDetail
+	for _, c := range rep.Checks {
+		if c.Holdout != nil {
+			h = c.Holdout
+		}
+	}
+	if h == nil || h.Kind != model.KindEncoder || h.Baseline == nil || h.Candidate.Reconstruct <= 0 || len(h.Examples) == 0 {
+		t.Fatalf("encoder holdout detail: %+v", h)
+	}
+	rep = gate(t, store, "listener-encoder:wide", "listener-encoder:prod", "listener-encoder.yaml")
+	if status(rep)[CheckBudget] != StatusFail {
+		t.Errorf("wide encoder: budget %s", status(rep)[CheckBudget])
+	}
+}
+
+// TestFirstRelease: with no baseline the candidate is held to the
+// policy's absolute thresholds.
+func TestFirstRelease(t *testing.T) {
+	store := demoScenario(t)
+	rep := gateAs(t, store, "promo-scorer:cand-better", "promo-scorer:first-release", "promo-scorer:prod", "promo-scorer.yaml")
+	if rep.Baseline != nil {
+		t.Fatalf("baseline %+v on a tag that does not exist", rep.Baseline)
+	}
+	var hc *CheckResult
+	for i := range rep.Checks {
+		if rep.Checks[i].Name == CheckHoldout {
+			hc = &rep.Checks[i]
+		}
+	}
+	n := 0
+	for _, f := range hc.Findings {
+		if f.Code == "holdout.first-release" {
+			n++
+			if f.Status != StatusPass {
+				t.Errorf("first-release finding %s: %s", f.Status, f.Message)
+			}
+		}
+	}
+	if n != 4 || hc.Holdout.Test != nil {
+		t.Errorf("first release: %d threshold findings (want 4: log loss, NE, AUC, ECE), test %+v", n, hc.Holdout.Test)
+	}
+	if rep.Verdict != VerdictPass {
+		t.Errorf("first release of the better candidate: %s %v", rep.Verdict, rep.Reasons)
+	}
+}
+
+// TestHeadNetMatchesFullNet: the latency test's head-only net, fed the
+// encoder's code, gives exactly the full scorer's output.
+func TestHeadNetMatchesFullNet(t *testing.T) {
+	store := demoScenario(t)
+	ctx := context.Background()
+	for _, name := range []string{"cand-better", "cand-trainable-encoder"} {
+		l, err := artifact.Load(ctx, store, registry.Ref{Repository: "promo-scorer", Tag: name})
+		if err != nil {
+			t.Fatal(err)
+		}
+		m, err := score.Prepare(l)
+		if err != nil {
+			t.Fatal(err)
+		}
+		head, codeLayer, err := headNet(m)
+		if err != nil {
+			t.Fatal(err)
+		}
+		b := &model.Batch{Indptr: []int32{0, 3, 3, 5}, Indices: []int32{1, 7, 20, 3, 3}, Values: []float32{2, 1, 5, 1, 4}, Dense: map[string][]float32{}}
+		for _, d := range l.Spec.Inputs.Dense {
+			v := make([]float32, 3*d.Size)
+			for i := range v {
+				v[i] = float32(i%5) / 5
+			}
+			b.Dense[d.Name] = v
+		}
+		r := m.Net.NewRunner(1)
+		full, err := r.Run(b, m.Net.Output(), nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		code, err := r.Run(b, codeLayer, nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		hb := &model.Batch{Indptr: []int32{0, 0, 0, 0}, Dense: map[string][]float32{headCodeInput: code}}
+		for k, v := range b.Dense {
+			hb.Dense[k] = v
+		}
+		hr := head.NewRunner(1)
+		got, err := hr.Run(hb, head.Output(), nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for i := range full {
+			if math.Float32bits(full[i]) != math.Float32bits(got[i]) {
+				t.Errorf("%s row %d: head %v, full %v", name, i, got[i], full[i])
+			}
+		}
+		r.Close()
+		hr.Close()
+	}
+	_ = fmt.Sprint()
+}

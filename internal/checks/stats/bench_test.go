@@ -1,0 +1,92 @@
+package stats
+
+import (
+	"fmt"
+	"testing"
+)
+
+const benchRows = 1_000_000
+
+func benchScored() scoredRows { return makeScored(1, benchRows) }
+
+func reportRows(b *testing.B, rows int) {
+	b.ReportMetric(float64(rows)*float64(b.N)/b.Elapsed().Seconds(), "rows/s")
+}
+
+// BenchmarkBinaryAddBatch: log loss, calibration and AUC histogram over
+// 1M float32 rows in batches of 4,096.
+func BenchmarkBinaryAddBatch(b *testing.B) {
+	r := benchScored()
+	soft := make([]float32, benchRows)
+	for i := range soft {
+		soft[i] = 0.5 * r.y[i]
+	}
+	for _, c := range []struct {
+		name string
+		y    []float32
+	}{{"labels01", r.y}, {"soft", soft}} {
+		b.Run(c.name, func(b *testing.B) {
+			acc := NewBinary()
+			b.ReportAllocs()
+			for b.Loop() {
+				for s := 0; s < benchRows; s += 4096 {
+					e := min(s+4096, benchRows)
+					if err := acc.AddBatch(r.cand[s:e], c.y[s:e], r.w[s:e]); err != nil {
+						b.Fatal(err)
+					}
+				}
+			}
+			reportRows(b, benchRows)
+		})
+	}
+}
+
+// BenchmarkPairedAddBatch: the paired accumulator over 1M rows with R
+// bootstrap replicates (R draws per row).
+func BenchmarkPairedAddBatch(b *testing.B) {
+	r := benchScored()
+	d := r.diffs(0, benchRows)
+	for _, reps := range []int{0, 200, 1000} {
+		b.Run(fmt.Sprintf("R=%d", reps), func(b *testing.B) {
+			acc, _ := NewPaired(1, reps)
+			b.ReportAllocs()
+			for b.Loop() {
+				for s := 0; s < benchRows; s += 4096 {
+					e := min(s+4096, benchRows)
+					if err := acc.AddBatch(r.ids[s:e], d[s:e], r.w[s:e]); err != nil {
+						b.Fatal(err)
+					}
+				}
+			}
+			reportRows(b, benchRows)
+			if reps > 0 {
+				b.ReportMetric(b.Elapsed().Seconds()*1e9/(float64(b.N)*benchRows*float64(reps)), "ns/draw")
+			}
+		})
+	}
+}
+
+// BenchmarkRecon: 10,000 rows of 6,000 outputs with about 5 nonzero
+// targets each (a sparse activity row).
+func BenchmarkRecon(b *testing.B) {
+	const rows, width = 10_000, 6_000
+	rng := newTestRand(4)
+	q, tg := make([]float32, rows*width), make([]float32, rows*width)
+	for i := range q {
+		q[i] = float32(0.001 + 0.2*rng.Float64())
+	}
+	for i := range rows {
+		for range 5 {
+			tg[i*width+rng.Intn(width)] = 1
+		}
+	}
+	loss := make([]float64, rows)
+	acc, _ := NewRecon(0.5, nil)
+	b.ReportAllocs()
+	for b.Loop() {
+		if err := acc.AddBatch(q, tg, width, loss); err != nil {
+			b.Fatal(err)
+		}
+	}
+	reportRows(b, rows)
+}
