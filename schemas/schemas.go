@@ -18,7 +18,8 @@ var files embed.FS
 
 // Names of the embedded schemas.
 const (
-	Spec = "spec.schema.json"
+	Spec   = "spec.schema.json"
+	Report = "report.schema.json"
 )
 
 var (
