@@ -19,6 +19,7 @@ var files embed.FS
 // Names of the embedded schemas.
 const (
 	Spec   = "spec.schema.json"
+	Policy = "policy.schema.json"
 	Report = "report.schema.json"
 )
 
