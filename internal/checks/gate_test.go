@@ -2,6 +2,7 @@ package checks
 
 import (
 	"context"
+	"encoding/json"
 	"fmt"
 	"math"
 	"os"
@@ -15,6 +16,7 @@ import (
 	"modelgate/internal/policy"
 	"modelgate/internal/registry"
 	"modelgate/internal/score"
+	"modelgate/schemas"
 )
 
 var (
@@ -265,4 +267,24 @@ func TestHeadNetMatchesFullNet(t *testing.T) {
 		hr.Close()
 	}
 	_ = fmt.Sprint()
+}
+
+// TestReportsAreValidJSON: every demo report encodes as JSON and validates
+// against schemas/report.schema.json.
+func TestReportsAreValidJSON(t *testing.T) {
+	store := demoScenario(t)
+	for _, c := range []string{"cand-better", "cand-worse", "cand-shuffled-vocab", "cand-trainable-encoder", "cand-over-budget"} {
+		rep := gate(t, store, "promo-scorer:"+c, "promo-scorer:prod", "promo-scorer.yaml")
+		raw, err := json.Marshal(rep)
+		if err != nil {
+			t.Fatalf("%s: %v", c, err)
+		}
+		vs, err := schemas.Validate(schemas.Report, raw)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, v := range vs {
+			t.Errorf("%s: %s", c, v)
+		}
+	}
 }

@@ -385,7 +385,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		if err != nil {
 			return nil, err
 		}
-		ni := NonInferiority(t)
+		ni := finiteTest(NonInferiority(t))
 		det.Test = &ni
 		f := Finding{Status: StatusPass, Code: "holdout.noninferiority", Value: ptr(ni.Upper), Limit: ptr(cfg.Margin)}
 		if ni.Pass {
@@ -421,7 +421,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				margin = *cfg.PerSliceMargin
 			}
 			if t, err := a.paired.NonInferiority(margin, cfg.Confidence); err == nil {
-				ni := NonInferiority(t)
+				ni := finiteTest(NonInferiority(t))
 				sr.Test = &ni
 				if cfg.PerSliceMargin != nil && !ni.Pass {
 					st := StatusWarn
@@ -503,6 +503,26 @@ func metricsOf(a *sliceAcc, candidate bool) Metrics {
 	m.LogLoss, m.NormalizedEntropy, m.AUC = finite(b.LogLoss()), finite(b.NormalizedEntropy()), finite(auc)
 	m.ECE, m.MCE, m.PredictedObserved = finite(b.ECE()), finite(b.MCE()), finite(b.PredictedObserved())
 	return m
+}
+
+// finiteTest keeps a test JSON-encodable: when every difference is equal
+// the standard error is 0 and t is ±Inf, reported as ±MaxFloat64.
+func finiteTest(t NonInferiority) NonInferiority {
+	clampInf := func(v float64) float64 {
+		switch {
+		case math.IsInf(v, 1):
+			return math.MaxFloat64
+		case math.IsInf(v, -1):
+			return -math.MaxFloat64
+		case math.IsNaN(v):
+			return 0
+		}
+		return v
+	}
+	t.T, t.P, t.Upper = clampInf(t.T), clampInf(t.P), clampInf(t.Upper)
+	t.MeanDiff, t.StdErr = clampInf(t.MeanDiff), clampInf(t.StdErr)
+	t.BootstrapLower, t.BootstrapUpper = clampInf(t.BootstrapLower), clampInf(t.BootstrapUpper)
+	return t
 }
 
 // finite maps NaN and ±Inf (e.g. AUC of a slice with one class) to 0 so

@@ -56,7 +56,7 @@ var poissonCDF = [12]uint64{
 var poissonTop = func() (t [256]uint64) {
 	for b := range uint64(255) {
 		lo, hi := b<<24, (b+1)<<24
-		var k uint64
+		var k, inside uint64
 		c := uint64(1) << 32
 		for _, th := range poissonCDF {
 			switch {
@@ -64,7 +64,11 @@ var poissonTop = func() (t [256]uint64) {
 				k++
 			case th < hi:
 				c = th
+				inside++
 			}
+		}
+		if inside > 1 {
+			panic("stats: two Poisson thresholds share a table bucket")
 		}
 		t[b] = k | c<<8
 	}

@@ -569,3 +569,30 @@ func TestPoissonDraws(t *testing.T) {
 		t.Errorf("chi-square %v > %v: counts %v", chi2, crit, counts)
 	}
 }
+
+func TestReplicateSumsFollowTheDraws(t *testing.T) {
+	// The batch kernel (replicates outer, inlined draws) must add exactly
+	// the documented draw poissonDraw(rowKey(seed, id), r) per row: with
+	// unit weights and d = 1 both replicate sums are Σ_rows k.
+	for _, reps := range []int{1, 2, 7, 64} {
+		a := mustPaired(t, 77, reps)
+		ids := make([]int64, 2500) // more than one chunk
+		d := make([]float64, len(ids))
+		for i := range ids {
+			ids[i], d[i] = int64(i*7-300), 1
+		}
+		if err := a.AddBatch(ids, d, nil); err != nil {
+			t.Fatal(err)
+		}
+		for r := range reps {
+			var want uint64
+			for _, id := range ids {
+				want += poissonDraw(rowKey(mix64(77), id), r)
+			}
+			wk, wkd := a.ReplicateSums(r)
+			if wk != float64(want) || wkd != float64(want) {
+				t.Errorf("R=%d replicate %d: sums %v, %v, want %d", reps, r, wk, wkd, want)
+			}
+		}
+	}
+}
