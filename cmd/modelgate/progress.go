@@ -1,9 +1,13 @@
 package main
 
 import (
+	"os"
+
 	"github.com/schollz/progressbar/v3"
+	"golang.org/x/term"
 
 	"modelgate/internal/artifact"
+	"modelgate/internal/checks"
 )
 
 // progress returns an event sink that draws a byte progress bar per blob
@@ -44,6 +48,43 @@ func (g *globals) progress() func(artifact.Event) {
 				_ = bar.Finish()
 				bar = nil
 			}
+		}
+	}
+}
+
+// colorStdout reports whether stdout is a terminal that may get colour
+// (NO_COLOR unset).
+func (g *globals) colorStdout() bool {
+	if g.JSON || os.Getenv("NO_COLOR") != "" {
+		return false
+	}
+	f, ok := g.Stdout.(*os.File)
+	return ok && term.IsTerminal(int(f.Fd()))
+}
+
+// gateProgress draws the gate's phases on an interactive stderr.
+func (g *globals) gateProgress() func(checks.Event) {
+	if !g.interactive() {
+		return nil
+	}
+	var bar *progressbar.ProgressBar
+	phase := ""
+	return func(e checks.Event) {
+		if e.Phase != phase {
+			if bar != nil {
+				_ = bar.Finish()
+			}
+			phase = e.Phase
+			total := e.Total
+			if total <= 0 {
+				total = -1
+			}
+			bar = progressbar.NewOptions64(total, progressbar.OptionSetWriter(g.Stderr),
+				progressbar.OptionSetDescription("gate: "+e.Phase), progressbar.OptionShowCount(),
+				progressbar.OptionClearOnFinish(), progressbar.OptionThrottle(100_000_000))
+		}
+		if e.Done > 0 {
+			_ = bar.Set64(e.Done)
 		}
 	}
 }

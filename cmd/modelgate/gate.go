@@ -1,0 +1,142 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"fmt"
+	"os"
+
+	"github.com/spf13/cobra"
+
+	"modelgate/internal/checks"
+	"modelgate/internal/errkind"
+	"modelgate/internal/policy"
+	"modelgate/internal/registry"
+	"modelgate/internal/report"
+)
+
+type gateOptions struct {
+	To      string
+	Policy  string
+	Holdout string
+	HTML    string
+	NoPush  bool
+	Threads int
+}
+
+func (o *gateOptions) AddFlags(cmd *cobra.Command) {
+	f := cmd.Flags()
+	f.StringVar(&o.To, "to", "", "target tag NAME:TAG the candidate asks to go to (required)")
+	f.StringVar(&o.Policy, "policy", "", "policy file (YAML or JSON) with a rule for the target (required)")
+	f.StringVar(&o.Holdout, "holdout", "", "override the policy's holdout: NAME:TAG or NAME@DIGEST of a holdout artifact")
+	f.StringVar(&o.HTML, "html", "", "also write the HTML report to this file")
+	f.BoolVar(&o.NoPush, "no-push", false, "do not store the report in the store (it is stored by default, as a referrer of the candidate)")
+	f.IntVar(&o.Threads, "threads", 0, "runtime threads for the holdout pass (0: all cores)")
+}
+
+func newGateCmd(g *globals) *cobra.Command {
+	o := &gateOptions{}
+	cmd := &cobra.Command{
+		Use:   "gate CANDIDATE --to NAME:TAG --policy FILE",
+		Short: "Decide whether a candidate may replace what a tag points at now",
+		Long: `gate runs the policy's checks for the target tag — integrity, freeze,
+contract, holdout, budget — on the candidate against the tag's current
+target (the baseline; none on a first release), computing every number
+itself, and prints one line per check and a verdict. The report is stored
+in the store as a referrer of the candidate (unless --no-push) and bound to
+the candidate, baseline, holdout and policy digests and the tool version.
+
+Exit codes: 0 pass, 1 fail, 2 bad input.`,
+		Args: exactArgs(1, "CANDIDATE"),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			return runGate(cmd.Context(), g, o, args[0])
+		},
+	}
+	o.AddFlags(cmd)
+	return cmd
+}
+
+func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) error {
+	if o.To == "" || o.Policy == "" {
+		return usageErr("gate needs --to NAME:TAG and --policy FILE")
+	}
+	cand, err := parseRef(candStr)
+	if err != nil {
+		return err
+	}
+	target, err := registry.ParseRef(o.To, false)
+	if err != nil {
+		return err
+	}
+	if target.Tag == "" || target.HasDigest() {
+		return usageErr("--to %q: want NAME:TAG", o.To)
+	}
+	pol, err := policy.Load(o.Policy)
+	if err != nil {
+		return err
+	}
+	rule, err := pol.Rule(target.String())
+	if err != nil {
+		return err
+	}
+	store, err := g.openStore()
+	if err != nil {
+		return err
+	}
+	encTagDigest := ""
+	if et := rule.Freeze.EncoderTag; et != nil {
+		if d, err := store.Resolve(ctx, et.Repository, et.Tag); err == nil {
+			encTagDigest = d.Digest.String()
+		}
+	}
+	holdRef := rule.HoldoutRef
+	if o.Holdout != "" {
+		r, err := registry.ParseRef(o.Holdout, false)
+		if err != nil {
+			return err
+		}
+		holdRef = &r
+	}
+	cfg := checks.FromRule(rule, encTagDigest)
+	cfg.Holdout.Threads = o.Threads
+	gate := checks.Gate{Store: store, Candidate: cand, Target: target, Holdout: holdRef, Config: cfg,
+		Policy:   checks.Policy{Name: pol.Name, Source: o.Policy, Digest: pol.Digest()},
+		Progress: g.gateProgress()}
+	rep, err := checks.Run(ctx, gate)
+	if err != nil {
+		return err
+	}
+	var page bytes.Buffer
+	if err := report.HTML(&page, rep); err != nil {
+		return fmt.Errorf("rendering the HTML report: %w", err)
+	}
+	if o.HTML != "" {
+		if err := os.WriteFile(o.HTML, page.Bytes(), 0o644); err != nil {
+			return errkind.Wrap(errkind.BadInput, err)
+		}
+	}
+	reportDigest := ""
+	if !o.NoPush {
+		d, err := checks.PushReport(ctx, store, rep, page.Bytes())
+		if err != nil {
+			return fmt.Errorf("storing the report: %w", err)
+		}
+		reportDigest = d.Digest.String()
+	}
+	if g.JSON {
+		if err := g.printJSON(map[string]any{"report": rep, "reportDigest": reportDigest}); err != nil {
+			return err
+		}
+	} else {
+		if err := report.Terminal(g.Stdout, rep, report.TerminalOptions{Color: g.colorStdout(), ReportDigest: reportDigest, MaxFindings: 8}); err != nil {
+			return err
+		}
+		if o.HTML != "" {
+			fmt.Fprintf(g.Stdout, "html:   %s\n", o.HTML)
+		}
+	}
+	if rep.Verdict != checks.VerdictPass {
+		return errkind.New(errkind.GateFailed, "gate failed")
+	}
+	return nil
+}
