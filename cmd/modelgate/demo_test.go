@@ -1,10 +1,15 @@
 package main
 
 import (
+	"context"
 	"encoding/json"
+	"os"
 	"path/filepath"
 	"strings"
 	"testing"
+
+	"modelgate/internal/checks"
+	"modelgate/internal/registry"
 )
 
 // TestDemo runs the README's first command against a temporary store: the
@@ -39,4 +44,63 @@ func TestDemo(t *testing.T) {
 	if after := countBlobs(t, store); after != before {
 		t.Errorf("a second demo run wrote %d new blobs", after-before)
 	}
+}
+
+// TestGateCommand runs the gate from the CLI over the demo scenario: exit
+// codes, the stored report (a referrer of the candidate), the HTML page.
+func TestGateCommand(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "store")
+	mustMG(t, store, "demo", "--work", filepath.Join(t.TempDir(), "work"))
+	pol := filepath.Join("..", "..", "policies", "promo-scorer.yaml")
+	html := filepath.Join(t.TempDir(), "report.html")
+	r := mustMG(t, store, "gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", pol, "--html", html)
+	if !strings.Contains(r.stdout, "verdict: pass") {
+		t.Errorf("gate output:\n%s", r.stdout)
+	}
+	page, err := os.ReadFile(html)
+	if err != nil || !strings.Contains(string(page), "<svg") {
+		t.Errorf("HTML report missing or without plots (%v)", err)
+	}
+	// The report is stored as a referrer of the candidate.
+	st, err := registry.OpenLocal(store)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := context.Background()
+	cd, err := st.Resolve(ctx, "promo-scorer", "cand-better")
+	if err != nil {
+		t.Fatal(err)
+	}
+	refs, err := st.Referrers(ctx, "promo-scorer", cd.Digest, "application/vnd.modelgate.report.v1")
+	if err != nil || len(refs) != 1 {
+		t.Fatalf("referrers of the candidate: %v, %v", refs, err)
+	}
+	rep, err := checks.ReadReport(ctx, st, "promo-scorer", refs[0].Digest)
+	if err != nil || rep.Verdict != "pass" || rep.Candidate.Digest != cd.Digest.String() {
+		t.Errorf("stored report: %+v, %v", rep, err)
+	}
+
+	// A failing gate exits 1 and says why; --json gives the report.
+	r = mg(t, store, "gate", "--json", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--no-push")
+	if r.code != 1 {
+		t.Fatalf("worse candidate: exit %d\n%s", r.code, r.stderr)
+	}
+	var out struct {
+		Report checks.Report `json:"report"`
+	}
+	if err := json.Unmarshal([]byte(r.stdout), &out); err != nil || out.Report.Verdict != "fail" || len(out.Report.Reasons) == 0 {
+		t.Errorf("gate --json: %v %+v", err, out.Report.Reasons)
+	}
+	// Bad input exits 2.
+	for _, args := range [][]string{
+		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod"},
+		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:canary", "--policy", pol},
+		{"gate", "promo-scorer:nope", "--to", "promo-scorer:prod", "--policy", pol},
+		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", "missing.yaml"},
+	} {
+		if r := mg(t, store, args...); r.code != 2 {
+			t.Errorf("%v: exit %d, want 2: %s", args, r.code, r.stderr)
+		}
+	}
+	mustMG(t, store, "verify")
 }
