@@ -216,7 +216,7 @@ func (g *GCS) readSmall(ctx context.Context, key string, limit int64) ([]byte, *
 	defer r.Close()
 	b, err := io.ReadAll(io.LimitReader(r, limit+1))
 	if err != nil {
-		return nil, nil, gcsErr(err)
+		return nil, nil, gcsReadErr(err)
 	}
 	if int64(len(b)) > limit {
 		return nil, nil, errkind.New(errkind.Integrity, "object %s is larger than %d bytes", key, limit)
@@ -273,12 +273,18 @@ type gcsBody struct{ r *storage.Reader }
 func (b gcsBody) Read(p []byte) (int, error) {
 	n, err := b.r.Read(p)
 	if err != nil && err != io.EOF {
-		if strings.Contains(err.Error(), "checksum mismatch") {
-			return n, errkind.New(errkind.Integrity, "%w: %w", ErrDigestMismatch, err)
-		}
-		return n, gcsErr(err)
+		return n, gcsReadErr(err)
 	}
 	return n, err
+}
+
+// gcsReadErr classifies a read error: the library's CRC32C check failing
+// is damage (or corruption in transit), not a transient failure.
+func gcsReadErr(err error) error {
+	if s := err.Error(); strings.Contains(s, "bad CRC") || strings.Contains(s, "checksum mismatch") {
+		return errkind.New(errkind.Integrity, "%w: %w", ErrDigestMismatch, err)
+	}
+	return gcsErr(err)
 }
 
 func (b gcsBody) Close() error { return b.r.Close() }
@@ -429,9 +435,6 @@ func (g *GCS) Manifest(ctx context.Context, repo string, dgst v1.Hash) ([]byte, 
 	if err != nil {
 		if errors.Is(err, ErrNotFound) {
 			return nil, v1.Descriptor{}, notFound("manifest %s in repository %s", dgst, repo)
-		}
-		if errkind.Of(err) == errkind.Integrity {
-			return nil, v1.Descriptor{}, errkind.New(errkind.Integrity, "reading manifest %s: %w: %w", dgst, ErrDigestMismatch, err)
 		}
 		return nil, v1.Descriptor{}, fmt.Errorf("reading manifest %s: %w", dgst, err)
 	}

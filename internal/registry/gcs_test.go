@@ -7,9 +7,11 @@ import (
 	"net/http"
 	"sync/atomic"
 	"testing"
+	"time"
 
 	"cloud.google.com/go/storage"
 	"github.com/fsouza/fake-gcs-server/fakestorage"
+	gax "github.com/googleapis/gax-go/v2"
 	"google.golang.org/api/option"
 
 	"modelgate/internal/registry"
@@ -37,12 +39,19 @@ func gcsEmulator(t testing.TB, wrap func(http.RoundTripper) http.RoundTripper) (
 	}
 	t.Cleanup(srv.Stop)
 	srv.CreateBucketWithOpts(fakestorage.CreateBucketOpts{Name: testBucket})
+	return srv, gcsClientFor(t, srv.URL(), wrap)
+}
+
+// gcsClientFor returns a new storage client for the emulator at url (its
+// own connections, as another process would have).
+func gcsClientFor(t testing.TB, url string, wrap func(http.RoundTripper) http.RoundTripper) *storage.Client {
+	t.Helper()
 	var rt http.RoundTripper = http.DefaultTransport.(*http.Transport).Clone()
 	if wrap != nil {
 		rt = wrap(rt)
 	}
 	c, err := storage.NewClient(context.Background(),
-		option.WithEndpoint(srv.URL()+"/storage/v1/"),
+		option.WithEndpoint(url+"/storage/v1/"),
 		option.WithoutAuthentication(),
 		option.WithHTTPClient(&http.Client{Transport: rt}),
 	)
@@ -50,7 +59,9 @@ func gcsEmulator(t testing.TB, wrap func(http.RoundTripper) http.RoundTripper) (
 		t.Fatal(err)
 	}
 	t.Cleanup(func() { c.Close() })
-	return srv, c
+	// The library's own retries back off from 1s; tests need not wait.
+	c.SetRetry(storage.WithBackoff(gax.Backoff{Initial: time.Millisecond, Max: 10 * time.Millisecond}))
+	return c
 }
 
 var gcsPrefixSeq atomic.Int64

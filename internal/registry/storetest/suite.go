@@ -713,3 +713,62 @@ func testConcurrent(t *testing.T, s registry.Store) {
 		t.Error("shared blob differs after concurrent puts")
 	}
 }
+
+// RaceResult is the outcome of SwapRace.
+type RaceResult struct {
+	Base      v1.Descriptor   // what the tag pointed at before the race
+	Targets   []v1.Descriptor // racer i swapped the tag to Targets[i]
+	Winners   []int           // racers whose SwapTag returned nil
+	Conflicts []int           // racers whose SwapTag lost with ErrConflict
+	Final     v1.Descriptor   // what the tag points at after the race
+}
+
+// SwapRace makes len(clients) racers, each through its own client of the
+// same backing store (clients[i] may be one store value or separate
+// connections, as separate processes would have), swap repo:tag from the
+// same old target to a target of their own at the same moment. Errors
+// other than ErrConflict fail the test. The caller judges the result
+// against the guarantee its store claims.
+func SwapRace(t *testing.T, clients []registry.Store, repo, tag string) RaceResult {
+	t.Helper()
+	ctx := context.Background()
+	s0 := clients[0]
+	var res RaceResult
+	res.Base = Push(t, s0, repo, tag, NewArtifact(900, encoderType, nil, nil))
+	for i := range clients {
+		res.Targets = append(res.Targets, Push(t, s0, repo, "", NewArtifact(uint64(901+i), encoderType, nil, nil)))
+	}
+	errs := make([]error, len(clients))
+	start := make(chan struct{})
+	var wg sync.WaitGroup
+	for i, c := range clients {
+		sw, ok := c.(registry.TagSwapper)
+		if !ok {
+			t.Fatalf("%s does not implement TagSwapper", c)
+		}
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			<-start
+			errs[i] = sw.SwapTag(ctx, repo, tag, res.Base.Digest, res.Targets[i])
+		}()
+	}
+	close(start)
+	wg.Wait()
+	for i, err := range errs {
+		switch {
+		case err == nil:
+			res.Winners = append(res.Winners, i)
+		case errors.Is(err, registry.ErrConflict) && errkind.Of(err) == errkind.Conflict:
+			res.Conflicts = append(res.Conflicts, i)
+		default:
+			t.Errorf("racer %d: %v (want nil or ErrConflict of kind conflict)", i, err)
+		}
+	}
+	final, err := s0.Resolve(ctx, repo, tag)
+	if err != nil {
+		t.Fatalf("Resolve after the race: %v", err)
+	}
+	res.Final = final
+	return res
+}
