@@ -62,14 +62,7 @@ func (g *globals) openStore() (registry.Store, error) {
 	if err != nil {
 		return nil, err
 	}
-	switch {
-	case strings.HasPrefix(loc, "gs://"):
-		return nil, errkind.New(errkind.BadInput, "store %q: Google Cloud Storage stores are not supported yet", loc)
-	case strings.HasPrefix(loc, "oci://"), strings.HasPrefix(loc, "http://"), strings.HasPrefix(loc, "https://"):
-		return nil, errkind.New(errkind.BadInput, "store %q: remote OCI registry stores are not supported yet", loc)
-	}
-	loc = strings.TrimPrefix(loc, "file://")
-	return registry.OpenLocal(loc)
+	return openLocation(loc) // copy.go: local directory, registry or GCS
 }
 
 // interactive reports whether progress may be drawn on stderr.
@@ -124,6 +117,7 @@ Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
 		newLsCmd(g),
 		newShowCmd(g),
 		newDiffCmd(g),
+		newCopyCmd(g),
 		newVerifyCmd(g),
 		newScoreCmd(g),
 		newDemoCmd(g),
