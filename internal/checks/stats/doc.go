@@ -8,12 +8,18 @@
 // Every accumulator (Binary, Paired, Recon, Histogram) is mergeable: a
 // holdout split into shards, each shard fed to its own accumulator and the
 // accumulators merged, gives the same result as one accumulator fed every
-// row, up to float64 summation order. Sums are kept compensated (each sum
-// carries its rounding error), so a merged result and a single-pass result
-// agree to within a few units in the last place for sums of non-negative
-// terms, and to about 1e-15 × (Σ|x| / |Σx|) relative for signed sums. The
+// row, up to float64 summation order. Rows are summed in plain float64
+// within chunks of 1,024 and the chunk sums are added with compensation
+// (each total carries its rounding error), so merged and single-pass sums
+// agree to about 1e-13 relative for non-negative terms (1,024 ulp at
+// worst), and to that times Σ|x| / |Σx| for signed sums such as Σw·d; the
+// AUC histogram's bins are plain sums (exact for integer weights). The
 // Poisson-bootstrap draws of Paired depend only on (seed, row id,
-// replicate), never on shard boundaries or row order.
+// replicate), never on shard boundaries or row order. Accumulators travel
+// between machines through MarshalBinary and UnmarshalBinary.
+//
+// To use several cores on one machine, do the same: one accumulator per
+// goroutine over its share of the rows, then Merge.
 //
 // # Numbers
 //
@@ -21,7 +27,9 @@
 // function says so; all arithmetic is float64. Probabilities are clipped to
 // [Eps, 1−Eps] before a logarithm is taken (see Eps).
 //
-// The package has no model or runtime dependency. Result types mirror the
-// report types of package checks field for field, so the caller converts
-// them with a plain type conversion.
+// The package has no model or runtime dependency (only the standard
+// library, gonum and errkind). Bin and Test have the fields of
+// checks.CalibrationBin and checks.NonInferiority, so the caller converts
+// them with a plain type conversion; Histogram's Min, Max and Counts are
+// those of checks.Histogram.
 package stats

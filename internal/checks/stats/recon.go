@@ -148,7 +148,9 @@ func (r *Recon) AddRow(q, t []float32) (float64, error) {
 // AddBatch adds rows of width outputs each, stored one after another in q
 // and t (len(q) = len(t) = rows·width), and writes each row's combined loss
 // into loss[i] when loss is not nil (then len(loss) must be the number of
-// rows). The batch is added only when every row is valid (see AddRow).
+// rows). The batch is added only when every row is valid (see AddRow); the
+// error names the row. AddBatch keeps per-row results in a scratch slice it
+// reuses, so it allocates only for a batch with more rows than any before.
 func (r *Recon) AddBatch(q, t []float32, width int, loss []float64) error {
 	if width < 1 || len(q)%width != 0 {
 		return errkind.New(errkind.BadInput, "%d outputs do not make rows of width %d", len(q), width)
@@ -162,6 +164,9 @@ func (r *Recon) AddBatch(q, t []float32, width int, loss []float64) error {
 	}
 	// Check and compute row by row while the row is in cache; add only
 	// when every row is valid.
+	if cap(r.scratch) < rows {
+		r.scratch = make([]rowSums, 0, rows)
+	}
 	sums := r.scratch[:0]
 	for i := range rows {
 		qi, ti := q[i*width:(i+1)*width], t[i*width:(i+1)*width]
