@@ -60,7 +60,10 @@ type Blob struct {
 
 // NewBlob describes b with the given media type.
 func NewBlob(mt types.MediaType, b []byte, annotations map[string]string) Blob {
-	sum := sha256.Sum256(b)
+	return newBlobSum(mt, b, sha256.Sum256(b), annotations)
+}
+
+func newBlobSum(mt types.MediaType, b []byte, sum [32]byte, annotations map[string]string) Blob {
 	return Blob{
 		Desc: v1.Descriptor{MediaType: mt, Size: int64(len(b)),
 			Digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(sum[:])}, Annotations: annotations},
@@ -137,9 +140,11 @@ func ModelBlobs(d *modeldir.Dir) (Blob, []Blob, map[string]string, error) {
 		parts[t.File] = appendUnique(parts[t.File], t.Part)
 	}
 	var layers []Blob
-	for _, f := range d.TensorFiles {
+	for i := range d.TensorFiles {
+		f := &d.TensorFiles[i]
 		sort.Strings(parts[f.Name])
-		layers = append(layers, NewBlob(MediaTypeTensors, f.Bytes, map[string]string{
+		sum := f.Sha256()
+		layers = append(layers, newBlobSum(MediaTypeTensors, f.Bytes, sum, map[string]string{
 			AnnotationTitle: f.Name, AnnotationPart: strings.Join(parts[f.Name], ","),
 		}))
 	}

@@ -126,23 +126,44 @@ func ModelFiles(ctx context.Context, store registry.Store, a *Artifact) ([]model
 
 // Pull writes the model ref names into dir as a model directory (dir is
 // created; existing files of the same names are replaced) and validates it.
+// Each blob streams from the store (its digest verified as it is read)
+// into a temporary file that is synced and renamed into place, so memory
+// does not grow with the model and a failed pull leaves no partial file.
 func Pull(ctx context.Context, store registry.Store, ref registry.Ref, dir string, opts Options) (*Artifact, error) {
 	a, err := ReadArtifact(ctx, store, ref)
 	if err != nil {
 		return nil, err
 	}
-	files, err := ModelFiles(ctx, store, a)
-	if err != nil {
-		return nil, err
+	k := a.Kind()
+	if k != model.KindEncoder && k != model.KindScorer {
+		return nil, errkind.New(errkind.BadInput, "%s is a %q artifact, not a model", ref, a.Manifest.ArtifactType)
+	}
+	type item struct {
+		name string
+		desc v1.Descriptor
+	}
+	items := []item{{modeldir.SpecFile, a.Manifest.Config}}
+	seen := map[string]bool{modeldir.SpecFile: true}
+	for _, l := range a.Manifest.Layers {
+		name := l.Annotations[AnnotationTitle]
+		if !safeName.MatchString(name) || seen[name] {
+			return nil, errkind.New(errkind.Integrity, "layer %s of %s has an unsafe or repeated file name %q", l.Digest, a.Desc.Digest, name)
+		}
+		seen[name] = true
+		items = append(items, item{name, l})
 	}
 	if err := os.MkdirAll(dir, 0o755); err != nil {
 		return nil, errkind.Wrap(errkind.BadInput, err)
 	}
-	for _, f := range files {
-		opts.emit(Event{Phase: "download", Name: f.Name, Done: int64(len(f.Bytes)), Total: int64(len(f.Bytes))})
-		if err := writeFileAtomic(filepath.Join(dir, f.Name), f.Bytes); err != nil {
+	for _, it := range items {
+		if err := ctx.Err(); err != nil {
 			return nil, err
 		}
+		opts.emit(Event{Phase: "download", Name: it.name, Total: it.desc.Size})
+		if err := pullBlob(ctx, store, a.Repository, it.desc, filepath.Join(dir, it.name)); err != nil {
+			return nil, fmt.Errorf("pulling %s: %w", it.name, err)
+		}
+		opts.emit(Event{Phase: "download", Name: it.name, Done: it.desc.Size, Total: it.desc.Size})
 	}
 	if _, err := modeldir.Check(dir); err != nil {
 		return nil, fmt.Errorf("pulled model does not validate: %w", err)
@@ -150,24 +171,31 @@ func Pull(ctx context.Context, store registry.Store, ref registry.Ref, dir strin
 	return a, nil
 }
 
-func writeFileAtomic(path string, b []byte) error {
+func pullBlob(ctx context.Context, store registry.Store, repo string, d v1.Descriptor, path string) error {
+	rc, err := store.Blob(ctx, repo, d.Digest)
+	if err != nil {
+		return err
+	}
+	defer rc.Close()
 	tmp, err := os.CreateTemp(filepath.Dir(path), ".pull-*")
 	if err != nil {
 		return err
 	}
 	defer os.Remove(tmp.Name())
-	if _, err := tmp.Write(b); err != nil {
-		tmp.Close()
-		return err
+	n, err := io.Copy(tmp, io.LimitReader(rc, d.Size+1))
+	if err == nil && n != d.Size {
+		err = errkind.New(errkind.Integrity, "blob %s has %d bytes, its descriptor says %d", d.Digest, n, d.Size)
 	}
-	if err := tmp.Sync(); err != nil {
-		tmp.Close()
-		return err
+	if err == nil {
+		err = tmp.Sync()
 	}
-	if err := tmp.Close(); err != nil {
-		return err
+	if cerr := tmp.Close(); err == nil {
+		err = cerr
 	}
-	if err := os.Chmod(tmp.Name(), 0o644); err != nil {
+	if err == nil {
+		err = os.Chmod(tmp.Name(), 0o644)
+	}
+	if err != nil {
 		return err
 	}
 	return os.Rename(tmp.Name(), path)

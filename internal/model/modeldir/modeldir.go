@@ -18,6 +18,7 @@ package modeldir
 import (
 	"bufio"
 	"bytes"
+	"crypto/sha256"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -118,6 +119,35 @@ type Model struct {
 type File struct {
 	Name  string
 	Bytes []byte
+	// sum, when not nil, delivers the sha256 of Bytes computed in the
+	// background while the directory is checked (see Sha256).
+	sum chan [32]byte
+	// digest caches the result of Sha256.
+	digest *[32]byte
+}
+
+// Sha256 returns the sha256 of the file's bytes. Read and Check start
+// hashing tensor files in the background, overlapping it with their
+// checks; Sha256 waits for that result or computes it.
+func (f *File) Sha256() [32]byte {
+	if f.digest != nil {
+		return *f.digest
+	}
+	var d [32]byte
+	if f.sum != nil {
+		d = <-f.sum
+	} else {
+		d = sha256.Sum256(f.Bytes)
+	}
+	f.digest = &d
+	return d
+}
+
+// hashing returns f with its sha256 computed in the background.
+func hashing(name string, b []byte) File {
+	ch := make(chan [32]byte, 1)
+	go func() { ch <- sha256.Sum256(b) }()
+	return File{Name: name, Bytes: b, sum: ch}
 }
 
 // Dir is a validated model directory: the model and the exact bytes of its
@@ -332,7 +362,7 @@ func (d *Dir) readTensors(probs *Problems, decode bool) {
 			probs.add("%s: %v", name, err)
 			continue
 		}
-		d.TensorFiles = append(d.TensorFiles, File{Name: name, Bytes: b})
+		d.TensorFiles = append(d.TensorFiles, hashing(name, b))
 		tensors, problems := checkTensors(name, b, byFile[name], decode)
 		probs.List = append(probs.List, problems...)
 		for k, v := range tensors {
