@@ -173,10 +173,13 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		}
 		return fmt.Sprintf("nonzeros > %s", lower)
 	}
-	newAcc := func(name string) (*sliceAcc, error) {
+	// Slices get the paired t test without bootstrap replicates: the
+	// bootstrap (R draws per row) is the gate's costliest statistic, and it
+	// is reported, not deciding, so it runs once, over all rows.
+	newAcc := func(name string, replicas int) (*sliceAcc, error) {
 		a := &sliceAcc{name: name}
 		var err error
-		if a.paired, err = stats.NewPaired(cfg.Seed, cfg.Replicas); err != nil {
+		if a.paired, err = stats.NewPaired(cfg.Seed, replicas); err != nil {
 			return nil, err
 		}
 		if encoder {
@@ -197,7 +200,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		}
 		return a, nil
 	}
-	all, err := newAcc("all rows")
+	all, err := newAcc("all rows", cfg.Replicas)
 	if err != nil {
 		return nil, err
 	}
@@ -206,7 +209,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		if a, ok := slices[name]; ok {
 			return a, nil
 		}
-		a, err := newAcc(name)
+		a, err := newAcc(name, 0)
 		slices[name] = a
 		return a, err
 	}
@@ -222,6 +225,11 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		defer runB.Close()
 	}
 	det := &HoldoutDetail{Kind: kind}
+	var scr struct {
+		p, y, w []float32
+		ids     []int64
+		d       []float64
+	}
 	var (
 		fc, fb         data.Frame
 		pc, pb, qc, qb []float32
@@ -319,17 +327,18 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 					return nil, err
 				}
 			}
-			for i := 0; i < n; i++ {
-				acc, err := slice(sliceOf(nnz[i]))
-				if err != nil {
-					return nil, err
-				}
-				wi := []float32{w[i]}
-				if err := acc.cand.AddBatch(pc[i:i+1], y[i:i+1], wi); err != nil {
+			// Per slice, in one batch call each.
+			groups, err := groupRows(n, nnz, sliceOf, slice)
+			if err != nil {
+				return nil, err
+			}
+			for _, g := range groups {
+				gp, gy, gw := gather(pc, g.rows, &scr.p), gather(y, g.rows, &scr.y), gather(w, g.rows, &scr.w)
+				if err := g.acc.cand.AddBatch(gp, gy, gw); err != nil {
 					return nil, err
 				}
 				if base != nil {
-					if err := acc.base.AddBatch(pb[i:i+1], y[i:i+1], wi); err != nil {
+					if err := g.acc.base.AddBatch(gather(pb, g.rows, &scr.p), gy, gw); err != nil {
 						return nil, err
 					}
 				}
@@ -345,9 +354,19 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			if err := diffHist.AddBatch(d, w); err != nil {
 				return nil, err
 			}
-			for i := 0; i < n; i++ {
-				acc, _ := slice(sliceOf(nnz[i]))
-				if err := acc.paired.Add(fc.RowIDs[i], d[i], w[i]); err != nil {
+			groups, err := groupRows(n, nnz, sliceOf, slice)
+			if err != nil {
+				return nil, err
+			}
+			for _, g := range groups {
+				ids := scr.ids[:0]
+				ds := scr.d[:0]
+				for _, i := range g.rows {
+					ids = append(ids, fc.RowIDs[i])
+					ds = append(ds, d[i])
+				}
+				scr.ids, scr.d = ids, ds
+				if err := g.acc.paired.AddBatch(ids, ds, gather(w, g.rows, &scr.w)); err != nil {
 					return nil, err
 				}
 			}
@@ -438,6 +457,41 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		det.Slices = append(det.Slices, sr)
 	}
 	return det, nil
+}
+
+type rowGroup struct {
+	acc  *sliceAcc
+	rows []int
+}
+
+// groupRows groups a batch's rows by slice, in order of first appearance.
+func groupRows(n int, nnz []int, sliceOf func(int) string, slice func(string) (*sliceAcc, error)) ([]rowGroup, error) {
+	var groups []rowGroup
+	index := map[*sliceAcc]int{}
+	for i := 0; i < n; i++ {
+		acc, err := slice(sliceOf(nnz[i]))
+		if err != nil {
+			return nil, err
+		}
+		k, ok := index[acc]
+		if !ok {
+			k = len(groups)
+			index[acc] = k
+			groups = append(groups, rowGroup{acc: acc})
+		}
+		groups[k].rows = append(groups[k].rows, i)
+	}
+	return groups, nil
+}
+
+// gather copies src at rows into *buf (reused) and returns it.
+func gather(src []float32, rows []int, buf *[]float32) []float32 {
+	out := (*buf)[:0]
+	for _, i := range rows {
+		out = append(out, src[i])
+	}
+	*buf = out
+	return out
 }
 
 func lossOf(m Metrics, encoder bool) float64 {
