@@ -46,6 +46,9 @@ type Gate struct {
 	Progress func(Event)
 	// Now stamps the report (default time.Now).
 	Now func() time.Time
+	// Shards, when not empty, are the holdout shard results to merge
+	// instead of scoring the holdout here (see RunShard).
+	Shards []*ShardResult
 }
 
 // Run runs every check and returns the report. An error means the gate
@@ -167,6 +170,9 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 			return CheckResult{Name: CheckHoldout, Status: StatusFail, Summary: "no usable holdout",
 				Findings: []Finding{{Status: StatusFail, Code: "holdout.missing", Message: "the policy enables the holdout check but names no usable holdout"}}}
 		}
+		if len(g.Shards) > 0 {
+			return mergedHoldout(g.Shards, rep, hold, g.Config.Holdout)
+		}
 		return Holdout(ctx, cand, base, hold, g.Config.Holdout, func(done, total int64) { emit(Event{Phase: CheckHoldout, Done: done, Total: total}) })
 	})
 	var bf *Footprint
@@ -196,4 +202,76 @@ func conclude(rep *Report) *Report {
 		}
 	}
 	return rep
+}
+
+// mergedHoldout is the holdout check computed from shard results.
+func mergedHoldout(shards []*ShardResult, rep *Report, hold *artifact.Holdout, cfg HoldoutConfig) CheckResult {
+	res := CheckResult{Name: CheckHoldout}
+	base := ""
+	if rep.Baseline != nil {
+		base = rep.Baseline.Digest
+	}
+	st, err := mergeShards(shards, rep.Candidate.Digest, base, hold.Artifact.Desc.Digest.String(), rep.Policy.Digest, hold.Info.Rows)
+	if err == nil {
+		res.Holdout, err = finalize(st, cfg, &res)
+	}
+	if err != nil {
+		res.Findings = append(res.Findings, Finding{Status: StatusFail, Code: "holdout.error", Message: err.Error()})
+		res.Status, res.Summary = StatusFail, err.Error()
+		return res
+	}
+	res.Summary += fmt.Sprintf(" (merged from %d shards)", len(shards))
+	finish(&res)
+	return res
+}
+
+// RunShard scores shard i (0-based) of n of the holdout — a contiguous
+// range of rows — with the candidate and the baseline, and returns its
+// sums for a later merge (Gate.Shards). Only the holdout pass runs; the
+// merge step runs the other checks. The models and the holdout must load
+// cleanly (an integrity problem is an error here).
+func RunShard(ctx context.Context, g Gate, i, n int) (*ShardResult, error) {
+	if n < 1 || i < 0 || i >= n {
+		return nil, errkind.New(errkind.BadInput, "shard %d/%d: want 1 ≤ I ≤ N", i+1, n)
+	}
+	if g.Holdout == nil {
+		return nil, errkind.New(errkind.BadInput, "the policy names no holdout: nothing to shard")
+	}
+	start := time.Now()
+	candDesc, err := artifact.Resolve(ctx, g.Store, g.Candidate)
+	if err != nil {
+		return nil, fmt.Errorf("candidate %s: %w", g.Candidate, err)
+	}
+	r := &ShardResult{SchemaVersion: 1, Tool: Tool{Name: "modelgate", Version: version.Version}, Target: g.Target.String(),
+		Candidate: candDesc.Digest.String(), Policy: g.Policy.Digest, Shard: i, Of: n}
+	cand, _, err := LoadAndPrepare(func() (*artifact.Loaded, error) {
+		return artifact.Load(ctx, g.Store, registry.Ref{Repository: g.Candidate.Repository, Digest: candDesc.Digest})
+	})
+	if err != nil {
+		return nil, err
+	}
+	var base *score.Model
+	if bd, err := g.Store.Resolve(ctx, g.Target.Repository, g.Target.Tag); err == nil {
+		r.Baseline = bd.Digest.String()
+		if base, _, err = LoadAndPrepare(func() (*artifact.Loaded, error) {
+			return artifact.Load(ctx, g.Store, registry.Ref{Repository: g.Target.Repository, Digest: bd.Digest})
+		}); err != nil {
+			return nil, fmt.Errorf("baseline: %w", err)
+		}
+	} else if !errors.Is(err, registry.ErrNotFound) {
+		return nil, err
+	}
+	hold, err := artifact.FetchHoldout(ctx, g.Store, *g.Holdout)
+	if err != nil {
+		return nil, err
+	}
+	defer hold.Close()
+	r.Holdout = hold.Artifact.Desc.Digest.String()
+	r.FirstRow, r.EndRow = ShardRange(i, n, hold.Info.Rows)
+	r.State, err = accumulate(ctx, cand, base, hold, g.Config.Holdout, r.FirstRow, r.EndRow, nil)
+	if err != nil {
+		return nil, err
+	}
+	r.Seconds = time.Since(start).Seconds()
+	return r, nil
 }

@@ -288,3 +288,112 @@ func TestReportsAreValidJSON(t *testing.T) {
 		}
 	}
 }
+
+// gateConfig builds a Gate for cand towards target under the example policy.
+func gateConfig(t *testing.T, store registry.Store, cand, target, policyFile string) Gate {
+	t.Helper()
+	pol, err := policy.Load(filepath.Join("..", "..", "policies", policyFile))
+	if err != nil {
+		t.Fatal(err)
+	}
+	rule, err := pol.Rule(target)
+	if err != nil {
+		t.Fatal(err)
+	}
+	c, _ := registry.ParseRef(cand, false)
+	tg, _ := registry.ParseRef(target, false)
+	cfg := FromRule(rule, "")
+	cfg.Budget.P50ms, cfg.Budget.P99ms = nil, nil
+	cfg.Freeze.EncoderTag = ""
+	return Gate{Store: store, Candidate: c, Target: tg, Holdout: rule.HoldoutRef, Config: cfg,
+		Policy: Policy{Name: pol.Name, Source: policyFile, Digest: pol.Digest()}}
+}
+
+func relClose(a, b, tol float64) bool {
+	return a == b || math.Abs(a-b) <= tol*math.Max(math.Abs(a), math.Abs(b))
+}
+
+// TestShardsMergeToOneRun: 1 shard and 4 shards (each serialised as it
+// would be stored) give the same verdict and the same numbers: sums to
+// float64 rounding, bootstrap replicate sums identical draw for draw.
+func TestShardsMergeToOneRun(t *testing.T) {
+	store := demoScenario(t)
+	ctx := context.Background()
+	for _, tc := range []struct{ cand, target, pol string }{
+		{"promo-scorer:cand-worse", "promo-scorer:prod", "promo-scorer.yaml"},
+		{"listener-encoder:v2", "listener-encoder:prod", "listener-encoder.yaml"},
+	} {
+		g := gateConfig(t, store, tc.cand, tc.target, tc.pol)
+		one, err := Run(ctx, g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		var shards []*ShardResult
+		for i := 0; i < 4; i++ {
+			r, err := RunShard(ctx, g, i, 4)
+			if err != nil {
+				t.Fatal(err)
+			}
+			raw, err := json.Marshal(r)
+			if err != nil {
+				t.Fatal(err)
+			}
+			var back ShardResult
+			if err := json.Unmarshal(raw, &back); err != nil {
+				t.Fatal(err)
+			}
+			shards = append(shards, &back)
+		}
+		g.Shards = shards
+		four, err := Run(ctx, g)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if one.Verdict != four.Verdict {
+			t.Errorf("%s: verdict %s vs %s", tc.cand, one.Verdict, four.Verdict)
+		}
+		h1, h4 := holdoutOf(one), holdoutOf(four)
+		if h1 == nil || h4 == nil {
+			t.Fatalf("%s: no holdout detail", tc.cand)
+		}
+		m1, m4 := h1.Candidate, h4.Candidate
+		for _, p := range [][3]any{
+			{"rows", float64(m1.Rows), float64(m4.Rows)}, {"weight", m1.WeightSum, m4.WeightSum},
+			{"log loss", m1.LogLoss, m4.LogLoss}, {"NE", m1.NormalizedEntropy, m4.NormalizedEntropy},
+			{"ECE", m1.ECE, m4.ECE}, {"pred/obs", m1.PredictedObserved, m4.PredictedObserved},
+			{"recon", m1.Reconstruct, m4.Reconstruct}, {"AUC", m1.AUC, m4.AUC},
+			{"mean diff", h1.Test.MeanDiff, h4.Test.MeanDiff}, {"std err", h1.Test.StdErr, h4.Test.StdErr},
+			{"upper", h1.Test.Upper, h4.Test.Upper},
+			{"bootstrap lower", h1.Test.BootstrapLower, h4.Test.BootstrapLower},
+			{"bootstrap upper", h1.Test.BootstrapUpper, h4.Test.BootstrapUpper},
+		} {
+			if !relClose(p[1].(float64), p[2].(float64), 1e-12) {
+				t.Errorf("%s: %s: one run %v, four shards %v", tc.cand, p[0], p[1], p[2])
+			}
+		}
+		if len(h1.Slices) != len(h4.Slices) {
+			t.Errorf("%s: %d slices vs %d", tc.cand, len(h1.Slices), len(h4.Slices))
+		}
+		// Shards for other inputs or an incomplete set are refused.
+		g.Shards = shards[:3]
+		if rep, _ := Run(ctx, g); holdoutStatus(rep) != StatusFail {
+			t.Errorf("%s: merging 3 of 4 shards did not fail", tc.cand)
+		}
+	}
+}
+
+func holdoutOf(r *Report) *HoldoutDetail {
+	for _, c := range r.Checks {
+		if c.Holdout != nil {
+			return c.Holdout
+		}
+	}
+	return nil
+}
+
+func holdoutStatus(r *Report) string {
+	if r == nil {
+		return ""
+	}
+	return status(r)[CheckHoldout]
+}

@@ -94,10 +94,21 @@ func Holdout(ctx context.Context, cand, base *score.Model, hold *artifact.Holdou
 }
 
 func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Holdout, cfg HoldoutConfig, progress func(done, total int64), res *CheckResult) (*HoldoutDetail, error) {
+	st, err := accumulate(ctx, cand, base, hold, cfg, 0, -1, progress)
+	if err != nil {
+		return nil, err
+	}
+	return finalize(st, cfg, res)
+}
+
+// accumulate scores rows [lo, hi) of the holdout (hi < 0: to the end)
+// with the candidate and the baseline and returns the mergeable sums.
+func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Holdout, cfg HoldoutConfig, lo, hi int64, progress func(done, total int64)) (*holdoutState, error) {
 	kind := cand.Loaded.Spec.Kind
 	if base != nil && base.Loaded.Spec.Kind != kind {
 		return nil, errkind.New(errkind.BadInput, "the baseline is a %s, the candidate a %s", base.Loaded.Spec.Kind, kind)
 	}
+	st := &holdoutState{Kind: kind, HasBaseline: base != nil, Slices: map[string]*sliceAcc{}, Seed: cfg.Seed, Replicas: cfg.Replicas}
 	if cfg.BatchSize <= 0 {
 		cfg.BatchSize = 4096
 	}
@@ -130,7 +141,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	for _, q := range cfg.NonzeroQuantiles {
 		v, ok := NonzeroQuantile(cand.Loaded.Stats, q)
 		if !ok {
-			res.Findings = append(res.Findings, Finding{Status: StatusWarn, Code: "holdout.stats",
+			st.Findings = append(st.Findings, Finding{Status: StatusWarn, Code: "holdout.stats",
 				Message: fmt.Sprintf("the candidate's stats.json has no nonzerosPerRow quantile %g: rows are not sliced by it", q)})
 			continue
 		}
@@ -149,7 +160,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		if v, ok := NonzeroQuantile(cand.Loaded.Stats, cfg.AnomalyQuantile); ok {
 			anomaly = v
 		} else {
-			res.Findings = append(res.Findings, Finding{Status: StatusWarn, Code: "holdout.stats",
+			st.Findings = append(st.Findings, Finding{Status: StatusWarn, Code: "holdout.stats",
 				Message: fmt.Sprintf("the candidate's stats.json has no nonzerosPerRow quantile %g: anomalous rows are not separated", cfg.AnomalyQuantile)})
 		}
 	}
@@ -204,19 +215,20 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	if err != nil {
 		return nil, err
 	}
-	slices := map[string]*sliceAcc{}
+	st.All = all
 	slice := func(name string) (*sliceAcc, error) {
-		if a, ok := slices[name]; ok {
+		if a, ok := st.Slices[name]; ok {
 			return a, nil
 		}
 		a, err := newAcc(name, 0)
-		slices[name] = a
+		st.Slices[name] = a
 		return a, err
 	}
 	diffHist, err := stats.NewHistogram(-0.5, 0.5, 50)
 	if err != nil {
 		return nil, err
 	}
+	st.Diff = diffHist
 	runC := cand.Net.NewRunner(cfg.Threads)
 	defer runC.Close()
 	var runB *model.Runner
@@ -224,7 +236,6 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		runB = base.Net.NewRunner(cfg.Threads)
 		defer runB.Close()
 	}
-	det := &HoldoutDetail{Kind: kind}
 	var scr struct {
 		p, y, w []float32
 		ids     []int64
@@ -236,16 +247,25 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		tc, tb         []float32
 		lc, lb, d      []float64
 		w              []float32
-		rows           int64
+		rows, pos      int64
 	)
 	for {
 		if err := ctx.Err(); err != nil {
 			return nil, err
 		}
-		n, err := rc.Read(&fc, cfg.BatchSize)
+		want := cfg.BatchSize
+		if pos < lo {
+			want = int(min(int64(want), lo-pos))
+		} else if hi >= 0 {
+			want = int(min(int64(want), hi-pos))
+		}
+		if want <= 0 {
+			break
+		}
+		n, err := rc.Read(&fc, want)
 		if errors.Is(err, io.EOF) {
 			if rb != nil {
-				if m, err := rb.Read(&fb, 1); !errors.Is(err, io.EOF) || m != 0 {
+				if m, err := rb.Read(&fb, 1); hi < 0 && (!errors.Is(err, io.EOF) || m != 0) {
 					return nil, errkind.New(errkind.Internal, "holdout readers disagree on the row count")
 				}
 			}
@@ -255,7 +275,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			return nil, err
 		}
 		if rb != nil {
-			m, err := rb.Read(&fb, cfg.BatchSize)
+			m, err := rb.Read(&fb, want)
 			if err != nil {
 				return nil, fmt.Errorf("baseline's reading of the holdout: %w", err)
 			}
@@ -263,6 +283,11 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				return nil, errkind.New(errkind.Internal, "holdout readers disagree: %d and %d rows", n, m)
 			}
 		}
+		if pos < lo {
+			pos += int64(n)
+			continue
+		}
+		pos += int64(n)
 		w = append(w[:0], fc.Weights[:n]...)
 		nnz := make([]int, n)
 		for i := 0; i < n; i++ {
@@ -305,8 +330,8 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 						lb[i] = b
 					}
 				}
-				if len(det.Examples) < 4 && nnz[i] >= 2 {
-					det.Examples = append(det.Examples, example(cand, base, &fc, &fb, i, qc[i*wc:(i+1)*wc], tc[i*wc:(i+1)*wc], qb, wb))
+				if len(st.Examples) < 4 && nnz[i] >= 2 {
+					st.Examples = append(st.Examples, example(cand, base, &fc, &fb, i, qc[i*wc:(i+1)*wc], tc[i*wc:(i+1)*wc], qb, wb))
 				}
 			}
 		} else {
@@ -376,11 +401,25 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			progress(rows, hold.Info.Rows)
 		}
 	}
+	st.Rows = rows
+	st.Anomaly, st.Lower = anomaly, lower
+	return st, nil
+}
+
+// finalize turns accumulated sums into the holdout check's numbers,
+// findings and verdict.
+func finalize(st *holdoutState, cfg HoldoutConfig, res *CheckResult) (*HoldoutDetail, error) {
+	res.Findings = append(res.Findings, st.Findings...)
+	encoder := st.Kind == model.KindEncoder
+	all := st.All
+	rows := st.Rows
+	det := &HoldoutDetail{Kind: st.Kind, Examples: st.Examples}
+	hasBase := st.HasBaseline
 	if rows == 0 {
 		return nil, errkind.New(errkind.BadInput, "the holdout has no rows")
 	}
 	det.Candidate = metricsOf(all, true)
-	if base != nil {
+	if hasBase {
 		m := metricsOf(all, false)
 		det.Baseline = &m
 	}
@@ -388,7 +427,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		for _, b := range all.cand.Calibration() {
 			det.CalibrationCandidate = append(det.CalibrationCandidate, CalibrationBin(b))
 		}
-		if base != nil {
+		if hasBase {
 			for _, b := range all.base.Calibration() {
 				det.CalibrationBaseline = append(det.CalibrationBaseline, CalibrationBin(b))
 			}
@@ -398,8 +437,8 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	if encoder {
 		lossName = "reconstruction loss"
 	}
-	if base != nil {
-		det.LossDiff = &Histogram{Min: diffHist.Min, Max: diffHist.Max, Counts: diffHist.Counts}
+	if hasBase {
+		det.LossDiff = &Histogram{Min: st.Diff.Min, Max: st.Diff.Max, Counts: st.Diff.Counts}
 		t, err := all.paired.NonInferiority(cfg.Margin, cfg.Confidence)
 		if err != nil {
 			return nil, err
@@ -423,6 +462,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		firstRelease(det.Candidate, encoder, cfg, res)
 	}
 	// Slices, sorted by name.
+	slices := st.Slices
 	names := make([]string, 0, len(slices))
 	for k := range slices {
 		names = append(names, k)
@@ -432,7 +472,7 @@ func holdoutRun(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		a := slices[name]
 		sr := SliceResult{Name: name, Candidate: metricsOf(a, true), Status: StatusPass}
 		sr.Rows = sr.Candidate.Rows
-		if base != nil {
+		if hasBase {
 			m := metricsOf(a, false)
 			sr.Baseline = &m
 			margin := cfg.Margin

@@ -17,6 +17,9 @@ import (
 const (
 	MediaTypeReport     types.MediaType = "application/vnd.modelgate.report.v1+json"
 	MediaTypeReportHTML types.MediaType = "text/html"
+	// MediaTypeReportEnvelope is the layer of a signed report: a DSSE
+	// envelope whose statement binds the report's JSON by digest.
+	MediaTypeReportEnvelope types.MediaType = "application/vnd.dsse.envelope.v1+json"
 )
 
 // Annotations of a gate report artifact.
@@ -27,12 +30,26 @@ const (
 	AnnotationBaseline   = "dev.modelgate.baseline.digest"
 	AnnotationHoldout    = "dev.modelgate.holdout.digest"
 	AnnotationPolicy     = "dev.modelgate.policy.digest"
+	// AnnotationSigner is the key id that signed a signed report.
+	AnnotationSigner = "dev.modelgate.signer.keyid"
 )
+
+// ReportSigner signs a gate report: given the report and its exact JSON
+// bytes (the artifact's config blob), it returns a DSSE envelope and the
+// id of the key that signed it.
+type ReportSigner func(ctx context.Context, rep *Report, reportJSON []byte) (envelope []byte, keyID string, err error)
 
 // PushReport stores a gate report as an artifact whose subject is the
 // candidate, so the OCI referrers of the candidate find it. html, when
 // not nil, is stored beside the JSON. It returns the report's descriptor.
 func PushReport(ctx context.Context, store registry.Store, rep *Report, html []byte) (v1.Descriptor, error) {
+	return PushSignedReport(ctx, store, rep, html, nil)
+}
+
+// PushSignedReport is PushReport with a signature: sign, when not nil, is
+// given the report's JSON and its envelope is stored as a further layer
+// (MediaTypeReportEnvelope), the signer's key id as an annotation.
+func PushSignedReport(ctx context.Context, store registry.Store, rep *Report, html []byte, sign ReportSigner) (v1.Descriptor, error) {
 	ref, err := registry.ParseRef(rep.Target, false)
 	if err != nil {
 		return v1.Descriptor{}, err
@@ -67,6 +84,14 @@ func PushReport(ctx context.Context, store registry.Store, rep *Report, html []b
 	}
 	if rep.Holdout != nil {
 		ann[AnnotationHoldout] = rep.Holdout.Digest
+	}
+	if sign != nil {
+		env, keyID, err := sign(ctx, rep, raw)
+		if err != nil {
+			return v1.Descriptor{}, fmt.Errorf("signing the report: %w", err)
+		}
+		layers = append(layers, artifact.NewBlob(MediaTypeReportEnvelope, env, map[string]string{artifact.AnnotationTitle: "report.dsse.json"}))
+		ann[AnnotationSigner] = keyID
 	}
 	res, err := artifact.PushArtifact(ctx, store, registry.Ref{Repository: ref.Repository}, artifact.ArtifactType("report"), config, layers, &subject, ann, artifact.Options{})
 	if err != nil {
