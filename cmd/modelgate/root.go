@@ -122,6 +122,7 @@ Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
 		newScoreCmd(g),
 		newDemoCmd(g),
 		newGateCmd(g),
+		newFreezeCmd(g),
 	)
 	root.SetFlagErrorFunc(func(c *cobra.Command, err error) error {
 		return errkind.Wrap(errkind.BadInput, err)
