@@ -16,7 +16,7 @@ import (
 	"modelgate/internal/model/safetensors"
 )
 
-// model is what freeze needs of a stored model: its decoded content and
+// stored is what freeze needs of a stored model: its decoded content and
 // the raw bytes of its files by name.
 type stored struct {
 	Spec    *model.Spec
