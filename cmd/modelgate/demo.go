@@ -1,17 +1,25 @@
 package main
 
 import (
+	"bytes"
 	"context"
+	"encoding/json"
 	"fmt"
+	"io"
 	"os"
 	"path/filepath"
+	"strings"
 	"text/tabwriter"
 	"time"
 
 	"github.com/spf13/cobra"
 
+	"modelgate/internal/checks"
 	"modelgate/internal/demo"
 	"modelgate/internal/errkind"
+	"modelgate/internal/policy"
+	"modelgate/internal/release"
+	"modelgate/policies"
 )
 
 type demoOptions struct {
@@ -36,7 +44,15 @@ a subscription scorer (logistic regression) on it, and pushes a baseline
 and a set of candidates into the store: a better one, a worse one, one
 whose vocabulary no longer matches its weight rows, one that leaves its
 encoder trainable with a regulariser attached, and one over budget. The
-production tags point at the baselines. Everything is invented data.`,
+baselines are released on the production tags with first release records.
+
+Then it plays the release story on promo-scorer:prod: keys for two
+approvers, a release manager and CI (in the work folder), a copy of
+policies/promo-scorer.yaml that trusts them; the better candidate gated
+(report signed by CI), approved by two keys and promoted; the bad
+candidates refused with their reasons; a rollback; and the verified log.
+On a store where the story already ran, it only shows the log.
+Everything is invented data.`,
 		Args: exactArgs(0, "(none)"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runDemo(cmd.Context(), g, o)
@@ -70,13 +86,21 @@ func runDemo(ctx context.Context, g *globals, o *demoOptions) error {
 	if err != nil {
 		return err
 	}
-	pub, err := demo.Publish(ctx, store, sc, say)
+	keys, err := demoKeys(filepath.Join(work, "keys"))
 	if err != nil {
+		return err
+	}
+	pub, err := demo.PublishWith(ctx, store, sc, say, demo.PublishOptions{ReleaseKey: keys["rita"]})
+	if err != nil {
+		return err
+	}
+	var story bytes.Buffer
+	if err := releaseStory(ctx, g, &story, work, sc, keys); err != nil {
 		return err
 	}
 	if g.JSON {
 		return g.printJSON(map[string]any{"store": store.String(), "work": work, "artifacts": pub, "scenario": sc,
-			"seconds": time.Since(start).Seconds()})
+			"story": story.String(), "seconds": time.Since(start).Seconds()})
 	}
 	w := g.Stdout
 	fmt.Fprintf(w, "Demo scenario: a fictional podcast network (%d shows, %d training listeners), built in %.1fs.\n",
@@ -92,12 +116,16 @@ func runDemo(ctx context.Context, g *globals, o *demoOptions) error {
 		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\n", p.Ref, p.Kind, shortDigest(p.Digest), p.Role, fails, p.Why)
 	}
 	tw.Flush()
+	fmt.Fprintln(w)
+	w.Write(story.Bytes())
+	fmt.Fprintf(w, "\nDemo done in %.1fs.\n", time.Since(start).Seconds())
 	fmt.Fprintln(w, "\nTry:")
 	fmt.Fprintln(w, "  modelgate ls")
 	fmt.Fprintln(w, "  modelgate show promo-scorer:cand-better")
 	fmt.Fprintln(w, "  modelgate diff promo-scorer:baseline promo-scorer:cand-shuffled-vocab")
 	fmt.Fprintln(w, "  modelgate score promo-scorer:prod --holdout promo-holdout:v1 --out predictions.csv")
 	fmt.Fprintln(w, "  modelgate verify")
+	fmt.Fprintln(w, "  modelgate log promo-scorer:prod --policy "+filepath.Join(work, "policies", "promo-scorer.yaml"))
 	return nil
 }
 
@@ -115,4 +143,210 @@ func clearWork(dir string) error {
 		return errkind.New(errkind.BadInput, "--work %s is not empty and is not a previous demo folder (no scenario.json): choose another", dir)
 	}
 	return os.RemoveAll(dir)
+}
+
+// demoPeople are the demo's key holders and what they do in the story.
+var demoPeople = []struct{ name, role string }{
+	{"ana", "approver"},
+	{"ben", "approver"},
+	{"rita", "release manager, approver"},
+	{"ci", "CI, signs gate reports"},
+}
+
+// demoKeys makes the demo's key pairs in dir.
+func demoKeys(dir string) (map[string]*release.Key, error) {
+	if err := os.MkdirAll(dir, 0o700); err != nil {
+		return nil, err
+	}
+	keys := map[string]*release.Key{}
+	for _, p := range demoPeople {
+		k, err := release.GenerateKey(p.name)
+		if err != nil {
+			return nil, err
+		}
+		if _, _, err := release.WriteKeyFiles(filepath.Join(dir, p.name), k); err != nil {
+			return nil, err
+		}
+		keys[p.name] = k
+	}
+	return keys, nil
+}
+
+// demoPolicy writes the embedded promo-scorer policy into work/policies
+// with the demo's keys: ana, ben and rita approve (two needed), ci signs
+// gate reports.
+func demoPolicy(work string, keys map[string]*release.Key) (string, error) {
+	raw, err := policies.FS.ReadFile("promo-scorer.yaml")
+	if err != nil {
+		return "", err
+	}
+	text := string(raw)
+	entry := func(name string) string {
+		return fmt.Sprintf("        - name: %s\n          keyFile: ../keys/%s.pub.pem\n          keyId: %s\n", name, name, keys[name].ID)
+	}
+	for _, r := range []struct{ old, new string }{
+		{"      required: 0\n      approvers: []\n", "      required: 2\n      approvers:\n" + entry("ana") + entry("ben") + entry("rita")},
+		{"      reportSigners: []\n", "      reportSigners:\n" + entry("ci")},
+	} {
+		if !strings.Contains(text, r.old) {
+			return "", fmt.Errorf("the embedded promo-scorer policy has no line %q to fill in", strings.TrimSpace(r.old))
+		}
+		text = strings.Replace(text, r.old, r.new, 1)
+	}
+	dir := filepath.Join(work, "policies")
+	if err := os.MkdirAll(dir, 0o755); err != nil {
+		return "", err
+	}
+	p := filepath.Join(dir, "promo-scorer.yaml")
+	if err := os.WriteFile(p, []byte(text), 0o644); err != nil {
+		return "", err
+	}
+	pol, err := policy.Load(p)
+	if err != nil {
+		return "", fmt.Errorf("the demo's policy copy: %w", err)
+	}
+	if r, err := pol.Rule("promo-scorer:prod"); err != nil || r.Approvals.Required != 2 || len(r.Approvals.ReportSigners) != 1 {
+		return "", fmt.Errorf("the demo's policy copy does not say what the demo needs (%v)", err)
+	}
+	return p, nil
+}
+
+// sub runs one modelgate command against g's store and returns its
+// stdout and error, as a user typing it would get.
+func sub(ctx context.Context, g *globals, args ...string) (string, error) {
+	loc, err := g.storeLocation()
+	if err != nil {
+		return "", err
+	}
+	var out bytes.Buffer
+	g2 := &globals{Stdout: &out, Stderr: io.Discard, Stdin: strings.NewReader("")}
+	root := newRoot(g2)
+	root.SetArgs(append([]string{"--store", loc, "--quiet"}, args...))
+	err = root.ExecuteContext(ctx)
+	return out.String(), err
+}
+
+// releaseStory plays the release story on promo-scorer:prod and writes it
+// to w as text.
+func releaseStory(ctx context.Context, g *globals, w io.Writer, work string, sc *demo.Scenario, keys map[string]*release.Key) error {
+	const target = "promo-scorer:prod"
+	keyFile := func(name string) string { return filepath.Join(work, "keys", name+".key.pem") }
+	polPath, err := demoPolicy(work, keys)
+	if err != nil {
+		return err
+	}
+	section := func(format string, args ...any) { fmt.Fprintf(w, "\n"+format+"\n", args...) }
+	indent := func(s string) {
+		for _, l := range strings.Split(strings.TrimRight(s, "\n"), "\n") {
+			fmt.Fprintln(w, "   "+l)
+		}
+	}
+	fmt.Fprintln(w, "The release story of "+target)
+	fmt.Fprintln(w, strings.Repeat("=", 21+len(target)))
+	var rep struct{ Entries []json.RawMessage }
+	if out, err := sub(ctx, g, "log", "--json", target); err == nil {
+		_ = json.Unmarshal([]byte(out), &rep)
+	}
+	if len(rep.Entries) > 1 {
+		fmt.Fprintln(w, "The story already ran on this store; its release log, verified:")
+		out, err := sub(ctx, g, "log", target)
+		indent(out)
+		return err
+	}
+	for _, p := range demoPeople {
+		fmt.Fprintf(w, "key  %-5s %s  %s\n", p.name, keys[p.name].ID, p.role)
+	}
+	fmt.Fprintf(w, "policy %s: 2 approvals from ana, ben, rita; gate reports signed by ci\n", polPath)
+
+	var baseline, better string
+	var bad []demo.ScenarioModel
+	for _, m := range sc.Models {
+		switch {
+		case m.Name == demo.ScorerBaseline:
+			baseline = m.Tag
+		case m.Kind == "scorer" && m.Role == "candidate" && m.Fails == "":
+			better = m.Tag
+		case m.Kind == "scorer" && m.Role == "candidate":
+			bad = append(bad, m)
+		}
+	}
+	section("1. The baseline is released: %s → %s, the first record of the tag's release log.", target, baseline)
+
+	section("2. CI gates the better candidate and signs the report.")
+	fmt.Fprintf(w, "   $ modelgate gate %s --to %s --policy %s --sign-key %s\n", better, target, polPath, keyFile("ci"))
+	var gate struct {
+		Report       checks.Report `json:"report"`
+		ReportDigest string        `json:"reportDigest"`
+	}
+	out, err := sub(ctx, g, "gate", "--json", better, "--to", target, "--policy", polPath, "--sign-key", keyFile("ci"))
+	if jerr := json.Unmarshal([]byte(out), &gate); jerr != nil || err != nil {
+		return fmt.Errorf("gating %s: %v %v", better, err, jerr)
+	}
+	for _, c := range gate.Report.Checks {
+		fmt.Fprintf(w, "   %-4s  %-9s  %s\n", c.Status, c.Name, c.Summary)
+	}
+	fmt.Fprintf(w, "   verdict: %s; report %s\n", gate.Report.Verdict, gate.ReportDigest)
+
+	section("3. Ana and Ben approve it, each with their own key.")
+	for _, who := range []string{"ana", "ben"} {
+		fmt.Fprintf(w, "   $ modelgate approve %s --to %s --policy … --key %s\n", better, target, keyFile(who))
+		out, err := sub(ctx, g, "approve", better, "--to", target, "--policy", polPath, "--key", keyFile(who), "--comment", "holdout and slices read; fine by me")
+		if err != nil {
+			return fmt.Errorf("approving as %s: %w", who, err)
+		}
+		indent(out)
+	}
+
+	section("4. Rita, the release manager, promotes it; the tag moves by compare-and-swap on the baseline.")
+	fmt.Fprintf(w, "   $ modelgate promote %s --to %s --policy … --key %s\n", better, target, keyFile("rita"))
+	out, err = sub(ctx, g, "promote", better, "--to", target, "--policy", polPath, "--key", keyFile("rita"), "--reason", "better log loss on the holdout")
+	if err != nil {
+		return fmt.Errorf("promoting %s: %w", better, err)
+	}
+	indent(out)
+
+	section("5. The bad candidates are refused by the gate, against what serves now.")
+	for _, m := range bad {
+		out, err := sub(ctx, g, "gate", "--json", m.Tag, "--to", target, "--policy", polPath, "--sign-key", keyFile("ci"))
+		var gr struct {
+			Report checks.Report `json:"report"`
+		}
+		if jerr := json.Unmarshal([]byte(out), &gr); jerr != nil {
+			return fmt.Errorf("gating %s: %v %v", m.Tag, err, jerr)
+		}
+		if gr.Report.Verdict == checks.VerdictPass {
+			return fmt.Errorf("the gate passed %s, which the demo built to fail its %s check", m.Tag, m.Fails)
+		}
+		fmt.Fprintf(w, "   %s (built to fail %s): gate %s, exit %d\n", m.Tag, m.Fails, gr.Report.Verdict, errkind.Of(err))
+		for _, r := range gr.Report.Reasons {
+			fmt.Fprintf(w, "      %s\n", r)
+		}
+	}
+	if len(bad) > 0 {
+		m := bad[0]
+		fmt.Fprintf(w, "   $ modelgate promote %s --to %s --policy … --key %s\n", m.Tag, target, keyFile("rita"))
+		_, err := sub(ctx, g, "promote", m.Tag, "--to", target, "--policy", polPath, "--key", keyFile("rita"))
+		if err == nil {
+			return fmt.Errorf("promote of %s succeeded", m.Tag)
+		}
+		fmt.Fprintf(w, "   refused, exit %d: %s\n", errkind.Of(err), strings.ReplaceAll(err.Error(), "\n", "\n   "))
+	}
+
+	section("6. On-call rolls back: no gate, constant work, a signed rollback record.")
+	reason := "canary: fewer subscriptions to the promoted show since the release"
+	fmt.Fprintf(w, "   $ modelgate rollback %s --reason %q --key %s\n", target, reason, keyFile("rita"))
+	out, err = sub(ctx, g, "rollback", target, "--reason", reason, "--key", keyFile("rita"))
+	if err != nil {
+		return fmt.Errorf("rolling back: %w", err)
+	}
+	indent(out)
+
+	section("7. The release log, every signature and link verified against the policy's keys.")
+	fmt.Fprintf(w, "   $ modelgate log %s --policy %s\n", target, polPath)
+	out, err = sub(ctx, g, "log", target, "--policy", polPath)
+	indent(out)
+	if err != nil {
+		return fmt.Errorf("the demo's release log does not verify: %w", err)
+	}
+	return nil
 }

@@ -12,6 +12,7 @@ import (
 	"modelgate/internal/errkind"
 	"modelgate/internal/policy"
 	"modelgate/internal/registry"
+	"modelgate/internal/release"
 	"modelgate/internal/report"
 )
 
@@ -22,6 +23,7 @@ type gateOptions struct {
 	HTML    string
 	NoPush  bool
 	Threads int
+	SignKey string
 }
 
 func (o *gateOptions) AddFlags(cmd *cobra.Command) {
@@ -32,6 +34,7 @@ func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 	f.StringVar(&o.HTML, "html", "", "also write the HTML report to this file")
 	f.BoolVar(&o.NoPush, "no-push", false, "do not store the report in the store (it is stored by default, as a referrer of the candidate)")
 	f.IntVar(&o.Threads, "threads", 0, "runtime threads for the holdout pass (0: all cores)")
+	f.StringVar(&o.SignKey, "sign-key", "", "sign the stored report with this private key (a CI key a policy lists under reportSigners)")
 }
 
 func newGateCmd(g *globals) *cobra.Command {
@@ -70,6 +73,17 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 	}
 	if target.Tag == "" || target.HasDigest() {
 		return usageErr("--to %q: want NAME:TAG", o.To)
+	}
+	var signer checks.ReportSigner
+	if o.SignKey != "" {
+		if o.NoPush {
+			return usageErr("--sign-key signs the stored report: it cannot go with --no-push")
+		}
+		k, err := release.LoadKey(o.SignKey)
+		if err != nil {
+			return err
+		}
+		signer = release.ReportSigner(k)
 	}
 	pol, err := policy.Load(o.Policy)
 	if err != nil {
@@ -117,7 +131,7 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 	}
 	reportDigest := ""
 	if !o.NoPush {
-		d, err := checks.PushReport(ctx, store, rep, page.Bytes())
+		d, err := checks.PushSignedReport(ctx, store, rep, page.Bytes(), signer)
 		if err != nil {
 			return fmt.Errorf("storing the report: %w", err)
 		}

@@ -122,6 +122,11 @@ Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
 		newScoreCmd(g),
 		newDemoCmd(g),
 		newGateCmd(g),
+		newKeygenCmd(g),
+		newApproveCmd(g),
+		newPromoteCmd(g),
+		newRollbackCmd(g),
+		newLogCmd(g),
 		newFreezeCmd(g),
 	)
 	root.SetFlagErrorFunc(func(c *cobra.Command, err error) error {

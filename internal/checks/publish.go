@@ -34,10 +34,10 @@ const (
 	AnnotationSigner = "dev.modelgate.signer.keyid"
 )
 
-// ReportSigner signs a gate report: given the report and its exact JSON
-// bytes (the artifact's config blob), it returns a DSSE envelope and the
-// id of the key that signed it.
-type ReportSigner func(ctx context.Context, rep *Report, reportJSON []byte) (envelope []byte, keyID string, err error)
+// ReportSigner signs a gate report: given the report's exact JSON bytes
+// (the artifact's config blob), it returns a DSSE envelope and the id of
+// the key that signed it.
+type ReportSigner func(ctx context.Context, reportJSON []byte) (envelope []byte, keyID string, err error)
 
 // PushReport stores a gate report as an artifact whose subject is the
 // candidate, so the OCI referrers of the candidate find it. html, when
@@ -86,7 +86,7 @@ func PushSignedReport(ctx context.Context, store registry.Store, rep *Report, ht
 		ann[AnnotationHoldout] = rep.Holdout.Digest
 	}
 	if sign != nil {
-		env, keyID, err := sign(ctx, rep, raw)
+		env, keyID, err := sign(ctx, raw)
 		if err != nil {
 			return v1.Descriptor{}, fmt.Errorf("signing the report: %w", err)
 		}

@@ -7,7 +7,9 @@ import (
 	"sort"
 
 	"modelgate/internal/artifact"
+	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
+	"modelgate/internal/release"
 )
 
 // Published is one artifact the demo pushed.
@@ -20,11 +22,25 @@ type Published struct {
 	Why    string `json:"why"`
 }
 
+// PublishOptions tune PublishWith.
+type PublishOptions struct {
+	// ReleaseKey signs the first release records; nil leaves them
+	// unsigned, by "modelgate demo".
+	ReleaseKey *release.Key
+}
+
 // Publish pushes a built scenario into store: encoders first, then the
-// scorers that reference them, then the holdouts, and finally points the
-// production tags at the baseline versions. It checks every pushed digest
-// against the one the scenario computed.
+// scorers that reference them, then the holdouts, and finally releases the
+// baseline versions on the production tags, each with a first release
+// record (release.Initial) that starts the tag's release log. A production
+// tag that already has a release log is left as it is. It checks every
+// pushed digest against the one the scenario computed.
 func Publish(ctx context.Context, store registry.Store, sc *Scenario, progress func(string)) ([]Published, error) {
+	return PublishWith(ctx, store, sc, progress, PublishOptions{})
+}
+
+// PublishWith is Publish with options.
+func PublishWith(ctx context.Context, store registry.Store, sc *Scenario, progress func(string), opts PublishOptions) ([]Published, error) {
 	say := func(format string, args ...any) {
 		if progress != nil {
 			progress(fmt.Sprintf(format, args...))
@@ -75,15 +91,22 @@ func Publish(ctx context.Context, store registry.Store, sc *Scenario, progress f
 		if err != nil {
 			return nil, err
 		}
-		_, desc, err := store.Manifest(ctx, ref.Repository, dg)
-		if err != nil {
-			return nil, err
+		rec, err := release.Initial(ctx, store, release.InitialRequest{Target: ref, To: dg, Key: opts.ReleaseKey,
+			User: "modelgate demo", Reason: "first release of the demo's " + name})
+		switch {
+		case errkind.Is(err, errkind.Conflict):
+			cur, rerr := store.Resolve(ctx, ref.Repository, ref.Tag)
+			if rerr != nil {
+				return nil, rerr
+			}
+			say("kept   %-34s %s (it already has a release log)", tag, cur.Digest)
+			out = append(out, Published{Ref: tag, Digest: cur.Digest.String(), Kind: "tag", Role: "production", Why: "release log kept as it was"})
+			continue
+		case err != nil:
+			return nil, fmt.Errorf("releasing %s on %s: %w", name, tag, err)
 		}
-		if err := store.Tag(ctx, ref.Repository, ref.Tag, desc); err != nil {
-			return nil, err
-		}
-		say("tagged %-34s %s (%s)", tag, d, name)
-		out = append(out, Published{Ref: tag, Digest: d, Kind: "tag", Role: "production", Why: "serves " + name})
+		say("released %-32s %s (%s; first release record %s)", tag, d, name, rec)
+		out = append(out, Published{Ref: tag, Digest: d, Kind: "tag", Role: "production", Why: "serves " + name + " (first release record)"})
 	}
 	return out, nil
 }

@@ -1,0 +1,134 @@
+package main
+
+import (
+	"context"
+	"fmt"
+
+	"github.com/spf13/cobra"
+
+	"modelgate/internal/artifact"
+	"modelgate/internal/policy"
+	"modelgate/internal/registry"
+	"modelgate/internal/release"
+)
+
+type approveOptions struct {
+	To      string
+	Policy  string
+	Key     string
+	Comment string
+}
+
+func (o *approveOptions) AddFlags(cmd *cobra.Command) {
+	f := cmd.Flags()
+	f.StringVar(&o.To, "to", "", "target tag NAME:TAG (required)")
+	f.StringVar(&o.Policy, "policy", "", "policy file with a rule for the target (required)")
+	f.StringVar(&o.Key, "key", "", "your private key file, from keygen (required)")
+	f.StringVar(&o.Comment, "comment", "", "free text stored in the approval")
+}
+
+func newApproveCmd(g *globals) *cobra.Command {
+	o := &approveOptions{}
+	cmd := &cobra.Command{
+		Use:   "approve CANDIDATE --to NAME:TAG --policy FILE --key FILE",
+		Short: "Sign an approval for a gated candidate to go to a tag",
+		Long: `approve signs, with your key, a statement that CANDIDATE may go to the target
+tag under the policy, naming the passing gate report you approve (the newest
+one bound to the tag's current target, the policy's holdout, the policy and
+this modelgate version). It refuses when there is no such report. The
+approval is a DSSE envelope around an in-toto statement, stored as an
+artifact whose subject is the candidate.
+
+Exit codes: 0 stored; 1 the gate failed; 2 bad input; 3 the gate report is
+for another baseline (the tag moved: gate again); 4 no gate report.`,
+		Args: exactArgs(1, "CANDIDATE"),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			return runApprove(cmd.Context(), g, o, args[0])
+		},
+	}
+	o.AddFlags(cmd)
+	return cmd
+}
+
+// releaseTarget parses a candidate and a target in the same repository and
+// resolves the candidate to its digest.
+func releaseTarget(ctx context.Context, store registry.Store, candStr, to string) (registry.Ref, registry.Ref, error) {
+	target, err := registry.ParseRef(to, false)
+	if err != nil {
+		return registry.Ref{}, registry.Ref{}, err
+	}
+	if target.Tag == "" || target.HasDigest() {
+		return registry.Ref{}, registry.Ref{}, usageErr("--to %q: want NAME:TAG", to)
+	}
+	cand, err := parseRef(candStr)
+	if err != nil {
+		return registry.Ref{}, registry.Ref{}, err
+	}
+	if cand.Repository != target.Repository {
+		return registry.Ref{}, registry.Ref{}, usageErr("the candidate %s is in repository %s, the target %s in %s: push it to %s first", cand, cand.Repository, target, target.Repository, target.Repository)
+	}
+	d, err := artifact.Resolve(ctx, store, cand)
+	if err != nil {
+		return registry.Ref{}, registry.Ref{}, fmt.Errorf("resolving the candidate %s: %w", cand, err)
+	}
+	cand.Digest = d.Digest
+	return cand, target, nil
+}
+
+func runApprove(ctx context.Context, g *globals, o *approveOptions, candStr string) error {
+	if o.To == "" || o.Policy == "" || o.Key == "" {
+		return usageErr("approve needs --to NAME:TAG, --policy FILE and --key FILE")
+	}
+	key, err := release.LoadKey(o.Key)
+	if err != nil {
+		return err
+	}
+	pol, err := policy.Load(o.Policy)
+	if err != nil {
+		return err
+	}
+	store, err := g.openStore()
+	if err != nil {
+		return err
+	}
+	cand, target, err := releaseTarget(ctx, store, candStr, o.To)
+	if err != nil {
+		return err
+	}
+	rule, err := pol.Rule(target.String())
+	if err != nil {
+		return err
+	}
+	trusted, err := release.TrustedKeys(rule.Approvals.Approvers)
+	if err != nil {
+		return err
+	}
+	listed := false
+	for _, k := range trusted {
+		if string(k.Public) == string(key.Public) {
+			listed = true
+		}
+	}
+	rep, err := release.ApproveCheck(ctx, store, cand.Digest, target, pol)
+	if err != nil {
+		return err
+	}
+	rd, err := registry.ParseDigest(rep.Digest)
+	if err != nil {
+		return err
+	}
+	desc, err := release.Approve(ctx, store, release.ApproveRequest{Candidate: cand.Digest, Target: target,
+		PolicyDigest: pol.Digest(), Report: rd, Key: key, Comment: o.Comment})
+	if err != nil {
+		return err
+	}
+	if !listed {
+		g.logf("warning: your key %s is not among the approvers %s lists for %s: this approval will not count unless the policy adds it", key, o.Policy, target)
+	}
+	if g.JSON {
+		return g.printJSON(map[string]any{"approval": desc.Digest.String(), "candidate": cand.Digest.String(), "target": target.String(),
+			"gateReport": rep.Digest, "approver": key.Name, "keyId": key.ID, "trusted": listed})
+	}
+	fmt.Fprintf(g.Stdout, "approved %s for %s by %s\napproval:    %s\ngate report: %s (%s)\n", shortDigest(cand.Digest.String()), target, key, desc.Digest, rep.Digest, rep.Created)
+	return nil
+}

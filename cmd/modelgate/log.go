@@ -1,0 +1,142 @@
+package main
+
+import (
+	"context"
+	"fmt"
+	"io"
+	"strings"
+
+	"github.com/spf13/cobra"
+
+	"modelgate/internal/errkind"
+	"modelgate/internal/policy"
+	"modelgate/internal/registry"
+	"modelgate/internal/release"
+)
+
+type logOptions struct {
+	Policy string
+}
+
+func (o *logOptions) AddFlags(cmd *cobra.Command) {
+	cmd.Flags().StringVar(&o.Policy, "policy", "", "also check that every record is signed by a key the policy lists for the tag (approvers or report signers)")
+}
+
+func newLogCmd(g *globals) *cobra.Command {
+	o := &logOptions{}
+	cmd := &cobra.Command{
+		Use:   "log NAME:TAG [--policy FILE]",
+		Short: "List and verify a tag's release log, newest first",
+		Long: `log lists the release records of a tag, newest first, and verifies while
+listing: every record's signature, every hash link to the previous record,
+that each record starts where the previous one left the tag, the released
+index, that rollbacks went only to versions released before, and that the
+tag points where the newest record says. Anything wrong is reported, never
+skipped.
+
+Exit codes: 0 verified; 2 bad input; 4 a record is unsigned or signed by a
+key the policy does not list (with --policy); 5 a broken chain, an edited
+or missing record, or a tag moved outside modelgate.`,
+		Args: exactArgs(1, "NAME:TAG"),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			return runLog(cmd.Context(), g, o, args[0])
+		},
+	}
+	o.AddFlags(cmd)
+	return cmd
+}
+
+func runLog(ctx context.Context, g *globals, o *logOptions, tagStr string) error {
+	target, err := registry.ParseRef(tagStr, false)
+	if err != nil {
+		return err
+	}
+	if target.Tag == "" || target.HasDigest() {
+		return usageErr("log takes NAME:TAG, got %q", tagStr)
+	}
+	var opts release.LogOptions
+	if o.Policy != "" {
+		pol, err := policy.Load(o.Policy)
+		if err != nil {
+			return err
+		}
+		rule, err := pol.Rule(target.String())
+		if err != nil {
+			return err
+		}
+		keys, err := release.TrustedKeys(append(append([]policy.Key(nil), rule.Approvals.Approvers...), rule.Approvals.ReportSigners...))
+		if err != nil {
+			return err
+		}
+		opts.Trusted = keys
+	}
+	store, err := g.openStore()
+	if err != nil {
+		return err
+	}
+	rep, err := release.Log(ctx, store, target, opts)
+	if err != nil {
+		return err
+	}
+	if g.JSON {
+		if err := g.printJSON(rep); err != nil {
+			return err
+		}
+	} else {
+		printLog(g.Stdout, rep)
+	}
+	switch rep.Worst() {
+	case errkind.Integrity:
+		return errkind.New(errkind.Integrity, "the release log of %s does not verify", target)
+	case errkind.Unauthorized:
+		return errkind.New(errkind.Unauthorized, "the release log of %s has records no trusted key vouches for", target)
+	}
+	return nil
+}
+
+func printLog(w io.Writer, rep *release.LogReport) {
+	fmt.Fprintf(w, "release log of %s: %d record(s), newest first; the tag points at %s\n", rep.Target, len(rep.Entries), orAbsent(rep.Current))
+	byWhere := map[string][]release.Finding{}
+	for _, f := range rep.Findings {
+		byWhere[f.Where] = append(byWhere[f.Where], f)
+	}
+	for i, e := range rep.Entries {
+		r := e.Record
+		sig := "unsigned"
+		if e.Verified {
+			sig = "signature ok"
+		}
+		fmt.Fprintf(w, "\n#%d  %s  %-8s  %s → %s\n", len(rep.Entries)-i, r.Time, r.Kind, shortDigest(orAbsent(r.From)), shortDigest(r.To))
+		fmt.Fprintf(w, "    by %s, %s; record %s\n", r.By, sig, shortDigest(e.Digest))
+		if r.Reason != "" {
+			fmt.Fprintf(w, "    reason: %s\n", r.Reason)
+		}
+		if r.Report != "" {
+			fmt.Fprintf(w, "    gate report %s, %d approval(s)\n", shortDigest(r.Report), len(r.Approvals))
+		}
+		for _, f := range byWhere[e.Digest] {
+			fmt.Fprintf(w, "    %s: %s\n", strings.ToUpper(f.Severity), f.Message)
+		}
+		delete(byWhere, e.Digest)
+	}
+	var rest []release.Finding
+	for _, f := range rep.Findings {
+		if _, ok := byWhere[f.Where]; ok {
+			rest = append(rest, f)
+		}
+	}
+	if len(rest) > 0 {
+		fmt.Fprintln(w)
+		for _, f := range rest {
+			fmt.Fprintf(w, "%s: %s: %s\n", strings.ToUpper(f.Severity), f.Where, f.Message)
+		}
+	}
+	switch rep.Worst() {
+	case errkind.Integrity:
+		fmt.Fprintln(w, "\nverdict: the release log does NOT verify")
+	case errkind.Unauthorized:
+		fmt.Fprintln(w, "\nverdict: chain intact, but not every record is vouched for by a trusted key")
+	default:
+		fmt.Fprintln(w, "\nverdict: every record, signature and link verified; the tag matches the newest record")
+	}
+}

@@ -1,0 +1,163 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"os"
+
+	"github.com/spf13/cobra"
+
+	"modelgate/internal/policy"
+	"modelgate/internal/release"
+)
+
+type promoteOptions struct {
+	To     string
+	Policy string
+	Key    string
+	Reason string
+}
+
+func (o *promoteOptions) AddFlags(cmd *cobra.Command) {
+	f := cmd.Flags()
+	f.StringVar(&o.To, "to", "", "target tag NAME:TAG (required)")
+	f.StringVar(&o.Policy, "policy", "", "policy file with a rule for the target (required)")
+	f.StringVar(&o.Key, "key", "", "private key that signs the release record (without it the record is unsigned and names $USER)")
+	f.StringVar(&o.Reason, "reason", "", "free text stored in the release record")
+}
+
+func newPromoteCmd(g *globals) *cobra.Command {
+	o := &promoteOptions{}
+	cmd := &cobra.Command{
+		Use:   "promote CANDIDATE --to NAME:TAG --policy FILE [--key FILE]",
+		Short: "Move a tag to a gated, approved candidate, writing a signed release record",
+		Long: `promote moves the target tag to CANDIDATE only if all of these hold, and
+otherwise says which failed:
+  - a passing gate report bound to this candidate, the tag's current target
+    as baseline, the policy's holdout as it resolves now, this policy file's
+    digest and this modelgate version (signed by a trusted key when the
+    policy lists reportSigners);
+  - as many valid, unexpired approvals from distinct keys the policy trusts
+    as it requires, for this candidate, tag and policy, each naming such a
+    passing report; with self-approval forbidden, an approval by the key
+    that signs this promotion (--key) does not count, and --key is needed.
+It then writes the release record, moves the tag by compare-and-swap on
+the baseline, and advances the release log head (tag release-TAG).
+Promoting the tag's current target changes nothing.
+
+Exit codes: 0 promoted (or already the target); 1 the gate failed; 2 bad
+input; 3 the tag moved since the gate ran, or a concurrent promote won;
+4 missing approvals or signatures; 5 the release log disagrees with the tag.`,
+		Args: exactArgs(1, "CANDIDATE"),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			return runPromote(cmd.Context(), g, o, args[0])
+		},
+	}
+	o.AddFlags(cmd)
+	return cmd
+}
+
+// currentUser names who acts when nothing is signed.
+func currentUser() string {
+	if u := os.Getenv("USER"); u != "" {
+		return u
+	}
+	return "unknown"
+}
+
+func loadOptionalKey(path string) (*release.Key, error) {
+	if path == "" {
+		return nil, nil
+	}
+	return release.LoadKey(path)
+}
+
+func runPromote(ctx context.Context, g *globals, o *promoteOptions, candStr string) error {
+	if o.To == "" || o.Policy == "" {
+		return usageErr("promote needs --to NAME:TAG and --policy FILE")
+	}
+	key, err := loadOptionalKey(o.Key)
+	if err != nil {
+		return err
+	}
+	pol, err := policy.Load(o.Policy)
+	if err != nil {
+		return err
+	}
+	store, err := g.openStore()
+	if err != nil {
+		return err
+	}
+	cand, target, err := releaseTarget(ctx, store, candStr, o.To)
+	if err != nil {
+		return err
+	}
+	res, err := release.Promote(ctx, store, release.PromoteRequest{Candidate: cand.Digest, Target: target, Policy: pol,
+		Key: key, User: currentUser(), Reason: o.Reason})
+	if g.JSON && res != nil {
+		out := map[string]any{"result": res}
+		if err != nil {
+			out["error"] = err.Error()
+		}
+		if perr := g.printJSON(out); perr != nil {
+			return perr
+		}
+		return err
+	}
+	if err != nil {
+		var ref *release.Refusal
+		if errors.As(err, &ref) {
+			printJudged(g.Stdout, ref.Reports, ref.Approvals)
+		}
+		return err
+	}
+	w := g.Stdout
+	if res.Completed != "" {
+		fmt.Fprintf(w, "completed an interrupted release first: record %s\n", res.Completed)
+	}
+	if res.NoOp {
+		fmt.Fprintf(w, "%s already points at %s: nothing to do\n", target, res.To)
+		return nil
+	}
+	fmt.Fprintf(w, "promoted %s: %s → %s\n", target, orAbsent(res.From), res.To)
+	fmt.Fprintf(w, "gate report: %s\n", res.Report)
+	if res.Required > 0 {
+		n := 0
+		for _, a := range res.Approvals {
+			if a.Counted {
+				n++
+				fmt.Fprintf(w, "approval:    %s by %s\n", a.Digest, a.Approver)
+			}
+		}
+		fmt.Fprintf(w, "approvals:   %d counted, %d required\n", n, res.Required)
+	}
+	fmt.Fprintf(w, "record:      %s\n", res.Record)
+	return nil
+}
+
+func orAbsent(d string) string {
+	if d == "" {
+		return "(absent)"
+	}
+	return d
+}
+
+// printJudged lists the gate reports and approvals a refusal judged.
+func printJudged(w io.Writer, reports []release.ReportCheck, approvals []release.ApprovalCheck) {
+	for _, r := range reports {
+		mark := "usable"
+		if !r.Usable {
+			mark = "not usable: " + r.Why
+		}
+		fmt.Fprintf(w, "gate report %s (%s, %s): %s\n", shortDigest(r.Digest), r.Created, r.Verdict, mark)
+	}
+	for _, a := range approvals {
+		mark := "counts"
+		if !a.Counted {
+			mark = "does not count: " + a.Why
+		}
+		fmt.Fprintf(w, "approval %s by %s: %s\n", shortDigest(a.Digest), a.Approver, mark)
+	}
+}

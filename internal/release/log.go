@@ -1,0 +1,309 @@
+package release
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"sort"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"modelgate/internal/errkind"
+	"modelgate/internal/registry"
+)
+
+// Severities of a log finding.
+const (
+	// SeverityDamage: the log or the tag is inconsistent (exit 5).
+	SeverityDamage = "damage"
+	// SeverityUntrusted: a record is unsigned or signed by a key the
+	// trusted set does not hold (exit 4).
+	SeverityUntrusted = "untrusted"
+	// SeverityNote: worth knowing, not wrong (an adopted tag, a repaired
+	// external move, records that never took effect).
+	SeverityNote = "note"
+)
+
+// Finding is one thing Log noticed, labelled by where.
+type Finding struct {
+	Severity string `json:"severity"`
+	// Where is a record digest or the tag.
+	Where   string `json:"where"`
+	Message string `json:"message"`
+}
+
+// LogEntry is one record of the log.
+type LogEntry struct {
+	Digest string `json:"digest"`
+	Record Record `json:"record"`
+	// Verified is true when the record is signed and its signature
+	// verifies with the key it names.
+	Verified bool `json:"verified"`
+}
+
+// LogReport is a tag's release log, newest record first, with what
+// verifying it found.
+type LogReport struct {
+	Target string `json:"target"`
+	// Current is what the tag points at now ("" when absent).
+	Current string `json:"current,omitempty"`
+	// Head is the newest record's digest ("" when there is no log).
+	Head     string     `json:"head,omitempty"`
+	Entries  []LogEntry `json:"entries"`
+	Findings []Finding  `json:"findings"`
+}
+
+// Worst returns the kind of the gravest finding: errkind.Integrity for
+// damage, errkind.Unauthorized for untrusted records, 0 otherwise.
+func (r *LogReport) Worst() errkind.Kind {
+	var k errkind.Kind
+	for _, f := range r.Findings {
+		switch f.Severity {
+		case SeverityDamage:
+			return errkind.Integrity
+		case SeverityUntrusted:
+			k = errkind.Unauthorized
+		}
+	}
+	return k
+}
+
+// LogOptions tune Log.
+type LogOptions struct {
+	// Trusted, when not nil, are the keys whose records are trusted;
+	// records signed otherwise, or unsigned, are reported as untrusted.
+	Trusted []PublicKey
+}
+
+func (r *LogReport) add(sev, where, format string, args ...any) {
+	r.Findings = append(r.Findings, Finding{Severity: sev, Where: where, Message: fmt.Sprintf(format, args...)})
+}
+
+// Log walks target's release log from its head to its first record,
+// verifying every record's signature, every link, each record's "from"
+// against the previous record's "to", the released index, that every
+// rollback went to a digest released before, and that the tag points
+// where the newest record says. Everything found is in the report's
+// Findings; the error is for failures to read at all.
+func Log(ctx context.Context, store registry.Store, target registry.Ref, opts LogOptions) (*LogReport, error) {
+	if err := checkTarget(target); err != nil {
+		return nil, err
+	}
+	s, err := readStateLenient(ctx, store, target)
+	if err != nil {
+		return nil, err
+	}
+	rep := &LogReport{Target: target.String(), Current: s.current(), Entries: []LogEntry{}, Findings: []Finding{}}
+	repo := target.Repository
+	tname := target.String()
+	if s.headDesc == nil {
+		if s.tagDesc == nil {
+			return nil, errkind.New(errkind.BadInput, "%s does not exist and has no release log", target)
+		}
+		rep.add(SeverityDamage, tname, "%s points at %s but has no release log: it was set outside modelgate (or its head pointer %s was deleted)", target, s.current(), s.headTag)
+		orphans(ctx, store, target, rep, nil)
+		return rep, nil
+	}
+	rep.Head = s.headDesc.Digest.String()
+
+	// Walk newest to oldest.
+	var chain []*loadedRecord
+	inChain := map[string]bool{}
+	next := s.headDesc.Digest
+	namedBy := "the head pointer " + s.headTag
+	for {
+		if inChain[next.String()] {
+			rep.add(SeverityDamage, next.String(), "the chain loops back to record %s", next)
+			break
+		}
+		lr, err := readRecord(ctx, store, repo, next, tname)
+		if err != nil {
+			rep.add(SeverityDamage, next.String(), "record named by %s is missing, edited or invalid: %v", namedBy, err)
+			break
+		}
+		chain = append(chain, lr)
+		inChain[next.String()] = true
+		rep.Entries = append(rep.Entries, LogEntry{Digest: next.String(), Record: lr.Record, Verified: lr.Signer != nil})
+		if lr.Record.Previous == "" {
+			break
+		}
+		d, err := registry.ParseDigest(lr.Record.Previous)
+		if err != nil {
+			rep.add(SeverityDamage, next.String(), "its previous-record link %q is malformed", lr.Record.Previous)
+			break
+		}
+		namedBy = "record " + shortHex(next.String())
+		next = d
+	}
+
+	// Trust.
+	if opts.Trusted != nil {
+		for _, lr := range chain {
+			switch {
+			case lr.Signer == nil:
+				rep.add(SeverityUntrusted, lr.Digest.String(), "unsigned (by %s): no trusted key vouches for it", lr.Record.By.Name)
+			case !trustedKey(opts.Trusted, *lr.Signer):
+				rep.add(SeverityUntrusted, lr.Digest.String(), "signed by %s, a key the policy does not list", lr.Record.By)
+			}
+		}
+	}
+
+	// Oldest to newest: continuity, released index, rollbacks, restores.
+	released := map[string]bool{}
+	var order []string
+	byDigest := map[string]*loadedRecord{}
+	for i := len(chain) - 1; i >= 0; i-- {
+		lr := chain[i]
+		r := &lr.Record
+		where := lr.Digest.String()
+		byDigest[where] = lr
+		if i == len(chain)-1 && r.Previous == "" {
+			if r.From != "" && r.From != r.To {
+				rep.add(SeverityNote, where, "the tag existed before its first record, pointing at %s (adopted)", r.From)
+				released[r.From] = true
+				order = append(order, r.From)
+			}
+		} else if i < len(chain)-1 {
+			prev := &chain[i+1].Record
+			switch {
+			case r.From == prev.To:
+			case r.External:
+				rep.add(SeverityNote, where, "the tag had been moved outside modelgate to %s after record %s; this %s repaired it", orNone(r.From), shortHex(chain[i+1].Digest.String()), r.Kind)
+			default:
+				rep.add(SeverityDamage, where, "gap: record %s left the tag at %s but this record moved it from %s: the tag was moved outside modelgate in between", shortHex(chain[i+1].Digest.String()), prev.To, orNone(r.From))
+			}
+		}
+		if r.Kind == KindRollback && !released[r.To] {
+			rep.add(SeverityDamage, where, "rollback to %s, which was never released on the tag before", r.To)
+		}
+		if r.Kind == KindInitial && i != len(chain)-1 {
+			rep.add(SeverityDamage, where, "an initial record in the middle of the log")
+		}
+		if !released[r.To] {
+			released[r.To] = true
+			order = append(order, r.To)
+		}
+		if r.Restore != nil && r.Restore.Record != "" {
+			rr, ok := byDigest[r.Restore.Record]
+			switch {
+			case !ok:
+				rep.add(SeverityDamage, where, "its undo names record %s, which is not earlier in the log", shortHex(r.Restore.Record))
+			case rr.Record.To != r.Restore.Target:
+				rep.add(SeverityDamage, where, "its undo restores %s, but record %s released %s", r.Restore.Target, shortHex(r.Restore.Record), rr.Record.To)
+			}
+		}
+		if r.Kind == KindPromote && r.Previous != "" && (r.Restore == nil || r.Restore.Record != r.Previous || r.Restore.Target != r.From) {
+			rep.add(SeverityDamage, where, "a promotion whose undo is not its previous record")
+		}
+		list, err := lr.releasedList(ctx, store, repo)
+		if err != nil {
+			rep.add(SeverityDamage, where, "%v", err)
+		} else if !sameList(list, order) {
+			rep.add(SeverityDamage, where, "its released index lists %d digest(s), the log up to it released %d", len(list), len(order))
+		}
+	}
+
+	// The tag against the head.
+	if len(chain) > 0 && chain[0].Digest == s.headDesc.Digest {
+		head := &chain[0].Record
+		if head.To != s.current() {
+			if p := findPendingFor(ctx, store, target, s, chain[0]); p != nil {
+				rep.add(SeverityDamage, tname, "interrupted: record %s (%s by %s) moved %s to %s but the head pointer was not advanced; the next promote or rollback completes it", p.Digest, p.Record.Kind, p.Record.By, target, s.current())
+			} else {
+				rep.add(SeverityDamage, tname, "%s points at %s, but its newest release record says %s: the tag was moved outside modelgate (`modelgate rollback %s` restores %s)", target, orNone(s.current()), head.To, target, head.To)
+			}
+		}
+	}
+	orphans(ctx, store, target, rep, inChain)
+	return rep, nil
+}
+
+// readStateLenient reads the head pointer and the tag without judging
+// the head record (Log reports problems instead of failing).
+func readStateLenient(ctx context.Context, store registry.Store, target registry.Ref) (*lenientState, error) {
+	ht, err := headTag(target.Tag)
+	if err != nil {
+		return nil, err
+	}
+	s := &lenientState{headTag: ht}
+	hd, err := store.Resolve(ctx, target.Repository, ht)
+	switch {
+	case errors.Is(err, registry.ErrNotFound):
+	case err != nil:
+		return nil, err
+	default:
+		s.headDesc = &hd
+	}
+	td, err := store.Resolve(ctx, target.Repository, target.Tag)
+	switch {
+	case errors.Is(err, registry.ErrNotFound):
+	case err != nil:
+		return nil, err
+	default:
+		s.tagDesc = &td
+	}
+	return s, nil
+}
+
+type lenientState struct {
+	headTag  string
+	headDesc *v1.Descriptor
+	tagDesc  *v1.Descriptor
+}
+
+func (s *lenientState) current() string {
+	if s.tagDesc == nil {
+		return ""
+	}
+	return s.tagDesc.Digest.String()
+}
+
+func findPendingFor(ctx context.Context, store registry.Store, target registry.Ref, s *lenientState, head *loadedRecord) *loadedRecord {
+	st := &state{target: target, headTag: s.headTag, tagDesc: s.tagDesc, head: head}
+	return findPending(ctx, store, st)
+}
+
+// orphans notes records of the tag that are not in the chain: promotes
+// that lost a race or stopped before moving the tag. It needs a store
+// that lists manifests; others are skipped.
+func orphans(ctx context.Context, store registry.Store, target registry.Ref, rep *LogReport, inChain map[string]bool) {
+	ml, ok := store.(registry.ManifestLister)
+	if !ok {
+		return
+	}
+	ds, err := ml.Manifests(ctx, target.Repository)
+	if err != nil {
+		return
+	}
+	var out []string
+	for _, d := range ds {
+		if d.ArtifactType == ArtifactTypeRelease && d.Annotations[AnnotationTarget] == target.String() && !inChain[d.Digest.String()] {
+			out = append(out, d.Digest.String())
+		}
+	}
+	sort.Strings(out)
+	for _, d := range out {
+		rep.add(SeverityNote, d, "a record of %s that never took effect (its promote or rollback lost a race or stopped before moving the tag)", target)
+	}
+}
+
+func trustedKey(keys []PublicKey, k PublicKey) bool {
+	for _, t := range keys {
+		if string(t.Public) == string(k.Public) {
+			return true
+		}
+	}
+	return false
+}
+
+func sameList(a, b []string) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if a[i] != b[i] {
+			return false
+		}
+	}
+	return true
+}

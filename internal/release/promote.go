@@ -1,0 +1,341 @@
+package release
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"sort"
+	"strings"
+	"time"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"modelgate/internal/errkind"
+	"modelgate/internal/policy"
+	"modelgate/internal/registry"
+)
+
+// Refusal is why promote, approve or rollback refused: every problem
+// found, one line each, with the reports and approvals it judged. It is
+// returned wrapped in its errkind (Kind).
+type Refusal struct {
+	Kind      errkind.Kind
+	Action    string
+	Problems  []string
+	Reports   []ReportCheck
+	Approvals []ApprovalCheck
+}
+
+func (r *Refusal) Error() string {
+	if len(r.Problems) == 1 {
+		return r.Action + " refused: " + r.Problems[0]
+	}
+	return fmt.Sprintf("%s refused (%d problems):\n  - %s", r.Action, len(r.Problems), strings.Join(r.Problems, "\n  - "))
+}
+
+// refuse returns r wrapped in its kind.
+func refuse(r *Refusal) error { return errkind.Wrap(r.Kind, r) }
+
+// PromoteRequest is what Promote needs.
+type PromoteRequest struct {
+	// Candidate is the candidate's manifest digest in Target's repository.
+	Candidate v1.Hash
+	// Target is the tag to move.
+	Target registry.Ref
+	// Policy is the parsed policy; Target must have a rule in it.
+	Policy *policy.Policy
+	// Key signs the release record; nil writes an unsigned record whose
+	// author is User.
+	Key *Key
+	// User names who promotes when Key is nil.
+	User string
+	// Reason is optional free text.
+	Reason string
+	// Now is the time of the promotion; zero means time.Now.
+	Now time.Time
+}
+
+// PromoteResult is what Promote did.
+type PromoteResult struct {
+	// NoOp is true when the candidate already was the tag's target.
+	NoOp   bool   `json:"noOp"`
+	Target string `json:"target"`
+	From   string `json:"from,omitempty"`
+	To     string `json:"to"`
+	// Record is the new release record's digest.
+	Record    string          `json:"record,omitempty"`
+	Report    string          `json:"gateReport,omitempty"`
+	Reports   []ReportCheck   `json:"reports,omitempty"`
+	Approvals []ApprovalCheck `json:"approvals,omitempty"`
+	Required  int             `json:"required"`
+	// Completed names a pending record (an interrupted release) that was
+	// completed first.
+	Completed string `json:"completed,omitempty"`
+}
+
+// Judge is the verdict on a candidate for a target under a policy, as
+// promote would reach it now, without moving anything.
+type Judge struct {
+	Reports   []ReportCheck
+	Report    *ReportCheck // the newest usable report, nil when none
+	Approvals []ApprovalCheck
+	Counted   int
+	Required  int
+	Problems  []string
+	Kind      errkind.Kind // 0 when there is no problem
+}
+
+// judge checks the gate reports and approvals of cand for the rule of
+// target against baseline ("" when the tag is absent).
+func judge(ctx context.Context, store registry.Store, cand string, target registry.Ref, pol *policy.Policy, baseline string, promoter string, now time.Time, withApprovals bool) (*Judge, error) {
+	rule, err := pol.Rule(target.String())
+	if err != nil {
+		return nil, err
+	}
+	approvers, err := TrustedKeys(rule.Approvals.Approvers)
+	if err != nil {
+		return nil, err
+	}
+	signers, err := TrustedKeys(rule.Approvals.ReportSigners)
+	if err != nil {
+		return nil, err
+	}
+	holdout := ""
+	if h := rule.HoldoutRef; h != nil {
+		if h.HasDigest() {
+			holdout = h.Digest.String()
+		} else {
+			d, err := store.Resolve(ctx, h.Repository, h.Tag)
+			if err != nil {
+				return nil, fmt.Errorf("resolving the policy's holdout %s: %w", h, err)
+			}
+			holdout = d.Digest.String()
+		}
+	}
+	repo := target.Repository
+	j := &Judge{Required: rule.Approvals.Required}
+	j.Reports, err = checkReports(ctx, store, repo, Binding{Candidate: cand, Target: target.String(), Baseline: baseline,
+		Holdout: holdout, Policy: pol.Digest(), Tool: toolVersion(), Signers: signers})
+	if err != nil {
+		return nil, err
+	}
+	usable := map[string]bool{}
+	var other, failed, damaged bool
+	for i := range j.Reports {
+		r := &j.Reports[i]
+		if r.Usable {
+			usable[r.Digest] = true
+			if j.Report == nil {
+				j.Report = r
+			}
+		}
+		other = other || r.otherBaseline
+		failed = failed || r.failed
+		damaged = damaged || r.integrity
+	}
+	fail := func(k errkind.Kind, format string, args ...any) {
+		j.Problems = append(j.Problems, fmt.Sprintf(format, args...))
+		if j.Kind == 0 || rank(k) > rank(j.Kind) {
+			j.Kind = k
+		}
+	}
+	if j.Report == nil {
+		switch {
+		case damaged:
+			fail(errkind.Integrity, "a gate report of this candidate is damaged in the store")
+		case other:
+			fail(errkind.Conflict, "the only gate reports bound to this candidate, policy and holdout were made against another baseline: %s now points at %s; gate again", target, orNone(baseline))
+		case failed:
+			fail(errkind.GateFailed, "the gate failed for this candidate against baseline %s", orNone(baseline))
+		case len(j.Reports) == 0:
+			fail(errkind.Unauthorized, "no gate report for this candidate: run `modelgate gate` first")
+		default:
+			fail(errkind.Unauthorized, "no passing gate report bound to this candidate, baseline %s, holdout %s, policy %s and modelgate %s", orNone(baseline), orNone(holdout), shortHex(pol.Digest()), toolVersion())
+		}
+	}
+	if !withApprovals || rule.Approvals.Required == 0 {
+		return j, nil
+	}
+	if promoter == "" && !rule.Approvals.AllowSelfApproval {
+		fail(errkind.Unauthorized, "the policy forbids self-approval, so promote must know who promotes: sign with --key")
+	}
+	j.Approvals, j.Counted, err = checkApprovals(ctx, store, repo, approvalContext{candidate: cand, target: target.String(),
+		policy: pol.Digest(), reports: usable, approvers: approvers, maxAge: rule.Approvals.MaxAge, now: now,
+		promoter: promoter, allowSelf: rule.Approvals.AllowSelfApproval})
+	if err != nil {
+		return nil, err
+	}
+	if j.Counted < rule.Approvals.Required {
+		fail(errkind.Unauthorized, "%d of the %d approvals the policy requires (from distinct trusted keys; %d stored approval(s) judged)", j.Counted, rule.Approvals.Required, len(j.Approvals))
+	}
+	return j, nil
+}
+
+// rank orders problem kinds: the most specific cause decides the exit code.
+func rank(k errkind.Kind) int {
+	switch k {
+	case errkind.Integrity:
+		return 4
+	case errkind.Conflict:
+		return 3
+	case errkind.GateFailed:
+		return 2
+	case errkind.Unauthorized:
+		return 1
+	}
+	return 0
+}
+
+// Promote moves req.Target to req.Candidate if everything the policy asks
+// holds (see the package doc for the order of writes), writing a release
+// record. A refusal is a *Refusal wrapped in its kind: Conflict when the
+// tag moved (the gate report was for another baseline, or a race was
+// lost), GateFailed when the gate failed, Unauthorized when a report
+// signature or approvals are missing, Integrity when the release log
+// disagrees with the tag.
+func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*PromoteResult, error) {
+	t := req.Target
+	if err := checkTarget(t); err != nil {
+		return nil, err
+	}
+	if req.Policy == nil {
+		return nil, errkind.New(errkind.BadInput, "promote needs a policy")
+	}
+	sw, err := swapper(store)
+	if err != nil {
+		return nil, err
+	}
+	repo := t.Repository
+	candDesc, err := subjectOf(ctx, store, repo, req.Candidate)
+	if err != nil {
+		return nil, fmt.Errorf("the candidate %s (it must be in repository %s): %w", req.Candidate, repo, err)
+	}
+	s, completed, err := settledState(ctx, store, sw, t, false)
+	if err != nil {
+		return nil, err
+	}
+	res := &PromoteResult{Target: t.String(), From: s.current(), To: req.Candidate.String(), Completed: completed}
+	if s.external {
+		return res, refuse(&Refusal{Kind: errkind.Integrity, Action: "promote", Problems: []string{fmt.Sprintf(
+			"%s points at %s but its newest release record says %s: the tag was moved outside modelgate. Inspect with `modelgate log %s`, then `modelgate rollback %s` restores the last released model", t, orNone(s.current()), s.head.Record.To, t, t)}})
+	}
+	if s.current() == req.Candidate.String() {
+		res.NoOp = true
+		return res, nil
+	}
+	now := nowUTC(req.Now)
+	promoter := ""
+	if req.Key != nil {
+		promoter = req.Key.ID
+	}
+	j, err := judge(ctx, store, req.Candidate.String(), t, req.Policy, s.current(), promoter, now, true)
+	if err != nil {
+		return nil, err
+	}
+	res.Reports, res.Approvals, res.Required = j.Reports, j.Approvals, j.Required
+	if len(j.Problems) > 0 {
+		return res, refuse(&Refusal{Kind: j.Kind, Action: "promote", Problems: j.Problems, Reports: j.Reports, Approvals: j.Approvals})
+	}
+	res.Report = j.Report.Digest
+	var approvals []string
+	for _, a := range j.Approvals {
+		if a.Counted {
+			approvals = append(approvals, a.Digest)
+		}
+	}
+	sort.Strings(approvals)
+	rec := &Record{Kind: KindPromote, Target: t.String(), From: s.current(), To: req.Candidate.String(), Report: j.Report.Digest,
+		Approvals: approvals, PolicyDigest: req.Policy.Digest(), Reason: req.Reason, By: whoUnsigned(req.User),
+		Time: now.Format(time.RFC3339)}
+	var released []string
+	if s.head != nil {
+		rec.Previous = s.head.Digest.String()
+		rec.Restore = &Restore{Target: s.current(), Record: s.head.Digest.String()}
+		if released, err = s.head.releasedList(ctx, store, repo); err != nil {
+			return nil, err
+		}
+	} else if s.current() != "" {
+		// The tag existed before its first record: adopt its target.
+		rec.Restore = &Restore{Target: s.current()}
+		released = []string{s.current()}
+	}
+	released = appendNew(released, rec.To)
+	recDesc, err := writeRecord(ctx, store, repo, rec, released, nil, req.Key)
+	if err != nil {
+		return nil, fmt.Errorf("writing the release record: %w", err)
+	}
+	res.Record = recDesc.Digest.String()
+	if err := commit(ctx, store, sw, s, recDesc, candDesc); err != nil {
+		return res, err
+	}
+	return res, nil
+}
+
+// commit moves the model tag (the commit point), then the head pointer.
+func commit(ctx context.Context, store registry.Store, sw registry.TagSwapper, s *state, recDesc, toDesc v1.Descriptor) error {
+	t := s.target
+	var old v1.Hash
+	was := "(absent)"
+	if s.tagDesc != nil {
+		old, was = s.tagDesc.Digest, s.tagDesc.Digest.String()
+	}
+	if err := sw.SwapTag(ctx, t.Repository, t.Tag, old, toDesc); err != nil {
+		if errors.Is(err, registry.ErrConflict) {
+			now := "(absent)"
+			if d, err := store.Resolve(ctx, t.Repository, t.Tag); err == nil {
+				now = d.Digest.String()
+			}
+			return refuse(&Refusal{Kind: errkind.Conflict, Action: "release", Problems: []string{fmt.Sprintf(
+				"%s moved from %s to %s while this ran (a concurrent promote or rollback won); nothing changed, the unused record %s is harmless", t, was, now, shortHex(recDesc.Digest.String()))}})
+		}
+		return fmt.Errorf("moving %s: %w", t, err)
+	}
+	if err := sw.SwapTag(ctx, t.Repository, s.headTag, s.headDigest(), recDesc); err != nil {
+		if errors.Is(err, registry.ErrConflict) {
+			if d, rerr := store.Resolve(ctx, t.Repository, s.headTag); rerr == nil && d.Digest == recDesc.Digest {
+				return nil // another process completed our record for us
+			}
+			return errkind.New(errkind.Integrity, "%s now points at %s, but the release log head %s was moved by someone else before it could name record %s: run `modelgate log %s`", t, toDesc.Digest, s.headTag, recDesc.Digest, t)
+		}
+		return fmt.Errorf("%s moved, but advancing the release log head failed (the next promote or rollback completes it): %w", t, err)
+	}
+	return nil
+}
+
+func appendNew(list []string, d string) []string {
+	for _, x := range list {
+		if x == d {
+			return list
+		}
+	}
+	return append(append([]string(nil), list...), d)
+}
+
+// ApproveCheck judges whether cand may be approved for target under pol
+// now: it needs a passing gate report bound to the tag's current target
+// (approvals are not counted). It returns the newest usable report.
+func ApproveCheck(ctx context.Context, store registry.Store, cand v1.Hash, target registry.Ref, pol *policy.Policy) (*ReportCheck, error) {
+	if err := checkTarget(target); err != nil {
+		return nil, err
+	}
+	baseline := ""
+	if d, err := store.Resolve(ctx, target.Repository, target.Tag); err == nil {
+		baseline = d.Digest.String()
+	} else if !errors.Is(err, registry.ErrNotFound) {
+		return nil, err
+	}
+	if _, err := subjectOf(ctx, store, target.Repository, cand); err != nil {
+		return nil, fmt.Errorf("the candidate %s (it must be in repository %s): %w", cand, target.Repository, err)
+	}
+	if baseline == cand.String() {
+		return nil, errkind.New(errkind.BadInput, "%s already points at %s: nothing to approve", target, cand)
+	}
+	j, err := judge(ctx, store, cand.String(), target, pol, baseline, "", time.Now(), false)
+	if err != nil {
+		return nil, err
+	}
+	if len(j.Problems) > 0 {
+		return nil, refuse(&Refusal{Kind: j.Kind, Action: "approve", Problems: j.Problems, Reports: j.Reports})
+	}
+	return j.Report, nil
+}
