@@ -80,10 +80,12 @@ func BenchmarkPushPull200MB(b *testing.B) {
 	}
 	size := st.Size()
 	ctx := context.Background()
+	runs := 0 // every sub-benchmark run writes to fresh names
 	b.Run("copy", func(b *testing.B) {
 		b.SetBytes(size)
 		for i := 0; i < b.N; i++ {
-			if err := copyFile(filepath.Join(dir, "encoder.safetensors"), filepath.Join(root, fmt.Sprintf("copy-%d", i))); err != nil {
+			runs++
+			if err := copyFile(filepath.Join(dir, "encoder.safetensors"), filepath.Join(root, fmt.Sprintf("copy-%d", runs))); err != nil {
 				b.Fatal(err)
 			}
 		}
@@ -91,7 +93,8 @@ func BenchmarkPushPull200MB(b *testing.B) {
 	b.Run("push", func(b *testing.B) {
 		b.SetBytes(size)
 		for i := 0; i < b.N; i++ {
-			store, err := registry.OpenLocal(filepath.Join(root, fmt.Sprintf("push-%d", i)))
+			runs++
+			store, err := registry.OpenLocal(filepath.Join(root, fmt.Sprintf("push-%d", runs)))
 			if err != nil {
 				b.Fatal(err)
 			}
@@ -112,7 +115,8 @@ func BenchmarkPushPull200MB(b *testing.B) {
 	b.Run("pull", func(b *testing.B) {
 		b.SetBytes(size)
 		for i := 0; i < b.N; i++ {
-			if _, err := Pull(ctx, store, ref, filepath.Join(root, fmt.Sprintf("pulled-%d", i)), Options{}); err != nil {
+			runs++
+			if _, err := Pull(ctx, store, ref, filepath.Join(root, fmt.Sprintf("pulled-%d", runs)), Options{}); err != nil {
 				b.Fatal(err)
 			}
 		}

@@ -9,27 +9,12 @@ import (
 	"modelgate/internal/registry"
 )
 
-// zeroWeights gives every tensor of a spec a zero slice of its size: the
-// runtime's compiler checks shapes and references without the real values
-// (which push has already checked for NaN/Inf without decoding them).
-func zeroWeights(s *model.Spec) model.Weights {
-	w := model.Weights{}
-	for _, t := range s.Tensors {
-		n := 1
-		for _, d := range t.Shape {
-			n *= d
-		}
-		w[t.Name] = make([]float32, n)
-	}
-	return w
-}
-
 // checkGraph compiles the model with the runtime so that a push refuses
 // layers whose shapes or references disagree with the tensors, or a scorer
 // whose sparse input differs from its encoder's.
 func checkGraph(ctx context.Context, store registry.Store, d *modeldir.Dir) error {
 	spec := d.Model.Spec
-	var enc *model.Encoder
+	var enc *model.Spec
 	if spec.Encoder != nil && !spec.Encoder.Embedded {
 		loc, err := FindEncoder(ctx, store, spec.Encoder)
 		if err != nil {
@@ -50,9 +35,9 @@ func checkGraph(ctx context.Context, store registry.Store, d *modeldir.Dir) erro
 		if es == nil || len(vs) > 0 {
 			return errkind.New(errkind.Integrity, "the encoder %s in the store has an invalid spec: %v", spec.Encoder.Digest, vs)
 		}
-		enc = &model.Encoder{Spec: es, Weights: zeroWeights(es)}
+		enc = es
 	}
-	if _, err := model.Compile(spec, zeroWeights(spec), enc); err != nil {
+	if err := model.CheckGraph(spec, enc); err != nil {
 		return errkind.New(errkind.BadInput, "model directory %s: %s: %w", d.Path, modeldir.SpecFile, err)
 	}
 	return nil

@@ -96,10 +96,11 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 	if ref.Tag == "" || ref.HasDigest() {
 		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
 	}
-	d, err := modeldir.Check(dir)
+	d, err := modeldir.CheckForPush(dir)
 	if err != nil {
 		return nil, err
 	}
+	defer d.Close()
 	spec := d.Model.Spec
 	if spec.Encoder != nil && !spec.Encoder.Embedded {
 		if _, err := FindEncoder(ctx, store, spec.Encoder); err != nil {

@@ -165,9 +165,11 @@ func Pull(ctx context.Context, store registry.Store, ref registry.Ref, dir strin
 		}
 		opts.emit(Event{Phase: "download", Name: it.name, Done: it.desc.Size, Total: it.desc.Size})
 	}
-	if _, err := modeldir.Check(dir); err != nil {
+	d, err := modeldir.Check(dir)
+	if err != nil {
 		return nil, fmt.Errorf("pulled model does not validate: %w", err)
 	}
+	d.Close()
 	return a, nil
 }
 

@@ -586,6 +586,7 @@ func (b *builder) write(m *modeldir.Model, name string) error {
 	if err != nil {
 		return err
 	}
+	defer dir.Close()
 	_, dg, err := artifact.ModelManifest(dir)
 	if err != nil {
 		return fmt.Errorf("computing the manifest of %s: %w", name, err)

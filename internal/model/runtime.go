@@ -110,7 +110,25 @@ type netLayer struct {
 // kind errkind.BadInput. Compile copies the weights it uses: later changes to
 // w or enc do not affect the Net.
 func Compile(spec *Spec, w Weights, enc *Encoder) (*Net, error) {
-	c := &compiler{tensors: map[string]tensorRef{}, names: map[string]source{}, slots: map[string]bool{}}
+	return compile(spec, w, enc, false)
+}
+
+// CheckGraph runs every check of Compile that depends only on the specs —
+// names, references, shapes declared in the spec, a scorer's encoder — and
+// none on tensor values, which it neither reads nor copies. A nil error
+// means Compile succeeds on any weights of the declared shapes with finite
+// values. encoder is the referenced encoder's spec (nil otherwise).
+func CheckGraph(spec *Spec, encoder *Spec) error {
+	var enc *Encoder
+	if encoder != nil {
+		enc = &Encoder{Spec: encoder}
+	}
+	_, err := compile(spec, nil, enc, true)
+	return err
+}
+
+func compile(spec *Spec, w Weights, enc *Encoder, shapesOnly bool) (*Net, error) {
+	c := &compiler{tensors: map[string]tensorRef{}, names: map[string]source{}, slots: map[string]bool{}, shapesOnly: shapesOnly}
 	net, err := c.compile(spec, w, enc)
 	if err != nil {
 		return nil, err
@@ -137,6 +155,9 @@ type compiler struct {
 	weightOf map[string]*netLayer
 	// tensorUse records which merged tensors each layer uses, for the embedded check.
 	tensorUse map[int][]string
+	// shapesOnly checks the graph against the tensors' declared shapes
+	// without looking at (or copying) any value (CheckGraph).
+	shapesOnly bool
 }
 
 func (c *compiler) errorf(format string, args ...any) {
@@ -473,7 +494,9 @@ func (c *compiler) addLayer(l Layer, prefix string, refuseEncoderRefs bool) {
 		}
 		nl.inW = c.net.rows
 		nl.width = wt.meta.Shape[1]
-		nl.w = slices.Clone(wt.values)
+		if !c.shapesOnly {
+			nl.w = slices.Clone(wt.values)
+		}
 		c.weightOf[l.Weight] = nl
 	case OpDense:
 		forbid("tiedTo", l.TiedTo)
@@ -501,7 +524,9 @@ func (c *compiler) addLayer(l Layer, prefix string, refuseEncoderRefs bool) {
 			break
 		}
 		nl.width = wt.meta.Shape[1]
-		nl.packed = kernel.PackB(s.width, nl.width, wt.values)
+		if !c.shapesOnly {
+			nl.packed = kernel.PackB(s.width, nl.width, wt.values)
+		}
 	case OpConcat:
 		forbid("input", l.Input)
 		forbid("weight", l.Weight)
@@ -551,7 +576,9 @@ func (c *compiler) addLayer(l Layer, prefix string, refuseEncoderRefs bool) {
 		}
 		nl.width = c.net.rows
 		nl.w = enc.w // shared, both immutable
-		nl.packed = kernel.PackBT(s.width, c.net.rows, enc.w)
+		if !c.shapesOnly {
+			nl.packed = kernel.PackBT(s.width, c.net.rows, enc.w)
+		}
 	default:
 		bad("unknown op %q", l.Op)
 	}
@@ -610,6 +637,9 @@ func (c *compiler) tensor(where, name string, dims int) (tensorRef, bool) {
 			return t, false
 		}
 		n *= d
+	}
+	if c.shapesOnly {
+		return t, true
 	}
 	if !t.found {
 		c.errorf("%s: tensor %q (shape %v) has no values", where, name, t.meta.Shape)

@@ -162,6 +162,8 @@ type Dir struct {
 	VocabularyFile File
 	StatsFile      *File
 	ProbesFile     *File
+	// mapped are memory-mapped file contents, released by Close.
+	mapped [][]byte
 }
 
 // Problems gathers every problem found in a model directory.
@@ -310,13 +312,36 @@ func readLimited(path string, limit int64) ([]byte, error) {
 // Read reads and validates the model directory at dir, decoding every
 // tensor into Model.Tensors. All problems found are returned together as
 // one error of kind BadInput.
-func Read(dir string) (*Dir, error) { return read(dir, true) }
+func Read(dir string) (*Dir, error) { return read(dir, readOptions{decode: true}) }
 
 // Check is Read without decoding tensors (Model.Tensors stays empty): the
-// same validation at a fraction of the memory, for push and pull.
-func Check(dir string) (*Dir, error) { return read(dir, false) }
+// same validation at a fraction of the memory. Large tensor files are
+// mapped into memory rather than read; call Close when done with the Dir's
+// bytes.
+func Check(dir string) (*Dir, error) { return read(dir, readOptions{mmap: true}) }
 
-func read(dir string, decode bool) (*Dir, error) {
+// CheckForPush is Check that also hashes the tensor files (File.Sha256)
+// in the background while they are checked.
+func CheckForPush(dir string) (*Dir, error) { return read(dir, readOptions{mmap: true, hash: true}) }
+
+type readOptions struct {
+	decode, mmap, hash bool
+}
+
+// Close releases memory-mapped files; the Dir's file bytes must not be
+// used afterwards. It is a no-op for a Dir from Read.
+func (d *Dir) Close() error {
+	var first error
+	for _, m := range d.mapped {
+		if err := unmap(m); err != nil && first == nil {
+			first = err
+		}
+	}
+	d.mapped = nil
+	return first
+}
+
+func read(dir string, opt readOptions) (*Dir, error) {
 	probs := &Problems{Dir: dir}
 	st, err := os.Stat(dir)
 	if err != nil {
@@ -340,30 +365,45 @@ func read(dir string, decode bool) (*Dir, error) {
 		return nil, probs.err()
 	}
 	d := &Dir{Path: dir, SpecBytes: specBytes, Model: &Model{Spec: spec, Tensors: map[string][]float32{}}}
-	d.readTensors(probs, decode)
+	d.readTensors(probs, opt)
 	d.readVocabulary(probs)
 	d.readStats(probs)
 	d.readProbes(probs)
 	if err := probs.err(); err != nil {
+		d.Close()
 		return nil, err
 	}
 	return d, nil
 }
 
-func (d *Dir) readTensors(probs *Problems, decode bool) {
+func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 	spec := d.Model.Spec
 	byFile := map[string][]model.Tensor{}
 	for _, t := range spec.Tensors {
 		byFile[t.File] = append(byFile[t.File], t)
 	}
 	for _, name := range TensorFileNames(spec) {
-		b, err := os.ReadFile(filepath.Join(d.Path, name))
+		var b []byte
+		var err error
+		if opt.mmap {
+			var mapped bool
+			b, mapped, err = mapFile(filepath.Join(d.Path, name))
+			if mapped {
+				d.mapped = append(d.mapped, b)
+			}
+		} else {
+			b, err = os.ReadFile(filepath.Join(d.Path, name))
+		}
 		if err != nil {
 			probs.add("%s: %v", name, err)
 			continue
 		}
-		d.TensorFiles = append(d.TensorFiles, hashing(name, b))
-		tensors, problems := checkTensors(name, b, byFile[name], decode)
+		if opt.hash {
+			d.TensorFiles = append(d.TensorFiles, hashing(name, b))
+		} else {
+			d.TensorFiles = append(d.TensorFiles, File{Name: name, Bytes: b})
+		}
+		tensors, problems := checkTensors(name, b, byFile[name], opt.decode)
 		probs.List = append(probs.List, problems...)
 		for k, v := range tensors {
 			d.Model.Tensors[k] = v
