@@ -7,6 +7,7 @@ import (
 	"strings"
 
 	"modelgate/internal/artifact"
+	"modelgate/internal/freeze"
 	"modelgate/internal/model"
 	"modelgate/internal/registry"
 )
@@ -42,6 +43,7 @@ func Freeze(ctx context.Context, store registry.Store, l *artifact.Loaded, cfg F
 	warn := func(code, where, format string, args ...any) {
 		res.Findings = append(res.Findings, Finding{Status: StatusWarn, Code: code, Where: where, Message: fmt.Sprintf(format, args...)})
 	}
+	verified := ""
 	enc := s.Encoder
 	if enc == nil {
 		fail("freeze.no-encoder", "spec.json /encoder", "the scorer names no encoder")
@@ -87,6 +89,20 @@ func Freeze(ctx context.Context, store registry.Store, l *artifact.Loaded, cfg F
 		}
 	} else {
 		compareEmbedded(ctx, store, l, fail)
+		// The frozen artifact's outputs must equal the unfrozen composition
+		// (encoder run separately, then the head): the freeze package's
+		// verification, the same one `modelgate freeze` stores.
+		v, err := freeze.Verify(ctx, store, l)
+		switch {
+		case err != nil:
+			fail("freeze.verify", "", "the frozen scorer could not be verified: %v", err)
+		case !v.Passed:
+			for _, p := range v.Problems {
+				fail("freeze.verify", v.Reference, "%s", p)
+			}
+		default:
+			verified = fmt.Sprintf("; outputs equal the unfrozen composition on %d outputs (max abs %.3g, %s)", v.Outputs, v.MaxAbs, v.Reference)
+		}
 	}
 	finish(&res)
 	n := 0
@@ -99,7 +115,7 @@ func Freeze(ctx context.Context, store registry.Store, l *artifact.Loaded, cfg F
 	case res.Status == StatusFail:
 		res.Summary = fmt.Sprintf("%d finding(s): %s", n, firstFail(res.Findings))
 	case enc.Embedded:
-		res.Summary = "encoder embedded as constants, byte-identical to " + enc.Digest
+		res.Summary = "encoder embedded as constants, byte-identical to " + enc.Digest + verified
 	default:
 		res.Summary = "encoder referenced by digest " + enc.Digest + "; no training state attached"
 	}

@@ -7,11 +7,13 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"strings"
 	"sync"
 	"testing"
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/demo"
+	"modelgate/internal/freeze"
 	"modelgate/internal/model"
 	"modelgate/internal/policy"
 	"modelgate/internal/registry"
@@ -396,4 +398,30 @@ func holdoutStatus(r *Report) string {
 		return ""
 	}
 	return status(r)[CheckHoldout]
+}
+
+// TestFrozenCandidatePasses: freezing the demo's trainable-encoder
+// candidate gives a scorer that passes the whole gate, the freeze check
+// included (with the freeze package's output verification).
+func TestFrozenCandidatePasses(t *testing.T) {
+	store := demoScenario(t)
+	ctx := context.Background()
+	out := registry.Ref{Repository: "promo-scorer", Tag: "cand-frozen"}
+	if _, err := freeze.Scorer(ctx, store, registry.Ref{Repository: "promo-scorer", Tag: "cand-trainable-encoder"}, freeze.Options{Out: out}); err != nil {
+		t.Fatal(err)
+	}
+	g := gateConfig(t, store, "promo-scorer:cand-frozen", "promo-scorer:prod", "promo-scorer.yaml")
+	g.Config.Freeze.RequireFrozen = true
+	rep, err := Run(ctx, g)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if rep.Verdict != VerdictPass {
+		t.Fatalf("frozen candidate: %s %v", rep.Verdict, rep.Reasons)
+	}
+	for _, c := range rep.Checks {
+		if c.Name == CheckFreeze && !strings.Contains(c.Summary, "unfrozen composition") {
+			t.Errorf("freeze summary does not report the output verification: %s", c.Summary)
+		}
+	}
 }

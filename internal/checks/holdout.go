@@ -9,6 +9,7 @@ import (
 	"sort"
 	"strconv"
 	"strings"
+	"time"
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/checks/stats"
@@ -262,6 +263,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		if want <= 0 {
 			break
 		}
+		tRead := time.Now()
 		n, err := rc.Read(&fc, want)
 		if errors.Is(err, io.EOF) {
 			if rb != nil {
@@ -283,11 +285,14 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				return nil, errkind.New(errkind.Internal, "holdout readers disagree: %d and %d rows", n, m)
 			}
 		}
+		st.Read += time.Since(tRead).Seconds()
 		if pos < lo {
 			pos += int64(n)
 			continue
 		}
 		pos += int64(n)
+		tStats := time.Now()
+		forward := 0.0
 		w = append(w[:0], fc.Weights[:n]...)
 		nnz := make([]int, n)
 		for i := 0; i < n; i++ {
@@ -298,6 +303,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		}
 		lc, lb, d = grow64(lc, n), grow64(lb, n), grow64(d, n)
 		if encoder {
+			tf := time.Now()
 			if qc, tc, err = reconstruct(runC, cand, &fc.Batch, qc, tc); err != nil {
 				return nil, fmt.Errorf("candidate: %w", err)
 			}
@@ -306,6 +312,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 					return nil, fmt.Errorf("baseline: %w", err)
 				}
 			}
+			forward += time.Since(tf).Seconds()
 			wc, wb := cand.Net.Width(cand.Net.Reconstruction()), 0
 			if base != nil {
 				wb = base.Net.Width(base.Net.Reconstruction())
@@ -335,6 +342,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				}
 			}
 		} else {
+			tf := time.Now()
 			if pc, err = runC.Run(&fc.Batch, cand.Net.Output(), pc); err != nil {
 				return nil, fmt.Errorf("candidate: %w", err)
 			}
@@ -343,6 +351,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 					return nil, fmt.Errorf("baseline: %w", err)
 				}
 			}
+			forward += time.Since(tf).Seconds()
 			y := fc.Labels[:n]
 			if err := all.cand.AddBatchLoss(pc[:n], y, w, lc); err != nil {
 				return nil, err
@@ -396,6 +405,8 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				}
 			}
 		}
+		st.Forward += forward
+		st.Stats += time.Since(tStats).Seconds() - forward
 		rows += int64(n)
 		if progress != nil {
 			progress(rows, hold.Info.Rows)
@@ -414,6 +425,7 @@ func finalize(st *holdoutState, cfg HoldoutConfig, res *CheckResult) (*HoldoutDe
 	all := st.All
 	rows := st.Rows
 	det := &HoldoutDetail{Kind: st.Kind, Examples: st.Examples}
+	res.Phases = map[string]float64{"read": st.Read, "forward": st.Forward, "statistics": st.Stats}
 	hasBase := st.HasBaseline
 	if rows == 0 {
 		return nil, errkind.New(errkind.BadInput, "the holdout has no rows")

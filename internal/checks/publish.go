@@ -119,3 +119,72 @@ func ReadReport(ctx context.Context, store registry.Store, repo string, d v1.Has
 	}
 	return &rep, nil
 }
+
+// MediaTypeShard is the config of a holdout shard result artifact.
+const MediaTypeShard types.MediaType = "application/vnd.modelgate.shard.v1+json"
+
+// AnnotationShard says which shard ("I/N", 1-based) an artifact holds.
+const AnnotationShard = "dev.modelgate.shard"
+
+// PushShard stores a shard result as an artifact whose subject is the
+// candidate (a report of type "gate-shard").
+func PushShard(ctx context.Context, store registry.Store, repo string, r *ShardResult) (v1.Descriptor, error) {
+	cd, err := registry.ParseDigest(r.Candidate)
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	_, subject, err := store.Manifest(ctx, repo, cd)
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	subject.Annotations, subject.ArtifactType = nil, ""
+	raw, err := json.Marshal(r)
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	ann := map[string]string{
+		AnnotationReportType: "gate-shard",
+		AnnotationTarget:     r.Target,
+		AnnotationShard:      fmt.Sprintf("%d/%d", r.Shard+1, r.Of),
+		AnnotationPolicy:     r.Policy,
+		AnnotationHoldout:    r.Holdout,
+		AnnotationBaseline:   r.Baseline,
+	}
+	res, err := artifact.PushArtifact(ctx, store, registry.Ref{Repository: repo}, artifact.ArtifactType("report"),
+		artifact.NewBlob(MediaTypeShard, raw, nil), nil, &subject, ann, artifact.Options{})
+	if err != nil {
+		return v1.Descriptor{}, err
+	}
+	return res.Manifest, nil
+}
+
+// FindShards returns the shard results stored for a candidate that were
+// made for this target, baseline, holdout and policy (by digest).
+func FindShards(ctx context.Context, store registry.Store, repo string, candidate v1.Hash, target, baseline, holdout, pol string) ([]*ShardResult, error) {
+	refs, err := store.Referrers(ctx, repo, candidate, artifact.ArtifactType("report"))
+	if err != nil {
+		return nil, err
+	}
+	var out []*ShardResult
+	for _, d := range refs {
+		a := d.Annotations
+		if a[AnnotationReportType] != "gate-shard" || a[AnnotationTarget] != target || a[AnnotationPolicy] != pol ||
+			a[AnnotationHoldout] != holdout || a[AnnotationBaseline] != baseline {
+			continue
+		}
+		art, err := artifact.ReadArtifact(ctx, store, registry.Ref{Repository: repo, Digest: d.Digest})
+		if err != nil {
+			return nil, err
+		}
+		raw, err := artifact.ReadBlob(ctx, store, repo, art.Manifest.Config, 256<<20)
+		if err != nil {
+			return nil, err
+		}
+		var r ShardResult
+		if err := json.Unmarshal(raw, &r); err != nil {
+			return nil, errkind.New(errkind.Integrity, "shard result %s: %v", d.Digest, err)
+		}
+		out = append(out, &r)
+	}
+	return out, nil
+}

@@ -68,9 +68,12 @@ type CheckResult struct {
 	Name   string `json:"name"`
 	Status string `json:"status"`
 	// Summary is one line with the deciding number and its threshold.
-	Summary  string    `json:"summary"`
-	Seconds  float64   `json:"seconds"`
-	Findings []Finding `json:"findings"`
+	Summary string  `json:"summary"`
+	Seconds float64 `json:"seconds"`
+	// Phases splits Seconds by phase (the holdout check: read, forward,
+	// statistics), when the check measures it.
+	Phases   map[string]float64 `json:"phases,omitempty"`
+	Findings []Finding          `json:"findings"`
 
 	Contract *ContractDetail `json:"contract,omitempty"`
 	Holdout  *HoldoutDetail  `json:"holdout,omitempty"`

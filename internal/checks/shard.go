@@ -31,6 +31,9 @@ type holdoutState struct {
 	// must agree across shards).
 	Anomaly float64
 	Lower   string
+	// Read, Forward and Stats are seconds spent reading the holdout,
+	// running the two models, and accumulating statistics.
+	Read, Forward, Stats float64
 }
 
 // merge adds o's rows into s.
@@ -58,6 +61,7 @@ func (s *holdoutState) merge(o *holdoutState) error {
 		}
 	}
 	s.Rows += o.Rows
+	s.Read, s.Forward, s.Stats = s.Read+o.Read, s.Forward+o.Forward, s.Stats+o.Stats
 	for _, e := range o.Examples {
 		if len(s.Examples) < 4 {
 			s.Examples = append(s.Examples, e)
