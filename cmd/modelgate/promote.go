@@ -2,9 +2,7 @@ package main
 
 import (
 	"context"
-	"errors"
 	"fmt"
-	"io"
 	"os"
 
 	"github.com/spf13/cobra"
@@ -107,10 +105,6 @@ func runPromote(ctx context.Context, g *globals, o *promoteOptions, candStr stri
 		return err
 	}
 	if err != nil {
-		var ref *release.Refusal
-		if errors.As(err, &ref) {
-			printJudged(g.Stdout, ref.Reports, ref.Approvals)
-		}
 		return err
 	}
 	w := g.Stdout
@@ -142,22 +136,4 @@ func orAbsent(d string) string {
 		return "(absent)"
 	}
 	return d
-}
-
-// printJudged lists the gate reports and approvals a refusal judged.
-func printJudged(w io.Writer, reports []release.ReportCheck, approvals []release.ApprovalCheck) {
-	for _, r := range reports {
-		mark := "usable"
-		if !r.Usable {
-			mark = "not usable: " + r.Why
-		}
-		fmt.Fprintf(w, "gate report %s (%s, %s): %s\n", shortDigest(r.Digest), r.Created, r.Verdict, mark)
-	}
-	for _, a := range approvals {
-		mark := "counts"
-		if !a.Counted {
-			mark = "does not count: " + a.Why
-		}
-		fmt.Fprintf(w, "approval %s by %s: %s\n", shortDigest(a.Digest), a.Approver, mark)
-	}
 }

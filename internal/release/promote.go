@@ -140,6 +140,9 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 		}
 	}
 	if j.Report == nil {
+		for _, r := range j.Reports {
+			j.Problems = append(j.Problems, fmt.Sprintf("gate report %s (%s): %s", shortHex(r.Digest), r.Created, r.Why))
+		}
 		switch {
 		case damaged:
 			fail(errkind.Integrity, "a gate report of this candidate is damaged in the store")
@@ -166,6 +169,11 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 		return nil, err
 	}
 	if j.Counted < rule.Approvals.Required {
+		for _, a := range j.Approvals {
+			if !a.Counted {
+				j.Problems = append(j.Problems, fmt.Sprintf("approval %s by %s does not count: %s", shortHex(a.Digest), a.Approver, a.Why))
+			}
+		}
 		fail(errkind.Unauthorized, "%d of the %d approvals the policy requires (from distinct trusted keys; %d stored approval(s) judged)", j.Counted, rule.Approvals.Required, len(j.Approvals))
 	}
 	return j, nil
