@@ -128,6 +128,7 @@ Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
 		newRollbackCmd(g),
 		newLogCmd(g),
 		newFreezeCmd(g),
+		newServeCmd(g),
 	)
 	root.SetFlagErrorFunc(func(c *cobra.Command, err error) error {
 		return errkind.Wrap(errkind.BadInput, err)

@@ -1,0 +1,337 @@
+package web
+
+import (
+	"context"
+	"errors"
+	"sort"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"modelgate/internal/artifact"
+	"modelgate/internal/checks"
+	"modelgate/internal/model"
+	"modelgate/internal/model/modeldir"
+	"modelgate/internal/registry"
+)
+
+var (
+	reportType = artifact.ArtifactType("report")
+)
+
+// read reads and parses one manifest.
+func (s *Server) read(ctx context.Context, repo string, d v1.Hash) (*artifact.Artifact, error) {
+	return artifact.ReadArtifact(ctx, s.store, registry.Ref{Repository: repo, Digest: d})
+}
+
+// tagRow is one tag and what it points at.
+type tagRow struct {
+	Repo    string
+	Tag     string
+	Ref     string // repo:tag
+	Digest  string
+	Kind    string
+	Name    string // the target's dev.modelgate.name annotation
+	Created string // the target's org.opencontainers.image.created
+	Log     *tagLog
+}
+
+// repoTags groups the tags of one repository.
+type repoTags struct {
+	Repo string
+	Tags []tagRow
+}
+
+// listTags reads every tag of every repository, leaving out the tags that
+// name release-log heads (they are shown as the log of their tag).
+func (s *Server) listTags(ctx context.Context) ([]repoTags, error) {
+	repos, err := s.store.Repositories(ctx)
+	if err != nil {
+		return nil, err
+	}
+	var out []repoTags
+	for _, repo := range repos {
+		tags, err := s.store.Tags(ctx, repo)
+		if errors.Is(err, registry.ErrNotFound) {
+			continue // a repository that holds only blobs so far
+		}
+		if err != nil {
+			return nil, err
+		}
+		rt := repoTags{Repo: repo}
+		for _, tag := range tags {
+			row, err := s.tagRow(ctx, repo, tag)
+			if errors.Is(err, registry.ErrNotFound) {
+				continue // moved or deleted while we listed
+			}
+			if err != nil {
+				return nil, err
+			}
+			if isLogHead(row) {
+				continue
+			}
+			rt.Tags = append(rt.Tags, *row)
+		}
+		// Release tags (with a log) first: they are what serves.
+		sort.SliceStable(rt.Tags, func(i, j int) bool { return rt.Tags[i].Log != nil && rt.Tags[j].Log == nil })
+		if len(rt.Tags) > 0 {
+			out = append(out, rt)
+		}
+	}
+	return out, nil
+}
+
+func (s *Server) tagRow(ctx context.Context, repo, tag string) (*tagRow, error) {
+	a, err := artifact.ReadArtifact(ctx, s.store, registry.Ref{Repository: repo, Tag: tag})
+	if err != nil {
+		return nil, err
+	}
+	row := &tagRow{Repo: repo, Tag: tag, Ref: repo + ":" + tag, Digest: a.Desc.Digest.String(), Kind: a.Kind(),
+		Name: a.Manifest.Annotations[artifact.AnnotationName], Created: a.Manifest.Annotations[artifact.AnnotationCreated]}
+	if row.Kind == "" {
+		row.Kind = "other"
+	}
+	if isLogHead(row) {
+		return row, nil
+	}
+	lg, err := s.tagLog(ctx, repo, tag)
+	if err != nil {
+		return nil, err
+	}
+	row.Log = lg
+	return row, nil
+}
+
+// tagsOf lists the tags of repo that point at d.
+func (s *Server) tagsOf(ctx context.Context, repo string, d v1.Hash) ([]string, error) {
+	tags, err := s.store.Tags(ctx, repo)
+	if err != nil {
+		return nil, err
+	}
+	var out []string
+	for _, t := range tags {
+		td, err := s.store.Resolve(ctx, repo, t)
+		if errors.Is(err, registry.ErrNotFound) {
+			continue
+		}
+		if err != nil {
+			return nil, err
+		}
+		if td.Digest == d {
+			out = append(out, t)
+		}
+	}
+	return out, nil
+}
+
+// reportRef is a stored gate report, as its manifest describes it.
+type reportRef struct {
+	Repo      string
+	Digest    string // the report's manifest digest
+	Candidate string // its subject
+	Target    string
+	Verdict   string
+	Created   string
+	Baseline  string
+	Policy    string
+}
+
+func reportRefOf(a *artifact.Artifact) (reportRef, bool) {
+	if a.Kind() != "report" || a.Manifest.Subject == nil {
+		return reportRef{}, false
+	}
+	ann := a.Manifest.Annotations
+	r := reportRef{Repo: a.Repository, Digest: a.Desc.Digest.String(), Candidate: a.Manifest.Subject.Digest.String(),
+		Target: ann[checks.AnnotationTarget], Verdict: ann[checks.AnnotationVerdict], Created: ann[artifact.AnnotationCreated],
+		Baseline: ann[checks.AnnotationBaseline], Policy: ann[checks.AnnotationPolicy]}
+	// The target must be a tag of the report's own repository: a report
+	// is stored beside its candidate, in the target's repository.
+	t, err := registry.ParseRef(r.Target, false)
+	if err != nil || t.Tag == "" || t.HasDigest() || t.Repository != a.Repository {
+		return reportRef{}, false
+	}
+	return r, true
+}
+
+// newer orders reports newest first (then by digest, for a stable order).
+func newer(a, b reportRef) bool {
+	if a.Created != b.Created {
+		return a.Created > b.Created
+	}
+	return a.Digest < b.Digest
+}
+
+// scanReports finds every gate report in the store: through the manifest
+// listing when the store has one, else through the referrers of every
+// tagged model.
+func (s *Server) scanReports(ctx context.Context) ([]reportRef, error) {
+	repos, err := s.store.Repositories(ctx)
+	if err != nil {
+		return nil, err
+	}
+	var out []reportRef
+	for _, repo := range repos {
+		var descs []v1.Descriptor
+		if ml, ok := s.store.(registry.ManifestLister); ok {
+			if descs, err = ml.Manifests(ctx, repo); err != nil {
+				return nil, err
+			}
+		} else {
+			if descs, err = s.taggedReferrers(ctx, repo); err != nil {
+				return nil, err
+			}
+		}
+		for _, d := range descs {
+			if d.ArtifactType != "" && d.ArtifactType != reportType {
+				continue
+			}
+			a, err := s.read(ctx, repo, d.Digest)
+			if err != nil {
+				return nil, err
+			}
+			if r, ok := reportRefOf(a); ok {
+				out = append(out, r)
+			}
+		}
+	}
+	return out, nil
+}
+
+func (s *Server) taggedReferrers(ctx context.Context, repo string) ([]v1.Descriptor, error) {
+	tags, err := s.store.Tags(ctx, repo)
+	if errors.Is(err, registry.ErrNotFound) {
+		return nil, nil
+	}
+	if err != nil {
+		return nil, err
+	}
+	seen := map[v1.Hash]bool{}
+	var out []v1.Descriptor
+	for _, t := range tags {
+		d, err := s.store.Resolve(ctx, repo, t)
+		if err != nil || seen[d.Digest] {
+			continue
+		}
+		seen[d.Digest] = true
+		rs, err := s.store.Referrers(ctx, repo, d.Digest, reportType)
+		if err != nil {
+			return nil, err
+		}
+		out = append(out, rs...)
+	}
+	return out, nil
+}
+
+// candidateRow is one (candidate, target) pair with a gate report.
+type candidateRow struct {
+	Repo      string
+	Candidate string
+	Name      string // the candidate's dev.modelgate.name
+	Kind      string
+	Target    string
+	Report    reportRef // the newest report for the pair
+	Reports   int       // how many reports the pair has
+	Current   string    // what the target tag points at now ("" when missing)
+	Promoted  bool      // the target tag points at the candidate now
+	Stale     bool      // the tag moved since the newest report was made
+	Approvals *approvalView
+}
+
+// candidates gathers (candidate, target) pairs from reports; with
+// pendingOnly it keeps the pairs whose target does not point at the
+// candidate now.
+func (s *Server) candidates(ctx context.Context, reports []reportRef, pendingOnly bool) ([]candidateRow, error) {
+	type key struct{ repo, cand, target string }
+	byKey := map[key]*candidateRow{}
+	var keys []key
+	for _, r := range reports {
+		k := key{r.Repo, r.Candidate, r.Target}
+		c, ok := byKey[k]
+		if !ok {
+			c = &candidateRow{Repo: r.Repo, Candidate: r.Candidate, Target: r.Target, Report: r}
+			byKey[k] = c
+			keys = append(keys, k)
+		} else if newer(r, c.Report) {
+			c.Report = r
+		}
+		c.Reports++
+	}
+	current := map[string]string{}
+	var out []candidateRow
+	for _, k := range keys {
+		c := byKey[k]
+		cur, ok := current[c.Target]
+		if !ok {
+			t, _ := registry.ParseRef(c.Target, false)
+			d, err := s.store.Resolve(ctx, t.Repository, t.Tag)
+			switch {
+			case err == nil:
+				cur = d.Digest.String()
+			case !errors.Is(err, registry.ErrNotFound):
+				return nil, err
+			}
+			current[c.Target] = cur
+		}
+		c.Current = cur
+		c.Promoted = cur == c.Candidate
+		c.Stale = !c.Promoted && cur != c.Report.Baseline
+		if pendingOnly && c.Promoted {
+			continue
+		}
+		cd, err := registry.ParseDigest(c.Candidate)
+		if err != nil {
+			continue
+		}
+		a, err := s.read(ctx, c.Repo, cd)
+		if errors.Is(err, registry.ErrNotFound) {
+			continue // a report about a candidate that is not in the store
+		}
+		if err != nil {
+			return nil, err
+		}
+		c.Name, c.Kind = a.Manifest.Annotations[artifact.AnnotationName], a.Kind()
+		av, err := s.approvals(ctx, c.Repo, cd, c.Target, c.Report)
+		if err != nil {
+			return nil, err
+		}
+		c.Approvals = av
+		out = append(out, *c)
+	}
+	sort.SliceStable(out, func(i, j int) bool {
+		if out[i].Target != out[j].Target {
+			return out[i].Target < out[j].Target
+		}
+		return newer(out[i].Report, out[j].Report)
+	})
+	return out, nil
+}
+
+// specOf reads a model's spec without its tensors.
+func (s *Server) specOf(ctx context.Context, a *artifact.Artifact) (*model.Spec, []string, error) {
+	raw, err := artifact.ReadBlob(ctx, s.store, a.Repository, a.Manifest.Config, modeldir.MaxSpecSize)
+	if err != nil {
+		return nil, nil, err
+	}
+	return modeldir.ParseSpec(raw)
+}
+
+// locate finds the repository holding manifest d: repo first, then every
+// repository of the store. ok is false when none holds it.
+func (s *Server) locate(ctx context.Context, d v1.Hash, first string) (string, bool, error) {
+	repos, err := s.store.Repositories(ctx)
+	if err != nil {
+		return "", false, err
+	}
+	if first != "" {
+		repos = append([]string{first}, repos...)
+	}
+	for _, repo := range repos {
+		_, _, err := s.store.Manifest(ctx, repo, d)
+		if err == nil {
+			return repo, true, nil
+		}
+		if !errors.Is(err, registry.ErrNotFound) {
+			return "", false, err
+		}
+	}
+	return "", false, nil
+}

@@ -1,0 +1,376 @@
+package web
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"sort"
+	"strings"
+	"time"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"modelgate/internal/artifact"
+	"modelgate/internal/checks"
+	"modelgate/internal/errkind"
+	"modelgate/internal/policy"
+	"modelgate/internal/registry"
+	"modelgate/internal/release"
+)
+
+// tagLog is a tag's release log as the view shows it.
+type tagLog struct {
+	// Moved, By and Kind describe the newest record: when the tag last
+	// moved, who moved it, and how (promote, rollback, initial).
+	Moved string
+	By    string
+	Kind  string
+	// Broken is true when verifying the chain found damage.
+	Broken  bool
+	Entries int
+	// Findings are every finding; Notes those that are not damage.
+	Findings []logFinding
+	Notes    []logFinding
+	Records  []logRecord
+}
+
+type logFinding struct {
+	Severity, Where, Message string
+}
+
+// logRecord is one release record, newest first.
+type logRecord struct {
+	N        int
+	Repo     string
+	Digest   string
+	Time     string
+	Kind     string
+	From     string
+	To       string
+	By       string
+	Verified bool
+	Reason   string
+}
+
+// trustedFor returns the keys a policy trusts for target's records and
+// approvals (nil when no policy covers target).
+func (s *Server) trustedFor(target string) []release.PublicKey {
+	_, rule := s.policyFor(target, "")
+	if rule == nil {
+		return nil
+	}
+	keys, err := release.TrustedKeys(append(append([]policy.Key(nil), rule.Approvals.Approvers...), rule.Approvals.ReportSigners...))
+	if err != nil {
+		return nil
+	}
+	return keys
+}
+
+// tagLog reads and verifies the release log of repo:tag (release.Log
+// walks the whole chain); nil when the tag has none.
+func (s *Server) tagLog(ctx context.Context, repo, tag string) (*tagLog, error) {
+	target := registry.Ref{Repository: repo, Tag: tag}
+	rep, err := release.Log(ctx, s.store, target, release.LogOptions{Trusted: s.trustedFor(target.String())})
+	if errkind.Is(err, errkind.BadInput) && !errors.Is(err, registry.ErrNotFound) {
+		return nil, nil // a tag that cannot have a log (a head pointer's own name)
+	}
+	if err != nil {
+		return nil, err
+	}
+	if rep.Head == "" {
+		return nil, nil
+	}
+	lg := &tagLog{Entries: len(rep.Entries)}
+	for _, f := range rep.Findings {
+		lf := logFinding{Severity: f.Severity, Where: f.Where, Message: f.Message}
+		lg.Findings = append(lg.Findings, lf)
+		if f.Severity == release.SeverityDamage {
+			lg.Broken = true
+		} else {
+			lg.Notes = append(lg.Notes, lf)
+		}
+	}
+	for i, e := range rep.Entries {
+		r := e.Record
+		lg.Records = append(lg.Records, logRecord{N: len(rep.Entries) - i, Repo: repo, Digest: e.Digest, Time: r.Time,
+			Kind: r.Kind, From: r.From, To: r.To, By: r.By.String(), Verified: e.Verified, Reason: r.Reason})
+	}
+	if len(lg.Records) > 0 {
+		lg.Moved, lg.By, lg.Kind = lg.Records[0].Time, lg.Records[0].By, lg.Records[0].Kind
+	}
+	return lg, nil
+}
+
+// isLogHead reports whether a tag names a release-log head (a release
+// record) rather than a model or holdout.
+func isLogHead(row *tagRow) bool {
+	return row.Kind == "release" || strings.HasPrefix(row.Tag, release.HeadTagPrefix)
+}
+
+// approvalView is where a candidate stands with its approvals for one
+// target.
+type approvalView struct {
+	// PolicyKnown is false when no --policy covers the target.
+	PolicyKnown  bool
+	PolicyName   string
+	PolicySource string
+	PolicyDigest string
+	// ReportPolicy is false when the report was made under another
+	// version of the policy than the one the server was given.
+	ReportPolicy bool
+	Required     int
+	Approvers    []string
+	// Waiting lists the approvers with no approval that counts yet.
+	Waiting []string
+	// Counted is how many distinct approver keys have an approval that
+	// counts now.
+	Counted int
+	Entries []approvalEntry
+	// Problems are what promote would say about the gate reports now
+	// (empty when a usable report exists or the policy is unknown).
+	Problems []string
+}
+
+type approvalEntry struct {
+	Digest   string
+	Approver string
+	Time     string
+	Comment  string
+	Counted  bool
+	Why      string
+}
+
+// policyFor returns the policy and rule covering target, preferring the
+// policy whose digest is want.
+func (s *Server) policyFor(target, want string) (*policy.Policy, *policy.Rule) {
+	var pol *policy.Policy
+	var rule *policy.Rule
+	for _, p := range s.opts.Policies {
+		r, err := p.Rule(target)
+		if err != nil {
+			continue
+		}
+		if pol == nil || p.Digest() == want {
+			pol, rule = p, r
+		}
+	}
+	return pol, rule
+}
+
+// maxClockSkew is how far in the future an approval may be dated (the
+// release package's rule).
+const maxClockSkew = 5 * time.Minute
+
+// approvals says how many approvals cand has for target against what the
+// policy covering target requires. It counts as promote does: a signed
+// approval by a key the policy lists as an approver, about this candidate,
+// for this target and policy, approving a passing gate report of this
+// candidate made against what the tag points at now, not older than the
+// policy's maximum age; each key counts once. Promote alone also checks
+// who promotes (self-approval), so the page says "so far".
+func (s *Server) approvals(ctx context.Context, repo string, cand v1.Hash, target string, rep reportRef) (*approvalView, error) {
+	av := &approvalView{}
+	pol, rule := s.policyFor(target, rep.Policy)
+	if pol == nil {
+		return av, nil
+	}
+	av.PolicyKnown = true
+	av.PolicyName, av.PolicySource, av.PolicyDigest = pol.Name, pol.Source, pol.Digest()
+	av.ReportPolicy = rep.Policy == pol.Digest()
+	av.Required = rule.Approvals.Required
+	for _, k := range rule.Approvals.Approvers {
+		av.Approvers = append(av.Approvers, k.Name)
+	}
+	tref, err := registry.ParseRef(target, false)
+	if err != nil {
+		return nil, err
+	}
+	current := ""
+	if d, err := s.store.Resolve(ctx, tref.Repository, tref.Tag); err == nil {
+		current = d.Digest.String()
+	} else if !errors.Is(err, registry.ErrNotFound) {
+		return nil, err
+	}
+	if current != cand.String() {
+		if _, err := release.ApproveCheck(ctx, s.store, cand, tref, pol); err != nil {
+			var ref *release.Refusal
+			if !errors.As(err, &ref) {
+				return nil, err
+			}
+			av.Problems = ref.Problems
+		}
+	}
+	// The gate reports an approval may name.
+	usable := map[string]bool{}
+	descs, err := s.store.Referrers(ctx, repo, cand, reportType)
+	if err != nil {
+		return nil, err
+	}
+	for _, d := range descs {
+		a, err := s.read(ctx, repo, d.Digest)
+		if err != nil {
+			return nil, err
+		}
+		if r, ok := reportRefOf(a); ok && r.Candidate == cand.String() && r.Target == target &&
+			r.Verdict == checks.VerdictPass && r.Baseline == current && r.Policy == pol.Digest() {
+			usable[r.Digest] = true
+		}
+	}
+	approvers, err := release.TrustedKeys(rule.Approvals.Approvers)
+	if err != nil {
+		return nil, err
+	}
+	descs, err = s.store.Referrers(ctx, repo, cand, release.ArtifactTypeApproval)
+	if err != nil {
+		return nil, err
+	}
+	now := time.Now()
+	counted := map[string]int{} // key id → index in Entries
+	for _, d := range descs {
+		e, keyID := s.checkApproval(ctx, repo, d.Digest, cand.String(), target, pol.Digest(), usable, approvers, rule.Approvals.MaxAge, now)
+		if e.Counted {
+			if j, dup := counted[keyID]; dup {
+				const why = "another approval by the same key counts instead (each key counts once)"
+				if e.Time > av.Entries[j].Time {
+					av.Entries[j].Counted, av.Entries[j].Why = false, why
+					counted[keyID] = len(av.Entries)
+				} else {
+					e.Counted, e.Why = false, why
+				}
+			} else {
+				counted[keyID] = len(av.Entries)
+			}
+		}
+		av.Entries = append(av.Entries, e)
+	}
+	av.Counted = len(counted)
+	for _, k := range approvers {
+		if _, ok := counted[k.ID]; !ok {
+			av.Waiting = append(av.Waiting, k.Name)
+		}
+	}
+	sort.SliceStable(av.Entries, func(i, j int) bool { return av.Entries[i].Time > av.Entries[j].Time })
+	return av, nil
+}
+
+// checkApproval judges one stored approval; keyID is its verified signer.
+func (s *Server) checkApproval(ctx context.Context, repo string, d v1.Hash, cand, target, policyDigest string,
+	usable map[string]bool, approvers []release.PublicKey, maxAge time.Duration, now time.Time) (approvalEntry, string) {
+	e := approvalEntry{Digest: d.String()}
+	env, err := s.envelope(ctx, repo, d, release.ArtifactTypeApproval)
+	if err != nil {
+		e.Why = "unreadable: " + err.Error()
+		return e, ""
+	}
+	st := &env.Statement
+	var pred release.Approval
+	if st.PredicateType != release.PredicateApproval {
+		e.Why = fmt.Sprintf("predicate type %q is not an approval", st.PredicateType)
+		return e, ""
+	}
+	if err := json.Unmarshal(st.Predicate, &pred); err != nil {
+		e.Why = "malformed approval predicate"
+		return e, ""
+	}
+	e.Approver, e.Time, e.Comment = pred.Approver.String()+" (claimed)", pred.Time, pred.Comment
+	var why []string
+	keyID := ""
+	verified := env.VerifiedBy(ctx, approvers)
+	switch {
+	case !env.Signed():
+		why = append(why, "not signed")
+	case len(verified) == 0:
+		why = append(why, "no key the policy lists as an approver signed it")
+	case verified[0].ID != pred.Approver.KeyID:
+		why = append(why, fmt.Sprintf("signed by %s but names approver key %s", verified[0].ID, pred.Approver.KeyID))
+	default:
+		keyID = verified[0].ID
+		e.Approver = release.Actor{Name: verified[0].Name, KeyID: verified[0].ID}.String()
+	}
+	if !st.About(cand) {
+		why = append(why, "it is about another candidate")
+	}
+	if pred.Target != target {
+		why = append(why, "it is for target "+pred.Target)
+	}
+	if pred.PolicyDigest != policyDigest {
+		why = append(why, "it is under another policy ("+shortDigest(pred.PolicyDigest)+")")
+	}
+	if !usable[pred.ReportDigest] {
+		why = append(why, "the gate report it approved ("+shortDigest(pred.ReportDigest)+") is not a passing report against what the tag points at now")
+	}
+	t, err := time.Parse(time.RFC3339, pred.Time)
+	switch {
+	case err != nil:
+		why = append(why, "its time is not RFC 3339")
+	case now.Sub(t) > maxAge:
+		why = append(why, fmt.Sprintf("expired: the policy allows %s", maxAge))
+	case t.Sub(now) > maxClockSkew:
+		why = append(why, "dated in the future")
+	}
+	if len(why) > 0 {
+		e.Why = strings.Join(why, "; ")
+		return e, ""
+	}
+	e.Counted = true
+	return e, keyID
+}
+
+// envelope reads the DSSE envelope layer of a signed artifact.
+func (s *Server) envelope(ctx context.Context, repo string, d v1.Hash, want string) (*release.Envelope, error) {
+	a, err := s.read(ctx, repo, d)
+	if err != nil {
+		return nil, err
+	}
+	if a.Manifest.ArtifactType != want {
+		return nil, fmt.Errorf("a %q artifact, not %q", a.Manifest.ArtifactType, want)
+	}
+	return s.envelopeOf(ctx, a)
+}
+
+func (s *Server) envelopeOf(ctx context.Context, a *artifact.Artifact) (*release.Envelope, error) {
+	for _, l := range a.Manifest.Layers {
+		if l.MediaType != release.MediaTypeEnvelope {
+			continue
+		}
+		raw, err := artifact.ReadBlob(ctx, s.store, a.Repository, l, 4<<20)
+		if err != nil {
+			return nil, err
+		}
+		return release.ParseEnvelope(raw)
+	}
+	return nil, fmt.Errorf("no DSSE envelope layer")
+}
+
+// statementView is what an approval or a release record says.
+type statementView struct {
+	PredicateType string
+	Subjects      []string
+	KeyIDs        []string
+	Predicate     string // indented JSON
+	Problem       string
+}
+
+// statement reads the signed statement of an approval or release record
+// for display; its signature is judged where it counts (the candidate and
+// tag pages).
+func (s *Server) statement(ctx context.Context, a *artifact.Artifact) (*statementView, error) {
+	env, err := s.envelopeOf(ctx, a)
+	if err != nil {
+		if ctx.Err() != nil {
+			return nil, err
+		}
+		return &statementView{Problem: err.Error()}, nil
+	}
+	v := &statementView{PredicateType: env.Statement.PredicateType, KeyIDs: env.KeyIDs()}
+	for _, sub := range env.Statement.Subject {
+		v.Subjects = append(v.Subjects, sub.Name+"@sha256:"+sub.Digest["sha256"])
+	}
+	var out bytes.Buffer
+	if json.Indent(&out, env.Statement.Predicate, "", "  ") == nil {
+		v.Predicate = out.String()
+	}
+	return v, nil
+}
