@@ -102,12 +102,12 @@ func printLog(w io.Writer, rep *release.LogReport) {
 	}
 	for i, e := range rep.Entries {
 		r := e.Record
-		sig := "unsigned"
+		by, sig := r.By.Name, "unsigned"
 		if e.Verified {
-			sig = "signature ok"
+			by, sig = r.By.String(), "signature ok"
 		}
 		fmt.Fprintf(w, "\n#%d  %s  %-8s  %s → %s\n", len(rep.Entries)-i, r.Time, r.Kind, shortDigest(orAbsent(r.From)), shortDigest(r.To))
-		fmt.Fprintf(w, "    by %s, %s; record %s\n", r.By, sig, shortDigest(e.Digest))
+		fmt.Fprintf(w, "    by %s, %s; record %s\n", by, sig, shortDigest(e.Digest))
 		if r.Reason != "" {
 			fmt.Fprintf(w, "    reason: %s\n", r.Reason)
 		}

@@ -41,10 +41,36 @@
 // disagreement between the tag and the head record means the tag was
 // moved outside modelgate: Log reports it and promote refuses.
 //
+// What the compare-and-swap guarantees: on a store with a true CAS (the
+// local store's lock, GCS generation preconditions) exactly one of any
+// number of concurrent promotes and rollbacks from the same state moves
+// the tag; the others change nothing visible and fail with
+// errkind.Conflict, and the log stays linear. A registry has no CAS on
+// tags (OCI distribution spec): its SwapTag reads, writes and reads back,
+// so two processes can both believe they won; the head pointer's own swap
+// then usually exposes the loser, and Log reports a tag that disagrees
+// with the head record. A store without any TagSwapper is refused.
+//
 // Rollback reads the head record, which names what undoing it restores
-// (a target and the record whose state that was), so each rollback takes a
-// constant number of store operations whatever the length of the log, and
-// successive rollbacks walk back through earlier releases. Every record
-// also names a "released index" blob: the digests ever released on the tag,
-// which rollback --to checks in one read.
+// (Restore: a target and the record whose state that was), so each
+// rollback takes a constant number of store operations whatever the length
+// of the log (about 17 calls), and successive rollbacks walk back through
+// earlier releases like popping a stack; rollback --to is a jump that a
+// later plain rollback undoes. Every record also names a "released index"
+// blob: the digests ever released on the tag, in order of first release,
+// which rollback --to checks in one read. Its size grows with the number
+// of distinct models released on the tag (about 72 bytes each), not with
+// the number of records; a rollback shares the blob without reading it.
+//
+// # Who
+//
+// A record or approval made with a key names the key's holder (the name
+// line of the key file) and key id, and carries the public key so the
+// signature can be checked without a policy; Log with trusted keys also
+// checks the key is one a policy lists. Without a key a record is
+// unsigned and names the local user ($USER). For self-approval, "the
+// pusher" is whoever signs the promotion: modelgate's push does not record
+// an identity, and the person who drives a candidate to production is the
+// one whose own approval must not count. A policy that forbids
+// self-approval therefore needs promote to be signed.
 package release
