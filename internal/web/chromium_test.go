@@ -145,6 +145,47 @@ func screenshot(t *testing.T, ctx context.Context, dir, name string) {
 	t.Logf("screenshot: %s", p)
 }
 
+// lowContrast lists the visible text of the page whose colour against
+// its background has a contrast ratio under 4.5:1, computed as WCAG 2.1
+// defines it (relative luminance and contrast ratio, success criterion
+// 1.4.3, https://www.w3.org/TR/WCAG21/#dfn-contrast-ratio).
+const lowContrast = `(() => {
+	const parse = c => c.match(/[\d.]+/g).map(Number);
+	const lum = c => { const [r, g, b] = parse(c).slice(0, 3).map(v => { v /= 255; return v <= 0.03928 ? v / 12.92 : Math.pow((v + 0.055) / 1.055, 2.4); });
+		return 0.2126 * r + 0.7152 * g + 0.0722 * b; };
+	const opaque = c => { const p = parse(c); return p.length < 4 || p[3] > 0; };
+	const bg = e => { for (; e; e = e.parentElement) { const c = getComputedStyle(e).backgroundColor; if (opaque(c)) return c; } return "rgb(255, 255, 255)"; };
+	const bad = [];
+	let checked = 0;
+	for (const e of document.querySelectorAll("body *")) {
+		if (![...e.childNodes].some(n => n.nodeType === 3 && n.textContent.trim())) continue;
+		const r = e.getBoundingClientRect();
+		if (r.width === 0 || r.height === 0 || r.bottom < 0) continue;
+		const l1 = lum(getComputedStyle(e).color), l2 = lum(bg(e));
+		const ratio = (Math.max(l1, l2) + 0.05) / (Math.min(l1, l2) + 0.05);
+		checked++;
+		if (ratio < 4.5) bad.push(e.tagName + " " + ratio.toFixed(2) + ": " + e.textContent.trim().slice(0, 40));
+	}
+	return {checked: checked, bad: bad};
+})()`
+
+type contrast struct {
+	Checked int      `json:"checked"`
+	Bad     []string `json:"bad"`
+}
+
+// checkContrast fails the test for text under 4.5:1 on the current page.
+func checkContrast(t *testing.T, ctx context.Context, page string) {
+	t.Helper()
+	c := eval[contrast](t, ctx, lowContrast)
+	if c.Checked < 20 {
+		t.Errorf("%s: only %d text elements checked for contrast", page, c.Checked)
+	}
+	for _, b := range c.Bad {
+		t.Errorf("%s: low contrast: %s", page, b)
+	}
+}
+
 // TestServeChromium drives headless Chromium over the demo store on a
 // loopback server: the tag list, a tag's release log, a candidate with its
 // verdict and approvals, and its gate report with plots drawn.
@@ -179,6 +220,7 @@ func TestServeChromium(t *testing.T) {
 		t.Errorf("first Tab: focus %+v, want the visible skip link with an outline", fc)
 	}
 	screenshot(t, ctx, dir, "serve-tags.png")
+	checkContrast(t, ctx, "tag list")
 
 	// A tag and its release log.
 	follow(t, ctx, `a[href="/tags/promo-scorer:prod"]`)
@@ -193,6 +235,7 @@ func TestServeChromium(t *testing.T) {
 		t.Errorf("release log has %d rows, want 1 (the first release)", n)
 	}
 	screenshot(t, ctx, dir, "serve-tag.png")
+	checkContrast(t, ctx, "tag page")
 
 	// The candidate that passes: verdict and approvals.
 	follow(t, ctx, `a[href="/candidates/promo-scorer@`+f.better+`"]`)
@@ -205,6 +248,7 @@ func TestServeChromium(t *testing.T) {
 		t.Errorf("approvals %q, want 1 of 2", approvals)
 	}
 	screenshot(t, ctx, dir, "serve-candidate.png")
+	checkContrast(t, ctx, "candidate page")
 
 	// Its full gate report: every plot is drawn with a size, and its
 	// lines take the styles the CSP allows by hash.
@@ -239,6 +283,7 @@ func TestServeChromium(t *testing.T) {
 		t.Fatal(err)
 	}
 	screenshot(t, ctx, dir, "serve-artifact.png")
+	checkContrast(t, ctx, "artifact page")
 	if err := chromedp.Do(ctx, chromedp.Navigate(srv.URL+"/tags/listener-encoder:prod")); err != nil {
 		t.Fatal(err)
 	}

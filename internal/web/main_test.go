@@ -122,6 +122,15 @@ func buildDemo() (*demoFixture, error) {
 		Report: rd, Key: f.keys["rita"], Comment: "slices read; fine by me"}); err != nil {
 		return nil, err
 	}
+	// And one by a key the policy does not list, which must not count.
+	mallory, err := release.GenerateKey("mallory")
+	if err != nil {
+		return nil, err
+	}
+	if _, err := release.Approve(ctx, store, release.ApproveRequest{Candidate: cand, Target: prod, PolicyDigest: f.policy.Digest(),
+		Report: rd, Key: mallory, Comment: "looks fine"}); err != nil {
+		return nil, err
+	}
 	// listener-encoder:prod gets a longer log: v2 gated, promoted, rolled back.
 	encPol, err := policy.Load(filepath.Join("..", "..", "policies", "listener-encoder.yaml"))
 	if err != nil {
