@@ -29,4 +29,4 @@ rss "$tmp/modelgate" score promo-scorer:cand-better --holdout "$tmp/gate.parquet
 echo "gate, $GATE_ROWS rows:"
 rss "$tmp/modelgate" gate promo-scorer:cand-better --to promo-scorer:prod --policy policies/promo-scorer.yaml --holdout promo-holdout:big --no-push
 "$tmp/modelgate" gate --json promo-scorer:cand-better --to promo-scorer:prod --policy policies/promo-scorer.yaml --holdout promo-holdout:big --no-push \
-  | /usr/bin/python3 -c 'import json,sys; r=json.load(sys.stdin)["report"]; print("check seconds:", {c["name"]: round(c["seconds"],3) for c in r["checks"]})' || true
+  | /usr/bin/python3 -c 'import json,sys; r=json.load(sys.stdin)["report"]; print("check seconds:", {c["name"]: round(c["seconds"],3) for c in r["checks"]}); print("holdout phases (s):", {k: round(v,3) for c in r["checks"] for k, v in (c.get("phases") or {}).items()})' || true

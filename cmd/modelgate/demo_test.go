@@ -8,7 +8,10 @@ import (
 	"strings"
 	"testing"
 
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
 	"modelgate/internal/checks"
+	"modelgate/internal/policy"
 	"modelgate/internal/registry"
 )
 
@@ -71,9 +74,22 @@ func TestGateCommand(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	refs, err := st.Referrers(ctx, "promo-scorer", cd.Digest, "application/vnd.modelgate.report.v1")
-	if err != nil || len(refs) != 1 {
-		t.Fatalf("referrers of the candidate: %v, %v", refs, err)
+	all, err := st.Referrers(ctx, "promo-scorer", cd.Digest, "application/vnd.modelgate.report.v1")
+	if err != nil {
+		t.Fatal(err)
+	}
+	p, err := policy.Load(pol)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var refs []v1.Descriptor // the demo's own story gated it too, under its copy of the policy
+	for _, d := range all {
+		if d.Annotations["dev.modelgate.policy.digest"] == p.Digest() {
+			refs = append(refs, d)
+		}
+	}
+	if len(refs) != 1 {
+		t.Fatalf("reports of the candidate under %s: %v", pol, refs)
 	}
 	rep, err := checks.ReadReport(ctx, st, "promo-scorer", refs[0].Digest)
 	if err != nil || rep.Verdict != "pass" || rep.Candidate.Digest != cd.Digest.String() {
@@ -91,8 +107,29 @@ func TestGateCommand(t *testing.T) {
 	if err := json.Unmarshal([]byte(r.stdout), &out); err != nil || out.Report.Verdict != "fail" || len(out.Report.Reasons) == 0 {
 		t.Errorf("gate --json: %v %+v", err, out.Report.Reasons)
 	}
+	// Sharded: two shard runs store their sums; --merge gives the same
+	// holdout line as one run.
+	single := mg(t, store, "gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--no-push")
+	for _, sh := range []string{"1/2", "2/2"} {
+		if r := mustMG(t, store, "gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--shard", sh); !strings.HasPrefix(r.stdout, "sha256:") {
+			t.Errorf("--shard %s printed %q", sh, r.stdout)
+		}
+	}
+	merged := mg(t, store, "gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--merge", "--no-push")
+	holdoutLine := func(out string) string {
+		for _, l := range strings.Split(out, "\n") {
+			if strings.Contains(l, "holdout ") && strings.Contains(l, "log loss") {
+				return strings.TrimSuffix(l, " (merged from 2 shards)")
+			}
+		}
+		return ""
+	}
+	if merged.code != 1 || holdoutLine(merged.stdout) == "" || holdoutLine(merged.stdout) != holdoutLine(single.stdout) {
+		t.Errorf("merged shards (exit %d):\n%s\nsingle run:\n%s", merged.code, merged.stdout, single.stdout)
+	}
 	// Bad input exits 2.
 	for _, args := range [][]string{
+		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", pol, "--shard", "3/2"},
 		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod"},
 		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:canary", "--policy", pol},
 		{"gate", "promo-scorer:nope", "--to", "promo-scorer:prod", "--policy", pol},

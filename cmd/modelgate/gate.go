@@ -8,6 +8,7 @@ import (
 
 	"github.com/spf13/cobra"
 
+	"modelgate/internal/artifact"
 	"modelgate/internal/checks"
 	"modelgate/internal/errkind"
 	"modelgate/internal/policy"
@@ -24,6 +25,8 @@ type gateOptions struct {
 	NoPush  bool
 	Threads int
 	SignKey string
+	Shard   string
+	Merge   bool
 }
 
 func (o *gateOptions) AddFlags(cmd *cobra.Command) {
@@ -34,6 +37,8 @@ func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 	f.StringVar(&o.HTML, "html", "", "also write the HTML report to this file")
 	f.BoolVar(&o.NoPush, "no-push", false, "do not store the report in the store (it is stored by default, as a referrer of the candidate)")
 	f.IntVar(&o.Threads, "threads", 0, "runtime threads for the holdout pass (0: all cores)")
+	f.StringVar(&o.Shard, "shard", "", "score only shard I/N of the holdout (1-based) and store its sums for a later --merge; prints the shard result's digest")
+	f.BoolVar(&o.Merge, "merge", false, "run the gate from the stored shard results (of --shard runs with the same inputs) instead of scoring the holdout here")
 	f.StringVar(&o.SignKey, "sign-key", "", "sign the stored report with this private key (a CI key a policy lists under reportSigners)")
 }
 
@@ -116,6 +121,14 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 	gate := checks.Gate{Store: store, Candidate: cand, Target: target, Holdout: holdRef, Config: cfg,
 		Policy:   checks.Policy{Name: pol.Name, Source: o.Policy, Digest: pol.Digest()},
 		Progress: g.gateProgress()}
+	if o.Shard != "" {
+		return runGateShard(ctx, g, o, gate)
+	}
+	if o.Merge {
+		if gate.Shards, err = findShards(ctx, store, gate); err != nil {
+			return err
+		}
+	}
 	rep, err := checks.Run(ctx, gate)
 	if err != nil {
 		return err
@@ -153,4 +166,55 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 		return errkind.New(errkind.GateFailed, "gate failed")
 	}
 	return nil
+}
+
+func runGateShard(ctx context.Context, g *globals, o *gateOptions, gate checks.Gate) error {
+	var i, n int
+	if _, err := fmt.Sscanf(o.Shard, "%d/%d", &i, &n); err != nil || n < 1 || i < 1 || i > n || fmt.Sprintf("%d/%d", i, n) != o.Shard {
+		return usageErr("--shard %q: want I/N with 1 ≤ I ≤ N", o.Shard)
+	}
+	if o.Merge {
+		return usageErr("--shard and --merge go in separate runs")
+	}
+	r, err := checks.RunShard(ctx, gate, i-1, n)
+	if err != nil {
+		return err
+	}
+	d, err := checks.PushShard(ctx, gate.Store, gate.Target.Repository, r)
+	if err != nil {
+		return err
+	}
+	if g.JSON {
+		return g.printJSON(map[string]any{"shard": o.Shard, "rows": [2]int64{r.FirstRow, r.EndRow}, "digest": d.Digest.String(), "seconds": r.Seconds})
+	}
+	g.logf("shard %s: rows %d–%d scored in %.2fs", o.Shard, r.FirstRow, r.EndRow, r.Seconds)
+	_, err = fmt.Fprintln(g.Stdout, d.Digest)
+	return err
+}
+
+// findShards collects the stored shard results made for this gate's inputs.
+func findShards(ctx context.Context, store registry.Store, gate checks.Gate) ([]*checks.ShardResult, error) {
+	cd, err := artifact.Resolve(ctx, store, gate.Candidate)
+	if err != nil {
+		return nil, err
+	}
+	base := ""
+	if bd, err := store.Resolve(ctx, gate.Target.Repository, gate.Target.Tag); err == nil {
+		base = bd.Digest.String()
+	}
+	if gate.Holdout == nil {
+		return nil, usageErr("--merge: the policy names no holdout")
+	}
+	hd, err := artifact.Resolve(ctx, store, *gate.Holdout)
+	if err != nil {
+		return nil, err
+	}
+	shards, err := checks.FindShards(ctx, store, gate.Target.Repository, cd.Digest, gate.Target.String(), base, hd.Digest.String(), gate.Policy.Digest)
+	if err != nil {
+		return nil, err
+	}
+	if len(shards) == 0 {
+		return nil, usageErr("--merge: no shard results stored for these inputs (candidate %s, baseline %q, holdout %s, policy %s): run gate --shard I/N first", cd.Digest, base, hd.Digest, gate.Policy.Digest)
+	}
+	return shards, nil
 }
