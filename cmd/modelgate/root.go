@@ -8,6 +8,7 @@ import (
 	"io"
 	"os"
 	"path/filepath"
+	"runtime/pprof"
 	"strings"
 
 	"github.com/spf13/cobra"
@@ -26,6 +27,9 @@ type globals struct {
 	Stdout io.Writer
 	Stderr io.Writer
 	Stdin  io.Reader
+
+	CPUProfile  string
+	stopProfile func()
 }
 
 // EnvStore names the environment variable that selects the store.
@@ -111,6 +115,19 @@ Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
 	pf.StringVar(&g.Store, "store", "", "store location: a local directory (default $"+EnvStore+" or the embedded default)")
 	pf.BoolVar(&g.JSON, "json", false, "print machine-readable JSON on stdout")
 	pf.BoolVarP(&g.Quiet, "quiet", "q", false, "no progress or log lines on stderr")
+	pf.StringVar(&g.CPUProfile, "cpuprofile", "", "write a CPU profile of the command to this file (for performance work)")
+	_ = pf.MarkHidden("cpuprofile")
+	root.PersistentPreRunE = func(cmd *cobra.Command, args []string) error {
+		if g.CPUProfile == "" {
+			return nil
+		}
+		f, err := os.Create(g.CPUProfile)
+		if err != nil {
+			return errkind.Wrap(errkind.BadInput, err)
+		}
+		g.stopProfile = func() { pprof.StopCPUProfile(); f.Close() }
+		return pprof.StartCPUProfile(f)
+	}
 	root.AddCommand(
 		newPushCmd(g),
 		newPullCmd(g),
@@ -142,6 +159,9 @@ func run(ctx context.Context, args []string, stdin io.Reader, stdout, stderr io.
 	root := newRoot(g)
 	root.SetArgs(args)
 	err := root.ExecuteContext(ctx)
+	if g.stopProfile != nil {
+		g.stopProfile()
+	}
 	if err == nil {
 		return 0
 	}

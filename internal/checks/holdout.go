@@ -125,8 +125,11 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		return nil, err
 	}
 	defer rc.Close()
+	// One read serves both models when they map ids alike and the
+	// baseline reads no dense input the candidate lacks.
+	shared := base != nil && sameInputs(cand, base)
 	var rb data.Reader
-	if base != nil {
+	if base != nil && !shared {
 		if rb, err = open(base); err != nil {
 			return nil, err
 		}
@@ -286,6 +289,9 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			}
 		}
 		st.Read += time.Since(tRead).Seconds()
+		if shared {
+			fb = fc
+		}
 		if pos < lo {
 			pos += int64(n)
 			continue
@@ -544,6 +550,31 @@ func gather(src []float32, rows []int, buf *[]float32) []float32 {
 	}
 	*buf = out
 	return out
+}
+
+// sameInputs reports whether a holdout frame read for the candidate is
+// also the baseline's: the same sparse input rules and vocabulary, and
+// every dense input of the baseline present in the candidate, same size.
+func sameInputs(cand, base *score.Model) bool {
+	cs, bs := cand.Loaded.Spec.Inputs, base.Loaded.Spec.Inputs
+	if cs.Sparse[0] != bs.Sparse[0] || len(cand.Loaded.Vocab) != len(base.Loaded.Vocab) {
+		return false
+	}
+	for i := range cand.Loaded.Vocab {
+		if cand.Loaded.Vocab[i] != base.Loaded.Vocab[i] {
+			return false
+		}
+	}
+	sizes := map[string]int{}
+	for _, d := range cs.Dense {
+		sizes[d.Name] = d.Size
+	}
+	for _, d := range bs.Dense {
+		if sizes[d.Name] != d.Size {
+			return false
+		}
+	}
+	return true
 }
 
 func lossOf(m Metrics, encoder bool) float64 {

@@ -3,6 +3,8 @@ package stats
 import (
 	"math"
 	"math/bits"
+	"runtime"
+	"sync"
 
 	"gonum.org/v1/gonum/stat/distuv"
 
@@ -146,35 +148,21 @@ func (a *Paired) addChunk(ids []int64, d []float64, w []float32) {
 		wdv[i] = wi * x
 	}
 	acc := a.acc[:2*reps]
-	for r := 0; r+1 < reps; r += 2 {
-		step := uint64(r/2+1) * wyInc
-		var sw0, swd0, sw1, swd1 float64
-		for i, key := range keys {
-			s := key + step
-			hi, lo := bits.Mul64(s, s^wyMul)
-			u := hi ^ lo
-			// Two Poisson(1) draws from the two 32-bit halves, inlined
-			// (see poisson1).
-			u0, u1 := u&0xffffffff, u>>32
-			e0, e1 := poissonTop[u0>>24], poissonTop[u1>>24]
-			k0 := e0&0xff + ge(u0, e0>>8)
-			k1 := e1&0xff + ge(u1, e1>>8)
-			if u0 >= tailStart || u1 >= tailStart { // 0.8%: no call here,
-				// so the sums can stay in registers
-				k0, k1 = 0, 0
-				for _, c := range poissonCDF {
-					k0 += ge(u0, c)
-					k1 += ge(u1, c)
-				}
-			}
-			f0, f1 := float64(int64(k0)), float64(int64(k1))
-			sw0 += wv[i] * f0
-			swd0 += wdv[i] * f0
-			sw1 += wv[i] * f1
-			swd1 += wdv[i] * f1
-		}
-		q := acc[2*r : 2*r+4 : 2*r+4]
-		q[0], q[1], q[2], q[3] = sw0, swd0, sw1, swd1
+	pairs := reps &^ 1
+	// The replicate pairs are independent: with more than one core, the
+	// upper half runs on another goroutine. Each replicate's sums are
+	// computed exactly as in one pass, so results do not depend on it.
+	if mid := (pairs / 2) &^ 1; mid >= 32 && runtime.GOMAXPROCS(0) > 1 {
+		var wg sync.WaitGroup
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			replicatePairs(keys, wv, wdv, acc, mid, pairs)
+		}()
+		replicatePairs(keys, wv, wdv, acc, 0, mid)
+		wg.Wait()
+	} else {
+		replicatePairs(keys, wv, wdv, acc, 0, pairs)
 	}
 	if reps%2 == 1 { // odd count: the last replicate uses a low half
 		r := reps - 1
@@ -375,4 +363,39 @@ func (a *Paired) ReplicateMeans() []float64 {
 		}
 	}
 	return out
+}
+
+// replicatePairs computes the sums of bootstrap replicates [from, to)
+// (both even) over one chunk of rows into acc.
+func replicatePairs(keys []uint64, wv, wdv, acc []float64, from, to int) {
+	for r := from; r < to; r += 2 {
+		step := uint64(r/2+1) * wyInc
+		var sw0, swd0, sw1, swd1 float64
+		for i, key := range keys {
+			s := key + step
+			hi, lo := bits.Mul64(s, s^wyMul)
+			u := hi ^ lo
+			// Two Poisson(1) draws from the two 32-bit halves, inlined
+			// (see poisson1).
+			u0, u1 := u&0xffffffff, u>>32
+			e0, e1 := poissonTop[u0>>24], poissonTop[u1>>24]
+			k0 := e0&0xff + ge(u0, e0>>8)
+			k1 := e1&0xff + ge(u1, e1>>8)
+			if u0 >= tailStart || u1 >= tailStart { // 0.8%: no call here,
+				// so the sums can stay in registers
+				k0, k1 = 0, 0
+				for _, c := range poissonCDF {
+					k0 += ge(u0, c)
+					k1 += ge(u1, c)
+				}
+			}
+			f0, f1 := float64(int64(k0)), float64(int64(k1))
+			sw0 += wv[i] * f0
+			swd0 += wdv[i] * f0
+			sw1 += wv[i] * f1
+			swd1 += wdv[i] * f1
+		}
+		q := acc[2*r : 2*r+4 : 2*r+4]
+		q[0], q[1], q[2], q[3] = sw0, swd0, sw1, swd1
+	}
 }
