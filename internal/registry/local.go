@@ -24,13 +24,13 @@ import (
 	"modelgate/internal/errkind"
 )
 
-// Annotation keys that the local store writes on index.json entries.
+// Annotation keys that the local store writes on index.json entries and
+// side files.
 const (
 	// annotationRepository names the repository an entry belongs to; every
 	// entry the store writes carries it.
 	annotationRepository = "dev.modelgate.repository"
-	// annotationSubject is the subject digest of a manifest that has one,
-	// so that Referrers needs no manifest reads.
+	// annotationSubject is the subject digest of a manifest that has one.
 	annotationSubject = "dev.modelgate.subject"
 	// annotationRefName is the OCI image-layout tag annotation. The store
 	// writes "REPO:TAG" (the ref.name grammar allows ':' as a separator).
@@ -51,20 +51,44 @@ const (
 
 // Local is a store in a local directory laid out as an OCI image layout
 // (image-spec v1.1, image-layout.md): an `oci-layout` file, `index.json`
-// and `blobs/sha256/`. Other OCI tools can read it: every manifest is an
-// entry of index.json, and a tag is an entry whose
+// and `blobs/sha256/`, plus modelgate's own records under `.modelgate/`.
+// Other OCI tools can read it: every tag is an entry of index.json whose
 // org.opencontainers.image.ref.name annotation is "REPO:TAG".
 //
-// One directory holds many repositories. Entries carry the annotation
-// dev.modelgate.repository; entries the store did not write (for example
-// added by another tool) are ignored and kept as they are. Each manifest
-// put into a repository has one entry without ref.name, which stays when
-// the manifest is tagged or untagged, so every manifest stays reachable
-// and listable; each tag adds one entry with ref.name. Entries copy the
-// manifest's artifactType (or, for an image manifest without one, its
-// config media type, the distribution spec's rule for referrers) and its
-// annotations (except ref.name), and carry dev.modelgate.subject when the
-// manifest has a subject.
+// Layout:
+//
+//	oci-layout                 {"imageLayoutVersion":"1.0.0"}
+//	index.json                 an image index of tag entries only
+//	blobs/sha256/<hex>         blobs and manifests, shared by all repositories
+//	.modelgate/lock            flock(2) target serialising index.json updates
+//	.modelgate/tmp/            temporary files of writes in progress
+//	.modelgate/repos/<folder>/manifests/<hex>
+//	                           one file per manifest put into the repository
+//	.modelgate/repos/<folder>/referrers/<subject hex>/<type>/<hex>
+//	                           one file per manifest with that subject
+//
+// <folder> is the repository name with '/' written as '+' (which names
+// cannot contain); <type> is the referrer's artifactType with bytes other
+// than letters, digits, '.', '+' and '-' written as %XX ("application/x"
+// is "application%2Fx"), "_" when it is empty, or "sha256=<hex of the
+// type>" when that would be over 200 bytes. Both side files hold the same
+// JSON descriptor: media type, size, digest, artifactType (for an image
+// manifest without one, its config media type, the distribution spec's
+// rule for referrers), the manifest's annotations (except ref.name),
+// dev.modelgate.repository, and dev.modelgate.subject when the manifest
+// has a subject. A tag entry in index.json is that descriptor plus
+// ref.name. So putting an untagged manifest (a report, an approval, a
+// release record) writes a blob and one or two small files, Referrers
+// reads one folder and Manifests one folder plus index.json, whatever the
+// number of manifests stored; index.json grows only with the tags.
+//
+// One directory holds many repositories. index.json entries the store did
+// not write (without dev.modelgate.repository, for example added by
+// another tool) are ignored and kept as they are. A store written by an
+// earlier version of modelgate, which kept one untagged index.json entry
+// per manifest, is converted when opened: those entries move to side
+// files (each checked against its manifest blob; one that does not match
+// stays in index.json, where Scrub reports it).
 //
 // Other tools name a tag by its ref.name: skopeo reads
 // "oci:DIR:REPO:TAG" (it splits DIR off at the first ':', so DIR must not
@@ -73,28 +97,41 @@ const (
 // than the distribution spec's names, so a repository with "__" or "---",
 // or a tag that starts with '_', ends with '.' or '-', or has two
 // separators in a row, is stored and read back by modelgate but refused by
-// skopeo as an invalid image name.
+// skopeo as an invalid image name. Untagged manifests are not in
+// index.json, so tools that read only the OCI layout see the tagged ones.
 //
 // Blobs are content-addressed and shared by every repository of the
 // directory: Blob, StatBlob and PutBlob validate the repository name but
 // do not scope blobs to it. Manifests are scoped: Manifest finds only
 // manifests recorded for that repository.
 //
-// Writes are crash-safe and safe between processes: blobs are written to a
-// temporary file in .modelgate/tmp, verified, synced and renamed into
-// place; index.json is replaced atomically under an exclusive flock on
-// .modelgate/lock. Readers never see a partial index.json or blob.
+// Writes are crash-safe and safe between processes. Every file is written
+// to a temporary file in .modelgate/tmp, synced, renamed into place, and
+// its folder synced; blobs are verified before the rename. Names come
+// last: the manifest blob before its side files, the manifest side file
+// before the referrer side file, and a tag only for a manifest whose side
+// file and blob are present, so a crash leaves at most a blob or a side
+// file that nothing names (Scrub reports them as hints), never a side file
+// or a tag naming a missing manifest. Side files are written once, without
+// the lock (they are content-addressed and idempotent); index.json is
+// replaced atomically under an exclusive flock on .modelgate/lock. Readers
+// take no lock and never see a partial file. A Local keeps the parsed
+// index.json between calls, revalidated by stat on every call, and side
+// files already read.
 //
 // Errors: missing things wrap ErrNotFound and are marked errkind.BadInput
 // (the user named something that is not there); uploads that do not match
 // their digest wrap ErrDigestMismatch with errkind.BadInput; stored bytes
 // that do not match their digest wrap ErrDigestMismatch with
-// errkind.Integrity; a manifest recorded in index.json whose blob is gone
-// wraps ErrNotFound with errkind.Integrity (damage, not a user error); a
-// lost SwapTag wraps ErrConflict with errkind.Conflict.
+// errkind.Integrity; a manifest recorded in a side file or index.json whose
+// blob is gone wraps ErrNotFound with errkind.Integrity (damage, not a user
+// error), as does a side file that is not a valid record; a lost SwapTag
+// wraps ErrConflict with errkind.Conflict.
 type Local struct {
-	dir string
-	mu  sync.Mutex // serialises this process's writers before the flock
+	dir     string
+	mu      sync.Mutex // serialises this process's writers before the flock
+	index   indexCache
+	entries entryCache
 }
 
 var (
@@ -105,7 +142,8 @@ var (
 )
 
 // OpenLocal opens the local store in dir, creating the directory and an
-// empty OCI image layout when they do not exist. A directory that has an
+// empty OCI image layout when they do not exist, and converting a store
+// written by an earlier version (see Local). A directory that has an
 // oci-layout file of another version is refused.
 func OpenLocal(dir string) (*Local, error) {
 	abs, err := filepath.Abs(dir)
@@ -113,7 +151,7 @@ func OpenLocal(dir string) (*Local, error) {
 		return nil, fmt.Errorf("opening store %q: %w", dir, err)
 	}
 	l := &Local{dir: abs}
-	for _, d := range []string{blobsDir, tmpDir} {
+	for _, d := range []string{blobsDir, tmpDir, reposDir} {
 		if err := os.MkdirAll(l.path(d), 0o755); err != nil {
 			return nil, fmt.Errorf("opening store %q: %w", abs, err)
 		}
@@ -128,7 +166,7 @@ func OpenLocal(dir string) (*Local, error) {
 	switch {
 	case errors.Is(err, fs.ErrNotExist):
 		data, _ := json.Marshal(map[string]string{"imageLayoutVersion": layoutVersion})
-		if err := l.writeFileAtomic(l.path(layoutFile), data); err != nil {
+		if _, err := l.writeFileAtomic(l.path(layoutFile), data, true, false); err != nil {
 			return nil, fmt.Errorf("opening store %q: %w", abs, err)
 		}
 	case err != nil:
@@ -149,7 +187,7 @@ func OpenLocal(dir string) (*Local, error) {
 	} else if err != nil {
 		return nil, fmt.Errorf("opening store %q: %w", abs, err)
 	}
-	if _, err := l.readIndex(); err != nil {
+	if err := l.migrate(context.Background()); err != nil {
 		return nil, fmt.Errorf("opening store %q: %w", abs, err)
 	}
 	return l, nil
@@ -509,53 +547,41 @@ func (l *Local) PutManifest(ctx context.Context, repo string, mediaType types.Me
 	if err != nil {
 		return v1.Descriptor{}, err
 	}
-	sum := sha256.Sum256(raw)
-	dgst := v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(sum[:])}
-	desc := v1.Descriptor{MediaType: mt, Size: int64(len(raw)), Digest: dgst, ArtifactType: mf.ArtifactType}
-	if desc.ArtifactType == "" && isImageManifest(mt) {
-		desc.ArtifactType = string(mf.Config.MediaType)
-	}
-
-	idx, err := l.readIndex()
-	if err != nil {
-		return v1.Descriptor{}, err
-	}
-	if i := findEntry(idx, repo, dgst); i >= 0 {
-		if _, err := l.statBlob(dgst); err == nil {
+	desc := describe(raw, mt, mf)
+	dgst := desc.Digest
+	entry := sideEntry(repo, desc, mf)
+	if l.recorded(repo, entry) {
+		if size, err := l.statBlob(dgst); err == nil && size == desc.Size {
 			return desc, nil
 		}
 	}
-	if err := l.checkReferences(idx, repo, mt, mf); err != nil {
+	if err := l.checkReferences(repo, mt, mf); err != nil {
 		return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", dgst, repo, err)
 	}
 	if err := l.writeBlob(ctx, dgst, int64(len(raw)), bytes.NewReader(raw)); err != nil {
 		return v1.Descriptor{}, err
 	}
-
-	entry := desc
-	entry.Annotations = map[string]string{}
-	for k, v := range mf.Annotations {
-		if k != annotationRefName && k != annotationRepository && k != annotationSubject {
-			entry.Annotations[k] = v
-		}
-	}
-	entry.Annotations[annotationRepository] = repo
-	if mf.Subject != nil {
-		entry.Annotations[annotationSubject] = mf.Subject.Digest.String()
-	}
-	err = l.updateIndex(ctx, func(idx *v1.IndexManifest) (bool, error) {
-		for _, d := range idx.Manifests {
-			if d.Annotations[annotationRepository] == repo && d.Digest == dgst && d.Annotations[annotationRefName] == "" {
-				return false, nil
-			}
-		}
-		idx.Manifests = append(idx.Manifests, entry)
-		return true, nil
-	})
-	if err != nil {
+	if _, err := l.writeEntry(repo, entry, true); err != nil {
 		return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", dgst, repo, err)
 	}
 	return desc, nil
+}
+
+// recorded reports whether entry's side files are all present.
+func (l *Local) recorded(repo string, entry v1.Descriptor) bool {
+	if _, err := os.Lstat(l.manifestEntryPath(repo, entry.Digest)); err != nil {
+		return false
+	}
+	if s := entry.Annotations[annotationSubject]; s != "" {
+		subject, err := v1.NewHash(s)
+		if err != nil {
+			return false
+		}
+		if _, err := os.Lstat(l.referrerEntryPath(repo, subject, entry.ArtifactType, entry.Digest)); err != nil {
+			return false
+		}
+	}
+	return true
 }
 
 // parseManifest checks raw is a manifest the store accepts and returns its
@@ -610,7 +636,7 @@ func parseManifest(mediaType types.MediaType, raw []byte) (manifestFields, types
 
 // checkReferences reports every blob (or, for an index, manifest) that mf
 // references and the store lacks or holds at another size.
-func (l *Local) checkReferences(idx *v1.IndexManifest, repo string, mt types.MediaType, mf manifestFields) error {
+func (l *Local) checkReferences(repo string, mt types.MediaType, mf manifestFields) error {
 	var missing, wrong []string
 	if isImageManifest(mt) {
 		refs := append([]v1.Descriptor{*mf.Config}, mf.Layers...)
@@ -629,10 +655,16 @@ func (l *Local) checkReferences(idx *v1.IndexManifest, repo string, mt types.Med
 				wrong = append(wrong, fmt.Sprintf("%s %s is %d bytes in the store, the manifest says %d", role, d.Digest, size, d.Size))
 			}
 		}
-	} else {
+	} else if len(mf.Manifests) > 0 {
+		idx, err := l.readIndex()
+		if err != nil {
+			return err
+		}
 		for i, d := range mf.Manifests {
-			if findEntry(idx, repo, d.Digest) < 0 {
+			if _, err := l.lookupManifest(idx, repo, d.Digest); errors.Is(err, ErrNotFound) {
 				missing = append(missing, fmt.Sprintf("manifest %d %s", i, d.Digest))
+			} else if err != nil {
+				return err
 			}
 		}
 	}
@@ -662,17 +694,17 @@ func (l *Local) Manifest(ctx context.Context, repo string, dgst v1.Hash) ([]byte
 	if err != nil {
 		return nil, v1.Descriptor{}, err
 	}
-	i := findEntry(idx, repo, dgst)
-	if i < 0 {
-		return nil, v1.Descriptor{}, notFound("manifest %s in repository %s", dgst, repo)
+	entry, err := l.lookupManifest(idx, repo, dgst)
+	if err != nil {
+		return nil, v1.Descriptor{}, err
 	}
-	desc := plainDescriptor(idx.Manifests[i])
+	desc := plainDescriptor(entry)
 	raw, err := l.readManifestBlob(dgst)
 	if err != nil {
 		return nil, v1.Descriptor{}, err
 	}
 	if int64(len(raw)) != desc.Size {
-		return nil, v1.Descriptor{}, errkind.New(errkind.Integrity, "reading manifest %s: %w: %d bytes stored, index.json says %d", dgst, ErrDigestMismatch, len(raw), desc.Size)
+		return nil, v1.Descriptor{}, errkind.New(errkind.Integrity, "reading manifest %s: %w: %d bytes stored, its record says %d", dgst, ErrDigestMismatch, len(raw), desc.Size)
 	}
 	return raw, desc, nil
 }
@@ -682,7 +714,7 @@ func (l *Local) readManifestBlob(dgst v1.Hash) ([]byte, error) {
 	f, _, err := l.openBlob(dgst)
 	if err != nil {
 		if errors.Is(err, ErrNotFound) {
-			return nil, errkind.New(errkind.Integrity, "manifest %s is in index.json but its blob is missing: %w", dgst, ErrNotFound)
+			return nil, errkind.New(errkind.Integrity, "manifest %s is recorded but its blob is missing: %w", dgst, ErrNotFound)
 		}
 		return nil, err
 	}
@@ -714,22 +746,33 @@ func (l *Local) Manifests(ctx context.Context, repo string) ([]v1.Descriptor, er
 	if err != nil {
 		return nil, err
 	}
-	return collectManifests(idx, func(d v1.Descriptor) bool {
+	side, err := l.listEntries(l.manifestsPath(repo), repo)
+	if err != nil {
+		return nil, err
+	}
+	return collectManifests(side, idx, func(d v1.Descriptor) bool {
 		return d.Annotations[annotationRepository] == repo
 	}), nil
 }
 
-// collectManifests returns one descriptor per distinct digest among the
-// entries keep accepts, sorted by digest.
-func collectManifests(idx *v1.IndexManifest, keep func(v1.Descriptor) bool) []v1.Descriptor {
-	seen := map[v1.Hash]bool{}
-	out := []v1.Descriptor{}
-	for _, d := range idx.Manifests {
-		if !keep(d) || seen[d.Digest] {
-			continue
+// collectManifests returns one descriptor per distinct digest among side
+// and the index.json entries keep accepts, sorted by digest.
+func collectManifests(side []v1.Descriptor, idx *v1.IndexManifest, keep func(v1.Descriptor) bool) []v1.Descriptor {
+	seen := make(map[v1.Hash]bool, len(side))
+	out := make([]v1.Descriptor, 0, len(side))
+	add := func(d v1.Descriptor) {
+		if !seen[d.Digest] {
+			seen[d.Digest] = true
+			out = append(out, annotatedDescriptor(d))
 		}
-		seen[d.Digest] = true
-		out = append(out, annotatedDescriptor(d))
+	}
+	for _, d := range side {
+		add(d)
+	}
+	for _, d := range idx.Manifests {
+		if keep(d) {
+			add(d)
+		}
 	}
 	sort.Slice(out, func(i, j int) bool { return out[i].Digest.String() < out[j].Digest.String() })
 	return out
@@ -752,11 +795,39 @@ func (l *Local) Referrers(ctx context.Context, repo string, subject v1.Hash, art
 	if err != nil {
 		return nil, err
 	}
+	dir := l.referrersPath(repo, subject)
+	var folders []string
+	if artifactType != "" {
+		folders = []string{typeKey(artifactType)}
+	} else {
+		ents, err := os.ReadDir(dir)
+		if err != nil && !errors.Is(err, fs.ErrNotExist) {
+			return nil, fmt.Errorf("listing %s: %w", l.relPath(dir), err)
+		}
+		for _, e := range ents {
+			folders = append(folders, e.Name())
+		}
+	}
+	var side []v1.Descriptor
+	for _, t := range folders {
+		ds, err := l.listEntries(filepath.Join(dir, t), repo)
+		if err != nil {
+			return nil, err
+		}
+		side = append(side, ds...)
+	}
 	s := subject.String()
-	return collectManifests(idx, func(d v1.Descriptor) bool {
+	match := func(d v1.Descriptor) bool {
 		return d.Annotations[annotationRepository] == repo && d.Annotations[annotationSubject] == s &&
 			(artifactType == "" || d.ArtifactType == artifactType)
-	}), nil
+	}
+	kept := side[:0]
+	for _, d := range side {
+		if match(d) {
+			kept = append(kept, d)
+		}
+	}
+	return collectManifests(kept, idx, match), nil
 }
 
 // plainDescriptor is an entry without annotations.
@@ -849,16 +920,15 @@ func (l *Local) setTag(ctx context.Context, repo, tag string, old *v1.Hash, desc
 				return false, errkind.New(errkind.Conflict, "tag %s points at %s, want %s: %w", ref, idx.Manifests[cur].Digest, *old, ErrConflict)
 			}
 		}
-		base := findEntry(idx, repo, desc.Digest)
-		if base < 0 {
-			return false, notFound("manifest %s in repository %s", desc.Digest, repo)
+		entry, err := l.lookupManifest(idx, repo, desc.Digest)
+		if err != nil {
+			return false, err
 		}
-		entry := idx.Manifests[base]
 		if desc.Size != 0 && desc.Size != entry.Size {
 			return false, errkind.New(errkind.BadInput, "descriptor of %s says %d bytes, the stored manifest has %d", desc.Digest, desc.Size, entry.Size)
 		}
 		if size, err := l.statBlob(desc.Digest); err != nil || size != entry.Size {
-			return false, errkind.New(errkind.Integrity, "manifest %s is in index.json but its blob is missing or of the wrong size", desc.Digest)
+			return false, errkind.New(errkind.Integrity, "manifest %s is recorded in %s but its blob is missing or of the wrong size", desc.Digest, repo)
 		}
 		if cur >= 0 && idx.Manifests[cur].Digest == desc.Digest {
 			return false, nil
@@ -886,8 +956,8 @@ func (l *Local) setTag(ctx context.Context, repo, tag string, old *v1.Hash, desc
 	return nil
 }
 
-// Untag removes repo:tag. The manifest stays in the repository (its
-// untagged entry remains). A missing tag wraps ErrNotFound.
+// Untag removes repo:tag. The manifest stays in the repository (its side
+// file remains). A missing tag wraps ErrNotFound.
 func (l *Local) Untag(ctx context.Context, repo, tag string) error {
 	if err := ValidateRepository(repo); err != nil {
 		return err
@@ -942,7 +1012,13 @@ func (l *Local) Tags(ctx context.Context, repo string) ([]string, error) {
 		}
 	}
 	if !known {
-		return nil, notFound("repository %s", repo)
+		has, err := hasEntries(l.manifestsPath(repo))
+		if err != nil {
+			return nil, fmt.Errorf("listing tags of %s: %w", repo, err)
+		}
+		if !has {
+			return nil, notFound("repository %s", repo)
+		}
 	}
 	sort.Strings(tags)
 	return compactStrings(tags), nil
@@ -961,6 +1037,23 @@ func (l *Local) Repositories(ctx context.Context) ([]string, error) {
 	repos := []string{}
 	for _, d := range idx.Manifests {
 		if r, ok := d.Annotations[annotationRepository]; ok && ValidateRepository(r) == nil {
+			repos = append(repos, r)
+		}
+	}
+	ents, err := os.ReadDir(l.path(reposDir))
+	if err != nil && !errors.Is(err, fs.ErrNotExist) {
+		return nil, fmt.Errorf("listing repositories: %w", err)
+	}
+	for _, e := range ents {
+		r, ok := repoOfFolder(e.Name())
+		if !ok {
+			continue
+		}
+		has, err := hasEntries(l.manifestsPath(r))
+		if err != nil {
+			return nil, fmt.Errorf("listing repositories: %w", err)
+		}
+		if has {
 			repos = append(repos, r)
 		}
 	}

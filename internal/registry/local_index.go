@@ -5,9 +5,12 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"io/fs"
 	"os"
 	"path/filepath"
+	"slices"
+	"sync"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
@@ -16,17 +19,91 @@ import (
 	"modelgate/internal/errkind"
 )
 
-// readIndex reads index.json. It needs no lock: writers replace the file
-// by rename, so a reader sees one whole version.
+// indexCache holds the parsed index.json of one version of the file. It is
+// valid while the path still names the same file unchanged: same device,
+// inode, size, modification and change times. The cached version's file is
+// kept open, so its inode cannot be freed and its number handed to a newer
+// index.json while the cache holds it: an atomic replace (ours or another
+// process's) always shows as another inode. A tool that rewrites the file
+// in place changes its size or times, except for a rewrite of equal size
+// within one tick of the file system clock, which no modelgate writer does.
+type indexCache struct {
+	mu  sync.Mutex
+	f   *os.File // the cached version, held open; closed when replaced
+	st  unix.Stat_t
+	idx *v1.IndexManifest // shared with callers: never modified
+}
+
+func sameVersion(a, b *unix.Stat_t) bool {
+	return a.Dev == b.Dev && a.Ino == b.Ino && a.Size == b.Size && a.Mtim == b.Mtim && a.Ctim == b.Ctim
+}
+
+func (c *indexCache) get(st *unix.Stat_t) *v1.IndexManifest {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	if c.f != nil && sameVersion(&c.st, st) {
+		return c.idx
+	}
+	return nil
+}
+
+// set caches idx as the content of f (whose fstat is st) and takes f.
+func (c *indexCache) set(f *os.File, st *unix.Stat_t, idx *v1.IndexManifest) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	if c.f != nil {
+		c.f.Close()
+	}
+	c.f, c.st, c.idx = f, *st, idx
+}
+
+// readIndex returns index.json's content. It needs no lock: writers
+// replace the file by rename, so a reader sees one whole version. The
+// result is shared (cached between calls) and must not be modified.
 func (l *Local) readIndex() (*v1.IndexManifest, error) {
 	p := l.path(indexFile)
-	b, err := os.ReadFile(p)
+	var st unix.Stat_t
+	if err := unix.Stat(p, &st); err != nil {
+		if errors.Is(err, fs.ErrNotExist) {
+			return nil, errkind.New(errkind.Integrity, "store %s has no %s", l.dir, indexFile)
+		}
+		return nil, fmt.Errorf("reading %s: %w", p, err)
+	}
+	if idx := l.index.get(&st); idx != nil {
+		return idx, nil
+	}
+	f, err := os.Open(p)
 	if errors.Is(err, fs.ErrNotExist) {
 		return nil, errkind.New(errkind.Integrity, "store %s has no %s", l.dir, indexFile)
 	}
 	if err != nil {
 		return nil, fmt.Errorf("reading %s: %w", p, err)
 	}
+	keep := false
+	defer func() {
+		if !keep {
+			f.Close()
+		}
+	}()
+	// The identity of what is read comes from the open file, not from the
+	// path, which may have been replaced since the stat above.
+	if err := unix.Fstat(int(f.Fd()), &st); err != nil {
+		return nil, fmt.Errorf("reading %s: %w", p, err)
+	}
+	b, err := io.ReadAll(f)
+	if err != nil {
+		return nil, fmt.Errorf("reading %s: %w", p, err)
+	}
+	idx, err := parseIndex(p, b)
+	if err != nil {
+		return nil, err
+	}
+	keep = true
+	l.index.set(f, &st, idx)
+	return idx, nil
+}
+
+func parseIndex(p string, b []byte) (*v1.IndexManifest, error) {
 	var idx v1.IndexManifest
 	if err := json.Unmarshal(b, &idx); err != nil {
 		return nil, errkind.New(errkind.Integrity, "reading %s: not a valid image index: %w", p, err)
@@ -37,7 +114,8 @@ func (l *Local) readIndex() (*v1.IndexManifest, error) {
 	return &idx, nil
 }
 
-// writeIndex atomically replaces index.json. Callers hold the lock.
+// writeIndex atomically replaces index.json and caches what it wrote.
+// Callers hold the lock and do not modify idx afterwards.
 func (l *Local) writeIndex(idx *v1.IndexManifest) error {
 	if idx.Manifests == nil {
 		idx.Manifests = []v1.Descriptor{}
@@ -49,26 +127,39 @@ func (l *Local) writeIndex(idx *v1.IndexManifest) error {
 	if err != nil {
 		return fmt.Errorf("encoding %s: %w", indexFile, err)
 	}
-	return l.writeFileAtomic(l.path(indexFile), append(b, '\n'))
+	f, err := l.writeFileAtomic(l.path(indexFile), append(b, '\n'), true, true)
+	if err != nil {
+		return err
+	}
+	var st unix.Stat_t
+	if err := unix.Fstat(int(f.Fd()), &st); err != nil {
+		f.Close()
+		return nil // written; the next read parses it again
+	}
+	l.index.set(f, &st, idx)
+	return nil
 }
 
-// updateIndex runs fn on the current index under the exclusive lock and,
-// when fn reports a change, writes the result back atomically.
+// updateIndex runs fn on a copy of the current index under the exclusive
+// lock and, when fn reports a change, writes the result back atomically.
+// fn may change the copy's Manifests slice but not the maps of its entries.
 func (l *Local) updateIndex(ctx context.Context, fn func(*v1.IndexManifest) (bool, error)) error {
 	unlock, err := l.lock(ctx)
 	if err != nil {
 		return err
 	}
 	defer unlock()
-	idx, err := l.readIndex()
+	cur, err := l.readIndex()
 	if err != nil {
 		return err
 	}
-	changed, err := fn(idx)
+	idx := *cur
+	idx.Manifests = slices.Clone(cur.Manifests)
+	changed, err := fn(&idx)
 	if err != nil || !changed {
 		return err
 	}
-	return l.writeIndex(idx)
+	return l.writeIndex(&idx)
 }
 
 // lock takes the store's exclusive lock: a mutex for this process's
@@ -103,43 +194,58 @@ func (l *Local) lock(ctx context.Context) (func(), error) {
 	}, nil
 }
 
-// writeFileAtomic writes data to a temporary file in .modelgate/tmp,
-// syncs it, renames it to dst and syncs dst's folder.
-func (l *Local) writeFileAtomic(dst string, data []byte) (err error) {
+// writeFileAtomic writes data to a temporary file in .modelgate/tmp and
+// renames it to dst, so that readers see the old or the new file, never a
+// part. When durable, the file is synced before the rename and dst's folder
+// after it; otherwise the caller makes the writes durable (syncfs). When
+// keep, the file is returned open (it is dst's new inode); otherwise the
+// returned file is nil.
+func (l *Local) writeFileAtomic(dst string, data []byte, durable, keep bool) (*os.File, error) {
 	f, err := os.CreateTemp(l.path(tmpDir), "file-*")
 	if err != nil {
-		return fmt.Errorf("writing %s: %w", dst, err)
+		return nil, fmt.Errorf("writing %s: %w", dst, err)
 	}
 	tmp := f.Name()
-	defer func() {
-		if err != nil {
-			os.Remove(tmp)
+	fail := func(err error) (*os.File, error) {
+		if f != nil {
+			f.Close()
 		}
-	}()
+		os.Remove(tmp)
+		return nil, fmt.Errorf("writing %s: %w", dst, err)
+	}
 	if _, err := f.Write(data); err != nil {
-		f.Close()
-		return fmt.Errorf("writing %s: %w", dst, err)
+		return fail(err)
 	}
-	if err := f.Sync(); err != nil {
-		f.Close()
-		return fmt.Errorf("writing %s: %w", dst, err)
+	if err := f.Chmod(0o644); err != nil {
+		return fail(err)
 	}
-	if err := f.Close(); err != nil {
-		return fmt.Errorf("writing %s: %w", dst, err)
+	if durable {
+		if err := f.Sync(); err != nil {
+			return fail(err)
+		}
 	}
-	if err := os.Chmod(tmp, 0o644); err != nil {
-		return fmt.Errorf("writing %s: %w", dst, err)
+	if !keep {
+		err := f.Close()
+		f = nil
+		if err != nil {
+			return fail(err)
+		}
 	}
 	if err := os.Rename(tmp, dst); err != nil {
-		return fmt.Errorf("writing %s: %w", dst, err)
+		return fail(err)
 	}
-	if err := syncDir(filepath.Dir(dst)); err != nil {
-		return fmt.Errorf("writing %s: %w", dst, err)
+	if durable {
+		if err := syncDir(filepath.Dir(dst)); err != nil {
+			if f != nil {
+				f.Close()
+			}
+			return nil, fmt.Errorf("writing %s: %w", dst, err)
+		}
 	}
-	return nil
+	return f, nil
 }
 
-// syncDir makes a rename in dir durable.
+// syncDir makes a rename or a new entry in dir durable.
 func syncDir(dir string) error {
 	d, err := os.Open(dir)
 	if err != nil {

@@ -94,8 +94,11 @@ func TestLocalMultiProcess(t *testing.T) {
 		}
 	}
 	idx := readIndexFile(t, dir) // fails the test on torn or invalid JSON
-	if len(idx.Manifests) != 2*processes {
-		t.Errorf("index.json has %d entries, want %d (one untagged and one tag entry per process)", len(idx.Manifests), 2*processes)
+	if len(idx.Manifests) != processes {
+		t.Errorf("index.json has %d entries, want %d (one tag entry per process)", len(idx.Manifests), processes)
+	}
+	if side := readSideFiles(t, dir); len(side) != processes {
+		t.Errorf("%d side files, want %d (one per manifest)", len(side), processes)
 	}
 	referenced := referencedBy(arts...)
 	referenced[processShared.Digest] = true

@@ -5,8 +5,10 @@ import (
 	"crypto/sha256"
 	"encoding/hex"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"io"
+	"io/fs"
 	"os"
 	"path/filepath"
 	"regexp"
@@ -17,15 +19,21 @@ import (
 var hexPattern = regexp.MustCompile(`^[a-f0-9]{64}$`)
 
 // Scrub checks the store's files. Damage: a blob whose content does not
-// hash to its name, an index.json entry whose blob is missing or of another
-// size (for a tag entry: a dangling tag), an unreadable index.json or
-// oci-layout. Hints: leftover temporary files in .modelgate/tmp (an
-// interrupted write, or one in progress now), unexpected files in
-// blobs/sha256, and blobs that are neither in referenced nor a manifest
-// recorded in index.json. Findings come in a stable order: layout files,
-// blobs by name, index entries in file order, temporary files by name.
-// The error is non-nil only when the check itself could not run (for
-// example ctx was cancelled); what it found so far is returned with it.
+// hash to its name; a side file that is not a valid record of the
+// manifest its name and folder say, or whose manifest blob is missing or
+// of another size; a referrer side file with no manifest side file; an
+// index.json entry whose blob is missing or of another size (for a tag
+// entry: a dangling tag); an unreadable index.json or oci-layout. Hints:
+// leftover temporary files in .modelgate/tmp (an interrupted write, or one
+// in progress now); a manifest side file whose referrer side file is
+// missing (an interrupted put: putting the manifest again completes it);
+// unexpected files in blobs/sha256 or .modelgate/repos; blobs that are
+// neither in referenced nor a recorded manifest. Findings come in a stable
+// order: layout files, blobs by name, side files by repository and name,
+// index entries in file order, unreferenced blobs by name, temporary files
+// by name. The error is non-nil only when the check itself could not run
+// (for example ctx was cancelled); what it found so far is returned with
+// it.
 func (l *Local) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Finding, error) {
 	var out []Finding
 	damage := func(where, format string, args ...any) {
@@ -84,6 +92,22 @@ func (l *Local) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Findi
 	}
 
 	isManifest := map[string]bool{}
+	checkBlob := func(where, what string, d v1.Descriptor) {
+		isManifest[d.Digest.Hex] = true
+		size, ok := present[d.Digest.Hex]
+		switch {
+		case !ok:
+			damage(where, "%s names manifest %s but its blob is missing", what, d.Digest)
+		case size != d.Size:
+			damage(where, "%s says manifest %s has %d bytes, its blob has %d", what, d.Digest, d.Size, size)
+		}
+	}
+
+	mark := func(hex string) { isManifest[hex] = true }
+	if err := l.scrubSideFiles(ctx, hint, damage, checkBlob, mark); err != nil {
+		return out, err
+	}
+
 	for _, d := range idx.Manifests {
 		repo := d.Annotations[annotationRepository]
 		ref := d.Annotations[annotationRefName]
@@ -98,14 +122,7 @@ func (l *Local) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Findi
 			hint(where, "entry digest %q is not sha256; not checked", d.Digest.String())
 			continue
 		}
-		isManifest[d.Digest.Hex] = true
-		size, ok := present[d.Digest.Hex]
-		switch {
-		case !ok:
-			damage(where, "index.json names manifest %s but its blob is missing", d.Digest)
-		case size != d.Size:
-			damage(where, "index.json says manifest %s has %d bytes, its blob has %d", d.Digest, d.Size, size)
-		}
+		checkBlob(where, "index.json", d)
 	}
 
 	for _, e := range ents {
@@ -126,6 +143,129 @@ func (l *Local) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Findi
 		hint(tmpDir+"/"+e.Name(), "leftover temporary file (an interrupted write, or one in progress now); it can be removed when no modelgate process is writing")
 	}
 	return out, nil
+}
+
+type reportFunc func(where, format string, args ...any)
+
+// scrubSideFiles checks every file under .modelgate/repos, calls checkBlob
+// for every manifest a manifest side file records, and mark for the digest
+// every side file is named by (its blob is a manifest, not a leftover,
+// even when the side file is damaged).
+func (l *Local) scrubSideFiles(ctx context.Context, hint, damage reportFunc, checkBlob func(where, what string, d v1.Descriptor), mark func(hex string)) error {
+	root := l.path(reposDir)
+	repoDirs, err := os.ReadDir(root)
+	if err != nil {
+		if errors.Is(err, fs.ErrNotExist) {
+			return nil
+		}
+		return fmt.Errorf("scrubbing %s: %w", reposDir, err)
+	}
+	unexpected := func(p string) { hint(l.relPath(p), "unexpected file: not part of the store's layout") }
+	for _, rd := range repoDirs {
+		repo, ok := repoOfFolder(rd.Name())
+		rp := filepath.Join(root, rd.Name())
+		if !ok || !rd.IsDir() {
+			unexpected(rp)
+			continue
+		}
+		subs, err := os.ReadDir(rp)
+		if err != nil {
+			damage(l.relPath(rp), "cannot list: %v", err)
+			continue
+		}
+		for _, sub := range subs {
+			if n := sub.Name(); !sub.IsDir() || (n != manifestsSub && n != referrersSub) {
+				unexpected(filepath.Join(rp, n))
+			}
+		}
+
+		manifests, err := os.ReadDir(filepath.Join(rp, manifestsSub))
+		if err != nil && !errors.Is(err, fs.ErrNotExist) {
+			damage(l.relPath(filepath.Join(rp, manifestsSub)), "cannot list: %v", err)
+		}
+		for _, e := range manifests {
+			if err := ctx.Err(); err != nil {
+				return err
+			}
+			p := filepath.Join(rp, manifestsSub, e.Name())
+			if !hexPattern.MatchString(e.Name()) {
+				unexpected(p)
+				continue
+			}
+			mark(e.Name())
+			d, err := l.readEntry(p, repo, v1.Hash{Algorithm: "sha256", Hex: e.Name()})
+			if err != nil {
+				damage(l.relPath(p), "%v", err)
+				continue
+			}
+			where := repo + "@" + d.Digest.String()
+			checkBlob(where, "side file "+l.relPath(p), d)
+			if s := d.Annotations[annotationSubject]; s != "" {
+				subject, err := v1.NewHash(s)
+				if err != nil || checkDigest(subject) != nil {
+					damage(l.relPath(p), "subject %q is not a sha256 digest", s)
+					continue
+				}
+				if _, err := os.Lstat(l.referrerEntryPath(repo, subject, d.ArtifactType, d.Digest)); err != nil {
+					hint(where, "manifest has subject %s but no referrer side file (an interrupted put; putting the manifest again completes it)", subject)
+				}
+			}
+		}
+
+		refRoot := filepath.Join(rp, referrersSub)
+		subjects, err := os.ReadDir(refRoot)
+		if err != nil && !errors.Is(err, fs.ErrNotExist) {
+			damage(l.relPath(refRoot), "cannot list: %v", err)
+		}
+		for _, sd := range subjects {
+			sp := filepath.Join(refRoot, sd.Name())
+			if !sd.IsDir() || !hexPattern.MatchString(sd.Name()) {
+				unexpected(sp)
+				continue
+			}
+			subject := "sha256:" + sd.Name()
+			typeDirs, err := os.ReadDir(sp)
+			if err != nil {
+				damage(l.relPath(sp), "cannot list: %v", err)
+				continue
+			}
+			for _, td := range typeDirs {
+				tp := filepath.Join(sp, td.Name())
+				if !td.IsDir() {
+					unexpected(tp)
+					continue
+				}
+				files, err := os.ReadDir(tp)
+				if err != nil {
+					damage(l.relPath(tp), "cannot list: %v", err)
+					continue
+				}
+				for _, e := range files {
+					if err := ctx.Err(); err != nil {
+						return err
+					}
+					p := filepath.Join(tp, e.Name())
+					if !hexPattern.MatchString(e.Name()) {
+						unexpected(p)
+						continue
+					}
+					mark(e.Name())
+					d, err := l.readEntry(p, repo, v1.Hash{Algorithm: "sha256", Hex: e.Name()})
+					switch {
+					case err != nil:
+						damage(l.relPath(p), "%v", err)
+					case d.Annotations[annotationSubject] != subject || typeKey(d.ArtifactType) != td.Name():
+						damage(l.relPath(p), "records a manifest with subject %q and artifactType %q, not the ones its folders say", d.Annotations[annotationSubject], d.ArtifactType)
+					default:
+						if _, err := os.Lstat(l.manifestEntryPath(repo, d.Digest)); err != nil {
+							damage(l.relPath(p), "referrer %s is not recorded in repository %s (no side file %s)", d.Digest, repo, l.relPath(l.manifestEntryPath(repo, d.Digest)))
+						}
+					}
+				}
+			}
+		}
+	}
+	return nil
 }
 
 // hashFile returns the hex sha256 and size of a file's content.

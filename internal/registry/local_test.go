@@ -5,11 +5,14 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"fmt"
 	"io"
+	"io/fs"
 	"os"
 	"path/filepath"
 	"slices"
 	"strings"
+	"syscall"
 	"testing"
 
 	"github.com/google/go-cmp/cmp"
@@ -87,20 +90,31 @@ func TestLocalLayoutFiles(t *testing.T) {
 	}
 
 	const at = "application/vnd.modelgate.encoder.v1"
+	modelEntry := v1.Descriptor{MediaType: types.OCIManifestSchema1, Size: md.Size, Digest: md.Digest, ArtifactType: at, Annotations: map[string]string{
+		"dev.modelgate.repository":          repo,
+		"org.opencontainers.image.revision": "4f2a9c1",
+	}}
+	reportEntry := v1.Descriptor{MediaType: types.OCIManifestSchema1, Size: rd.Size, Digest: rd.Digest, ArtifactType: "application/vnd.modelgate.report.v1", Annotations: map[string]string{
+		"dev.modelgate.repository": repo,
+		"dev.modelgate.subject":    md.Digest.String(),
+	}}
+	// index.json holds the tag only; the manifests are recorded in side
+	// files (see the Local doc comment).
 	want := []v1.Descriptor{
-		{MediaType: types.OCIManifestSchema1, Size: md.Size, Digest: md.Digest, ArtifactType: at, Annotations: map[string]string{
-			"dev.modelgate.repository":          repo,
-			"org.opencontainers.image.revision": "4f2a9c1",
-		}},
 		{MediaType: types.OCIManifestSchema1, Size: md.Size, Digest: md.Digest, ArtifactType: at, Annotations: map[string]string{
 			"dev.modelgate.repository":          repo,
 			"org.opencontainers.image.revision": "4f2a9c1",
 			"org.opencontainers.image.ref.name": repo + ":prod",
 		}},
-		{MediaType: types.OCIManifestSchema1, Size: rd.Size, Digest: rd.Digest, ArtifactType: "application/vnd.modelgate.report.v1", Annotations: map[string]string{
-			"dev.modelgate.repository": repo,
-			"dev.modelgate.subject":    md.Digest.String(),
-		}},
+	}
+	side := ".modelgate/repos/podcast+listener-encoder/"
+	wantSide := map[string]v1.Descriptor{
+		side + "manifests/" + md.Digest.Hex: modelEntry,
+		side + "manifests/" + rd.Digest.Hex: reportEntry,
+		side + "referrers/" + md.Digest.Hex + "/application%2Fvnd.modelgate.report.v1/" + rd.Digest.Hex: reportEntry,
+	}
+	if diff := cmp.Diff(wantSide, readSideFiles(t, l.Dir())); diff != "" {
+		t.Errorf("side files (-want +got):\n%s", diff)
 	}
 	before, err := os.ReadFile(filepath.Join(l.Dir(), "index.json"))
 	if err != nil {
@@ -110,7 +124,9 @@ func TestLocalLayoutFiles(t *testing.T) {
 		t.Errorf("index.json entries (-want +got):\n%s", diff)
 	}
 
-	// Repeating puts and the same tag leaves index.json byte-identical.
+	// Repeating puts and the same tag leaves index.json byte-identical and
+	// writes no side file again.
+	sideBefore := sideFileStats(t, l.Dir())
 	storetest.Push(t, l, repo, "prod", model)
 	storetest.Push(t, l, repo, "", report)
 	after, err := os.ReadFile(filepath.Join(l.Dir(), "index.json"))
@@ -119,6 +135,9 @@ func TestLocalLayoutFiles(t *testing.T) {
 	}
 	if !bytes.Equal(before, after) {
 		t.Errorf("index.json changed on repeated puts:\n%s\n---\n%s", before, after)
+	}
+	if diff := cmp.Diff(sideBefore, sideFileStats(t, l.Dir())); diff != "" {
+		t.Errorf("side files rewritten on repeated puts (-before +after):\n%s", diff)
 	}
 
 	// Retagging replaces the tag entry: still one entry per ref.name.
@@ -152,6 +171,57 @@ func TestLocalLayoutFiles(t *testing.T) {
 	if l.String() != "oci:"+l.Dir() {
 		t.Errorf("String() = %q", l.String())
 	}
+}
+
+// readSideFiles returns every file under DIR/.modelgate/repos, by path
+// relative to DIR, decoded as a descriptor.
+func readSideFiles(t *testing.T, dir string) map[string]v1.Descriptor {
+	t.Helper()
+	out := map[string]v1.Descriptor{}
+	root := filepath.Join(dir, ".modelgate", "repos")
+	err := filepath.WalkDir(root, func(p string, e fs.DirEntry, err error) error {
+		if err != nil || e.IsDir() {
+			return err
+		}
+		b, err := os.ReadFile(p)
+		if err != nil {
+			return err
+		}
+		var d v1.Descriptor
+		if err := json.Unmarshal(b, &d); err != nil {
+			return fmt.Errorf("%s: %w", p, err)
+		}
+		rel, _ := filepath.Rel(dir, p)
+		out[filepath.ToSlash(rel)] = d
+		return nil
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return out
+}
+
+// sideFileStats returns the inode and modification time of every file
+// under DIR/.modelgate/repos: a rewrite shows as a change.
+func sideFileStats(t *testing.T, dir string) map[string]string {
+	t.Helper()
+	out := map[string]string{}
+	root := filepath.Join(dir, ".modelgate", "repos")
+	err := filepath.WalkDir(root, func(p string, e fs.DirEntry, err error) error {
+		if err != nil || e.IsDir() {
+			return err
+		}
+		fi, err := os.Stat(p)
+		if err != nil {
+			return err
+		}
+		out[p] = fmt.Sprintf("inode %d mtime %d", fi.Sys().(*syscall.Stat_t).Ino, fi.ModTime().UnixNano())
+		return nil
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return out
 }
 
 func TestLocalUntag(t *testing.T) {
@@ -323,9 +393,16 @@ func TestLocalCorruption(t *testing.T) {
 	const repo = "podcast/listener-encoder"
 	type setup struct {
 		l   *registry.Local
-		art storetest.Artifact
+		art storetest.Artifact // tagged prod
+		rep storetest.Artifact // untagged report with subject art
 	}
 	blobFile := func(s setup, d v1.Hash) string { return filepath.Join(s.l.Dir(), "blobs", "sha256", d.Hex) }
+	side := ".modelgate/repos/podcast+listener-encoder/"
+	manifestSide := func(s setup) string { return side + "manifests/" + s.rep.Manifest.Digest.Hex }
+	referrerSide := func(s setup) string {
+		return side + "referrers/" + s.art.Manifest.Digest.Hex + "/application%2Fvnd.modelgate.report.v1/" + s.rep.Manifest.Digest.Hex
+	}
+	abs := func(s setup, rel string) string { return filepath.Join(s.l.Dir(), filepath.FromSlash(rel)) }
 	cases := []struct {
 		name string
 		// damage changes the files and returns where Scrub must report
@@ -383,6 +460,94 @@ func TestLocalCorruption(t *testing.T) {
 			},
 		},
 		{
+			name: "untagged manifest blob missing",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				if err := os.Remove(blobFile(s, s.rep.Manifest.Digest)); err != nil {
+					t.Fatal(err)
+				}
+				return []string{repo + "@" + s.rep.Manifest.Digest.String()}, registry.SeverityDamage
+			},
+			check: func(t *testing.T, s setup) {
+				_, _, err := s.l.Manifest(context.Background(), repo, s.rep.Manifest.Digest)
+				if !errors.Is(err, registry.ErrNotFound) || errkind.Of(err) != errkind.Integrity {
+					t.Errorf("Manifest whose blob is missing: %v, want ErrNotFound of kind integrity", err)
+				}
+			},
+		},
+		{
+			name: "torn side file",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				writeFile(t, abs(s, manifestSide(s)), []byte(`{"mediaType":`))
+				return []string{manifestSide(s)}, registry.SeverityDamage
+			},
+			check: func(t *testing.T, s setup) {
+				_, err := s.l.Manifests(context.Background(), repo)
+				if errkind.Of(err) != errkind.Integrity {
+					t.Errorf("Manifests with a torn side file: %v, want integrity", err)
+				}
+				_, _, err = s.l.Manifest(context.Background(), repo, s.rep.Manifest.Digest)
+				if errkind.Of(err) != errkind.Integrity {
+					t.Errorf("Manifest with a torn side file: %v, want integrity", err)
+				}
+			},
+		},
+		{
+			name: "side file of another manifest",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				b, err := os.ReadFile(abs(s, side+"manifests/"+s.art.Manifest.Digest.Hex))
+				if err != nil {
+					t.Fatal(err)
+				}
+				writeFile(t, abs(s, referrerSide(s)), b)
+				return []string{referrerSide(s)}, registry.SeverityDamage
+			},
+			check: func(t *testing.T, s setup) {
+				_, err := s.l.Referrers(context.Background(), repo, s.art.Manifest.Digest, "")
+				if errkind.Of(err) != errkind.Integrity {
+					t.Errorf("Referrers with a misnamed side file: %v, want integrity", err)
+				}
+			},
+		},
+		{
+			name: "referrer side file without manifest side file",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				if err := os.Remove(abs(s, manifestSide(s))); err != nil {
+					t.Fatal(err)
+				}
+				return []string{referrerSide(s)}, registry.SeverityDamage
+			},
+		},
+		{
+			name: "manifest side file without referrer side file",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				if err := os.Remove(abs(s, referrerSide(s))); err != nil {
+					t.Fatal(err)
+				}
+				return []string{repo + "@" + s.rep.Manifest.Digest.String()}, registry.SeverityHint
+			},
+			check: func(t *testing.T, s setup) {
+				// Putting the manifest again completes its record.
+				ctx := context.Background()
+				if ds, err := s.l.Referrers(ctx, repo, s.art.Manifest.Digest, ""); err != nil || len(ds) != 0 {
+					t.Errorf("Referrers without the referrer side file = %v, %v", ds, err)
+				}
+				storetest.Push(t, s.l, repo, "", s.rep)
+				if ds, err := s.l.Referrers(ctx, repo, s.art.Manifest.Digest, ""); err != nil || len(ds) != 1 {
+					t.Errorf("Referrers after putting the manifest again = %v, %v", ds, err)
+				}
+				if err := os.Remove(abs(s, referrerSide(s))); err != nil {
+					t.Fatal(err)
+				}
+			},
+		},
+		{
+			name: "unexpected file among side files",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				writeFile(t, abs(s, side+"notes.txt"), []byte("listener survey"))
+				return []string{side + "notes.txt"}, registry.SeverityHint
+			},
+		},
+		{
 			name: "leftover temp file",
 			damage: func(t *testing.T, s setup) ([]string, string) {
 				writeFile(t, filepath.Join(s.l.Dir(), ".modelgate", "tmp", "blob-123456"), []byte("half a blob"))
@@ -404,8 +569,11 @@ func TestLocalCorruption(t *testing.T) {
 		t.Run(strings.ReplaceAll(c.name, " ", "_"), func(t *testing.T) {
 			l := openLocal(t)
 			s := setup{l: l, art: storetest.NewArtifact(11, "application/vnd.modelgate.encoder.v1", nil, nil)}
+			subj := s.art.Descriptor()
+			s.rep = storetest.NewArtifact(13, "application/vnd.modelgate.report.v1", &subj, nil)
 			storetest.Push(t, l, repo, "prod", s.art)
-			referenced := referencedBy(s.art)
+			storetest.Push(t, l, repo, "", s.rep)
+			referenced := referencedBy(s.art, s.rep)
 			if fs := scrubFindings(t, l, referenced); len(fs) != 0 {
 				t.Fatalf("clean store: Scrub found %+v", fs)
 			}
@@ -509,4 +677,127 @@ func FuzzLocalPutManifest(f *testing.F) {
 			t.Fatalf("accepted manifest reads back as %q, %v", got, err)
 		}
 	})
+}
+
+// TestLocalIndexHoldsOnlyTags pushes referrers of several types, untagged
+// models and release-style tag moves: index.json keeps one entry per tag
+// and nothing else, while Referrers and Manifests still find everything.
+func TestLocalIndexHoldsOnlyTags(t *testing.T) {
+	ctx := context.Background()
+	l := openLocal(t)
+	const repo = "podcast/promo-scorer"
+	model := storetest.Push(t, l, repo, "prod", storetest.NewArtifact(300, "application/vnd.modelgate.scorer.v1", nil, nil))
+	cand := storetest.Push(t, l, repo, "candidate", storetest.NewArtifact(301, "application/vnd.modelgate.scorer.v1", nil, nil))
+	subj := model
+	subj.ArtifactType = ""
+	types := []string{"application/vnd.modelgate.report.v1", "application/vnd.modelgate.approval.v1", "application/vnd.modelgate.release.v1"}
+	want := map[string][]string{}
+	var all []string
+	for i := range 30 {
+		at := types[i%len(types)]
+		d := storetest.Push(t, l, repo, "", storetest.NewArtifact(uint64(310+i), at, &subj, map[string]string{"dev.modelgate.seq": fmt.Sprint(i)}))
+		want[at] = append(want[at], d.Digest.String())
+		all = append(all, d.Digest.String())
+		if at == types[2] { // a release record moves the head pointer
+			if err := l.Tag(ctx, repo, "release-prod", d); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	for i := range 5 {
+		storetest.Push(t, l, repo, "", storetest.NewArtifact(uint64(350+i), "application/vnd.modelgate.scorer.v1", nil, nil))
+	}
+	if err := l.SwapTag(ctx, repo, "prod", model.Digest, cand); err != nil {
+		t.Fatal(err)
+	}
+
+	idx := readIndexFile(t, l.Dir())
+	var refs []string
+	for _, d := range idx.Manifests {
+		r := d.Annotations["org.opencontainers.image.ref.name"]
+		if r == "" {
+			t.Errorf("index.json entry without a tag: %+v", d)
+		}
+		refs = append(refs, r)
+	}
+	slices.Sort(refs)
+	if wantRefs := []string{repo + ":candidate", repo + ":prod", repo + ":release-prod"}; !slices.Equal(refs, wantRefs) {
+		t.Errorf("index.json tags = %q, want %q", refs, wantRefs)
+	}
+
+	for at, ds := range want {
+		got, err := l.Referrers(ctx, repo, model.Digest, at)
+		slices.Sort(ds)
+		if err != nil || !slices.Equal(digestStrings(got), ds) {
+			t.Errorf("Referrers(%s) = %q, %v; want %q", at, digestStrings(got), err, ds)
+		}
+	}
+	got, err := l.Referrers(ctx, repo, model.Digest, "")
+	slices.Sort(all)
+	if err != nil || !slices.Equal(digestStrings(got), all) {
+		t.Errorf("Referrers(all) = %d descriptors, %v; want %d", len(got), err, len(all))
+	}
+	if ms, err := l.Manifests(ctx, repo); err != nil || len(ms) != 2+30+5 {
+		t.Errorf("Manifests = %d descriptors, %v; want %d", len(ms), err, 2+30+5)
+	}
+}
+
+func digestStrings(ds []v1.Descriptor) []string {
+	out := []string{}
+	for _, d := range ds {
+		out = append(out, d.Digest.String())
+	}
+	return out
+}
+
+// TestLocalSeesOtherWriters: a Local keeps index.json parsed between
+// calls; it must still see every change another Local (another process)
+// makes, also many swaps between two targets of the same size in a row
+// (the new index.json then has the old one's size and possibly the same
+// modification time), and a rewrite in place by another tool.
+func TestLocalSeesOtherWriters(t *testing.T) {
+	ctx := context.Background()
+	l1 := openLocal(t)
+	l2, err := registry.OpenLocal(l1.Dir())
+	if err != nil {
+		t.Fatal(err)
+	}
+	const repo = "podcast/shows"
+	x := storetest.Push(t, l1, repo, "prod", storetest.NewArtifact(400, "application/vnd.modelgate.encoder.v1", nil, nil))
+	y := storetest.Push(t, l1, repo, "", storetest.NewArtifact(401, "application/vnd.modelgate.encoder.v1", nil, nil))
+	if x.Size != y.Size {
+		t.Fatalf("test artifacts differ in size (%d, %d); the test needs equal sizes", x.Size, y.Size)
+	}
+	cur := x
+	for i := range 200 {
+		next := y
+		if cur.Digest == y.Digest {
+			next = x
+		}
+		if err := l2.SwapTag(ctx, repo, "prod", cur.Digest, next); err != nil {
+			t.Fatalf("swap %d: %v", i, err)
+		}
+		if got, err := l1.Resolve(ctx, repo, "prod"); err != nil || got.Digest != next.Digest {
+			t.Fatalf("swap %d: the other Local resolves prod to %v, %v; want %s", i, got.Digest, err, next.Digest)
+		}
+		cur = next
+	}
+
+	// Another tool rewrites index.json in place (not by rename), adding an
+	// entry of its own.
+	idx := readIndexFile(t, l1.Dir())
+	idx.Manifests = append(idx.Manifests, v1.Descriptor{MediaType: x.MediaType, Size: x.Size, Digest: x.Digest,
+		Annotations: map[string]string{"dev.modelgate.repository": "podcast/episodes-played", "org.opencontainers.image.ref.name": "podcast/episodes-played:latest"}})
+	raw, _ := json.Marshal(idx)
+	f, err := os.OpenFile(filepath.Join(l1.Dir(), "index.json"), os.O_WRONLY|os.O_TRUNC, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := f.Write(raw); err != nil {
+		t.Fatal(err)
+	}
+	f.Close()
+	if got, err := l1.Resolve(ctx, "podcast/episodes-played", "latest"); err != nil || got.Digest != x.Digest {
+		t.Errorf("after an in-place rewrite Resolve = %v, %v", got.Digest, err)
+	}
 }
