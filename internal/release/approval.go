@@ -113,6 +113,8 @@ type ApprovalCheck struct {
 	Counted bool `json:"counted"`
 	// Why says why it does not count ("" when it counts).
 	Why string `json:"why,omitempty"`
+
+	integrity bool // the stored approval is damaged
 }
 
 // approvalContext is what an approval must match to count.
@@ -170,7 +172,7 @@ func checkApproval(ctx context.Context, store registry.Store, repo string, d v1.
 	ac := ApprovalCheck{Digest: d.String()}
 	s, err := readSigned(ctx, store, repo, d, ArtifactTypeApproval)
 	if err != nil {
-		ac.Why = "unreadable: " + err.Error()
+		ac.Why, ac.integrity = "unreadable: "+err.Error(), errkind.Is(err, errkind.Integrity)
 		return ac
 	}
 	st := &s.Envelope.Statement

@@ -169,10 +169,15 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 		return nil, err
 	}
 	if j.Counted < rule.Approvals.Required {
+		damaged := false
 		for _, a := range j.Approvals {
 			if !a.Counted {
 				j.Problems = append(j.Problems, fmt.Sprintf("approval %s by %s does not count: %s", shortHex(a.Digest), a.Approver, a.Why))
 			}
+			damaged = damaged || a.integrity
+		}
+		if damaged {
+			fail(errkind.Integrity, "an approval of this candidate is damaged in the store")
 		}
 		fail(errkind.Unauthorized, "%d of the %d approvals the policy requires (from distinct trusted keys; %d stored approval(s) judged)", j.Counted, rule.Approvals.Required, len(j.Approvals))
 	}

@@ -195,6 +195,7 @@ func checkReport(ctx context.Context, store registry.Store, repo string, d v1.Ha
 	if len(b.Signers) > 0 {
 		if s, err := verifyReportSignature(ctx, store, repo, a, raw, &rep, b.Signers); err != nil {
 			why = append(why, err.Error())
+			rc.integrity = errkind.Is(err, errkind.Integrity)
 		} else {
 			rc.SignedBy = s
 		}
@@ -231,7 +232,7 @@ func verifyReportSignature(ctx context.Context, store registry.Store, repo strin
 	}
 	raw, err := artifact.ReadBlob(ctx, store, repo, *ld, maxEnvelopeBytes)
 	if err != nil {
-		return "", fmt.Errorf("its signature is unreadable: %v", err)
+		return "", fmt.Errorf("its signature is unreadable: %w", err)
 	}
 	env, err := ParseEnvelope(raw)
 	if err != nil {
