@@ -1,0 +1,416 @@
+package main
+
+import (
+	"bytes"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"math/rand/v2"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"slices"
+	"strings"
+	"syscall"
+	"testing"
+	"time"
+)
+
+// The crash suite kills modelgate with SIGKILL part way through copy,
+// promote and rollback on the local store (push: TestCrashDuringPush) and
+// checks what must hold whatever the kill point: verify passes (hints about
+// unreferenced blobs allowed), every tag points at its old or its new
+// target, and the release log either verifies or reports exactly the
+// documented interrupted state (tag moved, head pointer not advanced),
+// which the next promote or rollback completes. A seeded RNG picks the kill
+// points, spread over the measured duration of an uninterrupted run; the
+// timing only decides where the kills land, no assertion depends on it.
+
+// killed is the outcome of a modelgate process sent SIGKILL after a delay.
+type killed struct {
+	finished bool   // it exited by itself before the signal
+	res      result // its exit code and output, when finished
+}
+
+// runKilled starts modelgate with args against store and sends it SIGKILL
+// after delay, unless it has exited by then.
+func runKilled(t *testing.T, store string, delay time.Duration, args ...string) killed {
+	t.Helper()
+	cmd := exec.Command(mgBinary, args...)
+	cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
+	var so, se bytes.Buffer
+	cmd.Stdout, cmd.Stderr = &so, &se
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	timer := time.AfterFunc(delay, func() { _ = cmd.Process.Signal(syscall.SIGKILL) })
+	err := cmd.Wait()
+	timer.Stop()
+	var ee *exec.ExitError
+	switch {
+	case err == nil:
+		return killed{finished: true, res: result{0, so.String(), se.String()}}
+	case errors.As(err, &ee):
+		if ws, ok := ee.Sys().(syscall.WaitStatus); ok && ws.Signaled() {
+			return killed{}
+		}
+		return killed{finished: true, res: result{ee.ExitCode(), so.String(), se.String()}}
+	}
+	t.Fatalf("running modelgate %v: %v", args, err)
+	return killed{}
+}
+
+// timedMG runs modelgate to completion (exit 0 required) and returns how
+// long it took: the span the kill points are spread over.
+func timedMG(t *testing.T, store string, args ...string) (result, time.Duration) {
+	t.Helper()
+	start := time.Now()
+	r := mustMG(t, store, args...)
+	return r, time.Since(start)
+}
+
+// killPoints picks n delays spread over [from, to): one at a random point
+// of each of n equal strata, in a random order.
+func killPoints(rng *rand.Rand, from, to time.Duration, n int) []time.Duration {
+	out := make([]time.Duration, n)
+	for i := range out {
+		out[i] = from + time.Duration((float64(i)+rng.Float64())/float64(n)*float64(to-from))
+	}
+	rng.Shuffle(n, func(i, j int) { out[i], out[j] = out[j], out[i] })
+	return out
+}
+
+// releaseKillPoints spreads half of n kill points over a whole release
+// (full) and half over its last 40%, where it writes the record and moves
+// the tag and the head pointer: the rest of the run is reading and
+// checking, and the window between the two moves is a few milliseconds.
+func releaseKillPoints(rng *rand.Rand, full time.Duration, n int) []time.Duration {
+	out := append(killPoints(rng, 0, full, n/2), killPoints(rng, full*3/5, full, n-n/2)...)
+	rng.Shuffle(n, func(i, j int) { out[i], out[j] = out[j], out[i] })
+	return out
+}
+
+// storeTags maps every NAME:TAG of the store to its digest.
+func storeTags(t *testing.T, store string) map[string]string {
+	t.Helper()
+	var rows []lsRow
+	if err := json.Unmarshal([]byte(mustMG(t, store, "ls", "--json").stdout), &rows); err != nil {
+		t.Fatal(err)
+	}
+	out := map[string]string{}
+	for _, r := range rows {
+		out[r.Repository+":"+r.Tag] = r.Digest
+	}
+	return out
+}
+
+// mustVerify runs verify; it must exit 0 (hints allowed).
+func mustVerify(t *testing.T, store, what string) {
+	t.Helper()
+	if r := mg(t, store, "verify", "--json"); r.code != 0 {
+		t.Fatalf("%s: verify exit %d\n%s%s", what, r.code, r.stdout, r.stderr)
+	}
+}
+
+// checkTags requires every tag of after to equal before, except moving,
+// which may hold its value in before or any value in allowed; headMoves
+// names a tag that may change freely (a release log's head pointer, checked
+// by log). No tag may disappear.
+func checkTags(t *testing.T, what string, before, after map[string]string, moving string, allowed []string, headMoves string) {
+	t.Helper()
+	for k := range before {
+		if _, ok := after[k]; !ok {
+			t.Fatalf("%s: tag %s disappeared", what, k)
+		}
+	}
+	for k, v := range after {
+		switch {
+		case k == headMoves:
+		case k == moving:
+			if v != before[k] && !slices.Contains(allowed, v) {
+				t.Fatalf("%s: %s points at %s: neither its old target %q nor a new one %v", what, k, v, before[k], allowed)
+			}
+		case v != before[k]:
+			t.Fatalf("%s: tag %s moved from %q to %s", what, k, before[k], v)
+		}
+	}
+}
+
+// crashTally counts where the kills landed, for the test log.
+type crashTally struct{ finished, unchanged, moved, interrupted int }
+
+func (c crashTally) String() string {
+	return fmt.Sprintf("%d finished before the kill, %d killed before the tag moved, %d after it, %d in the interrupted state",
+		c.finished, c.unchanged, c.moved, c.interrupted)
+}
+
+// TestCrashDuringCopy kills `copy` (local store → local store) of
+// several-MB models at 12 points; the destination stays verifiable, its
+// tag points at its old or its new target, and each copy run again
+// completes (resuming over what the killed run left).
+func TestCrashDuringCopy(t *testing.T) {
+	if testing.Short() {
+		t.Skip("crash suite skipped with -short")
+	}
+	const runs = 12
+	root := t.TempDir()
+	dst := filepath.Join(root, "dst")
+	encDir, _ := fixtures(t)
+	mustMG(t, dst, "push", bigEncoder(t, root, "copy-encoder-old", 30, 20000), "crash-encoder:prod")
+	mustMG(t, dst, "push", encDir, "tiny-encoder:v1")
+	// One source store per run, each with a model the destination lacks,
+	// so that every run has several MB to copy; two more to time a copy.
+	type source struct{ store, digest string }
+	srcs := make([]source, runs+2)
+	for i := range srcs {
+		store := filepath.Join(root, fmt.Sprintf("src-%d", i))
+		dir := bigEncoder(t, root, fmt.Sprintf("copy-encoder-%d", i), uint64(40+i), 20000)
+		srcs[i] = source{store, strings.TrimSpace(mustMG(t, store, "push", dir, "crash-encoder:prod").stdout)}
+	}
+	var full time.Duration
+	for i, s := range srcs[runs:] {
+		_, d := timedMG(t, s.store, "copy", "crash-encoder:prod", "--dest", filepath.Join(root, fmt.Sprintf("probe-%d", i)))
+		full = max(full, d)
+	}
+	delays := killPoints(rand.New(rand.NewPCG(7, 1)), 0, full, runs)
+	var tally crashTally
+	var resume []source
+	for i, src := range srcs[:runs] {
+		before := storeTags(t, dst)
+		what := fmt.Sprintf("copy run %d (kill after %v of %v)", i, delays[i], full)
+		k := runKilled(t, src.store, delays[i], "copy", "crash-encoder:prod", "--dest", dst)
+		if k.finished && k.res.code != 0 {
+			t.Fatalf("%s: exit %d: %s", what, k.res.code, k.res.stderr)
+		}
+		mustVerify(t, dst, what)
+		after := storeTags(t, dst)
+		checkTags(t, what, before, after, "crash-encoder:prod", []string{src.digest}, "")
+		switch {
+		case k.finished:
+			tally.finished++
+			if after["crash-encoder:prod"] != src.digest {
+				t.Fatalf("%s: the copy finished but the tag points at %s, not %s", what, after["crash-encoder:prod"], src.digest)
+			}
+		case after["crash-encoder:prod"] == before["crash-encoder:prod"]:
+			tally.unchanged++
+			resume = append(resume, src)
+		default:
+			tally.moved++
+		}
+	}
+	t.Logf("copy: %d kill points over %v: %v", runs, full, tally)
+	// Run again, each interrupted copy completes: the tag, and the same
+	// model bytes as in its source.
+	for _, src := range resume {
+		mustMG(t, src.store, "copy", "crash-encoder:prod", "--dest", dst)
+		mustVerify(t, dst, "copy run again")
+		if got := storeTags(t, dst)["crash-encoder:prod"]; got != src.digest {
+			t.Fatalf("copy run again: the tag points at %s, want %s", got, src.digest)
+		}
+		a, b := filepath.Join(t.TempDir(), "a"), filepath.Join(t.TempDir(), "b")
+		mustMG(t, src.store, "pull", "crash-encoder:prod", a)
+		mustMG(t, dst, "pull", "crash-encoder:prod", b)
+		if listing(t, a) != listing(t, b) {
+			t.Fatalf("the model pulled from the destination differs from its source's")
+		}
+	}
+}
+
+// releaseCrash checks the state after one promote or rollback that was
+// killed (or finished first), from the tags before it, the target it
+// moves to, and whether an interrupted release was pending before it.
+type releaseCrash struct {
+	t       *testing.T
+	w       *releaseWorld
+	pending bool   // the log reported the interrupted state after the last run
+	record  string // the record of that interrupted release
+	tally   crashTally
+}
+
+const (
+	crashTarget = "tiny-encoder:prod"
+	crashHead   = "tiny-encoder:release-prod"
+)
+
+// logState runs log --json on the target and returns its exit code and
+// report.
+func (c *releaseCrash) logState() (int, logReport) {
+	c.t.Helper()
+	r := mg(c.t, c.w.store, "log", "--json", crashTarget)
+	var rep logReport
+	if err := json.Unmarshal([]byte(r.stdout), &rep); err != nil {
+		c.t.Fatalf("log --json: exit %d, %v\n%s%s", r.code, err, r.stdout, r.stderr)
+	}
+	return r.code, rep
+}
+
+type logReport struct {
+	Current string
+	Head    string
+	Entries []struct {
+		Digest string
+		Record struct{ Kind, From, To string }
+	}
+	Findings []struct{ Severity, Where, Message string }
+}
+
+func (c *releaseCrash) check(what string, before map[string]string, newTarget string, k killed) {
+	t := c.t
+	t.Helper()
+	if k.finished {
+		if k.res.code != 0 {
+			t.Fatalf("%s: exit %d: %s%s", what, k.res.code, k.res.stdout, k.res.stderr)
+		}
+		if c.pending && !strings.Contains(k.res.stdout, "completed an interrupted release first") {
+			t.Fatalf("%s: finished over an interrupted release without completing it:\n%s", what, k.res.stdout)
+		}
+	}
+	mustVerify(t, c.w.store, what)
+	after := storeTags(t, c.w.store)
+	checkTags(t, what, before, after, crashTarget, []string{newTarget}, crashHead)
+	cur := after[crashTarget]
+	code, rep := c.logState()
+	switch code {
+	case 0:
+		if rep.Current != cur || len(rep.Entries) == 0 || rep.Entries[0].Record.To != cur || rep.Head != rep.Entries[0].Digest || after[crashHead] != rep.Head {
+			t.Fatalf("%s: log verifies but disagrees with the store: tag %s, head tag %s, report %+v", what, cur, after[crashHead], rep)
+		}
+		c.pending, c.record = false, ""
+	case 5:
+		// The one documented state: a record moved the tag, the head
+		// pointer still names the record before it. Either this run got
+		// that far (its tag moved; the head is where it was, or at the
+		// interrupted record it completed first), or it changed nothing
+		// visible and an earlier run's interrupted release is still there.
+		var damage []string
+		for _, f := range rep.Findings {
+			if f.Severity == "damage" {
+				damage = append(damage, f.Message)
+			}
+		}
+		record := ""
+		if len(damage) == 1 && strings.HasPrefix(damage[0], "interrupted: record ") {
+			record, _, _ = strings.Cut(strings.TrimPrefix(damage[0], "interrupted: record "), " ")
+		}
+		head := after[crashHead]
+		movedHere := cur == newTarget && (head == before[crashHead] || (c.pending && head == c.record))
+		leftAsItWas := c.pending && cur == before[crashTarget] && head == before[crashHead] && record == c.record
+		if k.finished || record == "" || !(movedHere || leftAsItWas) {
+			t.Fatalf("%s: log exit 5 with findings %q; tag %s → %s (new %s), head %s → %s, pending %v %s",
+				what, damage, before[crashTarget], cur, newTarget, before[crashHead], head, c.pending, c.record)
+		}
+		if record != c.record {
+			c.tally.interrupted++
+		}
+		c.pending, c.record = true, record
+	default:
+		t.Fatalf("%s: log exit %d: %+v", what, code, rep.Findings)
+	}
+	switch {
+	case k.finished:
+		c.tally.finished++
+		if cur != newTarget {
+			t.Fatalf("%s: finished but the tag points at %s, not %s", what, cur, newTarget)
+		}
+	case cur == before[crashTarget]:
+		c.tally.unchanged++
+	default:
+		c.tally.moved++
+	}
+}
+
+// finish runs one uninterrupted rollback: it completes any interrupted
+// release, and the log verifies with every record signed by a key the
+// policy lists.
+func (c *releaseCrash) finish() {
+	c.t.Helper()
+	r := mustMG(c.t, c.w.store, "rollback", crashTarget, "--reason", "after the crash suite", "--key", c.w.key("rita"))
+	if c.pending && !strings.Contains(r.stdout, "completed an interrupted release first") {
+		c.t.Fatalf("the rollback after an interrupted release did not complete it:\n%s", r.stdout)
+	}
+	mustMG(c.t, c.w.store, "log", crashTarget, "--policy", c.w.policy)
+	mustVerify(c.t, c.w.store, "after the crash suite")
+}
+
+// TestCrashDuringPromote kills `promote` at 20 points, each time with a
+// new candidate gated against whatever the tag points at then.
+func TestCrashDuringPromote(t *testing.T) {
+	if testing.Short() {
+		t.Skip("crash suite skipped with -short")
+	}
+	const runs = 20
+	w := newReleaseWorld(t, 0)
+	w.push(0, crashTarget)
+	var full time.Duration // the longer of two uninterrupted promotes
+	for n := 1; n <= 2; n++ {
+		w.push(n, "")
+		w.gate(fmt.Sprintf("tiny-encoder:v%d", n))
+		_, d := timedMG(t, w.store, "promote", fmt.Sprintf("tiny-encoder:v%d", n), "--to", crashTarget, "--policy", w.policy, "--key", w.key("rita"))
+		full = max(full, d)
+	}
+	c := &releaseCrash{t: t, w: w}
+	delays := releaseKillPoints(rand.New(rand.NewPCG(7, 2)), full, runs)
+	for i := range runs {
+		n := i + 3
+		cand := w.push(n, "")
+		w.gate(fmt.Sprintf("tiny-encoder:v%d", n))
+		before := storeTags(t, w.store)
+		delay := delays[i]
+		what := fmt.Sprintf("promote run %d (kill after %v of %v)", i, delay, full)
+		k := runKilled(t, w.store, delay, "promote", fmt.Sprintf("tiny-encoder:v%d", n), "--to", crashTarget,
+			"--policy", w.policy, "--key", w.key("rita"), "--reason", what)
+		c.check(what, before, cand, k)
+	}
+	t.Logf("promote: %d kill points over %v: %v", runs, full, c.tally)
+	c.finish()
+}
+
+// TestCrashDuringRollback kills `rollback` at 20 points over a log of
+// four releases: two of three runs jump with --to to another released
+// model, every third undoes the newest record.
+func TestCrashDuringRollback(t *testing.T) {
+	if testing.Short() {
+		t.Skip("crash suite skipped with -short")
+	}
+	const runs = 20
+	w := newReleaseWorld(t, 0)
+	released := []string{w.push(0, crashTarget)}
+	for i := 1; i <= 3; i++ {
+		released = append(released, w.push(i, ""))
+		w.gate(fmt.Sprintf("tiny-encoder:v%d", i))
+		mustMG(t, w.store, "promote", fmt.Sprintf("tiny-encoder:v%d", i), "--to", crashTarget, "--policy", w.policy, "--key", w.key("rita"))
+	}
+	var full time.Duration // the longer of two uninterrupted rollbacks
+	for range 2 {
+		_, d := timedMG(t, w.store, "rollback", crashTarget, "--reason", "timing", "--key", w.key("rita"))
+		full = max(full, d)
+	}
+	c := &releaseCrash{t: t, w: w}
+	rng := rand.New(rand.NewPCG(7, 3))
+	delays := releaseKillPoints(rng, full, runs)
+	for i := range runs {
+		before := storeTags(t, w.store)
+		cur := before[crashTarget]
+		args := []string{"rollback", crashTarget, "--key", w.key("rita")}
+		var to string
+		if i%3 == 2 {
+			// Undo the newest record: where to, the dry run says.
+			var dry struct{ To string }
+			r := mustMG(t, w.store, "rollback", crashTarget, "--reason", "dry", "--dry-run", "--json")
+			if err := json.Unmarshal([]byte(r.stdout), &dry); err != nil || dry.To == "" {
+				t.Fatalf("rollback --dry-run --json: %v %q", err, r.stdout)
+			}
+			to = dry.To
+		} else {
+			others := slices.DeleteFunc(slices.Clone(released), func(d string) bool { return d == cur })
+			to = others[rng.IntN(len(others))]
+			args = append(args, "--to", to)
+		}
+		delay := delays[i]
+		what := fmt.Sprintf("rollback run %d (kill after %v of %v)", i, delay, full)
+		k := runKilled(t, w.store, delay, append(args, "--reason", what)...)
+		c.check(what, before, to, k)
+	}
+	t.Logf("rollback: %d kill points over %v: %v", runs, full, c.tally)
+	c.finish()
+}
