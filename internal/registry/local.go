@@ -78,9 +78,11 @@ const (
 // dev.modelgate.repository, and dev.modelgate.subject when the manifest
 // has a subject. A tag entry in index.json is that descriptor plus
 // ref.name. So putting an untagged manifest (a report, an approval, a
-// release record) writes a blob and one or two small files, Referrers
-// reads one folder and Manifests one folder plus index.json, whatever the
-// number of manifests stored; index.json grows only with the tags.
+// release record) writes a blob and one or two small files; Referrers
+// reads the subject's folder of that artifactType (without a type, one
+// folder per type) and Manifests the repository's manifests folder, so
+// their cost follows the size of their answer, not of the store; tags
+// are read and moved in index.json, which grows only with the tags.
 //
 // One directory holds many repositories. index.json entries the store did
 // not write (without dev.modelgate.repository, for example added by

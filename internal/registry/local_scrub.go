@@ -20,8 +20,10 @@ var hexPattern = regexp.MustCompile(`^[a-f0-9]{64}$`)
 
 // Scrub checks the store's files. Damage: a blob whose content does not
 // hash to its name; a side file that is not a valid record of the
-// manifest its name and folder say, or whose manifest blob is missing or
-// of another size; a referrer side file with no manifest side file; an
+// manifest its name and folder say, that records other fields than the
+// manifest has (artifactType, annotations, subject), or whose manifest
+// blob is missing or of another size; a referrer side file with no
+// manifest side file or that differs from it; an
 // index.json entry whose blob is missing or of another size (for a tag
 // entry: a dangling tag); an unreadable index.json or oci-layout. Hints:
 // leftover temporary files in .modelgate/tmp (an interrupted write, or one
@@ -179,6 +181,7 @@ func (l *Local) scrubSideFiles(ctx context.Context, hint, damage reportFunc, che
 			}
 		}
 
+		recorded := map[string]v1.Descriptor{} // valid manifest side files by hex
 		manifests, err := os.ReadDir(filepath.Join(rp, manifestsSub))
 		if err != nil && !errors.Is(err, fs.ErrNotExist) {
 			damage(l.relPath(filepath.Join(rp, manifestsSub)), "cannot list: %v", err)
@@ -200,6 +203,11 @@ func (l *Local) scrubSideFiles(ctx context.Context, hint, damage reportFunc, che
 			}
 			where := repo + "@" + d.Digest.String()
 			checkBlob(where, "side file "+l.relPath(p), d)
+			if want, ok := l.expectedEntry(repo, d); ok && !sameJSON(want, d) {
+				damage(l.relPath(p), "does not match manifest %s: it records %s, the manifest gives %s", d.Digest, jsonText(d), jsonText(want))
+				continue
+			}
+			recorded[d.Digest.Hex] = d
 			if s := d.Annotations[annotationSubject]; s != "" {
 				subject, err := v1.NewHash(s)
 				if err != nil || checkDigest(subject) != nil {
@@ -259,6 +267,8 @@ func (l *Local) scrubSideFiles(ctx context.Context, hint, damage reportFunc, che
 					default:
 						if _, err := os.Lstat(l.manifestEntryPath(repo, d.Digest)); err != nil {
 							damage(l.relPath(p), "referrer %s is not recorded in repository %s (no side file %s)", d.Digest, repo, l.relPath(l.manifestEntryPath(repo, d.Digest)))
+						} else if m, ok := recorded[d.Digest.Hex]; ok && !sameJSON(m, d) {
+							damage(l.relPath(p), "differs from the manifest's side file: it records %s", jsonText(d))
 						}
 					}
 				}
@@ -266,6 +276,31 @@ func (l *Local) scrubSideFiles(ctx context.Context, hint, damage reportFunc, che
 		}
 	}
 	return nil
+}
+
+// expectedEntry is the side file the store writes for manifest d of repo,
+// computed from the manifest blob; ok is false when the blob is missing,
+// corrupt or does not parse (findings of their own).
+func (l *Local) expectedEntry(repo string, d v1.Descriptor) (v1.Descriptor, bool) {
+	raw, err := l.readManifestBlob(d.Digest)
+	if err != nil {
+		return v1.Descriptor{}, false
+	}
+	mf, mt, err := parseManifest(d.MediaType, raw)
+	if err != nil {
+		return v1.Descriptor{}, false
+	}
+	return sideEntry(repo, describe(raw, mt, mf), mf), true
+}
+
+func sameJSON(a, b v1.Descriptor) bool { return jsonText(a) == jsonText(b) }
+
+func jsonText(d v1.Descriptor) string {
+	b, err := json.Marshal(d)
+	if err != nil {
+		return fmt.Sprintf("%+v", d)
+	}
+	return string(b)
 }
 
 // hashFile returns the hex sha256 and size of a file's content.

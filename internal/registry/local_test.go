@@ -509,6 +509,18 @@ func TestLocalCorruption(t *testing.T) {
 			},
 		},
 		{
+			name: "side file with other annotations",
+			damage: func(t *testing.T, s setup) ([]string, string) {
+				p := abs(s, manifestSide(s))
+				b, err := os.ReadFile(p)
+				if err != nil {
+					t.Fatal(err)
+				}
+				writeFile(t, p, bytes.Replace(b, []byte(`"annotations":{`), []byte(`"annotations":{"dev.modelgate.approved-by":"nobody",`), 1))
+				return []string{manifestSide(s)}, registry.SeverityDamage
+			},
+		},
+		{
 			name: "referrer side file without manifest side file",
 			damage: func(t *testing.T, s setup) ([]string, string) {
 				if err := os.Remove(abs(s, manifestSide(s))); err != nil {
