@@ -57,6 +57,7 @@ func Run(t *testing.T, open func(t *testing.T) registry.Store) {
 	t.Run("TagResolveRetag", func(t *testing.T) { testTagResolve(t, open(t)) })
 	t.Run("ListingsSorted", func(t *testing.T) { testListings(t, open(t)) })
 	t.Run("Referrers", func(t *testing.T) { testReferrers(t, open(t)) })
+	t.Run("TaggedReferrersListedOnce", func(t *testing.T) { testTaggedReferrers(t, open(t)) })
 	t.Run("SwapTag", func(t *testing.T) { testSwapTag(t, open(t)) })
 	t.Run("Manifests", func(t *testing.T) { testManifests(t, open(t)) })
 	t.Run("InvalidNamesRefused", func(t *testing.T) { testInvalidNames(t, open(t)) })
@@ -500,6 +501,41 @@ func testReferrers(t *testing.T, s registry.Store) {
 	none, err = s.Referrers(ctx, repo, NewBlob(55, 1).Digest, "")
 	if err != nil || len(none) != 0 {
 		t.Errorf("Referrers(unknown subject) = %v, %v; want none", none, err)
+	}
+}
+
+// testTaggedReferrers: a referrer that is also tagged (under two tags),
+// and one put twice, are listed once by Referrers and Manifests.
+func testTaggedReferrers(t *testing.T, s registry.Store) {
+	ctx := context.Background()
+	const repo = "podcast/listener-encoder"
+	md := Push(t, s, repo, "prod", NewArtifact(56, encoderType, nil, nil))
+	subj := md
+	subj.ArtifactType = ""
+	report := NewArtifact(57, reportType, &subj, nil)
+	approval := NewArtifact(58, approvalType, &subj, nil)
+	rd := Push(t, s, repo, "report-latest", report)
+	if err := s.Tag(ctx, repo, "report-v1", rd); err != nil {
+		t.Fatal(err)
+	}
+	Push(t, s, repo, "", approval)
+	Push(t, s, repo, "", approval)
+
+	all, err := s.Referrers(ctx, repo, md.Digest, "")
+	want := descDigests([]v1.Descriptor{report.Descriptor(), approval.Descriptor()})
+	if got := descDigests(all); err != nil || !slices.Equal(got, want) {
+		t.Errorf("Referrers = %q, %v; want %q", got, err, want)
+	}
+	reports, err := s.Referrers(ctx, repo, md.Digest, reportType)
+	if got := descDigests(reports); err != nil || !slices.Equal(got, []string{rd.Digest.String()}) {
+		t.Errorf("Referrers(report) = %q, %v; want only %s", got, err, rd.Digest)
+	}
+	if ml, ok := s.(registry.ManifestLister); ok {
+		ds, err := ml.Manifests(ctx, repo)
+		want := descDigests([]v1.Descriptor{md, report.Descriptor(), approval.Descriptor()})
+		if got := descDigests(ds); err != nil || !slices.Equal(got, want) {
+			t.Errorf("Manifests = %q, %v; want %q", got, err, want)
+		}
 	}
 }
 
