@@ -13,6 +13,7 @@ import (
 	"io/fs"
 	"os"
 	"path/filepath"
+	"slices"
 	"sort"
 	"strings"
 	"sync"
@@ -776,7 +777,12 @@ func collectManifests(side []v1.Descriptor, idx *v1.IndexManifest, keep func(v1.
 			add(d)
 		}
 	}
-	sort.Slice(out, func(i, j int) bool { return out[i].Digest.String() < out[j].Digest.String() })
+	slices.SortFunc(out, func(a, b v1.Descriptor) int {
+		if c := strings.Compare(a.Digest.Algorithm, b.Digest.Algorithm); c != 0 {
+			return c
+		}
+		return strings.Compare(a.Digest.Hex, b.Digest.Hex)
+	})
 	return out
 }
 

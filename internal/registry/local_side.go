@@ -267,7 +267,7 @@ func (l *Local) listEntries(dir, repo string) ([]v1.Descriptor, error) {
 	out := make([]v1.Descriptor, 0, len(ents))
 	for _, e := range ents {
 		name := e.Name()
-		if !hexPattern.MatchString(name) {
+		if !isDigestHex(name) {
 			continue // not ours (Scrub reports it)
 		}
 		p := filepath.Join(dir, name)
@@ -288,6 +288,20 @@ func (l *Local) listEntries(dir, repo string) ([]v1.Descriptor, error) {
 	return out, nil
 }
 
+// isDigestHex reports whether s is 64 lower-case hex digits (hexPattern,
+// without the regexp's cost on large folders).
+func isDigestHex(s string) bool {
+	if len(s) != 64 {
+		return false
+	}
+	for i := 0; i < len(s); i++ {
+		if c := s[i]; !(c >= '0' && c <= '9' || c >= 'a' && c <= 'f') {
+			return false
+		}
+	}
+	return true
+}
+
 // hasEntries reports whether folder dir holds at least one side file.
 func hasEntries(dir string) (bool, error) {
 	f, err := os.Open(dir)
@@ -301,7 +315,7 @@ func hasEntries(dir string) (bool, error) {
 	for {
 		names, err := f.Readdirnames(64)
 		for _, n := range names {
-			if hexPattern.MatchString(n) {
+			if isDigestHex(n) {
 				return true, nil
 			}
 		}
