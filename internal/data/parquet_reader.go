@@ -16,6 +16,9 @@ import (
 type parquetReader struct {
 	l    *layout
 	file *parquet.File
+	r    io.ReaderAt
+	size int64
+	win  []byte // page header buffer of checkParquetGroup
 
 	items, values               *column
 	dense                       []*column // spec order
@@ -32,6 +35,9 @@ type parquetReader struct {
 }
 
 func openParquet(r io.ReaderAt, size int64, l *layout) (*parquetReader, error) {
+	if err := checkParquetFooter(r, size); err != nil {
+		return nil, l.fileError("not a readable Parquet file: %v", err)
+	}
 	file, err := parquet.OpenFile(r, size,
 		parquet.SkipPageIndex(true),
 		parquet.SkipBloomFilters(true),
@@ -40,7 +46,7 @@ func openParquet(r io.ReaderAt, size int64, l *layout) (*parquetReader, error) {
 	if err != nil {
 		return nil, l.fileError("not a readable Parquet file: %v", err)
 	}
-	p := &parquetReader{l: l, file: file}
+	p := &parquetReader{l: l, file: file, r: r, size: size}
 	root := file.Root()
 	find := func(name string, want shape, kinds kindSet, required bool) (*column, error) {
 		c := root.Column(name)
@@ -178,6 +184,10 @@ func (p *parquetReader) next() (bool, error) {
 				c.close()
 			}
 			return false, nil
+		}
+		var err error
+		if p.win, err = checkParquetGroup(p.r, p.size, p.file, p.rowGroup, p.cols, p.win); err != nil {
+			return false, p.l.fileError("row group %d of %d: %v", p.rowGroup+1, len(groups), err)
 		}
 		g := groups[p.rowGroup]
 		chunks := g.ColumnChunks()
