@@ -10,6 +10,7 @@ import (
 	"regexp"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/types"
 
 	"modelgate/internal/errkind"
 	"modelgate/internal/model"
@@ -93,11 +94,28 @@ func ReadBlob(ctx context.Context, store registry.Store, repo string, d v1.Descr
 // MaxBlobSize bounds any single blob modelgate reads into memory.
 const MaxBlobSize = 8 << 30
 
+// layerLimit is the most a model layer of the media type may hold when
+// read from a store: the limit a model directory has for that file, or
+// MaxBlobSize for tensors.
+func layerLimit(mt types.MediaType) int64 {
+	switch mt {
+	case MediaTypeVocabulary:
+		return modeldir.MaxVocabSize
+	case MediaTypeStats:
+		return modeldir.MaxStatsSize
+	case MediaTypeProbes:
+		return modeldir.MaxProbesSize
+	}
+	return MaxBlobSize
+}
+
 var safeName = regexp.MustCompile(`^[A-Za-z0-9_][A-Za-z0-9_.-]{0,127}$`)
 
 // ModelFiles reads a model artifact's blobs back into the files of its
 // model directory (spec.json first), checking the layer titles are plain
-// file names.
+// file names. A blob whose descriptor claims more than a model directory
+// allows for its file (modeldir's limits; MaxBlobSize for tensors) is
+// refused before it is read.
 func ModelFiles(ctx context.Context, store registry.Store, a *Artifact) ([]modeldir.File, error) {
 	k := a.Kind()
 	if k != model.KindEncoder && k != model.KindScorer {
@@ -115,7 +133,7 @@ func ModelFiles(ctx context.Context, store registry.Store, a *Artifact) ([]model
 			return nil, errkind.New(errkind.Integrity, "layer %s of %s has an unsafe or repeated file name %q", l.Digest, a.Desc.Digest, name)
 		}
 		seen[name] = true
-		b, err := ReadBlob(ctx, store, a.Repository, l, MaxBlobSize)
+		b, err := ReadBlob(ctx, store, a.Repository, l, layerLimit(l.MediaType))
 		if err != nil {
 			return nil, err
 		}
