@@ -215,18 +215,21 @@ func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, a
 		res.BlobsWritten++
 		res.BytesWritten += b.Desc.Size
 	}
-	layerDescs := make([]v1.Descriptor, len(layers))
-	for i, l := range layers {
-		layerDescs[i] = l.Desc
+	raw, err := BuildManifest(artifactType, config, layers, subject, ann)
+	if err != nil {
+		return nil, err
 	}
-	if existing, ok := findIdentical(ctx, store, ref, artifactType, config.Desc, layerDescs, subject); ok {
+	// The same content gives the same bytes (a model's manifest has no
+	// push-time clock in it), so a manifest already stored under this
+	// digest is reused: one lookup, whatever the repository holds.
+	want, _, err := v1.SHA256(bytes.NewReader(raw))
+	if err != nil {
+		return nil, err
+	}
+	if _, existing, err := store.Manifest(ctx, ref.Repository, want); err == nil {
 		res.Manifest = existing
 		res.ManifestReused = true
 	} else {
-		raw, err := BuildManifest(artifactType, config, layers, subject, ann)
-		if err != nil {
-			return nil, err
-		}
 		desc, err := store.PutManifest(ctx, ref.Repository, MediaTypeManifest, raw)
 		if err != nil {
 			return nil, fmt.Errorf("writing manifest: %w", err)
@@ -269,56 +272,6 @@ func BuildManifest(artifactType string, config Blob, layers []Blob, subject *v1.
 		return nil, errkind.New(errkind.BadInput, "manifest would be %d bytes, over the %d-byte limit", len(raw), registry.MaxManifestSize)
 	}
 	return raw, nil
-}
-
-// findIdentical looks for a manifest in the repository with the same
-// artifactType, config, layers and subject: pushing the same content twice
-// then writes nothing but (possibly) a tag.
-func findIdentical(ctx context.Context, store registry.Store, ref registry.Ref, artifactType string, config v1.Descriptor, layers []v1.Descriptor, subject *v1.Descriptor) (v1.Descriptor, bool) {
-	var candidates []v1.Descriptor
-	if ref.Tag != "" {
-		if d, err := store.Resolve(ctx, ref.Repository, ref.Tag); err == nil {
-			candidates = append(candidates, d)
-		}
-	}
-	if ml, ok := store.(registry.ManifestLister); ok {
-		if ds, err := ml.Manifests(ctx, ref.Repository); err == nil {
-			candidates = append(candidates, ds...)
-		}
-	}
-	want := manifestKey(artifactType, config, layers, subject)
-	seen := map[v1.Hash]bool{}
-	for _, c := range candidates {
-		if seen[c.Digest] || (c.ArtifactType != "" && c.ArtifactType != artifactType) {
-			continue
-		}
-		seen[c.Digest] = true
-		raw, desc, err := store.Manifest(ctx, ref.Repository, c.Digest)
-		if err != nil {
-			continue
-		}
-		var m v1.Manifest
-		if json.Unmarshal(raw, &m) != nil {
-			continue
-		}
-		if manifestKey(m.ArtifactType, m.Config, m.Layers, m.Subject) == want {
-			return desc, true
-		}
-	}
-	return v1.Descriptor{}, false
-}
-
-func manifestKey(artifactType string, config v1.Descriptor, layers []v1.Descriptor, subject *v1.Descriptor) string {
-	var b strings.Builder
-	b.WriteString(artifactType)
-	b.WriteString("|" + string(config.MediaType) + "@" + config.Digest.String())
-	for _, l := range layers {
-		b.WriteString("|" + string(l.MediaType) + "@" + l.Digest.String() + "#" + l.Annotations[AnnotationTitle])
-	}
-	if subject != nil {
-		b.WriteString("|subject@" + subject.Digest.String())
-	}
-	return b.String()
 }
 
 // FindEncoder locates the encoder a scorer references: by digest, in the
