@@ -20,7 +20,7 @@ import (
 const (
 	defaultMargin            = 0.001
 	defaultConfidence        = 0.95
-	defaultBootstrapReplicas = 1000
+	defaultBootstrapReplicas = 200
 	defaultSeed              = 1
 	defaultAnomalyQuantile   = 0.99
 	defaultAnomalyWeight     = 0.25

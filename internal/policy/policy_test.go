@@ -113,7 +113,7 @@ func TestDefaults(t *testing.T) {
 			ExtraRows:            ExtraRows{Count: 256, Seed: 1},
 		},
 		Holdout: HoldoutCheck{
-			Enabled: true, Margin: 0.001, Confidence: 0.95, BootstrapReplicas: 1000, Seed: 1,
+			Enabled: true, Margin: 0.001, Confidence: 0.95, BootstrapReplicas: 200, Seed: 1,
 			Slices:               Slices{NonzeroQuantiles: []float64{0.5, 0.9}, AnomalyQuantile: 0.99, AnomalyWeight: 0.25, PerSliceMargin: 0.001},
 			MaxNormalizedEntropy: f(1), MinAUC: f(0.5),
 		},
@@ -136,7 +136,7 @@ func TestDefaults(t *testing.T) {
 		Freeze:     FreezeCheck{Enabled: true},
 		Contract:   want.Contract,
 		Holdout: HoldoutCheck{
-			Enabled: true, Margin: 0.001, Confidence: 0.95, BootstrapReplicas: 1000, Seed: 1,
+			Enabled: true, Margin: 0.001, Confidence: 0.95, BootstrapReplicas: 200, Seed: 1,
 			Alpha: 0.5, WeightQuantile: 0.99, WeightPower: 1,
 		},
 		Budget:    BudgetCheck{Enabled: true, MaxGrowth: 0.2},

@@ -13,7 +13,7 @@ import (
 
 // DefaultReplicates is the number of Poisson-bootstrap replicates the gate
 // uses unless its policy says otherwise.
-const DefaultReplicates = 1000
+const DefaultReplicates = 200
 
 // MaxReplicates bounds NewPaired's replicates (memory is 48 bytes per
 // replicate).
