@@ -334,7 +334,8 @@ func (r *Remote) call(ctx context.Context, full, method, path string, hdr http.H
 	}
 	u := path
 	if !strings.Contains(path, "://") {
-		u = (&url.URL{Scheme: r.reg.Scheme(), Host: r.reg.RegistryStr(), Path: path}).String()
+		p, query, _ := strings.Cut(path, "?") // the query must not be escaped into the path
+		u = (&url.URL{Scheme: r.reg.Scheme(), Host: r.reg.RegistryStr(), Path: p, RawQuery: query}).String()
 	}
 	req, err := http.NewRequestWithContext(ctx, method, u, body)
 	if err != nil {
