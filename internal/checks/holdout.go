@@ -174,19 +174,20 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			weightQ = v
 		}
 	}
+	anomalousName, aboveName := fmt.Sprintf("anomalous (nonzeros > %g)", anomaly), "all rows"
+	if lower != "" {
+		aboveName = fmt.Sprintf("nonzeros > %s", lower)
+	}
 	sliceOf := func(nnz int) string {
 		if float64(nnz) > anomaly {
-			return fmt.Sprintf("anomalous (nonzeros > %g)", anomaly)
+			return anomalousName
 		}
 		for _, b := range bounds {
 			if float64(nnz) <= b.upper {
 				return b.name
 			}
 		}
-		if lower == "" {
-			return "all rows"
-		}
-		return fmt.Sprintf("nonzeros > %s", lower)
+		return aboveName
 	}
 	// Slices get the paired t test without bootstrap replicates: the
 	// bootstrap (R draws per row) is the gate's costliest statistic, and it
@@ -243,7 +244,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	var scr struct {
 		p, y, w []float32
 		ids     []int64
-		d       []float64
+		d, l    []float64
 	}
 	var (
 		fc, fb         data.Frame
@@ -308,6 +309,10 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			}
 		}
 		lc, lb, d = grow64(lc, n), grow64(lb, n), grow64(d, n)
+		groups, err := groupRows(n, nnz, sliceOf, slice)
+		if err != nil {
+			return nil, err
+		}
 		if encoder {
 			tf := time.Now()
 			if qc, tc, err = reconstruct(runC, cand, &fc.Batch, qc, tc); err != nil {
@@ -368,17 +373,13 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				}
 			}
 			// Per slice, in one batch call each.
-			groups, err := groupRows(n, nnz, sliceOf, slice)
-			if err != nil {
-				return nil, err
-			}
 			for _, g := range groups {
 				gp, gy, gw := gather(pc, g.rows, &scr.p), gather(y, g.rows, &scr.y), gather(w, g.rows, &scr.w)
-				if err := g.acc.cand.AddBatch(gp, gy, gw); err != nil {
+				if err := g.acc.cand.AddBatchWithLoss(gp, gy, gw, gather64(lc, g.rows, &scr.l)); err != nil {
 					return nil, err
 				}
 				if base != nil {
-					if err := g.acc.base.AddBatch(gather(pb, g.rows, &scr.p), gy, gw); err != nil {
+					if err := g.acc.base.AddBatchWithLoss(gather(pb, g.rows, &scr.p), gy, gw, gather64(lb, g.rows, &scr.l)); err != nil {
 						return nil, err
 					}
 				}
@@ -392,10 +393,6 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				return nil, err
 			}
 			if err := diffHist.AddBatch(d, w); err != nil {
-				return nil, err
-			}
-			groups, err := groupRows(n, nnz, sliceOf, slice)
-			if err != nil {
 				return nil, err
 			}
 			for _, g := range groups {
@@ -525,19 +522,28 @@ type rowGroup struct {
 // groupRows groups a batch's rows by slice, in order of first appearance.
 func groupRows(n int, nnz []int, sliceOf func(int) string, slice func(string) (*sliceAcc, error)) ([]rowGroup, error) {
 	var groups []rowGroup
-	index := map[*sliceAcc]int{}
+	lastName, last := "", -1
 	for i := 0; i < n; i++ {
-		acc, err := slice(sliceOf(nnz[i]))
-		if err != nil {
-			return nil, err
+		name := sliceOf(nnz[i])
+		if name != lastName || last < 0 {
+			last = -1
+			for k := range groups {
+				if groups[k].acc.name == name {
+					last = k
+					break
+				}
+			}
+			if last < 0 {
+				acc, err := slice(name)
+				if err != nil {
+					return nil, err
+				}
+				last = len(groups)
+				groups = append(groups, rowGroup{acc: acc, rows: make([]int, 0, n)})
+			}
+			lastName = name
 		}
-		k, ok := index[acc]
-		if !ok {
-			k = len(groups)
-			index[acc] = k
-			groups = append(groups, rowGroup{acc: acc})
-		}
-		groups[k].rows = append(groups[k].rows, i)
+		groups[last].rows = append(groups[last].rows, i)
 	}
 	return groups, nil
 }
@@ -575,6 +581,16 @@ func sameInputs(cand, base *score.Model) bool {
 		}
 	}
 	return true
+}
+
+// gather64 is gather for float64 values.
+func gather64(src []float64, rows []int, buf *[]float64) []float64 {
+	out := (*buf)[:0]
+	for _, i := range rows {
+		out = append(out, src[i])
+	}
+	*buf = out
+	return out
 }
 
 func lossOf(m Metrics, encoder bool) float64 {

@@ -67,7 +67,23 @@ func (b *Binary) AddBatchLoss(p, y, w []float32, loss []float64) error {
 	return addBinary(b, p, y, w, loss)
 }
 
+// AddBatchWithLoss is AddBatch for rows whose log losses are already known:
+// loss[i] must be what AddBatchLoss wrote for the same (p[i], y[i]) — for
+// example when the rows of one batch are also added, by slice, to other
+// accumulators. The result is bit-identical to AddBatch's, without
+// recomputing the logarithms.
+func (b *Binary) AddBatchWithLoss(p, y, w []float32, loss []float64) error {
+	if len(loss) != len(p) {
+		return errkind.New(errkind.BadInput, "loss buffer of %d for %d predictions", len(loss), len(p))
+	}
+	return addBinaryKnown(b, p, y, w, loss, true)
+}
+
 func addBinary[T Float](b *Binary, p, y, w []T, loss []float64) error {
+	return addBinaryKnown(b, p, y, w, loss, false)
+}
+
+func addBinaryKnown[T Float](b *Binary, p, y, w []T, loss []float64, known bool) error {
 	binary, err := checkRows(p, y, w, "prediction")
 	if err != nil {
 		return err
@@ -84,12 +100,15 @@ func addBinary[T Float](b *Binary, p, y, w []T, loss []float64) error {
 				wf = float64(w[i])
 			}
 			var l float64
-			if binary { // the same for the whole batch: not a branch on y
+			switch {
+			case known:
+				l = loss[i]
+			case binary: // the same for the whole batch: not a branch on y
 				l = binaryLoss(pf, yf)
-			} else {
+			default:
 				l = softLoss(pf, yf)
 			}
-			if loss != nil {
+			if loss != nil && !known {
 				loss[i] = l
 			}
 			wy := wf * yf
