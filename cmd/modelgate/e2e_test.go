@@ -270,3 +270,35 @@ func TestEndToEnd(t *testing.T) {
 		t.Errorf("skopeo inspect --raw: artifactType %q (%v)\n%s", m.ArtifactType, err, sk)
 	}
 }
+
+// TestJSONProgress: with --json, push and pull report progress as JSON
+// Lines on stderr while stdout holds only the result.
+func TestJSONProgress(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "store")
+	encDir, _ := fixtures(t)
+	for _, args := range [][]string{
+		{"push", "--json", encDir, "tiny-encoder:v1"},
+		{"pull", "--json", "tiny-encoder:v1", filepath.Join(t.TempDir(), "out")},
+	} {
+		r := mustMG(t, store, args...)
+		var res map[string]any
+		if err := json.Unmarshal([]byte(r.stdout), &res); err != nil {
+			t.Fatalf("%v: stdout is not one JSON value: %v\n%s", args, err, r.stdout)
+		}
+		lines := strings.Split(strings.TrimSpace(r.stderr), "\n")
+		n := 0
+		for _, l := range lines {
+			var e struct{ Event, Phase, Name string }
+			if json.Unmarshal([]byte(l), &e) == nil && e.Event == "progress" && e.Name != "" {
+				n++
+			}
+		}
+		if n == 0 {
+			t.Errorf("%v: no progress events on stderr:\n%s", args, r.stderr)
+		}
+	}
+	// --quiet silences them.
+	if r := mustMG(t, store, "push", "--json", "--quiet", encDir, "tiny-encoder:v2"); r.stderr != "" {
+		t.Errorf("--quiet: stderr %q", r.stderr)
+	}
+}

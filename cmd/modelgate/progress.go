@@ -1,6 +1,7 @@
 package main
 
 import (
+	"encoding/json"
 	"os"
 
 	"github.com/schollz/progressbar/v3"
@@ -13,6 +14,9 @@ import (
 // progress returns an event sink that draws a byte progress bar per blob
 // on an interactive stderr, and nothing otherwise (piped, --json, --quiet).
 func (g *globals) progress() func(artifact.Event) {
+	if g.JSON && !g.Quiet {
+		return g.jsonProgress()
+	}
 	if !g.interactive() {
 		return nil
 	}
@@ -49,6 +53,24 @@ func (g *globals) progress() func(artifact.Event) {
 				bar = nil
 			}
 		}
+	}
+}
+
+// progressEvent is one line of --json progress on stderr.
+type progressEvent struct {
+	Event string `json:"event"` // always "progress"
+	Phase string `json:"phase"` // upload, skip, download, manifest, tag, scan, verify
+	Name  string `json:"name"`
+	Done  int64  `json:"done"`
+	Total int64  `json:"total"`
+}
+
+// jsonProgress writes progress events as JSON Lines on stderr (stdout keeps
+// the command's one JSON result).
+func (g *globals) jsonProgress() func(artifact.Event) {
+	enc := json.NewEncoder(g.Stderr)
+	return func(e artifact.Event) {
+		_ = enc.Encode(progressEvent{Event: "progress", Phase: e.Phase, Name: e.Name, Done: e.Done, Total: e.Total})
 	}
 }
 
