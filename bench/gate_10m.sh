@@ -20,9 +20,9 @@ echo "before: $(load)"
 
 go build -o "$tmp/modelgate" ./cmd/modelgate
 export MODELGATE_STORE="$tmp/store"
-"$tmp/modelgate" -q demo --work "$tmp/work" >/dev/null
-model="$tmp/work/models/promo-scorer-better"
-[ -d "$model" ] || model=$(ls -d "$tmp"/work/models/promo-scorer-* | head -1)
+"$tmp/modelgate" -q demo --work "$tmp/scenario" >/dev/null
+model="$tmp/scenario/models/promo-scorer-better"
+[ -d "$model" ] || model=$(ls -d "$tmp"/scenario/models/promo-scorer-* | head -1)
 
 start=$(date +%s)
 go run ./bench/genholdout -model "$model" -rows "$ROWS" -out "$tmp/gate.parquet"

@@ -11,9 +11,9 @@ tmp=$(mktemp -d)
 trap 'rm -rf "$tmp"' EXIT
 go build -o "$tmp/modelgate" ./cmd/modelgate
 export MODELGATE_STORE="$tmp/store"
-"$tmp/modelgate" -q demo --work "$tmp/work" >/dev/null
-model="$tmp/work/models/promo-scorer-better"
-[ -d "$model" ] || model=$(ls -d "$tmp"/work/models/promo-scorer-* | head -1)
+"$tmp/modelgate" -q demo --work "$tmp/scenario" >/dev/null
+model="$tmp/scenario/models/promo-scorer-better"
+[ -d "$model" ] || model=$(ls -d "$tmp"/scenario/models/promo-scorer-* | head -1)
 go run ./bench/genholdout -model "$model" -rows "$SCORE_ROWS" -out "$tmp/score.parquet"
 go run ./bench/genholdout -model "$model" -rows "$GATE_ROWS" -out "$tmp/gate.parquet" -seed 2
 ls -l "$tmp"/*.parquet | awk '{print $5, $9}'
