@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"fmt"
+	"sort"
 	"strings"
 	"text/tabwriter"
 
@@ -237,7 +238,7 @@ func printDescription(g *globals, d *artifact.Description) {
 	for k := range d.Annotations {
 		keys = append(keys, k)
 	}
-	sortStrings(keys)
+	sort.Strings(keys)
 	for _, k := range keys {
 		fmt.Fprintf(w, "  %s = %s\n", k, d.Annotations[k])
 	}

@@ -2,7 +2,6 @@ package main
 
 import (
 	"fmt"
-	"sort"
 
 	"modelgate/internal/errkind"
 )
@@ -23,5 +22,3 @@ func humanBytes(n int64) string {
 	}
 	return fmt.Sprintf("%.1f %ciB", float64(n)/float64(div), "KMGTPE"[exp])
 }
-
-func sortStrings(s []string) { sort.Strings(s) }

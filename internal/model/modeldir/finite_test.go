@@ -32,3 +32,15 @@ func TestFiniteRawMatchesDecoded(t *testing.T) {
 		}
 	}
 }
+
+// TestVocabularyRefusesBOM: a byte-order mark would silently become part
+// of the first id; the model directory refuses it as the holdout reader does.
+func TestVocabularyRefusesBOM(t *testing.T) {
+	_, probs := ParseVocabulary("vocabulary.txt", []byte("\xef\xbb\xbfshow-1\nshow-2\n"), 2)
+	if len(probs) != 1 || probs[0] != "vocabulary.txt:1: starts with a byte-order mark" {
+		t.Errorf("problems %q", probs)
+	}
+	if _, probs := ParseVocabulary("vocabulary.txt", []byte("show-1\nshow-2\n"), 2); len(probs) != 0 {
+		t.Errorf("a clean vocabulary: %q", probs)
+	}
+}

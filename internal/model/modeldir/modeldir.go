@@ -540,6 +540,11 @@ func ParseVocabulary(file string, b []byte, size int) ([]string, []string) {
 	if !utf8.Valid(b) {
 		return nil, []string{file + ": not valid UTF-8"}
 	}
+	if bytes.HasPrefix(b, []byte("\xef\xbb\xbf")) {
+		// The holdout side (internal/data) refuses it too: it would become
+		// part of the first id.
+		return nil, []string{file + ":1: starts with a byte-order mark"}
+	}
 	text := strings.TrimSuffix(string(b), "\n")
 	var ids []string
 	if text != "" {
