@@ -20,9 +20,9 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
-	"golang.org/x/sys/unix"
 
 	"modelgate/internal/errkind"
+	"modelgate/internal/fileio"
 )
 
 // Annotation keys that the local store writes on index.json entries and
@@ -238,7 +238,7 @@ func (l *Local) Blob(ctx context.Context, repo string, dgst v1.Hash) (io.ReadClo
 	if err != nil {
 		return nil, err
 	}
-	return &verifyingReader{f: f, h: sha256.New(), want: dgst}, nil
+	return &verifyingReader{ctx: ctx, f: f, h: sha256.New(), want: dgst}, nil
 }
 
 // openBlob opens a blob file, refusing anything but a regular file.
@@ -308,139 +308,150 @@ func (l *Local) PutBlob(ctx context.Context, repo string, dgst v1.Hash, size int
 	return l.writeBlob(ctx, dgst, size, r)
 }
 
-func (l *Local) writeBlob(ctx context.Context, dgst v1.Hash, size int64, r io.Reader) (err error) {
+func (l *Local) writeBlob(ctx context.Context, dgst v1.Hash, size int64, r io.Reader) error {
 	if err := ctx.Err(); err != nil {
 		return err
 	}
-	final := l.blobPath(dgst)
-	if fi, err := os.Lstat(final); err == nil && fi.Mode().IsRegular() && fi.Size() == size {
+	if fi, err := os.Lstat(l.blobPath(dgst)); err == nil && fi.Mode().IsRegular() && fi.Size() == size {
 		return nil
+	}
+	st, err := l.stage(ctx, size, r)
+	if err != nil {
+		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	}
+	if st.digest != dgst {
+		st.Discard()
+		return errkind.New(errkind.BadInput, "writing blob %s: %w: content hashes to %s", dgst, ErrDigestMismatch, st.digest)
+	}
+	_, err = st.Commit(ctx)
+	return err
+}
+
+// StageBlob implements BlobStager: the bytes go to a temporary file under
+// .modelgate/tmp, hashed on a second core as they are written, with
+// write-back to disk started as they arrive; Commit syncs and renames it
+// into blobs/sha256/.
+func (l *Local) StageBlob(ctx context.Context, repo string, size int64, r io.Reader) (StagedBlob, error) {
+	if err := ValidateRepository(repo); err != nil {
+		return nil, err
+	}
+	if size < 0 {
+		return nil, errkind.New(errkind.BadInput, "staging blob: negative size %d", size)
+	}
+	st, err := l.stage(ctx, size, r)
+	if err != nil {
+		return nil, fmt.Errorf("staging blob: %w", err)
+	}
+	return st, nil
+}
+
+func (l *Local) stage(ctx context.Context, size int64, r io.Reader) (_ *localStaged, err error) {
+	if err := ctx.Err(); err != nil {
+		return nil, err
 	}
 	f, err := os.CreateTemp(l.path(tmpDir), "blob-*")
 	if err != nil {
-		return fmt.Errorf("writing blob %s: %w", dgst, err)
+		return nil, err
 	}
-	tmp := f.Name()
 	defer func() {
-		if f != nil {
-			f.Close()
-		}
 		if err != nil {
-			os.Remove(tmp)
+			f.Close()
+			os.Remove(f.Name())
 		}
 	}()
-
-	n, sum, err := copyHashing(ctx, &writebackWriter{f: f, fd: int(f.Fd())}, io.LimitReader(r, size+1))
+	h := sha256.New()
+	n, err := fileio.CopyHashing(ctx, fileio.NewWriteback(f), io.LimitReader(r, size+1), h)
 	if err != nil {
-		return fmt.Errorf("writing blob %s: %w", dgst, err)
+		return nil, err
 	}
 	if n != size {
-		return errkind.New(errkind.BadInput, "writing blob %s: %w: got %d bytes, want %d", dgst, ErrDigestMismatch, n, size)
+		return nil, errkind.New(errkind.BadInput, "%w: got %d bytes, want %d", ErrDigestMismatch, n, size)
 	}
-	if sum != dgst.Hex {
-		return errkind.New(errkind.BadInput, "writing blob %s: %w: content hashes to sha256:%s", dgst, ErrDigestMismatch, sum)
+	return &localStaged{l: l, f: f, tmp: f.Name(), size: size,
+		digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(h.Sum(nil))}}, nil
+}
+
+// localStaged is a blob in a temporary file of a local store. It is not
+// safe for concurrent use.
+type localStaged struct {
+	l       *Local
+	f       *os.File // open until Commit or Discard
+	tmp     string   // its name
+	size    int64
+	digest  v1.Hash
+	state   int // stagedOpen, stagedCommitted, stagedDiscarded
+	existed bool
+}
+
+const (
+	stagedOpen = iota
+	stagedCommitted
+	stagedDiscarded
+)
+
+func (s *localStaged) Digest() v1.Hash { return s.digest }
+func (s *localStaged) Size() int64     { return s.size }
+
+func (s *localStaged) Commit(ctx context.Context) (existed bool, err error) {
+	switch s.state {
+	case stagedCommitted:
+		return s.existed, nil
+	case stagedDiscarded:
+		return false, fmt.Errorf("committing blob %s: it was discarded", s.digest)
 	}
-	if err := f.Sync(); err != nil {
-		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	if err := ctx.Err(); err != nil {
+		return false, err
 	}
-	if err := f.Close(); err != nil {
-		f = nil
-		return fmt.Errorf("writing blob %s: %w", dgst, err)
+	final := s.l.blobPath(s.digest)
+	if fi, err := os.Lstat(final); err == nil && fi.Mode().IsRegular() && fi.Size() == s.size {
+		s.Discard()
+		s.state, s.existed = stagedCommitted, true
+		return true, nil
 	}
-	f = nil
+	tmp := s.tmp
+	defer func() {
+		if err != nil {
+			s.Discard()
+			err = fmt.Errorf("writing blob %s: %w", s.digest, err)
+		}
+	}()
+	if err := s.f.Sync(); err != nil {
+		return false, err
+	}
+	err = s.f.Close()
+	s.f = nil
+	if err != nil {
+		return false, err
+	}
 	if err := os.Chmod(tmp, 0o644); err != nil {
-		return fmt.Errorf("writing blob %s: %w", dgst, err)
+		return false, err
 	}
 	if err := os.Rename(tmp, final); err != nil {
-		return fmt.Errorf("writing blob %s: %w", dgst, err)
+		return false, err
 	}
+	s.state = stagedCommitted
 	if err := syncDir(filepath.Dir(final)); err != nil {
-		return fmt.Errorf("writing blob %s: %w", dgst, err)
+		return false, err
 	}
-	return nil
+	return false, nil
 }
 
-// copyHashing copies r to w and returns the byte count and the hex sha256
-// of what was copied. Hashing runs in its own goroutine, one buffer behind
-// the writes, so that hashing and writing overlap.
-func copyHashing(ctx context.Context, w io.Writer, r io.Reader) (int64, string, error) {
-	const nbuf = 3
-	type chunk struct {
-		buf []byte
-		n   int
+func (s *localStaged) Discard() error {
+	if s.state != stagedOpen {
+		return nil
 	}
-	free := make(chan []byte, nbuf)
-	for range nbuf {
-		free <- make([]byte, blobCopyBuffer)
+	s.state = stagedDiscarded
+	if s.f != nil {
+		s.f.Close()
+		s.f = nil
 	}
-	toHash := make(chan chunk, nbuf)
-	done := make(chan string)
-	h := sha256.New()
-	go func() {
-		for c := range toHash {
-			h.Write(c.buf[:c.n])
-			free <- c.buf
-		}
-		done <- hex.EncodeToString(h.Sum(nil))
-	}()
-
-	var total int64
-	var err error
-	for {
-		if err = ctx.Err(); err != nil {
-			break
-		}
-		buf := <-free
-		n, rerr := io.ReadFull(r, buf)
-		if n > 0 {
-			if _, werr := w.Write(buf[:n]); werr != nil {
-				err = werr
-				free <- buf
-				break
-			}
-			total += int64(n)
-			toHash <- chunk{buf, n}
-		} else {
-			free <- buf
-		}
-		if rerr == io.EOF || rerr == io.ErrUnexpectedEOF {
-			break
-		}
-		if rerr != nil {
-			err = rerr
-			break
-		}
-	}
-	close(toHash)
-	sum := <-done
-	return total, sum, err
-}
-
-// writebackWriter writes to a file and asks the kernel to start writing
-// back every writebackChunk bytes, so that disk writes overlap hashing and
-// the final fsync has little left to do. The hint's errors are ignored:
-// fsync reports real ones.
-type writebackWriter struct {
-	f            *os.File
-	fd           int
-	off, started int64
-}
-
-const writebackChunk = 8 << 20
-
-func (w *writebackWriter) Write(p []byte) (int, error) {
-	n, err := w.f.Write(p)
-	w.off += int64(n)
-	if w.off-w.started >= writebackChunk {
-		_ = unix.SyncFileRange(w.fd, w.started, w.off-w.started, unix.SYNC_FILE_RANGE_WRITE)
-		w.started = w.off
-	}
-	return n, err
+	return os.Remove(s.tmp)
 }
 
 // verifyingReader hashes what it reads and turns io.EOF into an integrity
 // error when the content does not hash to want.
 type verifyingReader struct {
+	ctx  context.Context
 	f    *os.File
 	h    hash.Hash
 	n    int64
@@ -472,8 +483,9 @@ func (r *verifyingReader) finish() error {
 	return r.err
 }
 
-// WriteTo copies the rest of the blob to w with large reads, verifying it;
-// it returns the mismatch error instead of nil when the content is wrong.
+// WriteTo copies the rest of the blob to w in large chunks, hashing on a
+// second core while it writes, and verifies it: it returns the mismatch
+// error instead of nil when the content is wrong.
 func (r *verifyingReader) WriteTo(w io.Writer) (int64, error) {
 	if r.err != nil {
 		if r.err == io.EOF {
@@ -481,29 +493,16 @@ func (r *verifyingReader) WriteTo(w io.Writer) (int64, error) {
 		}
 		return 0, r.err
 	}
-	buf := make([]byte, blobCopyBuffer)
-	var total int64
-	for {
-		n, err := io.ReadFull(r.f, buf)
-		if n > 0 {
-			r.h.Write(buf[:n])
-			r.n += int64(n)
-			m, werr := w.Write(buf[:n])
-			total += int64(m)
-			if werr != nil {
-				return total, werr
-			}
-		}
-		if err == io.EOF || err == io.ErrUnexpectedEOF {
-			if ferr := r.finish(); ferr != io.EOF {
-				return total, ferr
-			}
-			return total, nil
-		}
-		if err != nil {
-			return total, fmt.Errorf("reading blob %s: %w", r.want, err)
-		}
+	n, err := fileio.CopyHashing(r.ctx, w, r.f, r.h)
+	r.n += n
+	if err != nil {
+		r.err = fmt.Errorf("reading blob %s: %w", r.want, err)
+		return n, r.err
 	}
+	if ferr := r.finish(); ferr != io.EOF {
+		return n, ferr
+	}
+	return n, nil
 }
 
 func (r *verifyingReader) Close() error { return r.f.Close() }

@@ -813,3 +813,46 @@ func TestLocalSeesOtherWriters(t *testing.T) {
 		t.Errorf("after an in-place rewrite Resolve = %v, %v", got.Digest, err)
 	}
 }
+
+// TestLocalStagingLeavesNoTemporaryFiles: a discarded stage, a refused one
+// and a committed one leave .modelgate/tmp empty.
+func TestLocalStagingLeavesNoTemporaryFiles(t *testing.T) {
+	l := openLocal(t)
+	ctx := context.Background()
+	sb, err := l.StageBlob(ctx, "shows", 5, strings.NewReader("hello"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if n := countTemps(t, l); n != 1 {
+		t.Errorf("%d temporary files while staged, want 1", n)
+	}
+	if err := sb.Discard(); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := l.StageBlob(ctx, "shows", 6, strings.NewReader("hello")); err == nil {
+		t.Fatal("short stage accepted")
+	}
+	sb, err = l.StageBlob(ctx, "shows", 5, strings.NewReader("world"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := sb.Commit(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if n := countTemps(t, l); n != 0 {
+		t.Errorf("%d temporary files left, want 0", n)
+	}
+	findings, err := l.Scrub(ctx, map[v1.Hash]bool{sb.Digest(): true})
+	if err != nil || len(findings) != 0 {
+		t.Errorf("Scrub = %v, %v; want no findings", findings, err)
+	}
+}
+
+func countTemps(t *testing.T, l *registry.Local) int {
+	t.Helper()
+	es, err := os.ReadDir(filepath.Join(l.Dir(), ".modelgate", "tmp"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return len(es)
+}

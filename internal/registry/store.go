@@ -96,6 +96,38 @@ type ManifestLister interface {
 	Manifests(ctx context.Context, repo string) ([]v1.Descriptor, error)
 }
 
+// BlobStager is a Store that can take a blob before anyone knows its
+// digest: the store hashes the bytes as it writes them, so content is read
+// once, and the caller, having checked the same bytes on their way in
+// (through an io.TeeReader, say), keeps or drops the result. Push uses it
+// to stream a large tensor file into the store while validating it.
+//
+// Contract: nothing is visible to readers before Commit; Discard (or a
+// crash) leaves no blob, at most a temporary file that Scrub reports.
+// Stores without this ability take blobs through PutBlob, whose caller
+// must know the digest first.
+type BlobStager interface {
+	// StageBlob reads exactly size bytes from r into temporary storage. It
+	// fails with ErrDigestMismatch (errkind BadInput) when r holds fewer or
+	// more bytes, and then leaves nothing behind.
+	StageBlob(ctx context.Context, repo string, size int64, r io.Reader) (StagedBlob, error)
+}
+
+// StagedBlob is a blob written by StageBlob and not yet visible.
+type StagedBlob interface {
+	// Digest is the sha256 of the bytes the store wrote.
+	Digest() v1.Hash
+	// Size is their count.
+	Size() int64
+	// Commit makes the blob durable and visible under Digest. When a blob
+	// of that digest is already present, the staged copy is dropped and
+	// existed is true. Commit after Discard fails; a second Commit is a
+	// no-op reporting the first one's existed.
+	Commit(ctx context.Context) (existed bool, err error)
+	// Discard drops the staged bytes; after Commit it does nothing.
+	Discard() error
+}
+
 // Finding is something a store-level check noticed.
 type Finding struct {
 	// Severity is "damage" (integrity lost) or "hint" (harmless, e.g. an

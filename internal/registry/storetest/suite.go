@@ -38,7 +38,7 @@ const (
 
 // Run runs the conformance suite. open must return a new, empty store for
 // each call (each subtest calls it once). Optional abilities (TagSwapper,
-// ManifestLister) are tested when the store has them.
+// ManifestLister, BlobStager) are tested when the store has them.
 //
 // Behaviour the suite pins down beyond the Store doc comment: Tags of a
 // repository never written to returns no tags or an error wrapping
@@ -62,6 +62,7 @@ func Run(t *testing.T, open func(t *testing.T) registry.Store) {
 	t.Run("Manifests", func(t *testing.T) { testManifests(t, open(t)) })
 	t.Run("InvalidNamesRefused", func(t *testing.T) { testInvalidNames(t, open(t)) })
 	t.Run("ConcurrentWriters", func(t *testing.T) { testConcurrent(t, open(t)) })
+	t.Run("StagedBlobs", func(t *testing.T) { testStaged(t, open(t)) })
 }
 
 // Blob is content with its digest.
@@ -807,4 +808,84 @@ func SwapRace(t *testing.T, clients []registry.Store, repo, tag string) RaceResu
 	}
 	res.Final = final
 	return res
+}
+
+// testStaged checks BlobStager: the store's digest is the content's sha256
+// (the FIPS 180-2 example "abc" gives the published digest), nothing is
+// visible before Commit, Discard leaves nothing, a wrong length is refused,
+// and committing content already present reports it.
+func testStaged(t *testing.T, s registry.Store) {
+	st, ok := s.(registry.BlobStager)
+	if !ok {
+		t.Skip("store cannot stage blobs")
+	}
+	ctx := context.Background()
+	const repo = "podcast/listener-encoder"
+
+	// FIPS 180-2, Appendix B.1: SHA-256("abc").
+	const abc = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+	sb, err := st.StageBlob(ctx, repo, 3, strings.NewReader("abc"))
+	if err != nil {
+		t.Fatalf("StageBlob: %v", err)
+	}
+	if sb.Digest().String() != "sha256:"+abc || sb.Size() != 3 {
+		t.Fatalf("staged %s (%d bytes), want sha256:%s (3 bytes)", sb.Digest(), sb.Size(), abc)
+	}
+	_, err = s.StatBlob(ctx, repo, sb.Digest())
+	wantNotFound(t, "StatBlob before Commit", err)
+	existed, err := sb.Commit(ctx)
+	if err != nil || existed {
+		t.Fatalf("Commit = %v, %v; want false, nil", existed, err)
+	}
+	if got := readBlob(t, s, repo, sb.Digest()); string(got) != "abc" {
+		t.Errorf("committed blob reads %q", got)
+	}
+	if again, err := sb.Commit(ctx); err != nil || again {
+		t.Errorf("second Commit = %v, %v; want the first one's false, nil", again, err)
+	}
+	if err := sb.Discard(); err != nil {
+		t.Errorf("Discard after Commit: %v", err)
+	}
+	if got := readBlob(t, s, repo, sb.Digest()); string(got) != "abc" {
+		t.Errorf("blob after Discard-after-Commit reads %q", got)
+	}
+
+	// The same bytes staged again: Commit reports them present.
+	sb2, err := st.StageBlob(ctx, repo, 3, strings.NewReader("abc"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if existed, err := sb2.Commit(ctx); err != nil || !existed {
+		t.Errorf("Commit of present content = %v, %v; want true, nil", existed, err)
+	}
+
+	// A large blob, discarded: nothing appears.
+	big := NewBlob(21, 3<<20+5)
+	sb3, err := st.StageBlob(ctx, repo, int64(len(big.Data)), bytes.NewReader(big.Data))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if sb3.Digest() != big.Digest {
+		t.Errorf("staged digest %s, want %s", sb3.Digest(), big.Digest)
+	}
+	if err := sb3.Discard(); err != nil {
+		t.Errorf("Discard: %v", err)
+	}
+	if _, err := sb3.Commit(ctx); err == nil {
+		t.Error("Commit after Discard succeeded")
+	}
+	_, err = s.StatBlob(ctx, repo, big.Digest)
+	wantNotFound(t, "StatBlob after Discard", err)
+
+	// Wrong lengths are refused as bad input.
+	for _, c := range []struct {
+		name string
+		size int64
+		data string
+	}{{"short", 4, "abc"}, {"long", 2, "abc"}} {
+		_, err := st.StageBlob(ctx, repo, c.size, strings.NewReader(c.data))
+		if !errors.Is(err, registry.ErrDigestMismatch) || errkind.Of(err) != errkind.BadInput {
+			t.Errorf("%s body: got %v, want a bad-input ErrDigestMismatch", c.name, err)
+		}
+	}
 }
