@@ -50,6 +50,7 @@ for name, info in header.items():
     out["tensors"][name] = {
         "dtype": dt, "shape": list(vals.shape), "begin": begin, "end": end,
         "bits": vals.astype("<f4").view("<u4").ravel().tolist(),
+        "first_nonfinite": ([int(i) for i in np.flatnonzero(~np.isfinite(vals))] + [-1])[0],
     }
 info = header["src"]
 src = np.frombuffer(buf[info["data_offsets"][0]:info["data_offsets"][1]], dtype="<f4")
@@ -64,6 +65,9 @@ type numpyTensor struct {
 	Begin int64    `json:"begin"`
 	End   int64    `json:"end"`
 	Bits  []uint32 `json:"bits"`
+	// FirstNonFinite is numpy's first flat index where np.isfinite is
+	// false, or -1.
+	FirstNonFinite int64 `json:"first_nonfinite"`
 }
 
 type numpyOut struct {
@@ -171,6 +175,37 @@ func TestCrossCheckWithNumpy(t *testing.T) {
 		for i, v := range ours {
 			if math.Float32bits(v) != nt.Bits[i] {
 				t.Errorf("%s[%d]: we decode %#08x, numpy %#08x", info.Name, i, math.Float32bits(v), nt.Bits[i])
+			}
+		}
+	}
+
+	// The streaming Scanner's first non-finite index per tensor against
+	// numpy's np.isfinite, with chunks that split elements.
+	whole, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	planted := 0
+	for _, nt := range np.Tensors {
+		if nt.FirstNonFinite >= 0 {
+			planted++
+		}
+	}
+	if planted < 3 { // src, src.f16 and src.bf16 hold Inf and NaN
+		t.Errorf("numpy found non-finite values in %d tensors, want 3: the check would be vacuous", planted)
+	}
+	for _, ch := range [][]int{{0}, {3}, {1000}} {
+		_, bad, err := scanChunks(whole, int64(len(whole)), ch...)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for name, nt := range np.Tensors {
+			got, ok := bad[name]
+			if !ok {
+				got = -1
+			}
+			if got != nt.FirstNonFinite {
+				t.Errorf("chunks %v, %s: Scanner's first non-finite index %d, numpy's %d", ch, name, got, nt.FirstNonFinite)
 			}
 		}
 	}

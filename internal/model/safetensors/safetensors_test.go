@@ -196,14 +196,17 @@ func TestMatchesReferenceImplementationOutput(t *testing.T) {
 	}
 }
 
-func TestParseRefuses(t *testing.T) {
+// refuseCase is a file Parse must refuse and a part of its message.
+type refuseCase struct {
+	name string
+	data []byte
+	want string
+}
+
+func parseRefuseCases() []refuseCase {
 	const okEntry = `"w":{"dtype":"F32","shape":[2,3],"data_offsets":[0,24]}`
 	six := make([]byte, 24)
-	cases := []struct {
-		name string
-		data []byte
-		want string
-	}{
+	return []refuseCase{
 		{"file shorter than 8 bytes", []byte{1, 0, 0, 0, 0}, "5 bytes, shorter than the 8-byte header length"},
 		{"empty file", nil, "0 bytes, shorter than"},
 		{"header length 0", le64(0), "header length is 0"},
@@ -271,6 +274,10 @@ func TestParseRefuses(t *testing.T) {
 		{"missing shape", build(`{"w":{"dtype":"F32","data_offsets":[0,24]}}`, six), `tensor "w": missing field shape`},
 		{"missing data_offsets", build(`{"w":{"dtype":"F32","shape":[2,3]}}`, six), `tensor "w": missing field data_offsets`},
 	}
+}
+
+func TestParseRefuses(t *testing.T) {
+	cases := parseRefuseCases()
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			f, err := Parse(bytes.NewReader(tc.data), int64(len(tc.data)))
