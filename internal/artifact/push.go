@@ -6,7 +6,11 @@ import (
 	"crypto/sha256"
 	"encoding/hex"
 	"encoding/json"
+	"errors"
 	"fmt"
+	"io"
+	"os"
+	"path/filepath"
 	"sort"
 	"strings"
 
@@ -16,6 +20,7 @@ import (
 	"modelgate/internal/errkind"
 	"modelgate/internal/model"
 	"modelgate/internal/model/modeldir"
+	"modelgate/internal/model/safetensors"
 	"modelgate/internal/registry"
 )
 
@@ -52,10 +57,12 @@ func (o Options) emit(e Event) {
 	}
 }
 
-// Blob is one blob to upload.
+// Blob is one blob to upload: its bytes, or a blob already staged in the
+// store (registry.BlobStager) that PushArtifact commits.
 type Blob struct {
-	Desc  v1.Descriptor
-	Bytes []byte
+	Desc   v1.Descriptor
+	Bytes  []byte
+	Staged registry.StagedBlob
 }
 
 // NewBlob describes b with the given media type.
@@ -96,9 +103,25 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 	if ref.Tag == "" || ref.HasDigest() {
 		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
 	}
-	d, err := modeldir.CheckForPush(dir)
-	if err != nil {
-		return nil, err
+	stager, staging := store.(registry.BlobStager)
+	var d *modeldir.Dir
+	var err error
+	if staging {
+		d, err = modeldir.CheckHeaders(dir)
+		if err != nil {
+			// List every problem, values too, as the full check does.
+			full, ferr := modeldir.Check(dir)
+			if ferr != nil {
+				return nil, ferr
+			}
+			full.Close()
+			return nil, err
+		}
+	} else {
+		d, err = modeldir.CheckForPush(dir)
+		if err != nil {
+			return nil, err
+		}
 	}
 	defer d.Close()
 	spec := d.Model.Spec
@@ -110,17 +133,87 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 	if err := checkGraph(ctx, store, d); err != nil {
 		return nil, err
 	}
-	config, layers, ann, err := ModelBlobs(d)
+	var tensors []Blob
+	if staging {
+		tensors, err = stageTensors(ctx, stager, ref.Repository, d, opts)
+		if err != nil {
+			return nil, err
+		}
+		defer func() {
+			for _, b := range tensors {
+				b.Staged.Discard() // a no-op once committed
+			}
+		}()
+	}
+	config, layers, ann, err := modelBlobs(d, tensors)
 	if err != nil {
 		return nil, err
 	}
 	return PushArtifact(ctx, store, ref, ArtifactType(spec.Kind), config, layers, nil, ann, opts)
 }
 
+// stageTensors streams each tensor file of d (checked by CheckHeaders)
+// into the store once: the store hashes and writes the bytes while a
+// safetensors.Scanner checks the same bytes (header against the spec, every
+// value finite). On any problem every staged blob is discarded and all
+// problems are returned together.
+func stageTensors(ctx context.Context, stager registry.BlobStager, repo string, d *modeldir.Dir, opts Options) (staged []Blob, err error) {
+	defer func() {
+		if err != nil {
+			for _, b := range staged {
+				b.Staged.Discard()
+			}
+			staged = nil
+		}
+	}()
+	scans := map[string]*safetensors.Scanner{}
+	for _, f := range d.TensorFiles {
+		sc := safetensors.NewScanner(f.Size)
+		in, err := os.Open(filepath.Join(d.Path, f.Name))
+		if err != nil {
+			return staged, errkind.New(errkind.BadInput, "model directory %s: %w", d.Path, err)
+		}
+		opts.emit(Event{Phase: "upload", Name: f.Name, Total: f.Size})
+		r := io.TeeReader(&progressReader{r: in, opts: opts, name: f.Name, total: f.Size}, sc)
+		sb, err := stager.StageBlob(ctx, repo, f.Size, r)
+		in.Close()
+		if errors.Is(err, registry.ErrDigestMismatch) {
+			return staged, errkind.New(errkind.BadInput, "model directory %s: %s changed while it was pushed (%v); push again once it is written", d.Path, f.Name, err)
+		}
+		if err != nil {
+			return staged, fmt.Errorf("uploading %s: %w", f.Name, err)
+		}
+		scans[f.Name] = sc
+		staged = append(staged, Blob{Desc: v1.Descriptor{Size: sb.Size(), Digest: sb.Digest()}, Staged: sb})
+	}
+	return staged, d.CheckScans(scans)
+}
+
+// progressReader reports upload progress every progressStep bytes.
+type progressReader struct {
+	r           io.Reader
+	opts        Options
+	name        string
+	done, total int64
+	last        int64
+}
+
+const progressStep = 16 << 20
+
+func (p *progressReader) Read(b []byte) (int, error) {
+	n, err := p.r.Read(b)
+	p.done += int64(n)
+	if p.done-p.last >= progressStep {
+		p.last = p.done
+		p.opts.emit(Event{Phase: "upload", Name: p.name, Done: p.done, Total: p.total})
+	}
+	return n, err
+}
+
 // ModelManifest returns the manifest bytes and digest that pushing the
 // validated model directory d gives.
 func ModelManifest(d *modeldir.Dir) ([]byte, v1.Hash, error) {
-	config, layers, ann, err := ModelBlobs(d)
+	config, layers, ann, err := modelBlobs(d, nil)
 	if err != nil {
 		return nil, v1.Hash{}, err
 	}
@@ -135,6 +228,12 @@ func ModelManifest(d *modeldir.Dir) ([]byte, v1.Hash, error) {
 // ModelBlobs returns the config blob, the layer blobs and the manifest
 // annotations of a validated model directory.
 func ModelBlobs(d *modeldir.Dir) (Blob, []Blob, map[string]string, error) {
+	return modelBlobs(d, nil)
+}
+
+// modelBlobs is ModelBlobs; staged, when not nil, holds the tensor files'
+// blobs (in d.TensorFiles order) already staged in the store.
+func modelBlobs(d *modeldir.Dir, staged []Blob) (Blob, []Blob, map[string]string, error) {
 	spec := d.Model.Spec
 	parts := map[string][]string{}
 	for _, t := range spec.Tensors {
@@ -144,10 +243,17 @@ func ModelBlobs(d *modeldir.Dir) (Blob, []Blob, map[string]string, error) {
 	for i := range d.TensorFiles {
 		f := &d.TensorFiles[i]
 		sort.Strings(parts[f.Name])
-		sum := f.Sha256()
-		layers = append(layers, newBlobSum(MediaTypeTensors, f.Bytes, sum, map[string]string{
-			AnnotationTitle: f.Name, AnnotationPart: strings.Join(parts[f.Name], ","),
-		}))
+		ann := map[string]string{AnnotationTitle: f.Name, AnnotationPart: strings.Join(parts[f.Name], ",")}
+		if staged != nil {
+			b := staged[i]
+			b.Desc.MediaType, b.Desc.Annotations = MediaTypeTensors, ann
+			layers = append(layers, b)
+			continue
+		}
+		if f.Bytes == nil && f.Size > 0 {
+			return Blob{}, nil, nil, fmt.Errorf("tensor file %s was checked by header only; its bytes are not at hand", f.Name)
+		}
+		layers = append(layers, newBlobSum(MediaTypeTensors, f.Bytes, f.Sha256(), ann))
 	}
 	layers = append(layers, NewBlob(MediaTypeVocabulary, d.VocabularyFile.Bytes, map[string]string{AnnotationTitle: d.VocabularyFile.Name}))
 	if d.StatsFile != nil {
@@ -201,6 +307,21 @@ func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, a
 		name := b.Desc.Annotations[AnnotationTitle]
 		if name == "" {
 			name = string(b.Desc.MediaType)
+		}
+		if b.Staged != nil {
+			existed, err := b.Staged.Commit(ctx)
+			if err != nil {
+				return nil, fmt.Errorf("uploading %s (%s): %w", name, b.Desc.Digest, err)
+			}
+			if existed {
+				res.BlobsSkipped++
+				opts.emit(Event{Phase: "skip", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+			} else {
+				res.BlobsWritten++
+				res.BytesWritten += b.Desc.Size
+				opts.emit(Event{Phase: "upload", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+			}
+			continue
 		}
 		if _, err := store.StatBlob(ctx, ref.Repository, b.Desc.Digest); err == nil {
 			res.BlobsSkipped++

@@ -13,8 +13,10 @@ import (
 	"github.com/google/go-containerregistry/pkg/v1/types"
 
 	"modelgate/internal/errkind"
+	"modelgate/internal/fileio"
 	"modelgate/internal/model"
 	"modelgate/internal/model/modeldir"
+	"modelgate/internal/model/safetensors"
 	"modelgate/internal/registry"
 )
 
@@ -173,17 +175,31 @@ func Pull(ctx context.Context, store registry.Store, ref registry.Ref, dir strin
 	if err := os.MkdirAll(dir, 0o755); err != nil {
 		return nil, errkind.Wrap(errkind.BadInput, err)
 	}
+	tensorFiles := map[string]bool{}
+	for _, l := range a.Manifest.Layers {
+		if l.MediaType == MediaTypeTensors {
+			tensorFiles[l.Annotations[AnnotationTitle]] = true
+		}
+	}
+	scans := map[string]*safetensors.Scanner{}
 	for _, it := range items {
 		if err := ctx.Err(); err != nil {
 			return nil, err
 		}
 		opts.emit(Event{Phase: "download", Name: it.name, Total: it.desc.Size})
-		if err := pullBlob(ctx, store, a.Repository, it.desc, filepath.Join(dir, it.name)); err != nil {
+		var scan *safetensors.Scanner
+		if tensorFiles[it.name] {
+			scan = safetensors.NewScanner(it.desc.Size)
+			scans[it.name] = scan
+		}
+		if err := pullBlob(ctx, store, a.Repository, it.desc, filepath.Join(dir, it.name), scan, opts, it.name); err != nil {
 			return nil, fmt.Errorf("pulling %s: %w", it.name, err)
 		}
 		opts.emit(Event{Phase: "download", Name: it.name, Done: it.desc.Size, Total: it.desc.Size})
 	}
-	d, err := modeldir.Check(dir)
+	// The tensor files were checked as they were written; the rest of the
+	// directory is small and read back.
+	d, err := modeldir.CheckScanned(dir, scans)
 	if err != nil {
 		return nil, fmt.Errorf("pulled model does not validate: %w", err)
 	}
@@ -191,7 +207,11 @@ func Pull(ctx context.Context, store registry.Store, ref registry.Ref, dir strin
 	return a, nil
 }
 
-func pullBlob(ctx context.Context, store registry.Store, repo string, d v1.Descriptor, path string) error {
+// pullBlob streams a blob into a temporary file beside path (its digest
+// verified by the store's reader, hashing on a second core; write-back to
+// disk started as the bytes arrive; scan, when not nil, sees every byte),
+// syncs it and renames it to path.
+func pullBlob(ctx context.Context, store registry.Store, repo string, d v1.Descriptor, path string, scan *safetensors.Scanner, opts Options, name string) error {
 	rc, err := store.Blob(ctx, repo, d.Digest)
 	if err != nil {
 		return err
@@ -202,7 +222,12 @@ func pullBlob(ctx context.Context, store registry.Store, repo string, d v1.Descr
 		return err
 	}
 	defer os.Remove(tmp.Name())
-	n, err := io.Copy(tmp, io.LimitReader(rc, d.Size+1))
+	var w io.Writer = fileio.NewWriteback(tmp)
+	if scan != nil {
+		w = io.MultiWriter(w, scan)
+	}
+	lw := &limitWriter{w: w, left: d.Size, digest: d.Digest, opts: opts, name: name}
+	n, err := io.Copy(lw, rc)
 	if err == nil && n != d.Size {
 		err = errkind.New(errkind.Integrity, "blob %s has %d bytes, its descriptor says %d", d.Digest, n, d.Size)
 	}
@@ -219,6 +244,32 @@ func pullBlob(ctx context.Context, store registry.Store, repo string, d v1.Descr
 		return err
 	}
 	return os.Rename(tmp.Name(), path)
+}
+
+// limitWriter passes at most left bytes to w, refusing more as an
+// integrity failure (the store holds a longer blob than the manifest
+// says), and reports download progress every progressStep bytes.
+type limitWriter struct {
+	w          io.Writer
+	left       int64
+	digest     v1.Hash
+	opts       Options
+	name       string
+	done, last int64
+}
+
+func (l *limitWriter) Write(p []byte) (int, error) {
+	if int64(len(p)) > l.left {
+		return 0, errkind.New(errkind.Integrity, "blob %s has more bytes than its descriptor says", l.digest)
+	}
+	n, err := l.w.Write(p)
+	l.left -= int64(n)
+	l.done += int64(n)
+	if l.done-l.last >= progressStep {
+		l.last = l.done
+		l.opts.emit(Event{Phase: "download", Name: l.name, Done: l.done, Total: l.done + l.left})
+	}
+	return n, err
 }
 
 // Loaded is a model read from the store and decoded, ready for the runtime.

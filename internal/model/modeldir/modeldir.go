@@ -22,6 +22,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"hash/maphash"
 	"io"
 	"math"
 	"os"
@@ -119,6 +120,9 @@ type Model struct {
 type File struct {
 	Name  string
 	Bytes []byte
+	// Size is the file's length; a tensor file checked by CheckHeaders or
+	// CheckScanned has only Name and Size (Bytes is nil).
+	Size int64
 	// sum, when not nil, delivers the sha256 of Bytes computed in the
 	// background while the directory is checked (see Sha256).
 	sum chan [32]byte
@@ -147,7 +151,7 @@ func (f *File) Sha256() [32]byte {
 func hashing(name string, b []byte) File {
 	ch := make(chan [32]byte, 1)
 	go func() { ch <- sha256.Sum256(b) }()
-	return File{Name: name, Bytes: b, sum: ch}
+	return File{Name: name, Bytes: b, Size: int64(len(b)), sum: ch}
 }
 
 // Dir is a validated model directory: the model and the exact bytes of its
@@ -324,8 +328,25 @@ func Check(dir string) (*Dir, error) { return read(dir, readOptions{mmap: true})
 // in the background while they are checked.
 func CheckForPush(dir string) (*Dir, error) { return read(dir, readOptions{mmap: true, hash: true}) }
 
+// CheckHeaders is Check reading only the header of each tensor file
+// (names, dtypes and shapes against the spec; values are not looked at).
+// Its TensorFiles have Name and Size only. A push uses it before streaming
+// the tensor files into the store through a safetensors.Scanner, then
+// finishes the check with Dir.CheckScans.
+func CheckHeaders(dir string) (*Dir, error) { return read(dir, readOptions{headers: true}) }
+
+// CheckScanned is Check taking each tensor file's check from scans (keyed
+// by file name), Scanners that saw the files' bytes as they were written;
+// those tensor files are not read again (a file without a scan is read and
+// checked as Check does). Its scanned TensorFiles have Name and Size only.
+// A pull uses it on the directory it has just written.
+func CheckScanned(dir string, scans map[string]*safetensors.Scanner) (*Dir, error) {
+	return read(dir, readOptions{mmap: true, scans: scans})
+}
+
 type readOptions struct {
-	decode, mmap, hash bool
+	decode, mmap, hash, headers bool
+	scans                       map[string]*safetensors.Scanner
 }
 
 // Close releases memory-mapped files; the Dir's file bytes must not be
@@ -376,23 +397,41 @@ func read(dir string, opt readOptions) (*Dir, error) {
 	return d, nil
 }
 
-func (d *Dir) readTensors(probs *Problems, opt readOptions) {
-	spec := d.Model.Spec
+func declaredByFile(spec *model.Spec) map[string][]model.Tensor {
 	byFile := map[string][]model.Tensor{}
 	for _, t := range spec.Tensors {
 		byFile[t.File] = append(byFile[t.File], t)
 	}
+	return byFile
+}
+
+func (d *Dir) readTensors(probs *Problems, opt readOptions) {
+	spec := d.Model.Spec
+	byFile := declaredByFile(spec)
 	for _, name := range TensorFileNames(spec) {
+		path := filepath.Join(d.Path, name)
+		sc, scanned := opt.scans[name]
+		switch {
+		case scanned:
+			d.TensorFiles = append(d.TensorFiles, File{Name: name, Size: sc.Size()})
+			probs.List = append(probs.List, ScanProblems(name, sc, byFile[name])...)
+			continue
+		case opt.headers:
+			size, problems := checkHeader(path, name, byFile[name])
+			d.TensorFiles = append(d.TensorFiles, File{Name: name, Size: size})
+			probs.List = append(probs.List, problems...)
+			continue
+		}
 		var b []byte
 		var err error
 		if opt.mmap {
 			var mapped bool
-			b, mapped, err = mapFile(filepath.Join(d.Path, name))
+			b, mapped, err = mapFile(path)
 			if mapped {
 				d.mapped = append(d.mapped, b)
 			}
 		} else {
-			b, err = os.ReadFile(filepath.Join(d.Path, name))
+			b, err = os.ReadFile(path)
 		}
 		if err != nil {
 			probs.add("%s: %v", name, err)
@@ -401,7 +440,7 @@ func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 		if opt.hash {
 			d.TensorFiles = append(d.TensorFiles, hashing(name, b))
 		} else {
-			d.TensorFiles = append(d.TensorFiles, File{Name: name, Bytes: b})
+			d.TensorFiles = append(d.TensorFiles, File{Name: name, Bytes: b, Size: int64(len(b))})
 		}
 		tensors, problems := checkTensors(name, b, byFile[name], opt.decode)
 		probs.List = append(probs.List, problems...)
@@ -409,6 +448,88 @@ func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 			d.Model.Tensors[k] = v
 		}
 	}
+}
+
+// checkHeader parses the header of the tensor file at path and compares it
+// with the declared tensors; it returns the file's size.
+func checkHeader(path, file string, declared []model.Tensor) (int64, []string) {
+	f, err := os.Open(path)
+	if err != nil {
+		return 0, []string{fmt.Sprintf("%s: %v", file, err)}
+	}
+	defer f.Close()
+	st, err := f.Stat()
+	if err != nil {
+		return 0, []string{fmt.Sprintf("%s: %v", file, err)}
+	}
+	if !st.Mode().IsRegular() {
+		return 0, []string{fmt.Sprintf("%s: not a regular file", file)}
+	}
+	sf, err := safetensors.Parse(f, st.Size())
+	if err != nil {
+		return st.Size(), []string{fmt.Sprintf("%s: %v", file, err)}
+	}
+	return st.Size(), tensorProblems(file, sf, declared, nil)
+}
+
+// ScanProblems lists what is wrong with a tensor file that streamed past
+// sc: an invalid header, tensors that differ from the declared ones, and
+// NaN or infinite values.
+func ScanProblems(file string, sc *safetensors.Scanner, declared []model.Tensor) []string {
+	f, nonFinite, err := sc.Result()
+	if err != nil {
+		return []string{fmt.Sprintf("%s: %v", file, err)}
+	}
+	return tensorProblems(file, f, declared, nonFinite)
+}
+
+// CheckScans finishes a check begun by CheckHeaders: scans (keyed by file
+// name) saw the tensor files' bytes as they were streamed, and every
+// problem they show is returned together, as an error of kind BadInput.
+func (d *Dir) CheckScans(scans map[string]*safetensors.Scanner) error {
+	probs := &Problems{Dir: d.Path}
+	byFile := declaredByFile(d.Model.Spec)
+	for _, name := range TensorFileNames(d.Model.Spec) {
+		sc, ok := scans[name]
+		if !ok {
+			probs.add("%s: was not scanned", name)
+			continue
+		}
+		probs.List = append(probs.List, ScanProblems(name, sc, byFile[name])...)
+	}
+	return probs.err()
+}
+
+// tensorProblems compares a file's header with the declared tensors;
+// nonFinite (nil when values were not looked at) holds the flat index of
+// each tensor's first NaN or infinity.
+func tensorProblems(file string, f *safetensors.File, declared []model.Tensor, nonFinite map[string]int64) []string {
+	var problems []string
+	want := map[string]bool{}
+	for _, t := range declared {
+		want[t.Name] = true
+		info, ok := f.Info(t.Name)
+		if !ok {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q declared in spec.json is missing", file, t.Name))
+			continue
+		}
+		if info.DType != t.DType {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q has dtype %s, spec.json says %s", file, t.Name, info.DType, t.DType))
+		}
+		if !equalInts(info.Shape, t.Shape) {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q has shape %v, spec.json says %v", file, t.Name, info.Shape, t.Shape))
+			continue
+		}
+		if i, bad := nonFinite[t.Name]; bad {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q has a non-finite value at flat index %d", file, t.Name, i))
+		}
+	}
+	for _, info := range f.Tensors {
+		if !want[info.Name] {
+			problems = append(problems, fmt.Sprintf("%s: tensor %q is not declared in spec.json", file, info.Name))
+		}
+	}
+	return problems
 }
 
 // DecodeTensors parses one safetensors file and checks it against the
@@ -426,33 +547,21 @@ func CheckTensors(file string, b []byte, declared []model.Tensor) []string {
 }
 
 func checkTensors(file string, b []byte, declared []model.Tensor, decode bool) (map[string][]float32, []string) {
-	var problems []string
+	if !decode {
+		sc := safetensors.NewScanner(int64(len(b)))
+		sc.Write(b)
+		return nil, ScanProblems(file, sc, declared)
+	}
 	f, err := safetensors.Parse(bytes.NewReader(b), int64(len(b)))
 	if err != nil {
 		return nil, []string{fmt.Sprintf("%s: %v", file, err)}
 	}
+	problems := tensorProblems(file, f, declared, nil)
 	out := map[string][]float32{}
-	want := map[string]bool{}
 	for _, t := range declared {
-		want[t.Name] = true
 		info, ok := f.Info(t.Name)
-		if !ok {
-			problems = append(problems, fmt.Sprintf("%s: tensor %q declared in spec.json is missing", file, t.Name))
-			continue
-		}
-		if info.DType != t.DType {
-			problems = append(problems, fmt.Sprintf("%s: tensor %q has dtype %s, spec.json says %s", file, t.Name, info.DType, t.DType))
-		}
-		if !equalInts(info.Shape, t.Shape) {
-			problems = append(problems, fmt.Sprintf("%s: tensor %q has shape %v, spec.json says %v", file, t.Name, info.Shape, t.Shape))
-			continue
-		}
-		if !decode {
-			raw := b[f.DataOffset()+info.Begin : f.DataOffset()+info.End]
-			if i, bad := firstNonFiniteRaw(info.DType, raw); bad {
-				problems = append(problems, fmt.Sprintf("%s: tensor %q has a non-finite value at flat index %d", file, t.Name, i))
-			}
-			continue
+		if !ok || !equalInts(info.Shape, t.Shape) {
+			continue // reported by tensorProblems
 		}
 		vals, err := f.Float32s(t.Name)
 		if err != nil {
@@ -465,11 +574,6 @@ func checkTensors(file string, b []byte, declared []model.Tensor, decode bool) (
 		}
 		out[t.Name] = vals
 	}
-	for _, info := range f.Tensors {
-		if !want[info.Name] {
-			problems = append(problems, fmt.Sprintf("%s: tensor %q is not declared in spec.json", file, info.Name))
-		}
-	}
 	return out, problems
 }
 
@@ -477,32 +581,6 @@ func firstNonFinite(v []float32) (int, bool) {
 	for i, x := range v {
 		if math.IsNaN(float64(x)) || math.IsInf(float64(x), 0) {
 			return i, true
-		}
-	}
-	return 0, false
-}
-
-// firstNonFiniteRaw finds a NaN or Inf in little-endian stored values: an
-// all-ones exponent field (IEEE 754 binary32/binary16, and bfloat16).
-func firstNonFiniteRaw(dtype string, raw []byte) (int, bool) {
-	switch dtype {
-	case "F32":
-		for i := 0; i+3 < len(raw); i += 4 {
-			if raw[i+3]&0x7f == 0x7f && raw[i+2]&0x80 == 0x80 {
-				return i / 4, true
-			}
-		}
-	case "F16":
-		for i := 0; i+1 < len(raw); i += 2 {
-			if raw[i+1]&0x7c == 0x7c {
-				return i / 2, true
-			}
-		}
-	case "BF16":
-		for i := 0; i+1 < len(raw); i += 2 {
-			if raw[i+1]&0x7f == 0x7f && raw[i]&0x80 == 0x80 {
-				return i / 2, true
-			}
 		}
 	}
 	return 0, false
@@ -550,14 +628,21 @@ func ParseVocabulary(file string, b []byte, size int) ([]string, []string) {
 	if text != "" {
 		ids = strings.Split(text, "\n")
 	}
-	seen := make(map[string]int, len(ids))
+	ctl := strings.ContainsAny(text, "\r\t") // one pass; lines are searched only when true
+	// A map of every id costs more than the rest of the check together; a
+	// sorted list of 64-bit hashes finds that no id repeats, and only when
+	// two hashes are equal does the map walk name the lines.
+	var seen map[string]int
+	if mayRepeat(ids) {
+		seen = make(map[string]int, len(ids))
+	}
 	for i, id := range ids {
 		switch {
 		case id == "":
 			problems = append(problems, fmt.Sprintf("%s:%d: empty item id", file, i+1))
-		case strings.ContainsAny(id, "\r\t"):
+		case ctl && strings.ContainsAny(id, "\r\t"):
 			problems = append(problems, fmt.Sprintf("%s:%d: item id contains a CR or tab", file, i+1))
-		default:
+		case seen != nil:
 			if j, dup := seen[id]; dup {
 				problems = append(problems, fmt.Sprintf("%s:%d: item id %q repeats line %d", file, i+1, id, j+1))
 			}
@@ -572,6 +657,33 @@ func ParseVocabulary(file string, b []byte, size int) ([]string, []string) {
 		problems = append(problems, fmt.Sprintf("%s: %d ids, spec.json vocabularySize says %d", file, len(ids), size))
 	}
 	return ids, problems
+}
+
+// mayRepeat reports whether two ids might be equal: false means they are
+// all different; true means two have the same 64-bit hash. The hashes go
+// into an open-addressing set at most half full; zero marks a free slot, so
+// every hash gets its lowest bit set (two hashes differing only there give
+// a false alarm, which costs the map walk and nothing else).
+func mayRepeat(ids []string) bool {
+	size := 16
+	for size < 2*len(ids) {
+		size *= 2
+	}
+	set := make([]uint64, size)
+	seed := maphash.MakeSeed()
+	for _, id := range ids {
+		h := maphash.String(seed, id) | 1
+		for i := h & uint64(size-1); ; i = (i + 1) & uint64(size-1) {
+			if set[i] == 0 {
+				set[i] = h
+				break
+			}
+			if set[i] == h {
+				return true
+			}
+		}
+	}
+	return false
 }
 
 func (d *Dir) readStats(probs *Problems) {

@@ -33,6 +33,9 @@ func NewScanner(size int64) *Scanner {
 	return &Scanner{size: size, nonFinite: map[string]int64{}}
 }
 
+// Size is the file size given to NewScanner.
+func (s *Scanner) Size() int64 { return s.size }
+
 // Write takes the next bytes of the file; it always consumes all of p.
 func (s *Scanner) Write(p []byte) (int, error) {
 	total := len(p)
@@ -169,44 +172,49 @@ func (s *Scanner) Result() (*File, map[string]int64, error) {
 	return s.file, s.nonFinite, nil
 }
 
-// Lane masks for FirstNonFinite's word-at-a-time test: an element is NaN or
-// infinite when its exponent field is all ones (IEEE 754-2019 §3.4 for
-// binary32 and binary16; bfloat16 keeps binary32's 8-bit exponent).
+// Lane constants of FirstNonFinite's word-at-a-time test. An element is
+// NaN or infinite when its exponent field is all ones (IEEE 754-2019 §3.4
+// for binary32 and binary16; bfloat16 keeps binary32's 8-bit exponent).
+// Adding the exponent's lowest bit to the masked exponent carries into the
+// lane's sign bit exactly when the exponent is all ones, and never beyond
+// the lane, so eight bytes are tested with an and, an add and an or.
 const (
 	expF32  = 0x7f800000_7f800000
+	incF32  = 0x00800000_00800000
 	expF16  = 0x7c00_7c00_7c00_7c00
+	incF16  = 0x0400_0400_0400_0400
 	expBF16 = 0x7f80_7f80_7f80_7f80
-	ones32  = 0x00000001_00000001
-	high32  = 0x80000000_80000000
-	ones16  = 0x0001_0001_0001_0001
-	high16  = 0x8000_8000_8000_8000
+	incBF16 = 0x0080_0080_0080_0080
+	sign32  = 0x80000000_80000000
+	sign16  = 0x8000_8000_8000_8000
 )
 
 // FirstNonFinite finds the first NaN or infinity among little-endian
 // stored values of dtype (F32, F16 or BF16) and returns its element index.
-// len(raw) must be a multiple of the element size. It reads eight bytes at
-// a time: masking each lane to its exponent field and xoring with the mask
-// turns an all-ones exponent into a zero lane, which the has-zero-lane test
-// (v - ones) &^ v & high finds exactly (a borrow can only start at a zero
-// lane, so no lane is reported unless one is zero).
+// len(raw) must be a multiple of the element size. It tests 32 bytes per
+// step (see the lane constants) and looks at single elements only in the
+// step that holds a hit and in the tail.
 func FirstNonFinite(dtype string, raw []byte) (int, bool) {
-	var mask, ones, high uint64
+	var mask, inc, sign uint64
 	es := 2
 	switch dtype {
 	case F32:
-		mask, ones, high, es = expF32, ones32, high32, 4
+		mask, inc, sign, es = expF32, incF32, sign32, 4
 	case F16:
-		mask, ones, high = expF16, ones16, high16
+		mask, inc, sign = expF16, incF16, sign16
 	case BF16:
-		mask, ones, high = expBF16, ones16, high16
+		mask, inc, sign = expBF16, incBF16, sign16
 	default:
 		return 0, false
 	}
 	i := 0
-	for ; i+16 <= len(raw); i += 16 {
-		a := binary.LittleEndian.Uint64(raw[i:])&mask ^ mask
-		b := binary.LittleEndian.Uint64(raw[i+8:])&mask ^ mask
-		if (a-ones)&^a&high|(b-ones)&^b&high != 0 {
+	for ; i+32 <= len(raw); i += 32 {
+		w := raw[i : i+32 : i+32]
+		acc := (binary.LittleEndian.Uint64(w[0:])&mask + inc) |
+			(binary.LittleEndian.Uint64(w[8:])&mask + inc) |
+			(binary.LittleEndian.Uint64(w[16:])&mask + inc) |
+			(binary.LittleEndian.Uint64(w[24:])&mask + inc)
+		if acc&sign != 0 {
 			break
 		}
 	}

@@ -82,7 +82,6 @@ func TestScannerHeaderMatchesParse(t *testing.T) {
 	}
 }
 
-
 // nonFiniteRef is the reference for FirstNonFinite: decode each element
 // (F32 through math.Float32frombits, F16 through the x448/float16 library,
 // BF16 as the upper half of a binary32) and ask math.IsNaN / math.IsInf.
@@ -226,4 +225,30 @@ func FuzzScanner(f *testing.F) {
 			}
 		}
 	})
+}
+
+// TestFirstNonFiniteEvery16BitPattern: for every F16 and BF16 bit pattern,
+// in both 32-byte steps and in the scalar tail, the word scan
+// agrees with decoding (F16 by the x448/float16 library, BF16 as the upper
+// half of a binary32) and math.IsNaN / math.IsInf.
+func TestFirstNonFiniteEvery16BitPattern(t *testing.T) {
+	for _, dtype := range []string{F16, BF16} {
+		for bits := 0; bits < 1<<16; bits++ {
+			var v float64
+			if dtype == F16 {
+				v = float64(float16.Frombits(uint16(bits)).Float32())
+			} else {
+				v = float64(math.Float32frombits(uint32(bits) << 16))
+			}
+			want := math.IsNaN(v) || math.IsInf(v, 0)
+			for _, pos := range []int{0, 15, 17, 35} { // first 32-byte step, its end, the second step, the tail
+				raw := make([]byte, 72)
+				binary.LittleEndian.PutUint16(raw[2*pos:], uint16(bits))
+				i, bad := FirstNonFinite(dtype, raw)
+				if bad != want || (bad && i != pos) {
+					t.Fatalf("%s %#04x at %d: scan (%d, %v), decoded value %v", dtype, bits, pos, i, bad, v)
+				}
+			}
+		}
+	}
 }
