@@ -131,6 +131,7 @@ rules:
 	unpaired := write("unpaired.jsonl", row(1, `["show-003"]`, `[1]`, "0")+row(2, `["show-003"]`, `[1,2]`, "1"))
 	negValue := write("negative.jsonl", row(1, `["show-003","show-010"]`, `[1,-3]`, "1"))
 	noLabel := write("no-label.jsonl", `{"row_id":1,"items":[],"values":[],"listener_tenure":[0.1],"show_age":[0.2]}`+"\n")
+	mustMG(t, store, "push", "--kind", "holdout", noLabel, "unlabelled-holdout:v1") // valid: a holdout may lack labels
 	dupField := write("dup-field.jsonl", `{"row_id":1,"items":[],"values":[],"label":1,"label":0,"listener_tenure":[0.1],"show_age":[0.2]}`+"\n")
 	wideDense := write("wide-dense.jsonl", `{"row_id":1,"items":[],"values":[],"label":1,"listener_tenure":[0.1,0.4],"show_age":[0.2]}`+"\n")
 	notParquet := write("garbage.parquet", "PAR1 this is not a parquet file PAR1")
@@ -199,6 +200,8 @@ rules:
 		{name: "gate: holdout reference to a model", args: gateArgs("--holdout", "tiny-encoder:v1", "--no-push"), code: 2, want: []string{"tiny-encoder:v1", "not a holdout"}},
 		{name: "gate: holdout tag missing", args: gateArgs("--holdout", "tiny-holdout:nope", "--no-push"), code: 2, want: []string{"tiny-holdout:nope", "not found"}},
 		{name: "gate: holdout given as a file path", args: gateArgs("--holdout", noLabel, "--no-push"), code: 2, want: []string{"no-label.jsonl", "reference"}},
+		{name: "gate: scorer against a holdout without labels", args: gateArgs("--holdout", "unlabelled-holdout:v1", "--no-push"), code: 2, want: []string{"unlabelled-holdout:v1", "no label column"}},
+		{name: "gate shard: scorer against a holdout without labels", args: gateArgs("--holdout", "unlabelled-holdout:v1", "--shard", "1/2"), code: 2, want: []string{"unlabelled-holdout:v1", "no label column"}},
 
 		// Policies: gate, approve, promote, log, serve.
 		{name: "gate: policy file missing", args: []string{"gate", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", filepath.Join(dir, "nope.yaml")}, code: 2, want: []string{"nope.yaml"}},

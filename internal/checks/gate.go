@@ -8,6 +8,7 @@ import (
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
+	"modelgate/internal/model"
 	"modelgate/internal/registry"
 	"modelgate/internal/score"
 	"modelgate/internal/version"
@@ -132,6 +133,11 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 		} else {
 			defer hold.Close()
 			rep.Holdout = &Subject{Ref: g.Holdout.String(), Digest: hold.Artifact.Desc.Digest.String(), Kind: "holdout", Rows: hold.Info.Rows}
+			if cand != nil && g.Config.Holdout.Enabled {
+				if err := needLabels(cand, hold, *g.Holdout); err != nil {
+					return nil, err
+				}
+			}
 		}
 	}
 	finish(&integ)
@@ -181,6 +187,16 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 	}
 	run(CheckBudget, g.Config.Budget.Enabled, func() CheckResult { return Budget(cand, candFoot, bf, g.Config.Budget) })
 	return conclude(rep), nil
+}
+
+// needLabels refuses, as bad input (exit 2) rather than a failing check,
+// a holdout without labels for a scorer: its log loss needs a label on
+// every row, and the operator chose the holdout, not the candidate.
+func needLabels(cand *score.Model, hold *artifact.Holdout, ref registry.Ref) error {
+	if cand.Loaded.Spec.Kind == model.KindScorer && !hold.Info.HasLabels {
+		return errkind.New(errkind.BadInput, "holdout %s has no label column: the holdout check of a scorer needs a label (0 or 1) on every row; push a labelled holdout or disable the check in the policy", ref)
+	}
+	return nil
 }
 
 // conclude sets the verdict: fail when any check failed.
@@ -266,6 +282,9 @@ func RunShard(ctx context.Context, g Gate, i, n int) (*ShardResult, error) {
 		return nil, err
 	}
 	defer hold.Close()
+	if err := needLabels(cand, hold, *g.Holdout); err != nil {
+		return nil, err
+	}
 	r.Holdout = hold.Artifact.Desc.Digest.String()
 	r.FirstRow, r.EndRow = ShardRange(i, n, hold.Info.Rows)
 	r.State, err = accumulate(ctx, cand, base, hold, g.Config.Holdout, r.FirstRow, r.EndRow, nil)
