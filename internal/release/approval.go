@@ -105,8 +105,11 @@ func Approve(ctx context.Context, store registry.Store, req ApproveRequest) (v1.
 // ApprovalCheck is the verdict on one stored approval.
 type ApprovalCheck struct {
 	Digest string `json:"digest"`
-	// Approver is who the approval says signed it (verified when Counted).
-	Approver Actor  `json:"approver"`
+	// Approver is who signed it when Verified, else who it claims signed.
+	Approver Actor `json:"approver"`
+	// Verified is true when a key the policy lists as an approver signed
+	// it and it names that key.
+	Verified bool   `json:"verified"`
 	Time     string `json:"time,omitempty"`
 	Comment  string `json:"comment,omitempty"`
 	// Counted is true when the approval counts towards the policy's m.
@@ -201,6 +204,7 @@ func checkApproval(ctx context.Context, store registry.Store, repo string, d v1.
 		why = append(why, fmt.Sprintf("signed by %s but names approver key %s", verified[0].ID, pred.Approver.KeyID))
 	default:
 		ac.Approver = Actor{Name: verified[0].Name, KeyID: verified[0].ID}
+		ac.Verified = true
 	}
 	if !st.About(c.candidate) {
 		why = append(why, "it is for another candidate digest ("+subjectDigests(st)+")")

@@ -85,9 +85,18 @@ type Judge struct {
 	Kind      errkind.Kind // 0 when there is no problem
 }
 
+// judgeMode says how far judge goes.
+type judgeMode int
+
+const (
+	judgeReports  judgeMode = iota // gate reports only (approve)
+	judgePromote                   // reports and approvals, for a promotion by promoter
+	judgeStanding                  // reports and approvals so far, whoever promotes
+)
+
 // judge checks the gate reports and approvals of cand for the rule of
 // target against baseline ("" when the tag is absent).
-func judge(ctx context.Context, store registry.Store, cand string, target registry.Ref, pol *policy.Policy, baseline string, promoter string, now time.Time, withApprovals bool) (*Judge, error) {
+func judge(ctx context.Context, store registry.Store, cand string, target registry.Ref, pol *policy.Policy, baseline string, promoter string, now time.Time, mode judgeMode) (*Judge, error) {
 	rule, err := pol.Rule(target.String())
 	if err != nil {
 		return nil, err
@@ -156,10 +165,10 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 			fail(errkind.Unauthorized, "no passing gate report bound to this candidate, baseline %s, holdout %s, policy %s and modelgate %s", orNone(baseline), orNone(holdout), shortHex(pol.Digest()), toolVersion())
 		}
 	}
-	if !withApprovals || rule.Approvals.Required == 0 {
+	if mode == judgeReports || rule.Approvals.Required == 0 {
 		return j, nil
 	}
-	if promoter == "" && !rule.Approvals.AllowSelfApproval {
+	if mode == judgePromote && promoter == "" && !rule.Approvals.AllowSelfApproval {
 		fail(errkind.Unauthorized, "the policy forbids self-approval, so promote must know who promotes: sign with --key")
 	}
 	j.Approvals, j.Counted, err = checkApprovals(ctx, store, repo, approvalContext{candidate: cand, target: target.String(),
@@ -241,7 +250,7 @@ func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*Pr
 	if req.Key != nil {
 		promoter = req.Key.ID
 	}
-	j, err := judge(ctx, store, req.Candidate.String(), t, req.Policy, s.current(), promoter, now, true)
+	j, err := judge(ctx, store, req.Candidate.String(), t, req.Policy, s.current(), promoter, now, judgePromote)
 	if err != nil {
 		return nil, err
 	}
@@ -324,6 +333,24 @@ func appendNew(list []string, d string) []string {
 	return append(append([]string(nil), list...), d)
 }
 
+// Standing is where cand stands for target under pol at now, judged by
+// promote's own rules: its gate reports against what the tag points at
+// now, and which stored approvals count (each key once). Who promotes is
+// not known, so the self-approval rule is not applied: a read-only view
+// shows this as "so far".
+func Standing(ctx context.Context, store registry.Store, cand v1.Hash, target registry.Ref, pol *policy.Policy, now time.Time) (*Judge, error) {
+	if err := checkTarget(target); err != nil {
+		return nil, err
+	}
+	baseline := ""
+	if d, err := store.Resolve(ctx, target.Repository, target.Tag); err == nil {
+		baseline = d.Digest.String()
+	} else if !errors.Is(err, registry.ErrNotFound) {
+		return nil, err
+	}
+	return judge(ctx, store, cand.String(), target, pol, baseline, "", now, judgeStanding)
+}
+
 // ApproveCheck judges whether cand may be approved for target under pol
 // now: it needs a passing gate report bound to the tag's current target
 // (approvals are not counted). It returns the newest usable report.
@@ -343,7 +370,7 @@ func ApproveCheck(ctx context.Context, store registry.Store, cand v1.Hash, targe
 	if baseline == cand.String() {
 		return nil, errkind.New(errkind.BadInput, "%s already points at %s: nothing to approve", target, cand)
 	}
-	j, err := judge(ctx, store, cand.String(), target, pol, baseline, "", time.Now(), false)
+	j, err := judge(ctx, store, cand.String(), target, pol, baseline, "", time.Now(), judgeReports)
 	if err != nil {
 		return nil, err
 	}

@@ -71,7 +71,7 @@ func TestServePages(t *testing.T) {
 	for _, want := range []string{
 		`<strong class="count">1 of 2</strong>`, "no approval yet from sam",
 		"rita (" + f.keys["rita"].ID + ")", "slices read; fine by me",
-		"mallory", "no key the policy lists as an approver signed it",
+		"mallory", "which the policy does not list as an approver",
 		"--policy " + f.policy.Source,
 	} {
 		if !strings.Contains(better, want) {

@@ -13,7 +13,6 @@ import (
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
 	"modelgate/internal/artifact"
-	"modelgate/internal/checks"
 	"modelgate/internal/errkind"
 	"modelgate/internal/policy"
 	"modelgate/internal/registry"
@@ -159,17 +158,13 @@ func (s *Server) policyFor(target, want string) (*policy.Policy, *policy.Rule) {
 	return pol, rule
 }
 
-// maxClockSkew is how far in the future an approval may be dated (the
-// release package's rule).
-const maxClockSkew = 5 * time.Minute
-
 // approvals says how many approvals cand has for target against what the
 // policy covering target requires. It counts as promote does: a signed
 // approval by a key the policy lists as an approver, about this candidate,
 // for this target and policy, approving a passing gate report of this
 // candidate made against what the tag points at now, not older than the
-// policy's maximum age; each key counts once. Promote alone also checks
-// who promotes (self-approval), so the page says "so far".
+// policy's maximum age; each key counts once (release.Standing). Promote
+// alone also checks who promotes (self-approval), so the page says "so far".
 func (s *Server) approvals(ctx context.Context, repo string, cand v1.Hash, target string, rep reportRef) (*approvalView, error) {
 	av := &approvalView{}
 	pol, rule := s.policyFor(target, rep.Policy)
@@ -202,120 +197,35 @@ func (s *Server) approvals(ctx context.Context, repo string, cand v1.Hash, targe
 			av.Problems = ref.Problems
 		}
 	}
-	// The gate reports an approval may name.
-	usable := map[string]bool{}
-	descs, err := s.store.Referrers(ctx, repo, cand, reportType)
+	// Which approvals count: promote's own judgement, so the page and
+	// promote cannot disagree.
+	j, err := release.Standing(ctx, s.store, cand, tref, pol, time.Now())
 	if err != nil {
 		return nil, err
-	}
-	for _, d := range descs {
-		a, err := s.read(ctx, repo, d.Digest)
-		if err != nil {
-			return nil, err
-		}
-		if r, ok := reportRefOf(a); ok && r.Candidate == cand.String() && r.Target == target &&
-			r.Verdict == checks.VerdictPass && r.Baseline == current && r.Policy == pol.Digest() {
-			usable[r.Digest] = true
-		}
 	}
 	approvers, err := release.TrustedKeys(rule.Approvals.Approvers)
 	if err != nil {
 		return nil, err
 	}
-	descs, err = s.store.Referrers(ctx, repo, cand, release.ArtifactTypeApproval)
-	if err != nil {
-		return nil, err
-	}
-	now := time.Now()
-	counted := map[string]int{} // key id → index in Entries
-	for _, d := range descs {
-		e, keyID := s.checkApproval(ctx, repo, d.Digest, cand.String(), target, pol.Digest(), usable, approvers, rule.Approvals.MaxAge, now)
-		if e.Counted {
-			if j, dup := counted[keyID]; dup {
-				const why = "another approval by the same key counts instead (each key counts once)"
-				if e.Time > av.Entries[j].Time {
-					av.Entries[j].Counted, av.Entries[j].Why = false, why
-					counted[keyID] = len(av.Entries)
-				} else {
-					e.Counted, e.Why = false, why
-				}
-			} else {
-				counted[keyID] = len(av.Entries)
-			}
+	counted := map[string]bool{}
+	for _, a := range j.Approvals {
+		e := approvalEntry{Digest: a.Digest, Approver: a.Approver.String(), Time: a.Time, Comment: a.Comment, Counted: a.Counted, Why: a.Why}
+		if !a.Verified {
+			e.Approver += " (claimed)"
+		}
+		if a.Counted {
+			counted[a.Approver.KeyID] = true
 		}
 		av.Entries = append(av.Entries, e)
 	}
-	av.Counted = len(counted)
+	av.Counted = j.Counted
 	for _, k := range approvers {
-		if _, ok := counted[k.ID]; !ok {
+		if !counted[k.ID] {
 			av.Waiting = append(av.Waiting, k.Name)
 		}
 	}
 	sort.SliceStable(av.Entries, func(i, j int) bool { return av.Entries[i].Time > av.Entries[j].Time })
 	return av, nil
-}
-
-// checkApproval judges one stored approval; keyID is its verified signer.
-func (s *Server) checkApproval(ctx context.Context, repo string, d v1.Hash, cand, target, policyDigest string,
-	usable map[string]bool, approvers []release.PublicKey, maxAge time.Duration, now time.Time) (approvalEntry, string) {
-	e := approvalEntry{Digest: d.String()}
-	env, err := s.envelope(ctx, repo, d, release.ArtifactTypeApproval)
-	if err != nil {
-		e.Why = "unreadable: " + err.Error()
-		return e, ""
-	}
-	st := &env.Statement
-	var pred release.Approval
-	if st.PredicateType != release.PredicateApproval {
-		e.Why = fmt.Sprintf("predicate type %q is not an approval", st.PredicateType)
-		return e, ""
-	}
-	if err := json.Unmarshal(st.Predicate, &pred); err != nil {
-		e.Why = "malformed approval predicate"
-		return e, ""
-	}
-	e.Approver, e.Time, e.Comment = pred.Approver.String()+" (claimed)", pred.Time, pred.Comment
-	var why []string
-	keyID := ""
-	verified := env.VerifiedBy(ctx, approvers)
-	switch {
-	case !env.Signed():
-		why = append(why, "not signed")
-	case len(verified) == 0:
-		why = append(why, "no key the policy lists as an approver signed it")
-	case verified[0].ID != pred.Approver.KeyID:
-		why = append(why, fmt.Sprintf("signed by %s but names approver key %s", verified[0].ID, pred.Approver.KeyID))
-	default:
-		keyID = verified[0].ID
-		e.Approver = release.Actor{Name: verified[0].Name, KeyID: verified[0].ID}.String()
-	}
-	if !st.About(cand) {
-		why = append(why, "it is about another candidate")
-	}
-	if pred.Target != target {
-		why = append(why, "it is for target "+pred.Target)
-	}
-	if pred.PolicyDigest != policyDigest {
-		why = append(why, "it is under another policy ("+shortDigest(pred.PolicyDigest)+")")
-	}
-	if !usable[pred.ReportDigest] {
-		why = append(why, "the gate report it approved ("+shortDigest(pred.ReportDigest)+") is not a passing report against what the tag points at now")
-	}
-	t, err := time.Parse(time.RFC3339, pred.Time)
-	switch {
-	case err != nil:
-		why = append(why, "its time is not RFC 3339")
-	case now.Sub(t) > maxAge:
-		why = append(why, fmt.Sprintf("expired: the policy allows %s", maxAge))
-	case t.Sub(now) > maxClockSkew:
-		why = append(why, "dated in the future")
-	}
-	if len(why) > 0 {
-		e.Why = strings.Join(why, "; ")
-		return e, ""
-	}
-	e.Counted = true
-	return e, keyID
 }
 
 // envelope reads the DSSE envelope layer of a signed artifact.
