@@ -261,8 +261,9 @@ func TestConcurrentPromote(t *testing.T) {
 // one wins, the others exit 3, and the log is linear and verifies.
 // Without one (a plain OCI registry) it checks the guarantee that store
 // gives: at least one wins, every other exits 3, and if more than one
-// believed it won, `log` does not verify (the race is exposed, never
-// silently lost).
+// believed it won, `log` does not verify: the overwritten winner's record
+// carries its release-committed marker but is out of the chain (the race is
+// exposed, never silently lost).
 func racePromotes(t *testing.T, w *releaseWorld, exact bool) {
 	base := w.push(0, "tiny-encoder:prod")
 	const n = 16

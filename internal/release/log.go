@@ -283,8 +283,25 @@ func orphans(ctx context.Context, store registry.Store, target registry.Ref, rep
 	}
 	sort.Strings(out)
 	for _, d := range out {
+		// Without a chain (head pointer gone) every record is outside it;
+		// the markers say nothing then.
+		if inChain != nil && committedMarked(ctx, store, target.Repository, d) {
+			rep.add(SeverityDamage, d, "a record of %s whose promote or rollback saw its tag move succeed and reported success, but that is no longer in the chain: a concurrent release overwrote it (a race on a store without compare-and-swap) or the tags were moved by hand; check that %s points at the model it should", target, target)
+			continue
+		}
 		rep.add(SeverityNote, d, "a record of %s that never took effect (its promote or rollback lost a race or stopped before moving the tag)", target)
 	}
+}
+
+// committedMarked reports whether the record d has a release-committed
+// marker (see markCommitted).
+func committedMarked(ctx context.Context, store registry.Store, repo, d string) bool {
+	h, err := registry.ParseDigest(d)
+	if err != nil {
+		return false
+	}
+	ds, err := store.Referrers(ctx, repo, h, ArtifactTypeCommitted)
+	return err == nil && len(ds) > 0
 }
 
 func trustedKey(keys []PublicKey, k PublicKey) bool {

@@ -2,6 +2,7 @@ package release
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"sort"
@@ -10,6 +11,7 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
+	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
 	"modelgate/internal/policy"
 	"modelgate/internal/registry"
@@ -320,6 +322,27 @@ func commit(ctx context.Context, store registry.Store, sw registry.TagSwapper, s
 			return errkind.New(errkind.Integrity, "%s now points at %s, but the release log head %s was moved by someone else before it could name record %s: run `modelgate log %s`", t, toDesc.Digest, s.headTag, recDesc.Digest, t)
 		}
 		return fmt.Errorf("%s moved, but advancing the release log head failed (the next promote or rollback completes it): %w", t, err)
+	}
+	return markCommitted(ctx, store, s, recDesc)
+}
+
+// markCommitted records, as a referrer of the release record, that this
+// process saw its tag moves succeed, before it reports success. On a store
+// without compare-and-swap (an OCI registry) a concurrent release can
+// still overwrite both tags afterwards; the record then drops out of the
+// chain while its marker stays, and `log` reports it as damage instead of
+// a harmless unused record, so a release that was announced and then lost
+// cannot go unnoticed.
+func markCommitted(ctx context.Context, store registry.Store, s *state, recDesc v1.Descriptor) error {
+	t := s.target
+	body, err := json.Marshal(map[string]string{"record": recDesc.Digest.String(), "target": t.String(), "time": time.Now().UTC().Format(time.RFC3339Nano)})
+	if err != nil {
+		return err
+	}
+	layer := artifact.NewBlob(MediaTypeCommitted, body, map[string]string{artifact.AnnotationTitle: "committed.json"})
+	if _, err := putArtifact(ctx, store, t.Repository, ArtifactTypeCommitted, []artifact.Blob{layer}, recDesc,
+		map[string]string{AnnotationTarget: t.String()}); err != nil {
+		return fmt.Errorf("%s moved, but recording that it did failed (run `modelgate log %s`): %w", t, t, err)
 	}
 	return nil
 }

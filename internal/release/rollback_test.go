@@ -158,8 +158,48 @@ func TestLogDetectsDamage(t *testing.T) {
 		e.store.Tag(e.ctx, testRepo, "prod", to)
 		e.store.Tag(e.ctx, testRepo, "release-prod", d)
 		lg = e.log("rita")
-		if lg.Worst() != errkind.Unauthorized || !strings.Contains(findings(lg, SeverityUntrusted), "mallory") {
+		// Her key is untrusted, and the record she replaced had been
+		// released (its release-committed marker), so dropping it from
+		// the chain is damage.
+		if lg.Worst() != errkind.Integrity || !strings.Contains(findings(lg, SeverityUntrusted), "mallory") ||
+			!strings.Contains(findings(lg, SeverityDamage), "no longer in the chain") {
 			t.Errorf("forged record: %+v", lg.Findings)
+		}
+	})
+	t.Run("announced release overwritten by a racing one", func(t *testing.T) {
+		// What a plain OCI registry allows: promote A saw both tag moves
+		// succeed (it reported success and left its marker), then a racing
+		// promote B, made from the same parent, overwrote both tags. Both
+		// chains verify on their own; A's marker is what exposes the race.
+		e, lg := setup(t)
+		headA, _ := registry.ParseDigest(lg.Head)
+		lr, err := readRecord(e.ctx, e.store, testRepo, headA, prodRef.String())
+		if err != nil {
+			t.Fatal(err)
+		}
+		recB := lr.Record
+		recB.To = e.models[3].String()
+		recB.Reason = "the racing promote"
+		released, _ := lr.releasedList(e.ctx, e.store, testRepo)
+		dB, err := writeRecord(e.ctx, e.store, testRepo, &recB, appendNew(released[:len(released)-1], recB.To), nil, e.keys["rita"])
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, to, _ := e.store.Manifest(e.ctx, testRepo, e.models[3])
+		e.store.Tag(e.ctx, testRepo, "prod", to)
+		e.store.Tag(e.ctx, testRepo, "release-prod", dB)
+		if err := markCommitted(e.ctx, e.store, &state{target: prodRef}, dB); err != nil {
+			t.Fatal(err)
+		}
+		lg = e.log("rita")
+		dmg := findings(lg, SeverityDamage)
+		if lg.Worst() != errkind.Integrity || !strings.Contains(dmg, "no longer in the chain") {
+			t.Errorf("lost race not exposed: %+v", lg.Findings)
+		}
+		for _, f := range lg.Findings {
+			if f.Severity == SeverityDamage && f.Where != headA.String() {
+				t.Errorf("damage reported at %s, want only the overwritten record %s", f.Where, headA)
+			}
 		}
 	})
 	t.Run("signature altered", func(t *testing.T) {

@@ -18,6 +18,9 @@ import (
 var (
 	ArtifactTypeApproval = artifact.ArtifactType("approval")
 	ArtifactTypeRelease  = artifact.ArtifactType("release")
+	// ArtifactTypeCommitted marks a release record whose tag move the
+	// releasing process saw succeed (a referrer of the record).
+	ArtifactTypeCommitted = artifact.ArtifactType("release-committed")
 )
 
 // Annotations on approval and release record manifests. They are hints
