@@ -60,11 +60,29 @@ func ScanHoldout(path string, progress func(Event)) (*HoldoutInfo, error) {
 	if err != nil {
 		return nil, err
 	}
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, errkind.Wrap(errkind.BadInput, fmt.Errorf("opening holdout: %w", err))
+	}
+	defer f.Close()
+	st, err := f.Stat()
+	if err != nil {
+		return nil, fmt.Errorf("opening holdout %q: %w", path, err)
+	}
+	return scanHoldoutAt(f, st.Size(), path, format, progress)
+}
+
+// scanHoldoutAt is ScanHoldout over size bytes of r, named path in
+// messages.
+func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress func(Event)) (*HoldoutInfo, error) {
+	if format == data.FormatCSV {
+		return nil, errkind.New(errkind.BadInput, "%s: CSV is not a holdout format (want .parquet, .jsonl or .ndjson)", path)
+	}
 	spec, vocab, err := structuralSpec()
 	if err != nil {
 		return nil, err
 	}
-	r, err := data.Open(path, data.Options{Spec: spec, Vocab: vocab, Name: path})
+	r, err := data.OpenReader(ra, size, format, data.Options{Spec: spec, Vocab: vocab, Name: path})
 	if err != nil {
 		return nil, err
 	}
@@ -108,61 +126,121 @@ var holdoutMediaTypes = map[string]types.MediaType{
 
 // PushHoldout checks a holdout file row by row and stores it as a holdout
 // artifact: the file as one blob (streamed, never held in memory), its
-// summary as the config.
+// summary as the config. On a store that stages blobs the file is read
+// once: it streams into the store (hashed as it is written) and the row
+// check reads the staged copy, so the summary describes exactly the bytes
+// stored even if the file changes meanwhile; other stores get a check, a
+// hash and an upload, each reading the file.
 func PushHoldout(ctx context.Context, store registry.Store, path string, ref registry.Ref, opts Options) (*PushResult, error) {
 	if ref.Tag == "" || ref.HasDigest() {
 		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
 	}
-	info, err := ScanHoldout(path, opts.Progress)
+	format, err := data.FormatOf(path)
 	if err != nil {
 		return nil, err
 	}
-	mt, ok := holdoutMediaTypes[info.Format]
+	if format == data.FormatCSV {
+		return nil, errkind.New(errkind.BadInput, "%s: CSV is not a holdout format (want .parquet, .jsonl or .ndjson)", path)
+	}
+	mt, ok := holdoutMediaTypes[format]
 	if !ok {
-		return nil, errkind.New(errkind.BadInput, "holdout %s: format %q cannot be stored", path, info.Format)
+		return nil, errkind.New(errkind.BadInput, "holdout %s: format %q cannot be stored", path, format)
 	}
-	f, err := os.Open(path)
-	if err != nil {
-		return nil, errkind.Wrap(errkind.BadInput, err)
-	}
-	defer f.Close()
-	h := sha256.New()
-	size, err := io.Copy(h, f)
-	if err != nil {
-		return nil, fmt.Errorf("hashing %s: %w", path, err)
-	}
-	desc := v1.Descriptor{MediaType: mt, Size: size, Digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(h.Sum(nil))},
-		Annotations: map[string]string{AnnotationTitle: info.File}}
-	res := &PushResult{Ref: ref.String(), Kind: "holdout"}
-	if _, err := store.StatBlob(ctx, ref.Repository, desc.Digest); err == nil {
-		res.BlobsSkipped++
+	var info *HoldoutInfo
+	var layer Blob
+	if stager, ok := store.(registry.BlobStager); ok {
+		info, layer, err = stageHoldout(ctx, stager, ref.Repository, path, format, opts)
 	} else {
-		if _, err := f.Seek(0, io.SeekStart); err != nil {
-			return nil, err
-		}
-		opts.emit(Event{Phase: "upload", Name: info.File, Total: size})
-		if err := store.PutBlob(ctx, ref.Repository, desc.Digest, size, f); err != nil {
-			return nil, fmt.Errorf("uploading %s: %w", path, err)
-		}
-		opts.emit(Event{Phase: "upload", Name: info.File, Done: size, Total: size})
-		res.BlobsWritten++
-		res.BytesWritten += size
+		info, layer, err = hashHoldout(ctx, store, ref.Repository, path, opts)
 	}
+	if err != nil {
+		return nil, err
+	}
+	if layer.Staged != nil {
+		defer layer.Staged.Discard() // a no-op once committed
+	}
+	layer.Desc.MediaType, layer.Desc.Annotations = mt, map[string]string{AnnotationTitle: info.File}
 	cfg, err := json.Marshal(info)
 	if err != nil {
 		return nil, err
 	}
 	config := NewBlob(MediaTypeHoldoutInfo, cfg, nil)
-	layer := Blob{Desc: desc}
 	ann := map[string]string{AnnotationKind: "holdout", AnnotationName: info.File}
-	r2, err := PushArtifact(ctx, store, ref, ArtifactType("holdout"), config, []Blob{layer}, nil, ann, opts)
+	res, err := PushArtifact(ctx, store, ref, ArtifactType("holdout"), config, []Blob{layer}, nil, ann, opts)
 	if err != nil {
 		return nil, err
 	}
-	r2.BlobsWritten += res.BlobsWritten
-	r2.BytesWritten += res.BytesWritten
-	r2.BlobsSkipped += res.BlobsSkipped - 1 // the data blob is present now and was counted as skipped
-	return r2, nil
+	if layer.uploaded {
+		// hashHoldout put the data blob up; PushArtifact found it present.
+		res.BlobsSkipped--
+		res.BlobsWritten++
+		res.BytesWritten += layer.Desc.Size
+	}
+	return res, nil
+}
+
+// stageHoldout streams the file into the store and checks the staged copy.
+func stageHoldout(ctx context.Context, stager registry.BlobStager, repo, path, format string, opts Options) (*HoldoutInfo, Blob, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, Blob{}, errkind.Wrap(errkind.BadInput, fmt.Errorf("opening holdout: %w", err))
+	}
+	defer f.Close()
+	st, err := f.Stat()
+	if err != nil {
+		return nil, Blob{}, fmt.Errorf("opening holdout %q: %w", path, err)
+	}
+	name := filepath.Base(path)
+	opts.emit(Event{Phase: "upload", Name: name, Total: st.Size()})
+	sb, err := stager.StageBlob(ctx, repo, st.Size(), &progressReader{r: f, opts: opts, name: name, total: st.Size()})
+	if errors.Is(err, registry.ErrDigestMismatch) {
+		return nil, Blob{}, errkind.New(errkind.BadInput, "holdout %s changed while it was pushed (%v); push again once it is written", path, err)
+	}
+	if err != nil {
+		return nil, Blob{}, fmt.Errorf("uploading %s: %w", path, err)
+	}
+	var ra io.ReaderAt = f // stores that cannot read a staged blob back
+	if sr, ok := sb.(registry.StagedReader); ok {
+		ra = sr
+	}
+	info, err := scanHoldoutAt(ra, sb.Size(), path, format, opts.Progress)
+	if err != nil {
+		sb.Discard()
+		return nil, Blob{}, err
+	}
+	return info, Blob{Desc: v1.Descriptor{Size: sb.Size(), Digest: sb.Digest()}, Staged: sb}, nil
+}
+
+// hashHoldout checks, hashes and uploads the file, each a pass over it.
+func hashHoldout(ctx context.Context, store registry.Store, repo, path string, opts Options) (*HoldoutInfo, Blob, error) {
+	info, err := ScanHoldout(path, opts.Progress)
+	if err != nil {
+		return nil, Blob{}, err
+	}
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, Blob{}, errkind.Wrap(errkind.BadInput, err)
+	}
+	defer f.Close()
+	h := sha256.New()
+	size, err := io.Copy(h, f)
+	if err != nil {
+		return nil, Blob{}, fmt.Errorf("hashing %s: %w", path, err)
+	}
+	b := Blob{Desc: v1.Descriptor{Size: size, Digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(h.Sum(nil))}}}
+	if _, err := store.StatBlob(ctx, repo, b.Desc.Digest); err == nil {
+		return info, b, nil
+	}
+	if _, err := f.Seek(0, io.SeekStart); err != nil {
+		return nil, Blob{}, err
+	}
+	opts.emit(Event{Phase: "upload", Name: info.File, Total: size})
+	if err := store.PutBlob(ctx, repo, b.Desc.Digest, size, f); err != nil {
+		return nil, Blob{}, fmt.Errorf("uploading %s: %w", path, err)
+	}
+	opts.emit(Event{Phase: "upload", Name: info.File, Done: size, Total: size})
+	b.uploaded = true
+	return info, b, nil
 }
 
 // Holdout is a holdout artifact fetched into a local file for reading.

@@ -63,6 +63,9 @@ type Blob struct {
 	Desc   v1.Descriptor
 	Bytes  []byte
 	Staged registry.StagedBlob
+	// uploaded says a blob without Bytes was put in the store by the
+	// caller just before (it counts as written, not skipped).
+	uploaded bool
 }
 
 // NewBlob describes b with the given media type.

@@ -238,3 +238,56 @@ func TestPullRefusesNonFiniteContent(t *testing.T) {
 		t.Errorf("a content problem reported as a digest mismatch: %v", err)
 	}
 }
+
+// TestHoldoutPushPaths: a holdout pushed by streaming into a staging store
+// (checked on the staged copy) and by the check-hash-upload path give the
+// same artifact and summary; a bad row leaves a staging store unchanged.
+func TestHoldoutPushPaths(t *testing.T) {
+	ctx := context.Background()
+	dir := t.TempDir()
+	good := filepath.Join(dir, "listeners.jsonl")
+	rows := `{"row_id":1,"items":["show-003","show-010"],"values":[2,1],"label":1,"slice":"new"}` + "\n" +
+		`{"row_id":2,"items":[],"values":[],"label":0,"slice":"new"}` + "\n" +
+		`{"row_id":3,"items":["show-007"],"values":[5],"label":0,"slice":"returning"}` + "\n"
+	if err := os.WriteFile(good, []byte(rows), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	href := registry.Ref{Repository: "promo-holdout", Tag: "v1"}
+	staged, buffered := openStore(t), openStore(t)
+	r1, err := PushHoldout(ctx, staged, good, href, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	r2, err := PushHoldout(ctx, plainStore{buffered}, good, href, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if r1.Digest != r2.Digest || r1.BlobsWritten != r2.BlobsWritten || r1.BytesWritten != r2.BytesWritten || r1.BlobsSkipped != r2.BlobsSkipped {
+		t.Errorf("staged %+v\nbuffered %+v", r1, r2)
+	}
+	h, err := FetchHoldout(ctx, staged, href)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer h.Close()
+	if h.Info.Rows != 3 || h.Info.Positives != 1 || !h.Info.HasLabels || h.Info.Slices["new"] != 2 || h.Info.Nonzeros != 3 {
+		t.Errorf("summary %+v", h.Info)
+	}
+	if r3, err := PushHoldout(ctx, staged, good, href, Options{}); err != nil || r3.BlobsWritten != 0 {
+		t.Errorf("second push: %+v, %v", r3, err)
+	}
+
+	bad := filepath.Join(dir, "bad.jsonl")
+	if err := os.WriteFile(bad, []byte(rows+`{"row_id":4,"items":[],"values":[],"label":2}`+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	before := storeFiles(t, staged)
+	_, err = PushHoldout(ctx, staged, bad, registry.Ref{Repository: "promo-holdout", Tag: "bad"}, Options{})
+	if errkind.Of(err) != errkind.BadInput || !strings.Contains(err.Error(), "row 4") {
+		t.Errorf("bad row: got %v", err)
+	}
+	after := storeFiles(t, staged)
+	if len(after) != len(before) {
+		t.Errorf("a refused holdout changed the store: %d files → %d", len(before), len(after))
+	}
+}

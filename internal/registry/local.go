@@ -389,6 +389,16 @@ const (
 	stagedDiscarded
 )
 
+var _ StagedReader = (*localStaged)(nil)
+
+// ReadAt reads the staged bytes (before Commit or Discard only).
+func (s *localStaged) ReadAt(p []byte, off int64) (int, error) {
+	if s.state != stagedOpen || s.f == nil {
+		return 0, fmt.Errorf("reading staged blob %s: it was committed or discarded", s.digest)
+	}
+	return s.f.ReadAt(p, off)
+}
+
 func (s *localStaged) Digest() v1.Hash { return s.digest }
 func (s *localStaged) Size() int64     { return s.size }
 

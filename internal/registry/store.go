@@ -128,6 +128,15 @@ type StagedBlob interface {
 	Discard() error
 }
 
+// StagedReader is a StagedBlob whose bytes can be read back before Commit
+// (the local store's can): a caller that must look at the content in
+// random order, as a Parquet reader does, reads the very bytes that will
+// be committed instead of the source a second time.
+type StagedReader interface {
+	StagedBlob
+	io.ReaderAt
+}
+
 // Finding is something a store-level check noticed.
 type Finding struct {
 	// Severity is "damage" (integrity lost) or "hint" (harmless, e.g. an
