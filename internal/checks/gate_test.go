@@ -7,6 +7,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"sync"
 	"testing"
@@ -422,6 +423,70 @@ func TestFrozenCandidatePasses(t *testing.T) {
 	for _, c := range rep.Checks {
 		if c.Name == CheckFreeze && !strings.Contains(c.Summary, "unfrozen composition") {
 			t.Errorf("freeze summary does not report the output verification: %s", c.Summary)
+		}
+	}
+}
+
+// TestHoldoutSliceColumn: the holdout's own slice column (the demo's
+// listener cohorts) gets per-value results, on top of the nonzero-count
+// slices. Each grouping partitions the rows: row counts match the
+// holdout's summary, weights and weighted log-loss sums add up to the
+// all-rows figures (log loss is a weighted mean, so sums add).
+func TestHoldoutSliceColumn(t *testing.T) {
+	store := demoScenario(t)
+	rep := gate(t, store, "promo-scorer:cand-better", "promo-scorer:prod", "promo-scorer.yaml")
+	var det *HoldoutDetail
+	for _, c := range rep.Checks {
+		if c.Name == CheckHoldout {
+			det = c.Holdout
+		}
+	}
+	if det == nil {
+		t.Fatal("no holdout detail")
+	}
+	hold, err := artifact.FetchHoldout(context.Background(), store, registry.Ref{Repository: "promo-holdout", Tag: "v1"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer hold.Close()
+	if len(hold.Info.Slices) != 3 {
+		t.Fatalf("the demo holdout has slice values %v, want 3 cohorts", hold.Info.Slices)
+	}
+	var segRows, nzRows int64
+	var segW, segLoss, nzW, nzLoss float64
+	seen := 0
+	for _, s := range det.Slices {
+		wl := s.Candidate.WeightSum * s.Candidate.LogLoss
+		if strings.HasPrefix(s.Name, "holdout slice ") {
+			seen++
+			v, err := strconv.Unquote(strings.TrimPrefix(s.Name, "holdout slice "))
+			if err != nil {
+				t.Fatalf("slice name %q: %v", s.Name, err)
+			}
+			if s.Rows != hold.Info.Slices[v] {
+				t.Errorf("%s: %d rows, the holdout summary says %d", s.Name, s.Rows, hold.Info.Slices[v])
+			}
+			if s.Baseline == nil || s.Test == nil {
+				t.Errorf("%s: no baseline comparison", s.Name)
+			}
+			segRows, segW, segLoss = segRows+s.Rows, segW+s.Candidate.WeightSum, segLoss+wl
+		} else {
+			nzRows, nzW, nzLoss = nzRows+s.Rows, nzW+s.Candidate.WeightSum, nzLoss+wl
+		}
+	}
+	if seen != 3 {
+		t.Errorf("%d holdout-slice results, want 3", seen)
+	}
+	all := det.Candidate
+	for _, g := range []struct {
+		name  string
+		rows  int64
+		w, wl float64
+	}{{"holdout slices", segRows, segW, segLoss}, {"nonzero slices", nzRows, nzW, nzLoss}} {
+		if g.rows != all.Rows || math.Abs(g.w-all.WeightSum) > 1e-9*all.WeightSum ||
+			math.Abs(g.wl-all.WeightSum*all.LogLoss) > 1e-9*all.WeightSum*all.LogLoss {
+			t.Errorf("%s: %d rows, weight %.9g, weighted loss %.9g; all rows: %d, %.9g, %.9g",
+				g.name, g.rows, g.w, g.wl, all.Rows, all.WeightSum, all.WeightSum*all.LogLoss)
 		}
 	}
 }

@@ -189,6 +189,23 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		}
 		return aboveName
 	}
+	// Rows are also grouped by the holdout's own slice column (a cohort,
+	// a region...), when its summary lists between 1 and maxHoldoutSlices
+	// values: every shard sees the same list, so sharded runs agree.
+	segments := len(hold.Info.Slices) > 0 && len(hold.Info.Slices) <= maxHoldoutSlices
+	if len(hold.Info.Slices) > maxHoldoutSlices {
+		st.Findings = append(st.Findings, Finding{Status: StatusWarn, Code: "holdout.slices",
+			Message: fmt.Sprintf("the holdout's slice column has %d values; per-value results are reported for at most %d", len(hold.Info.Slices), maxHoldoutSlices)})
+	}
+	segNames := map[string]string{}
+	segmentOf := func(v string) string {
+		name, ok := segNames[v]
+		if !ok {
+			name = SegmentSliceName(v)
+			segNames[v] = name
+		}
+		return name
+	}
 	// Slices get the paired t test without bootstrap replicates: the
 	// bootstrap (R draws per row) is the gate's costliest statistic, and it
 	// is reported, not deciding, so it runs once, over all rows.
@@ -309,9 +326,16 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			}
 		}
 		lc, lb, d = grow64(lc, n), grow64(lb, n), grow64(d, n)
-		groups, err := groupRows(n, nnz, sliceOf, slice)
+		groups, err := groupRows(n, func(i int) string { return sliceOf(nnz[i]) }, slice)
 		if err != nil {
 			return nil, err
+		}
+		if segments {
+			segGroups, err := groupRows(n, func(i int) string { return segmentOf(fc.Slices[i]) }, slice)
+			if err != nil {
+				return nil, err
+			}
+			groups = append(groups, segGroups...)
 		}
 		if encoder {
 			tf := time.Now()
@@ -334,7 +358,15 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				if err != nil {
 					return nil, err
 				}
-				for _, a := range []*sliceAcc{all, acc} {
+				accs := []*sliceAcc{all, acc}
+				if segments {
+					seg, err := slice(segmentOf(fc.Slices[i]))
+					if err != nil {
+						return nil, err
+					}
+					accs = append(accs, seg)
+				}
+				for _, a := range accs {
 					c, err := a.rc.AddRow(qc[i*wc:(i+1)*wc], tc[i*wc:(i+1)*wc])
 					if err != nil {
 						return nil, fmt.Errorf("row %d: %w", rows+int64(i)+1, err)
@@ -519,12 +551,25 @@ type rowGroup struct {
 	rows []int
 }
 
-// groupRows groups a batch's rows by slice, in order of first appearance.
-func groupRows(n int, nnz []int, sliceOf func(int) string, slice func(string) (*sliceAcc, error)) ([]rowGroup, error) {
+// maxHoldoutSlices bounds the values of a holdout's slice column that get
+// their own results.
+const maxHoldoutSlices = 64
+
+// SegmentSliceName names the slice of rows whose slice column holds v.
+func SegmentSliceName(v string) string {
+	if v == "" {
+		return "holdout slice (none)"
+	}
+	return fmt.Sprintf("holdout slice %q", v)
+}
+
+// groupRows groups a batch's rows by the slice nameOf gives each, in order
+// of first appearance.
+func groupRows(n int, nameOf func(i int) string, slice func(string) (*sliceAcc, error)) ([]rowGroup, error) {
 	var groups []rowGroup
 	lastName, last := "", -1
 	for i := 0; i < n; i++ {
-		name := sliceOf(nnz[i])
+		name := nameOf(i)
 		if name != lastName || last < 0 {
 			last = -1
 			for k := range groups {
