@@ -3,7 +3,9 @@ package main
 import (
 	"context"
 	"fmt"
+	"io"
 	"sort"
+	"strconv"
 	"strings"
 	"text/tabwriter"
 
@@ -131,7 +133,7 @@ func shortDigest(d string) string {
 func newShowCmd(g *globals) *cobra.Command {
 	return &cobra.Command{
 		Use:   "show REF",
-		Short: "Describe a model: inputs, layers, sizes, lineage, annotations, tags",
+		Short: "Describe an artifact: a model's inputs, layers, sizes, lineage; a holdout's rows, labels, slices; tags, blobs, annotations",
 		Args:  exactArgs(1, "REF"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runShow(cmd.Context(), g, args[0])
@@ -166,6 +168,10 @@ func runShow(ctx context.Context, g *globals, refStr string) error {
 }
 
 func printDescription(g *globals, d *artifact.Description) {
+	if d.Kind != "encoder" && d.Kind != "scorer" {
+		printOther(g, d)
+		return
+	}
 	w := g.Stdout
 	fmt.Fprintf(w, "%s  %s\n", d.Ref, d.Digest)
 	fmt.Fprintf(w, "kind:        %s (%s)\n", d.Kind, d.ArtifactType)
@@ -227,8 +233,59 @@ func printDescription(g *globals, d *artifact.Description) {
 			fmt.Fprintf(w, "  %-14s %s\n", kv[0]+":", kv[1])
 		}
 	}
+	printBlobsAndAnnotations(w, d)
+}
+
+// printOther prints an artifact that is not a model: a holdout's summary,
+// or what a report, approval or release record is about.
+func printOther(g *globals, d *artifact.Description) {
+	w := g.Stdout
+	fmt.Fprintf(w, "%s  %s\n", d.Ref, d.Digest)
+	fmt.Fprintf(w, "kind:        %s (%s)\n", d.Kind, d.ArtifactType)
+	fmt.Fprintf(w, "tags:        %s\n", strings.Join(d.Tags, ", "))
+	fmt.Fprintf(w, "size:        %s in %d blobs\n", humanBytes(d.TotalSize), len(d.Blobs))
+	if d.Subject != "" {
+		fmt.Fprintf(w, "about:       %s\n", d.Subject)
+	}
+	if h := d.Holdout; h != nil {
+		fmt.Fprintf(w, "file:        %s (%s)\n", h.File, h.Format)
+		fmt.Fprintf(w, "rows:        %d, %d (item, value) pairs (%.2f per row)\n", h.Rows, h.Nonzeros, float64(h.Nonzeros)/float64(max(h.Rows, 1)))
+		if h.HasLabels {
+			fmt.Fprintf(w, "labels:      %d positive (%.2f%%)\n", h.Positives, 100*float64(h.Positives)/float64(max(h.Rows, 1)))
+		} else {
+			fmt.Fprintln(w, "labels:      none (usable for encoders only)")
+		}
+		if len(h.Slices) > 0 {
+			names := make([]string, 0, len(h.Slices))
+			for k := range h.Slices {
+				names = append(names, k)
+			}
+			sort.Slice(names, func(i, j int) bool {
+				if h.Slices[names[i]] != h.Slices[names[j]] {
+					return h.Slices[names[i]] > h.Slices[names[j]]
+				}
+				return names[i] < names[j]
+			})
+			fmt.Fprintf(w, "slices:      %d value(s)\n", len(names))
+			for i, k := range names {
+				if i == 20 {
+					fmt.Fprintf(w, "  … %d more\n", len(names)-i)
+					break
+				}
+				label := strconv.Quote(k)
+				if k == "" {
+					label = "(none)"
+				}
+				fmt.Fprintf(w, "  %-24s %d rows\n", label, h.Slices[k])
+			}
+		}
+	}
+	printBlobsAndAnnotations(w, d)
+}
+
+func printBlobsAndAnnotations(w io.Writer, d *artifact.Description) {
 	fmt.Fprintln(w, "\nblobs:")
-	tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
 	for _, b := range d.Blobs {
 		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\n", b.Title, b.MediaType, shortDigest(b.Digest), humanBytes(b.Size))
 	}

@@ -156,3 +156,52 @@ func TestPushNumpyExport(t *testing.T) {
 	}
 	mustMG(t, store, "verify")
 }
+
+// TestShowOtherArtifacts: show describes a holdout (its summary: rows,
+// labels, slice values) and a release record (what it is about), not only
+// models; --json carries the same.
+func TestShowOtherArtifacts(t *testing.T) {
+	dir := t.TempDir()
+	store := filepath.Join(dir, "store")
+	hold := filepath.Join(dir, "listeners.jsonl")
+	rows := `{"row_id":1,"items":["show-003"],"values":[2],"label":1,"slice":"new"}` + "\n" +
+		`{"row_id":2,"items":["show-003","show-010"],"values":[1,4],"label":0,"slice":"new"}` + "\n" +
+		`{"row_id":3,"items":[],"values":[],"label":0,"slice":"returning"}` + "\n"
+	if err := os.WriteFile(hold, []byte(rows), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	mustMG(t, store, "push", "--kind", "holdout", hold, "listeners:v1")
+	out := mustMG(t, store, "show", "listeners:v1").stdout
+	for _, want := range []string{"kind:        holdout", "rows:        3, 3 (item, value) pairs", "labels:      1 positive (33.33%)",
+		"slices:      2 value(s)", `"new"                    2 rows`, "listeners.jsonl"} {
+		if !strings.Contains(out, want) {
+			t.Errorf("show of a holdout lacks %q:\n%s", want, out)
+		}
+	}
+	var d struct {
+		Kind    string
+		Holdout struct {
+			Rows      int64
+			Positives int64
+			Slices    map[string]int64
+		}
+	}
+	if err := json.Unmarshal([]byte(mustMG(t, store, "show", "--json", "listeners:v1").stdout), &d); err != nil {
+		t.Fatal(err)
+	}
+	if d.Kind != "holdout" || d.Holdout.Rows != 3 || d.Holdout.Positives != 1 || d.Holdout.Slices["returning"] != 1 {
+		t.Errorf("show --json of a holdout: %+v", d)
+	}
+
+	w := newReleaseWorld(t, 0)
+	w.push(0, "tiny-encoder:prod")
+	cand := w.push(1, "")
+	w.gate("tiny-encoder:v1")
+	if r := w.promote("tiny-encoder:v1", "--key", w.key("rita")); r.code != 0 {
+		t.Fatalf("promote: %d %s", r.code, r.stderr)
+	}
+	rec := mustMG(t, w.store, "show", "tiny-encoder:release-prod").stdout
+	if !strings.Contains(rec, "kind:        release") || !strings.Contains(rec, "about:       "+cand) {
+		t.Errorf("show of a release record:\n%s", rec)
+	}
+}

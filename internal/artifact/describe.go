@@ -8,6 +8,8 @@ import (
 	"sort"
 	"strings"
 
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
 	"modelgate/internal/model"
 	"modelgate/internal/registry"
 )
@@ -24,7 +26,10 @@ type LayerRow struct {
 	Params     int64  `json:"params"`
 }
 
-// Description is what `show` prints about a model.
+// Description is what `show` prints about an artifact: everything below
+// for a model; for other artifacts (holdouts, reports, approvals, release
+// records) the kind, blobs, tags, subject and annotations, plus a
+// holdout's summary.
 type Description struct {
 	Ref          string               `json:"ref"`
 	Digest       string               `json:"digest"`
@@ -45,6 +50,11 @@ type Description struct {
 	Tags         []string             `json:"tags"`
 	Probes       int                  `json:"probes"`
 	Problems     []string             `json:"problems,omitempty"`
+	// Subject is the digest of the artifact this one is about (reports,
+	// approvals and records name the model or record they concern).
+	Subject string `json:"subject,omitempty"`
+	// Holdout is a holdout's summary (its config blob, verified).
+	Holdout *HoldoutInfo `json:"holdout,omitempty"`
 }
 
 // BlobRow is one blob of an artifact.
@@ -58,11 +68,19 @@ type BlobRow struct {
 // Describe loads a model and summarises it, including the tags of its
 // repository that point at it.
 func Describe(ctx context.Context, store registry.Store, ref registry.Ref) (*Description, error) {
-	l, err := Load(ctx, store, ref)
+	a, err := ReadArtifact(ctx, store, ref)
 	if err != nil {
 		return nil, err
 	}
-	a := l.Artifact
+	if k := a.Kind(); k != model.KindEncoder && k != model.KindScorer {
+		return describeOther(ctx, store, ref, a)
+	}
+	// By digest: the tag may move meanwhile.
+	l, err := Load(ctx, store, registry.Ref{Repository: ref.Repository, Digest: a.Desc.Digest})
+	if err != nil {
+		return nil, err
+	}
+	a = l.Artifact
 	d := &Description{
 		Ref: ref.String(), Digest: a.Desc.Digest.String(), Kind: a.Kind(), ArtifactType: a.Manifest.ArtifactType,
 		Annotations: a.Manifest.Annotations, Problems: l.Problems, Probes: len(l.Probes),
@@ -73,14 +91,7 @@ func Describe(ctx context.Context, store registry.Store, ref registry.Ref) (*Des
 		d.Blobs = append(d.Blobs, BlobRow{Title: b.Annotations[AnnotationTitle], MediaType: string(b.MediaType), Digest: b.Digest.String(), Size: b.Size})
 		d.TotalSize += b.Size
 	}
-	tags, err := store.Tags(ctx, ref.Repository)
-	if err == nil {
-		for _, t := range tags {
-			if td, err := store.Resolve(ctx, ref.Repository, t); err == nil && td.Digest == a.Desc.Digest {
-				d.Tags = append(d.Tags, ref.Repository+":"+t)
-			}
-		}
-	}
+	d.Tags = tagsOf(ctx, store, ref.Repository, a.Desc.Digest)
 	if l.Spec == nil {
 		return d, nil
 	}
@@ -366,4 +377,53 @@ func isLeafArray(x []any) bool {
 		}
 	}
 	return true
+}
+
+// tagsOf lists the tags of repo pointing at dgst, as REPO:TAG.
+func tagsOf(ctx context.Context, store registry.Store, repo string, dgst v1.Hash) []string {
+	var out []string
+	tags, err := store.Tags(ctx, repo)
+	if err != nil {
+		return nil
+	}
+	for _, t := range tags {
+		if td, err := store.Resolve(ctx, repo, t); err == nil && td.Digest == dgst {
+			out = append(out, repo+":"+t)
+		}
+	}
+	return out
+}
+
+// describeOther describes an artifact that is not a model. A holdout's
+// summary is read (and verified); its data blob is not re-read here
+// (`verify` re-hashes it).
+func describeOther(ctx context.Context, store registry.Store, ref registry.Ref, a *Artifact) (*Description, error) {
+	m := a.Manifest
+	d := &Description{Ref: ref.String(), Digest: a.Desc.Digest.String(), Kind: a.Kind(), ArtifactType: m.ArtifactType,
+		Annotations: m.Annotations, TotalSize: a.Desc.Size + m.Config.Size}
+	if d.Kind == "" {
+		d.Kind = "other"
+	}
+	if m.Subject != nil {
+		d.Subject = m.Subject.Digest.String()
+	}
+	d.Blobs = append(d.Blobs, BlobRow{Title: "(config)", MediaType: string(m.Config.MediaType), Digest: m.Config.Digest.String(), Size: m.Config.Size})
+	for _, b := range m.Layers {
+		d.Blobs = append(d.Blobs, BlobRow{Title: b.Annotations[AnnotationTitle], MediaType: string(b.MediaType), Digest: b.Digest.String(), Size: b.Size})
+		d.TotalSize += b.Size
+	}
+	d.Tags = tagsOf(ctx, store, ref.Repository, a.Desc.Digest)
+	if m.Config.MediaType == MediaTypeHoldoutInfo {
+		raw, err := ReadBlob(ctx, store, a.Repository, m.Config, 1<<20)
+		if err != nil {
+			return nil, err
+		}
+		var info HoldoutInfo
+		if err := json.Unmarshal(raw, &info); err != nil {
+			d.Problems = append(d.Problems, fmt.Sprintf("holdout summary: %v", err))
+		} else {
+			d.Holdout = &info
+		}
+	}
+	return d, nil
 }
