@@ -17,7 +17,7 @@ import (
 )
 
 // bigModel writes an encoder whose one tensor file is about mb megabytes.
-func bigModel(b *testing.B, dir string, mb int) string {
+func bigModel(b testing.TB, dir string, mb int) string {
 	b.Helper()
 	const width = 256
 	rows := mb << 20 / 4 / width

@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/binary"
 	"errors"
+	"fmt"
 	"io/fs"
 	"os"
 	"path/filepath"
@@ -289,5 +290,58 @@ func TestHoldoutPushPaths(t *testing.T) {
 	after := storeFiles(t, staged)
 	if len(after) != len(before) {
 		t.Errorf("a refused holdout changed the store: %d files → %d", len(before), len(after))
+	}
+}
+
+// TestVerifyStreamsModels: verify finds a NaN weight in a stored model
+// (put there by a tool that checks nothing) and a tensor blob whose bytes
+// were changed on disk, without decoding the model.
+func TestVerifyStreamsModels(t *testing.T) {
+	ctx := context.Background()
+	dir := encoderDir(t)
+	d, err := modeldir.Read(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	name := plantNaN(t, filepath.Join(dir, "encoder.safetensors"), 2)
+	bad, _ := os.ReadFile(filepath.Join(dir, "encoder.safetensors"))
+	config, layers, ann, err := ModelBlobs(d)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var tensorDigest string
+	for i, l := range layers {
+		if l.Desc.Annotations[AnnotationTitle] == "encoder.safetensors" {
+			layers[i] = NewBlob(MediaTypeTensors, bad, l.Desc.Annotations)
+			tensorDigest = layers[i].Desc.Digest.Hex
+		}
+	}
+	s := openStore(t)
+	if _, err := PushArtifact(ctx, s, ref, ArtifactType("encoder"), config, layers, nil, ann, Options{}); err != nil {
+		t.Fatal(err)
+	}
+	rep, err := VerifyStore(ctx, s, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if rep.OK() || rep.Models != 1 || !strings.Contains(fmt.Sprint(rep.Findings), "tensor \""+name+"\" has a non-finite value at flat index 2") {
+		t.Errorf("NaN weight: %+v", rep)
+	}
+
+	// Flip a byte of the stored tensor blob: its digest no longer matches.
+	p := filepath.Join(s.Dir(), "blobs", "sha256", tensorDigest)
+	os.Chmod(p, 0o644)
+	b, _ := os.ReadFile(p)
+	b[len(b)-1] ^= 1
+	if err := os.WriteFile(p, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	rep, err = VerifyStore(ctx, s, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	text := fmt.Sprint(rep.Findings)
+	if rep.OK() || !strings.Contains(text, "model unreadable") || !strings.Contains(text, "the blob is corrupt") {
+		t.Errorf("changed blob: %+v", rep)
 	}
 }

@@ -329,6 +329,26 @@ func Load(ctx context.Context, store registry.Store, ref registry.Ref) (*Loaded,
 			l.Tensors[k] = v
 		}
 	}
+	l.checkSmallFiles(spec, byName)
+	if spec.Encoder != nil && !spec.Encoder.Embedded {
+		loc, err := FindEncoder(ctx, store, spec.Encoder)
+		if err != nil {
+			l.Problems = append(l.Problems, err.Error())
+		} else {
+			enc, err := Load(ctx, store, registry.Ref{Repository: loc.Repository, Digest: loc.Digest})
+			if err != nil {
+				return nil, fmt.Errorf("loading encoder %s: %w", spec.Encoder.Digest, err)
+			}
+			l.Encoder = enc
+			l.Problems = append(l.Problems, prefixAll("encoder: ", enc.Problems)...)
+		}
+	}
+	return l, nil
+}
+
+// checkSmallFiles parses the vocabulary, probes and stats (byName maps
+// file names to bytes) into l, listing problems.
+func (l *Loaded) checkSmallFiles(spec *model.Spec, byName map[string][]byte) {
 	in := spec.Inputs.Sparse[0]
 	if b, ok := byName[in.Vocabulary]; ok {
 		ids, probs := modeldir.ParseVocabulary(in.Vocabulary, b, in.VocabularySize)
@@ -353,20 +373,85 @@ func Load(ctx context.Context, store registry.Store, ref registry.Ref) (*Loaded,
 			}
 		}
 	}
-	if spec.Encoder != nil && !spec.Encoder.Embedded {
-		loc, err := FindEncoder(ctx, store, spec.Encoder)
+}
+
+// CheckModel checks a stored model as Load does (spec; every tensor
+// against the spec, values finite; vocabulary, probes, stats; a scorer's
+// encoder present) without decoding it: each tensor blob streams through
+// a safetensors.Scanner while the store verifies its digest, so memory
+// does not grow with the model. A referenced encoder is looked up, not
+// checked again (it is a model of its own). Problems in the content are
+// returned as a list; an unreadable or damaged blob as an error.
+func CheckModel(ctx context.Context, store registry.Store, a *Artifact) ([]string, error) {
+	k := a.Kind()
+	if k != model.KindEncoder && k != model.KindScorer {
+		return nil, errkind.New(errkind.BadInput, "%s@%s is a %q artifact, not a model", a.Repository, a.Desc.Digest, a.Manifest.ArtifactType)
+	}
+	raw, err := ReadBlob(ctx, store, a.Repository, a.Manifest.Config, modeldir.MaxSpecSize)
+	if err != nil {
+		return nil, err
+	}
+	l := &Loaded{Artifact: a}
+	spec, vs, err := modeldir.ParseSpec(raw)
+	if err != nil {
+		return nil, err
+	}
+	if spec == nil || len(vs) > 0 {
+		return prefixAll("spec: ", vs), nil
+	}
+	layers := map[string]v1.Descriptor{}
+	for _, d := range a.Manifest.Layers {
+		name := d.Annotations[AnnotationTitle]
+		if _, dup := layers[name]; !safeName.MatchString(name) || dup {
+			return nil, errkind.New(errkind.Integrity, "layer %s of %s has an unsafe or repeated file name %q", d.Digest, a.Desc.Digest, name)
+		}
+		layers[name] = d
+	}
+	byFile := map[string][]model.Tensor{}
+	for _, t := range spec.Tensors {
+		byFile[t.File] = append(byFile[t.File], t)
+	}
+	tensorFiles := map[string]bool{}
+	for _, name := range modeldir.TensorFileNames(spec) {
+		tensorFiles[name] = true
+		d, ok := layers[name]
+		if !ok {
+			l.Problems = append(l.Problems, fmt.Sprintf("%s: tensor file named by the spec is not a layer of the artifact", name))
+			continue
+		}
+		if d.Size > MaxBlobSize {
+			return nil, errkind.New(errkind.Integrity, "layer %s claims %d bytes, more than the %d a tensor file may have", name, d.Size, int64(MaxBlobSize))
+		}
+		rc, err := store.Blob(ctx, a.Repository, d.Digest)
 		if err != nil {
+			return nil, err
+		}
+		sc := safetensors.NewScanner(d.Size)
+		_, err = io.Copy(&limitWriter{w: sc, left: d.Size, digest: d.Digest}, rc)
+		rc.Close()
+		if err != nil {
+			return nil, fmt.Errorf("reading %s: %w", name, err)
+		}
+		l.Problems = append(l.Problems, modeldir.ScanProblems(name, sc, byFile[name])...)
+	}
+	byName := map[string][]byte{}
+	for name, d := range layers {
+		if tensorFiles[name] {
+			continue
+		}
+		b, err := ReadBlob(ctx, store, a.Repository, d, layerLimit(d.MediaType))
+		if err != nil {
+			return nil, err
+		}
+		byName[name] = b
+	}
+	l.checkSmallFiles(spec, byName)
+	if spec.Encoder != nil && !spec.Encoder.Embedded {
+		if _, err := FindEncoder(ctx, store, spec.Encoder); err != nil {
 			l.Problems = append(l.Problems, err.Error())
-		} else {
-			enc, err := Load(ctx, store, registry.Ref{Repository: loc.Repository, Digest: loc.Digest})
-			if err != nil {
-				return nil, fmt.Errorf("loading encoder %s: %w", spec.Encoder.Digest, err)
-			}
-			l.Encoder = enc
-			l.Problems = append(l.Problems, prefixAll("encoder: ", enc.Problems)...)
 		}
 	}
-	return l, nil
+	return l.Problems, nil
 }
 
 func prefixAll(p string, xs []string) []string {

@@ -105,12 +105,12 @@ func VerifyStore(ctx context.Context, store registry.Store, progress func(Event)
 				continue
 			}
 			rep.Models++
-			l, err := Load(ctx, store, registry.Ref{Repository: repo, Digest: d})
+			problems, err := CheckModel(ctx, store, &Artifact{Repository: repo, Desc: v1.Descriptor{Digest: d, Size: int64(len(raw))}, Raw: raw, Manifest: m})
 			if err != nil {
 				rep.add(registry.SeverityDamage, where, "model unreadable: %v", err)
 				continue
 			}
-			for _, p := range l.Problems {
+			for _, p := range problems {
 				rep.add(registry.SeverityDamage, where, "%s", p)
 			}
 		}

@@ -12,6 +12,8 @@ import (
 	"os"
 	"path/filepath"
 	"regexp"
+	"runtime"
+	"sync"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 )
@@ -67,10 +69,38 @@ func (l *Local) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Findi
 	if err != nil {
 		return out, fmt.Errorf("scrubbing %s: %w", dir, err)
 	}
-	for _, e := range ents {
-		if err := ctx.Err(); err != nil {
-			return out, err
+	// Blobs are hashed by one worker per CPU; findings keep name order.
+	type hashed struct {
+		sum string
+		n   int64
+		err error
+	}
+	results := make([]hashed, len(ents))
+	jobs := make(chan int)
+	var wg sync.WaitGroup
+	for range max(1, min(runtime.GOMAXPROCS(0), len(ents))) {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for i := range jobs {
+				results[i].sum, results[i].n, results[i].err = hashFile(filepath.Join(dir, ents[i].Name()))
+			}
+		}()
+	}
+	for i, e := range ents {
+		if ctx.Err() != nil {
+			break
 		}
+		if hexPattern.MatchString(e.Name()) && e.Type().IsRegular() {
+			jobs <- i
+		}
+	}
+	close(jobs)
+	wg.Wait()
+	if err := ctx.Err(); err != nil {
+		return out, err
+	}
+	for i, e := range ents {
 		name := e.Name()
 		where := "blobs/sha256/" + name
 		if !hexPattern.MatchString(name) {
@@ -82,14 +112,14 @@ func (l *Local) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Findi
 			damage(where, "blob is not a regular file")
 			continue
 		}
-		sum, n, err := hashFile(filepath.Join(dir, name))
-		if err != nil {
-			damage(where, "cannot read blob: %v", err)
+		r := results[i]
+		if r.err != nil {
+			damage(where, "cannot read blob: %v", r.err)
 			continue
 		}
-		present[name] = n
-		if sum != name {
-			damage(where, "content hashes to sha256:%s (%d bytes): the blob is corrupt", sum, n)
+		present[name] = r.n
+		if r.sum != name {
+			damage(where, "content hashes to sha256:%s (%d bytes): the blob is corrupt", r.sum, r.n)
 		}
 	}
 
