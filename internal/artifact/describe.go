@@ -75,12 +75,12 @@ func Describe(ctx context.Context, store registry.Store, ref registry.Ref) (*Des
 	if k := a.Kind(); k != model.KindEncoder && k != model.KindScorer {
 		return describeOther(ctx, store, ref, a)
 	}
-	// By digest: the tag may move meanwhile.
-	l, err := Load(ctx, store, registry.Ref{Repository: ref.Repository, Digest: a.Desc.Digest})
+	// Checked as a stream, as verify does: memory does not grow with the
+	// model.
+	l, err := checkModel(ctx, store, a, true)
 	if err != nil {
 		return nil, err
 	}
-	a = l.Artifact
 	d := &Description{
 		Ref: ref.String(), Digest: a.Desc.Digest.String(), Kind: a.Kind(), ArtifactType: a.Manifest.ArtifactType,
 		Annotations: a.Manifest.Annotations, Problems: l.Problems, Probes: len(l.Probes),

@@ -383,6 +383,17 @@ func (l *Loaded) checkSmallFiles(spec *model.Spec, byName map[string][]byte) {
 // checked again (it is a model of its own). Problems in the content are
 // returned as a list; an unreadable or damaged blob as an error.
 func CheckModel(ctx context.Context, store registry.Store, a *Artifact) ([]string, error) {
+	l, err := checkModel(ctx, store, a, false)
+	if err != nil {
+		return nil, err
+	}
+	return l.Problems, nil
+}
+
+// checkModel is CheckModel returning what it read: the spec, vocabulary,
+// probes and stats, no tensors. With deep, a referenced encoder is checked
+// the same way (its problems prefixed "encoder: ") and kept in l.Encoder.
+func checkModel(ctx context.Context, store registry.Store, a *Artifact, deep bool) (*Loaded, error) {
 	k := a.Kind()
 	if k != model.KindEncoder && k != model.KindScorer {
 		return nil, errkind.New(errkind.BadInput, "%s@%s is a %q artifact, not a model", a.Repository, a.Desc.Digest, a.Manifest.ArtifactType)
@@ -397,8 +408,10 @@ func CheckModel(ctx context.Context, store registry.Store, a *Artifact) ([]strin
 		return nil, err
 	}
 	if spec == nil || len(vs) > 0 {
-		return prefixAll("spec: ", vs), nil
+		l.Problems = prefixAll("spec: ", vs)
+		return l, nil
 	}
+	l.Spec = spec
 	layers := map[string]v1.Descriptor{}
 	for _, d := range a.Manifest.Layers {
 		name := d.Annotations[AnnotationTitle]
@@ -447,11 +460,24 @@ func CheckModel(ctx context.Context, store registry.Store, a *Artifact) ([]strin
 	}
 	l.checkSmallFiles(spec, byName)
 	if spec.Encoder != nil && !spec.Encoder.Embedded {
-		if _, err := FindEncoder(ctx, store, spec.Encoder); err != nil {
+		loc, err := FindEncoder(ctx, store, spec.Encoder)
+		switch {
+		case err != nil:
 			l.Problems = append(l.Problems, err.Error())
+		case deep:
+			ea, err := ReadArtifact(ctx, store, registry.Ref{Repository: loc.Repository, Digest: loc.Digest})
+			if err != nil {
+				return nil, fmt.Errorf("reading encoder %s: %w", spec.Encoder.Digest, err)
+			}
+			enc, err := checkModel(ctx, store, ea, false)
+			if err != nil {
+				return nil, fmt.Errorf("checking encoder %s: %w", spec.Encoder.Digest, err)
+			}
+			l.Encoder = enc
+			l.Problems = append(l.Problems, prefixAll("encoder: ", enc.Problems)...)
 		}
 	}
-	return l.Problems, nil
+	return l, nil
 }
 
 func prefixAll(p string, xs []string) []string {
