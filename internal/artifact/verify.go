@@ -4,7 +4,9 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"runtime"
 	"sort"
+	"sync"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
@@ -73,6 +75,7 @@ func VerifyStore(ctx context.Context, store registry.Store, progress func(Event)
 			digests = append(digests, d)
 		}
 		sort.Slice(digests, func(i, j int) bool { return digests[i].String() < digests[j].String() })
+		var models []modelJob
 		for _, d := range digests {
 			rep.Manifests++
 			where := repo + "@" + d.String()
@@ -105,14 +108,22 @@ func VerifyStore(ctx context.Context, store registry.Store, progress func(Event)
 				continue
 			}
 			rep.Models++
-			problems, err := CheckModel(ctx, store, &Artifact{Repository: repo, Desc: v1.Descriptor{Digest: d, Size: int64(len(raw))}, Raw: raw, Manifest: m})
-			if err != nil {
-				rep.add(registry.SeverityDamage, where, "model unreadable: %v", err)
+			models = append(models, modelJob{where: where, a: &Artifact{Repository: repo, Desc: v1.Descriptor{Digest: d, Size: int64(len(raw))}, Raw: raw, Manifest: m}})
+		}
+		// Models are checked by one worker per CPU (each streams its tensor
+		// blobs); their findings keep manifest order.
+		checkModels(ctx, store, models)
+		for _, j := range models {
+			if j.err != nil {
+				rep.add(registry.SeverityDamage, j.where, "model unreadable: %v", j.err)
 				continue
 			}
-			for _, p := range problems {
-				rep.add(registry.SeverityDamage, where, "%s", p)
+			for _, p := range j.problems {
+				rep.add(registry.SeverityDamage, j.where, "%s", p)
 			}
+		}
+		if err := ctx.Err(); err != nil {
+			return nil, err
 		}
 	}
 	if sc, ok := store.(registry.Scrubber); ok {
@@ -130,4 +141,31 @@ func VerifyStore(ctx context.Context, store registry.Store, progress func(Event)
 		}
 	}
 	return rep, nil
+}
+
+type modelJob struct {
+	where    string
+	a        *Artifact
+	problems []string
+	err      error
+}
+
+// checkModels runs CheckModel on every job, one worker per CPU.
+func checkModels(ctx context.Context, store registry.Store, jobs []modelJob) {
+	next := make(chan int)
+	var wg sync.WaitGroup
+	for range max(1, min(runtime.GOMAXPROCS(0), len(jobs))) {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for i := range next {
+				jobs[i].problems, jobs[i].err = CheckModel(ctx, store, jobs[i].a)
+			}
+		}()
+	}
+	for i := range jobs {
+		next <- i
+	}
+	close(next)
+	wg.Wait()
 }
