@@ -262,7 +262,7 @@ func TestConcurrentPromote(t *testing.T) {
 // Without one (a plain OCI registry) it checks the guarantee that store
 // gives: at least one wins, every other exits 3, and if more than one
 // believed it won, `log` does not verify: the overwritten winner's record
-// carries its release-committed marker but is out of the chain (the race is
+// carries its committed marker but is out of the chain (the race is
 // exposed, never silently lost).
 func racePromotes(t *testing.T, w *releaseWorld, exact bool) {
 	base := w.push(0, "tiny-encoder:prod")

@@ -101,7 +101,7 @@ var acceptManifests = strings.Join([]string{
 //     whenever the other writer's write lands before our read-back, but a
 //     writer whose read, write and read-back all fall between another
 //     writer's read and write believes it won and is then overwritten. The
-//     release log exposes that case (release-committed markers on records
+//     release log exposes that case (committed markers on records
 //     that dropped out of its chain).
 //   - Plain HTTP is used only for loopback registries, or any registry when
 //     opened WithInsecure; credentials are never sent in clear otherwise.

@@ -31,9 +31,9 @@ const (
 // MediaTypeEnvelope is the media type of a DSSE envelope blob.
 const MediaTypeEnvelope = "application/vnd.dsse.envelope.v1+json"
 
-// MediaTypeCommitted is the layer of a release-committed marker: JSON
+// MediaTypeCommitted is the layer of a committed marker: JSON
 // naming the record, the target and the time.
-const MediaTypeCommitted = "application/vnd.modelgate.release-committed.v1+json"
+const MediaTypeCommitted = "application/vnd.modelgate.committed.v1+json"
 
 // maxEnvelopeBytes bounds an envelope read from the store.
 const maxEnvelopeBytes = 4 << 20

@@ -293,7 +293,7 @@ func orphans(ctx context.Context, store registry.Store, target registry.Ref, rep
 	}
 }
 
-// committedMarked reports whether the record d has a release-committed
+// committedMarked reports whether the record d has a committed
 // marker (see markCommitted).
 func committedMarked(ctx context.Context, store registry.Store, repo, d string) bool {
 	h, err := registry.ParseDigest(d)

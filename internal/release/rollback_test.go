@@ -159,7 +159,7 @@ func TestLogDetectsDamage(t *testing.T) {
 		e.store.Tag(e.ctx, testRepo, "release-prod", d)
 		lg = e.log("rita")
 		// Her key is untrusted, and the record she replaced had been
-		// released (its release-committed marker), so dropping it from
+		// released (its committed marker), so dropping it from
 		// the chain is damage.
 		if lg.Worst() != errkind.Integrity || !strings.Contains(findings(lg, SeverityUntrusted), "mallory") ||
 			!strings.Contains(findings(lg, SeverityDamage), "no longer in the chain") {

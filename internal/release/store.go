@@ -20,7 +20,7 @@ var (
 	ArtifactTypeRelease  = artifact.ArtifactType("release")
 	// ArtifactTypeCommitted marks a release record whose tag move the
 	// releasing process saw succeed (a referrer of the record).
-	ArtifactTypeCommitted = artifact.ArtifactType("release-committed")
+	ArtifactTypeCommitted = artifact.ArtifactType("committed")
 )
 
 // Annotations on approval and release record manifests. They are hints

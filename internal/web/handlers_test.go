@@ -1,10 +1,13 @@
 package web
 
 import (
+	"context"
 	"net/http"
 	"regexp"
 	"strings"
 	"testing"
+
+	"modelgate/internal/registry"
 )
 
 // TestServePages walks the demo store's pages: the tag list, a tag, the
@@ -34,6 +37,12 @@ func TestServePages(t *testing.T) {
 		if !strings.Contains(tag, want) {
 			t.Errorf("tag page lacks %q", want)
 		}
+	}
+
+	// The head release record's page lists its committed marker.
+	recPage := mustGet(t, s, "/artifacts/promo-scorer@"+resolveTag(t, f.store, "promo-scorer", "release-prod"))
+	if !strings.Contains(recPage, "marks that this release of promo-scorer:prod took effect") {
+		t.Error("the release record's page does not show its committed marker")
 	}
 
 	list := mustGet(t, s, "/candidates")
@@ -289,4 +298,13 @@ func TestServeHostCheck(t *testing.T) {
 			t.Errorf("Host %s: %d, want %d", host, rec.Code, want)
 		}
 	}
+}
+
+func resolveTag(t *testing.T, s *registry.Local, repo, tag string) string {
+	t.Helper()
+	d, err := s.Resolve(context.Background(), repo, tag)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return d.Digest.String()
 }

@@ -342,8 +342,10 @@ func kindOrder(k string) int {
 		return 4
 	case "release":
 		return 5
+	case "committed":
+		return 6
 	}
-	return 6
+	return 7
 }
 
 // summaryOf says in a few words what a referrer artifact is about, from
@@ -357,6 +359,8 @@ func summaryOf(a *artifact.Artifact) string {
 		return "approval for " + ann[checks.AnnotationTarget] + signerNote(ann)
 	case "release":
 		return "release record for " + ann[checks.AnnotationTarget] + signerNote(ann)
+	case "committed":
+		return "marks that this release of " + ann[checks.AnnotationTarget] + " took effect (its tag moves succeeded)"
 	}
 	return ""
 }
