@@ -16,6 +16,7 @@ import (
 	"sync"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/types"
 )
 
 var hexPattern = regexp.MustCompile(`^[a-f0-9]{64}$`)
@@ -314,11 +315,16 @@ func (l *Local) scrubSideFiles(ctx context.Context, hint, damage reportFunc, che
 func (l *Local) expectedEntry(repo string, d v1.Descriptor) (v1.Descriptor, bool) {
 	raw, err := l.readManifestBlob(d.Digest)
 	if err != nil {
-		return v1.Descriptor{}, false
+		return v1.Descriptor{}, false // the missing or damaged blob is reported on its own
 	}
 	mf, mt, err := parseManifest(d.MediaType, raw)
 	if err != nil {
-		return v1.Descriptor{}, false
+		// The record's media type does not fit the manifest: judge it
+		// against the media type the manifest gives itself. A blob that is
+		// no manifest at all gives an expectation nothing can match.
+		if mf, mt, err = parseManifest("", raw); err != nil {
+			return v1.Descriptor{MediaType: "(not a manifest: " + types.MediaType(err.Error()) + ")"}, true
+		}
 	}
 	return sideEntry(repo, describe(raw, mt, mf), mf), true
 }
