@@ -3,6 +3,7 @@ package artifact
 import (
 	"context"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"io"
 	"os"
@@ -74,23 +75,55 @@ func ReadArtifact(ctx context.Context, store registry.Store, ref registry.Ref) (
 }
 
 // ReadBlob reads a whole blob (verified by the store) up to limit bytes.
+// The buffer is allocated once at the blob's size, after the store has
+// confirmed that size (a manifest cannot make it allocate what the store
+// does not hold), and filled by the store's reader, which hashes on a
+// second core as it copies.
 func ReadBlob(ctx context.Context, store registry.Store, repo string, d v1.Descriptor, limit int64) ([]byte, error) {
 	if d.Size > limit {
 		return nil, errkind.New(errkind.Integrity, "blob %s claims %d bytes, over the %d-byte limit", d.Digest, d.Size, limit)
+	}
+	if d.Size < 0 {
+		return nil, errkind.New(errkind.Integrity, "blob %s claims a negative size (%d)", d.Digest, d.Size)
+	}
+	if d.Size > 1<<20 {
+		size, err := store.StatBlob(ctx, repo, d.Digest)
+		if err != nil {
+			return nil, err
+		}
+		if size != d.Size {
+			return nil, errkind.New(errkind.Integrity, "blob %s has %d bytes, its descriptor says %d", d.Digest, size, d.Size)
+		}
 	}
 	rc, err := store.Blob(ctx, repo, d.Digest)
 	if err != nil {
 		return nil, err
 	}
 	defer rc.Close()
-	b, err := io.ReadAll(io.LimitReader(rc, d.Size+1))
-	if err != nil {
+	w := &sliceWriter{buf: make([]byte, 0, d.Size)}
+	if _, err := io.Copy(w, rc); err != nil {
+		if errors.Is(err, errTooLong) {
+			return nil, errkind.New(errkind.Integrity, "blob %s has more bytes than its descriptor says (%d)", d.Digest, d.Size)
+		}
 		return nil, fmt.Errorf("reading blob %s: %w", d.Digest, err)
 	}
-	if int64(len(b)) != d.Size {
-		return nil, errkind.New(errkind.Integrity, "blob %s has %d bytes, its descriptor says %d", d.Digest, len(b), d.Size)
+	if int64(len(w.buf)) != d.Size {
+		return nil, errkind.New(errkind.Integrity, "blob %s has %d bytes, its descriptor says %d", d.Digest, len(w.buf), d.Size)
 	}
-	return b, nil
+	return w.buf, nil
+}
+
+var errTooLong = errors.New("more bytes than the buffer holds")
+
+// sliceWriter appends to buf up to its capacity and refuses more.
+type sliceWriter struct{ buf []byte }
+
+func (w *sliceWriter) Write(p []byte) (int, error) {
+	if len(p) > cap(w.buf)-len(w.buf) {
+		return 0, errTooLong
+	}
+	w.buf = append(w.buf, p...)
+	return len(p), nil
 }
 
 // MaxBlobSize bounds any single blob modelgate reads into memory.
@@ -323,7 +356,8 @@ func Load(ctx context.Context, store registry.Store, ref registry.Ref) (*Loaded,
 			l.Problems = append(l.Problems, fmt.Sprintf("%s: tensor file named by the spec is not a layer of the artifact", name))
 			continue
 		}
-		ts, probs := modeldir.DecodeTensors(name, b, byFile[name])
+		// The blob's buffer is ours alone: F32 tensors are views of it.
+		ts, probs := modeldir.DecodeTensorsShared(name, b, byFile[name])
 		l.Problems = append(l.Problems, probs...)
 		for k, v := range ts {
 			l.Tensors[k] = v

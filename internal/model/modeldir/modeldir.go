@@ -536,7 +536,15 @@ func tensorProblems(file string, f *safetensors.File, declared []model.Tensor, n
 // spec's tensors declared in it: same names, dtype, shape, all values
 // finite. It returns the decoded tensors and every problem found.
 func DecodeTensors(file string, b []byte, declared []model.Tensor) (map[string][]float32, []string) {
-	return checkTensors(file, b, declared, true)
+	return decodeTensors(file, b, declared, safetensors.Decode)
+}
+
+// DecodeTensorsShared is DecodeTensors for a caller that hands b over: F32
+// tensors may be views of b instead of copies (safetensors.DecodeShared),
+// so b must stay unchanged and alive (not unmapped) while they are used.
+// A model loaded from a store needs half the memory this way.
+func DecodeTensorsShared(file string, b []byte, declared []model.Tensor) (map[string][]float32, []string) {
+	return decodeTensors(file, b, declared, safetensors.DecodeShared)
 }
 
 // CheckTensors is DecodeTensors without keeping the decoded values: it
@@ -547,11 +555,15 @@ func CheckTensors(file string, b []byte, declared []model.Tensor) []string {
 }
 
 func checkTensors(file string, b []byte, declared []model.Tensor, decode bool) (map[string][]float32, []string) {
-	if !decode {
-		sc := safetensors.NewScanner(int64(len(b)))
-		sc.Write(b)
-		return nil, ScanProblems(file, sc, declared)
+	if decode {
+		return decodeTensors(file, b, declared, safetensors.Decode)
 	}
+	sc := safetensors.NewScanner(int64(len(b)))
+	sc.Write(b)
+	return nil, ScanProblems(file, sc, declared)
+}
+
+func decodeTensors(file string, b []byte, declared []model.Tensor, decode func(string, []byte) []float32) (map[string][]float32, []string) {
 	f, err := safetensors.Parse(bytes.NewReader(b), int64(len(b)))
 	if err != nil {
 		return nil, []string{fmt.Sprintf("%s: %v", file, err)}
@@ -563,11 +575,8 @@ func checkTensors(file string, b []byte, declared []model.Tensor, decode bool) (
 		if !ok || !equalInts(info.Shape, t.Shape) {
 			continue // reported by tensorProblems
 		}
-		vals, err := f.Float32s(t.Name)
-		if err != nil {
-			problems = append(problems, fmt.Sprintf("%s: tensor %q: %v", file, t.Name, err))
-			continue
-		}
+		// Decoded straight from b (Float32s would copy the bytes first).
+		vals := decode(info.DType, b[f.DataOffset()+info.Begin:f.DataOffset()+info.End])
 		if i, bad := firstNonFinite(vals); bad {
 			problems = append(problems, fmt.Sprintf("%s: tensor %q has a non-finite value (%v) at flat index %d", file, t.Name, vals[i], i))
 			continue

@@ -22,6 +22,7 @@ import (
 	"strconv"
 	"strings"
 	"unicode/utf8"
+	"unsafe"
 
 	"github.com/x448/float16"
 
@@ -147,6 +148,29 @@ func (f *File) Float32s(name string) ([]float32, error) {
 	}
 	return decode(t.DType, raw), nil
 }
+
+// Decode widens little-endian stored values of a supported dtype (F32,
+// F16, BF16) to float32; len(raw) must be a multiple of the element size.
+// It is Float32s for a caller that holds the file's bytes already.
+func Decode(dtype string, raw []byte) []float32 { return decode(dtype, raw) }
+
+// DecodeShared is Decode that, for F32 on a little-endian machine with raw
+// aligned for float32, returns a view of raw instead of a copy: the
+// stored bytes already are the values. The caller must not change raw, or
+// unmap it, while the result is used.
+func DecodeShared(dtype string, raw []byte) []float32 {
+	if dtype == F32 && littleEndian && len(raw) > 0 && uintptr(unsafe.Pointer(&raw[0]))%unsafe.Alignof(float32(0)) == 0 {
+		return unsafe.Slice((*float32)(unsafe.Pointer(&raw[0])), len(raw)/4)
+	}
+	return decode(dtype, raw)
+}
+
+// littleEndian is true on machines that store a float32's low byte first,
+// as safetensors does.
+var littleEndian = func() bool {
+	x := uint16(1)
+	return *(*byte)(unsafe.Pointer(&x)) == 1
+}()
 
 // decode widens little-endian raw bytes of a supported dtype to float32.
 // len(raw) must be a multiple of the dtype size.

@@ -252,3 +252,37 @@ func TestFirstNonFiniteEvery16BitPattern(t *testing.T) {
 		}
 	}
 }
+
+// TestDecodeShared: the same values as Decode (F32 through
+// math.Float32frombits, F16/BF16 as Decode gives them); an aligned F32
+// buffer is viewed, not copied; a misaligned one is copied.
+func TestDecodeShared(t *testing.T) {
+	vals := []float32{1, -2.5, float32(math.Inf(1)), 3e-40, 0}
+	buf := make([]byte, 4+4*len(vals)) // a large-enough allocation is 8-aligned
+	copy(buf[4:], f32le(vals...))
+	aligned := buf[4:]
+	got := DecodeShared(F32, aligned)
+	for i, v := range vals {
+		if math.Float32bits(got[i]) != math.Float32bits(v) {
+			t.Errorf("[%d] = %v, want %v", i, got[i], v)
+		}
+	}
+	aligned[0] ^= 1 // a view sees the change
+	if math.Float32bits(got[0]) == math.Float32bits(vals[0]) {
+		t.Error("aligned F32: the result is a copy, not a view")
+	}
+	mis := make([]byte, 1+4*len(vals))
+	copy(mis[1:], f32le(vals...))
+	got = DecodeShared(F32, mis[1:])
+	mis[1] ^= 1
+	if math.Float32bits(got[0]) != math.Float32bits(vals[0]) {
+		t.Error("misaligned F32: the result changed with the buffer (not a copy)")
+	}
+	for _, dt := range []string{F16, BF16} {
+		raw := []byte{0x00, 0x3c, 0x00, 0xc0, 0x80, 0x3f, 0x00, 0x00}
+		a, b := DecodeShared(dt, raw), Decode(dt, raw)
+		if !slices.Equal(a, b) {
+			t.Errorf("%s: shared %v, copy %v", dt, a, b)
+		}
+	}
+}
