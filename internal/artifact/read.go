@@ -260,7 +260,7 @@ func pullBlob(ctx context.Context, store registry.Store, repo string, d v1.Descr
 		w = io.MultiWriter(w, scan)
 	}
 	lw := &limitWriter{w: w, left: d.Size, digest: d.Digest, opts: opts, name: name}
-	n, err := io.Copy(lw, rc)
+	n, err := io.CopyBuffer(lw, rc, make([]byte, fileio.CopyBuffer)) // a reader with WriteTo (the local store's) ignores the buffer
 	if err == nil && n != d.Size {
 		err = errkind.New(errkind.Integrity, "blob %s has %d bytes, its descriptor says %d", d.Digest, n, d.Size)
 	}
