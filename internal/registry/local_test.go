@@ -10,6 +10,7 @@ import (
 	"io/fs"
 	"os"
 	"path/filepath"
+	"runtime"
 	"slices"
 	"strings"
 	"syscall"
@@ -855,4 +856,41 @@ func countTemps(t *testing.T, l *registry.Local) int {
 		t.Fatal(err)
 	}
 	return len(es)
+}
+
+// TestLocalSmallBlobReadIsSmall: reading a small blob whole (io.Copy,
+// which takes WriteTo) allocates about the blob's size, not the large
+// buffers of the two-core copy: model loading counts these bytes in its
+// load-memory budget.
+func TestLocalSmallBlobReadIsSmall(t *testing.T) {
+	l := openLocal(t)
+	ctx := context.Background()
+	b := storetest.NewBlob(5, 2000)
+	if err := l.PutBlob(ctx, "shows", b.Digest, int64(len(b.Data)), bytes.NewReader(b.Data)); err != nil {
+		t.Fatal(err)
+	}
+	read := func() {
+		rc, err := l.Blob(ctx, "shows", b.Digest)
+		if err != nil {
+			t.Fatal(err)
+		}
+		var out bytes.Buffer
+		out.Grow(4096)
+		if _, err := io.Copy(&out, rc); err != nil || !bytes.Equal(out.Bytes(), b.Data) {
+			t.Fatalf("read back: %v", err)
+		}
+		rc.Close()
+	}
+	read()
+	var before, after runtime.MemStats
+	runtime.GC()
+	runtime.ReadMemStats(&before)
+	const runs = 20
+	for range runs {
+		read()
+	}
+	runtime.ReadMemStats(&after)
+	if per := (after.TotalAlloc - before.TotalAlloc) / runs; per > 64<<10 {
+		t.Errorf("reading a 2000-byte blob allocates %d bytes", per)
+	}
 }
