@@ -106,90 +106,157 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 	if ref.Tag == "" || ref.HasDigest() {
 		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
 	}
-	stager, staging := store.(registry.BlobStager)
-	var d *modeldir.Dir
-	var err error
-	if staging {
-		d, err = modeldir.CheckHeaders(dir)
-		if err != nil {
+	if stager, ok := store.(registry.BlobStager); ok {
+		return pushStaged(ctx, store, stager, dir, ref, opts)
+	}
+	d, err := modeldir.CheckForPush(dir)
+	if err != nil {
+		return nil, err
+	}
+	defer d.Close()
+	if err := checkModelRefs(ctx, store, d); err != nil {
+		return nil, err
+	}
+	var tensors []Blob
+	config, layers, ann, err := modelBlobs(d, tensors)
+	if err != nil {
+		return nil, err
+	}
+	return PushArtifact(ctx, store, ref, ArtifactType(d.Model.Spec.Kind), config, layers, nil, ann, opts)
+}
+
+// checkModelRefs checks what a model directory needs from the store: a
+// scorer's encoder present, and the layer graph sound against it.
+func checkModelRefs(ctx context.Context, store registry.Store, d *modeldir.Dir) error {
+	spec := d.Model.Spec
+	if spec.Encoder != nil && !spec.Encoder.Embedded {
+		if _, err := FindEncoder(ctx, store, spec.Encoder); err != nil {
+			return err
+		}
+	}
+	return checkGraph(ctx, store, d)
+}
+
+// pushStaged pushes through a store that stages blobs. The tensor files
+// the spec names stream into the store while the rest of the directory
+// (spec, headers, vocabulary, stats, probes, graph) is checked on the
+// side; any problem discards what was staged. The same bytes are hashed,
+// written and scanned once.
+func pushStaged(ctx context.Context, store registry.Store, stager registry.BlobStager, dir string, ref registry.Ref, opts Options) (*PushResult, error) {
+	type checked struct {
+		d   *modeldir.Dir
+		err error
+	}
+	done := make(chan checked, 1)
+	go func() {
+		d, err := modeldir.CheckHeaders(dir)
+		if err == nil {
+			if err = checkModelRefs(ctx, store, d); err != nil {
+				d.Close()
+			}
+		}
+		done <- checked{d, err}
+	}()
+	// Which files to stream: from the spec as it is now; the check on the
+	// side must agree (same spec bytes, same sizes) or nothing is kept.
+	files, specBytes := tensorFilesOf(dir)
+	tensors, scans, serr := stageFiles(ctx, stager, ref.Repository, dir, files, opts)
+	discard := func() {
+		for _, b := range tensors {
+			b.Staged.Discard() // a no-op once committed
+		}
+	}
+	defer discard()
+	c := <-done
+	if c.err != nil {
+		if errkind.Of(c.err) == errkind.BadInput {
 			// List every problem, values too, as the full check does.
 			full, ferr := modeldir.Check(dir)
 			if ferr != nil {
 				return nil, ferr
 			}
 			full.Close()
-			return nil, err
 		}
-	} else {
-		d, err = modeldir.CheckForPush(dir)
-		if err != nil {
-			return nil, err
-		}
+		return nil, c.err
 	}
+	d := c.d
 	defer d.Close()
-	spec := d.Model.Spec
-	if spec.Encoder != nil && !spec.Encoder.Embedded {
-		if _, err := FindEncoder(ctx, store, spec.Encoder); err != nil {
-			return nil, err
+	if serr != nil {
+		return nil, serr
+	}
+	if !bytes.Equal(specBytes, d.SpecBytes) || len(d.TensorFiles) != len(files) {
+		return nil, errkind.New(errkind.BadInput, "model directory %s: %s changed while it was pushed; push again once it is written", dir, modeldir.SpecFile)
+	}
+	for i, f := range d.TensorFiles {
+		if f.Name != files[i].name || f.Size != files[i].size {
+			return nil, errkind.New(errkind.BadInput, "model directory %s: %s changed while it was pushed; push again once it is written", dir, f.Name)
 		}
 	}
-	if err := checkGraph(ctx, store, d); err != nil {
+	if err := d.CheckScans(scans); err != nil {
 		return nil, err
-	}
-	var tensors []Blob
-	if staging {
-		tensors, err = stageTensors(ctx, stager, ref.Repository, d, opts)
-		if err != nil {
-			return nil, err
-		}
-		defer func() {
-			for _, b := range tensors {
-				b.Staged.Discard() // a no-op once committed
-			}
-		}()
 	}
 	config, layers, ann, err := modelBlobs(d, tensors)
 	if err != nil {
 		return nil, err
 	}
-	return PushArtifact(ctx, store, ref, ArtifactType(spec.Kind), config, layers, nil, ann, opts)
+	return PushArtifact(ctx, store, ref, ArtifactType(d.Model.Spec.Kind), config, layers, nil, ann, opts)
 }
 
-// stageTensors streams each tensor file of d (checked by CheckHeaders)
-// into the store once: the store hashes and writes the bytes while a
-// safetensors.Scanner checks the same bytes (header against the spec, every
-// value finite). On any problem every staged blob is discarded and all
-// problems are returned together.
-func stageTensors(ctx context.Context, stager registry.BlobStager, repo string, d *modeldir.Dir, opts Options) (staged []Blob, err error) {
-	defer func() {
-		if err != nil {
-			for _, b := range staged {
-				b.Staged.Discard()
-			}
-			staged = nil
+type tensorFile struct {
+	name string
+	size int64
+}
+
+// tensorFilesOf lists the tensor files a model directory's spec names,
+// with their sizes, and the spec's bytes; nil when the spec or a file
+// cannot be read (the check on the side reports why).
+func tensorFilesOf(dir string) ([]tensorFile, []byte) {
+	raw, err := os.ReadFile(filepath.Join(dir, modeldir.SpecFile))
+	if err != nil || int64(len(raw)) > modeldir.MaxSpecSize {
+		return nil, nil
+	}
+	spec, vs, err := modeldir.ParseSpec(raw)
+	if err != nil || spec == nil || len(vs) > 0 {
+		return nil, nil
+	}
+	var out []tensorFile
+	for _, name := range modeldir.TensorFileNames(spec) {
+		st, err := os.Stat(filepath.Join(dir, name))
+		if err != nil || !st.Mode().IsRegular() {
+			return nil, nil
 		}
-	}()
+		out = append(out, tensorFile{name, st.Size()})
+	}
+	return out, raw
+}
+
+// stageFiles streams each tensor file into the store once: the store
+// hashes and writes the bytes while a safetensors.Scanner checks the same
+// bytes. What was staged is returned even with an error (the caller
+// discards it).
+func stageFiles(ctx context.Context, stager registry.BlobStager, repo, dir string, files []tensorFile, opts Options) ([]Blob, map[string]*safetensors.Scanner, error) {
+	var staged []Blob
 	scans := map[string]*safetensors.Scanner{}
-	for _, f := range d.TensorFiles {
-		sc := safetensors.NewScanner(f.Size)
-		in, err := os.Open(filepath.Join(d.Path, f.Name))
+	for _, f := range files {
+		sc := safetensors.NewScanner(f.size)
+		in, err := os.Open(filepath.Join(dir, f.name))
 		if err != nil {
-			return staged, errkind.New(errkind.BadInput, "model directory %s: %w", d.Path, err)
+			return staged, nil, errkind.New(errkind.BadInput, "model directory %s: %w", dir, err)
 		}
-		opts.emit(Event{Phase: "upload", Name: f.Name, Total: f.Size})
-		r := io.TeeReader(&progressReader{r: in, opts: opts, name: f.Name, total: f.Size}, sc)
-		sb, err := stager.StageBlob(ctx, repo, f.Size, r)
+		opts.emit(Event{Phase: "upload", Name: f.name, Total: f.size})
+		r := io.TeeReader(&progressReader{r: in, opts: opts, name: f.name, total: f.size}, sc)
+		sb, err := stager.StageBlob(ctx, repo, f.size, r)
 		in.Close()
 		if errors.Is(err, registry.ErrDigestMismatch) {
-			return staged, errkind.New(errkind.BadInput, "model directory %s: %s changed while it was pushed (%v); push again once it is written", d.Path, f.Name, err)
+			return staged, nil, errkind.New(errkind.BadInput, "model directory %s: %s changed while it was pushed (%v); push again once it is written", dir, f.name, err)
 		}
 		if err != nil {
-			return staged, fmt.Errorf("uploading %s: %w", f.Name, err)
+			return staged, nil, fmt.Errorf("uploading %s: %w", f.name, err)
 		}
-		scans[f.Name] = sc
+		scans[f.name] = sc
 		staged = append(staged, Blob{Desc: v1.Descriptor{Size: sb.Size(), Digest: sb.Digest()}, Staged: sb})
 	}
-	return staged, d.CheckScans(scans)
+	return staged, scans, nil
 }
 
 // progressReader reports upload progress every progressStep bytes.

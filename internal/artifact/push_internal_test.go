@@ -176,14 +176,15 @@ func TestPushNaNChangesNothing(t *testing.T) {
 	}
 }
 
-// TestStagingRefusesAFileThatChanged: a tensor file that grows between the
-// header check and the upload is refused as bad input and nothing stays.
+// TestStagingRefusesAFileThatChanged: a tensor file that grows between
+// the moment its size was taken and the upload is refused as bad input
+// and nothing stays.
 func TestStagingRefusesAFileThatChanged(t *testing.T) {
 	ctx := context.Background()
 	dir := encoderDir(t)
-	d, err := modeldir.CheckHeaders(dir)
-	if err != nil {
-		t.Fatal(err)
+	files, _ := tensorFilesOf(dir)
+	if len(files) != 2 {
+		t.Fatalf("tensor files %v", files)
 	}
 	f, err := os.OpenFile(filepath.Join(dir, "decoder.safetensors"), os.O_APPEND|os.O_WRONLY, 0)
 	if err != nil {
@@ -192,13 +193,27 @@ func TestStagingRefusesAFileThatChanged(t *testing.T) {
 	f.Write([]byte("more"))
 	f.Close()
 	s := openStore(t)
-	_, err = stageTensors(ctx, s, ref.Repository, d, Options{})
+	staged, _, err := stageFiles(ctx, s, ref.Repository, dir, files, Options{})
+	for _, b := range staged {
+		b.Staged.Discard()
+	}
 	if errkind.Of(err) != errkind.BadInput || !strings.Contains(err.Error(), "decoder.safetensors changed while it was pushed") {
 		t.Errorf("got %v", err)
 	}
 	for p := range storeFiles(t, s) {
 		if strings.HasPrefix(p, "blobs/") || strings.HasPrefix(p, ".modelgate/tmp/") {
 			t.Errorf("left behind: %s", p)
+		}
+	}
+	// Through PushModelDir the grown file is simply invalid (4 bytes no
+	// tensor covers): bad input naming it, nothing left behind.
+	_, err = PushModelDir(ctx, s, dir, ref, Options{})
+	if errkind.Of(err) != errkind.BadInput || !strings.Contains(err.Error(), "decoder.safetensors") {
+		t.Errorf("push of the grown file: %v", err)
+	}
+	for p := range storeFiles(t, s) {
+		if strings.HasPrefix(p, "blobs/") || strings.HasPrefix(p, ".modelgate/tmp/") {
+			t.Errorf("left behind after the push: %s", p)
 		}
 	}
 }
