@@ -13,6 +13,7 @@ import (
 	"path/filepath"
 	"sort"
 	"strings"
+	"sync"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
@@ -370,41 +371,87 @@ func appendUnique(s []string, v string) []string {
 // missing content. ann gets the creation time unless already set.
 func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, artifactType string, config Blob, layers []Blob, subject *v1.Descriptor, ann map[string]string, opts Options) (*PushResult, error) {
 	res := &PushResult{Ref: ref.String(), Kind: strings.TrimSuffix(strings.TrimPrefix(artifactType, "application/vnd.modelgate."), ".v1")}
+	var mu sync.Mutex // guards res and serialises progress events
+	emit := func(e Event) {
+		mu.Lock()
+		defer mu.Unlock()
+		opts.emit(e)
+	}
+	nameOf := func(b Blob) string {
+		if name := b.Desc.Annotations[AnnotationTitle]; name != "" {
+			return name
+		}
+		return string(b.Desc.MediaType)
+	}
+	// Staged blobs are committed first, in order; a digest listed twice
+	// goes up once.
+	seen := map[v1.Hash]bool{}
+	var todo []Blob
 	for _, b := range append([]Blob{config}, layers...) {
 		if err := ctx.Err(); err != nil {
 			return nil, err
 		}
-		name := b.Desc.Annotations[AnnotationTitle]
-		if name == "" {
-			name = string(b.Desc.MediaType)
-		}
-		if b.Staged != nil {
+		name := nameOf(b)
+		switch {
+		case b.Staged != nil:
 			existed, err := b.Staged.Commit(ctx)
 			if err != nil {
 				return nil, fmt.Errorf("uploading %s (%s): %w", name, b.Desc.Digest, err)
 			}
-			if existed {
+			if existed || seen[b.Desc.Digest] {
 				res.BlobsSkipped++
-				opts.emit(Event{Phase: "skip", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+				emit(Event{Phase: "skip", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
 			} else {
 				res.BlobsWritten++
 				res.BytesWritten += b.Desc.Size
-				opts.emit(Event{Phase: "upload", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+				emit(Event{Phase: "upload", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
 			}
-			continue
-		}
-		if _, err := store.StatBlob(ctx, ref.Repository, b.Desc.Digest); err == nil {
+		case seen[b.Desc.Digest]:
 			res.BlobsSkipped++
-			opts.emit(Event{Phase: "skip", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
-			continue
+			emit(Event{Phase: "skip", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+		default:
+			todo = append(todo, b)
 		}
-		opts.emit(Event{Phase: "upload", Name: name, Done: 0, Total: b.Desc.Size})
-		if err := store.PutBlob(ctx, ref.Repository, b.Desc.Digest, b.Desc.Size, bytes.NewReader(b.Bytes)); err != nil {
-			return nil, fmt.Errorf("uploading %s (%s): %w", name, b.Desc.Digest, err)
-		}
-		opts.emit(Event{Phase: "upload", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
-		res.BlobsWritten++
-		res.BytesWritten += b.Desc.Size
+		seen[b.Desc.Digest] = true
+	}
+	// The others go up uploadParallel at a time: a registry or a bucket
+	// answers each request after a round trip, and a local store overlaps
+	// its fsyncs. The manifest waits for all of them.
+	uctx, cancel := context.WithCancel(ctx)
+	defer cancel()
+	var firstErr error
+	sem := make(chan struct{}, uploadParallel)
+	var wg sync.WaitGroup
+	for _, b := range todo {
+		wg.Add(1)
+		sem <- struct{}{}
+		go func() {
+			defer wg.Done()
+			defer func() { <-sem }()
+			name := nameOf(b)
+			written, err := uploadBlob(uctx, store, ref.Repository, b, name, emit)
+			mu.Lock()
+			defer mu.Unlock()
+			switch {
+			case err != nil:
+				if firstErr == nil {
+					firstErr = fmt.Errorf("uploading %s (%s): %w", name, b.Desc.Digest, err)
+					cancel()
+				}
+			case written:
+				res.BlobsWritten++
+				res.BytesWritten += b.Desc.Size
+			default:
+				res.BlobsSkipped++
+			}
+		}()
+	}
+	wg.Wait()
+	if firstErr != nil {
+		return nil, firstErr
+	}
+	if err := ctx.Err(); err != nil {
+		return nil, err
 	}
 	raw, err := BuildManifest(artifactType, config, layers, subject, ann)
 	if err != nil {
@@ -438,6 +485,23 @@ func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, a
 		opts.emit(Event{Phase: "tag", Name: ref.String()})
 	}
 	return res, nil
+}
+
+// uploadParallel is how many blobs PushArtifact uploads at once.
+const uploadParallel = 4
+
+// uploadBlob puts b unless the store has it; written says it was put.
+func uploadBlob(ctx context.Context, store registry.Store, repo string, b Blob, name string, emit func(Event)) (bool, error) {
+	if _, err := store.StatBlob(ctx, repo, b.Desc.Digest); err == nil {
+		emit(Event{Phase: "skip", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+		return false, nil
+	}
+	emit(Event{Phase: "upload", Name: name, Done: 0, Total: b.Desc.Size})
+	if err := store.PutBlob(ctx, repo, b.Desc.Digest, b.Desc.Size, bytes.NewReader(b.Bytes)); err != nil {
+		return false, err
+	}
+	emit(Event{Phase: "upload", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
+	return true, nil
 }
 
 // BuildManifest renders an OCI image manifest v1.1 for an artifact.

@@ -360,3 +360,42 @@ func TestVerifyStreamsModels(t *testing.T) {
 		t.Errorf("changed blob: %+v", rep)
 	}
 }
+
+// TestPushArtifactParallelUploads: blobs go up concurrently, a digest
+// listed twice is uploaded and counted once, and when one upload is
+// refused (a flipped bit: the store rejects the digest) the push fails
+// with no manifest written and no tag.
+func TestPushArtifactParallelUploads(t *testing.T) {
+	ctx := context.Background()
+	var blobs []Blob
+	for i := range 9 {
+		blobs = append(blobs, NewBlob(MediaTypeStats, []byte(fmt.Sprintf(`{"show":%d}`, i)), map[string]string{AnnotationTitle: fmt.Sprintf("s%d.json", i)}))
+	}
+	blobs = append(blobs, blobs[3]) // listed twice
+	config := NewBlob(MediaTypeSpec, []byte(`{}`), nil)
+	s := openStore(t)
+	r, err := PushArtifact(ctx, s, ref, ArtifactType("encoder"), config, blobs, nil, nil, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if r.BlobsWritten != 11 || r.BlobsSkipped != 1 { // 10 distinct blobs + the manifest; the repeat skipped
+		t.Errorf("written %d, skipped %d; want 11 and 1", r.BlobsWritten, r.BlobsSkipped)
+	}
+	r2, err := PushArtifact(ctx, s, ref, ArtifactType("encoder"), config, blobs, nil, nil, Options{})
+	if err != nil || r2.BlobsWritten != 0 || r2.BlobsSkipped != 11 || !r2.ManifestReused {
+		t.Errorf("second push: %+v, %v", r2, err)
+	}
+
+	fresh := openStore(t)
+	faulty := registry.NewFaulty(fresh, registry.FaultPlan{FlipEvery: 4})
+	other := registry.Ref{Repository: "listener-encoder", Tag: "v2"}
+	if _, err := PushArtifact(ctx, faulty, other, ArtifactType("encoder"), config, blobs, nil, nil, Options{}); !errors.Is(err, registry.ErrDigestMismatch) {
+		t.Fatalf("a refused upload: got %v", err)
+	}
+	if _, err := fresh.Resolve(ctx, other.Repository, other.Tag); !errors.Is(err, registry.ErrNotFound) {
+		t.Errorf("the tag exists after a failed push: %v", err)
+	}
+	if ms, err := fresh.Manifests(ctx, other.Repository); err == nil && len(ms) != 0 {
+		t.Errorf("manifests written by a failed push: %v", ms)
+	}
+}
