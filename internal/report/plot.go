@@ -258,7 +258,7 @@ func sliceFigure(id string, h *checks.HoldoutDetail) (figure, bool) {
 			base = append(base, 0)
 		}
 	}
-	p := newPlot(label+" per slice", "slice (rows bucketed by nonzero count)", label+" (lower is better)")
+	p := newPlot(label+" per slice", "slice (by nonzero count or the holdout's slice column)", label+" (lower is better)")
 	p.Legend.Left = false
 	barW := vg.Points(float64(min(28, 300/(2*len(names)))))
 	cb, err := plotter.NewBarChart(cand, barW)
