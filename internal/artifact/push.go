@@ -381,6 +381,9 @@ func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, a
 		if name := b.Desc.Annotations[AnnotationTitle]; name != "" {
 			return name
 		}
+		if b.Desc.MediaType == MediaTypeSpec {
+			return modeldir.SpecFile // a model's config blob
+		}
 		return string(b.Desc.MediaType)
 	}
 	// Staged blobs are committed first, in order; a digest listed twice
