@@ -118,8 +118,7 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 	if err := checkModelRefs(ctx, store, d); err != nil {
 		return nil, err
 	}
-	var tensors []Blob
-	config, layers, ann, err := modelBlobs(d, tensors)
+	config, layers, ann, err := modelBlobs(d, nil)
 	if err != nil {
 		return nil, err
 	}
