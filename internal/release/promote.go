@@ -356,19 +356,30 @@ func appendNew(list []string, d string) []string {
 	return append(append([]string(nil), list...), d)
 }
 
+// currentTarget checks target and returns the digest it points at ("" when
+// the tag does not exist yet).
+func currentTarget(ctx context.Context, store registry.Store, target registry.Ref) (string, error) {
+	if err := checkTarget(target); err != nil {
+		return "", err
+	}
+	d, err := store.Resolve(ctx, target.Repository, target.Tag)
+	if errors.Is(err, registry.ErrNotFound) {
+		return "", nil
+	}
+	if err != nil {
+		return "", err
+	}
+	return d.Digest.String(), nil
+}
+
 // Standing is where cand stands for target under pol at now, judged by
 // promote's own rules: its gate reports against what the tag points at
 // now, and which stored approvals count (each key once). Who promotes is
 // not known, so the self-approval rule is not applied: a read-only view
 // shows this as "so far".
 func Standing(ctx context.Context, store registry.Store, cand v1.Hash, target registry.Ref, pol *policy.Policy, now time.Time) (*Judge, error) {
-	if err := checkTarget(target); err != nil {
-		return nil, err
-	}
-	baseline := ""
-	if d, err := store.Resolve(ctx, target.Repository, target.Tag); err == nil {
-		baseline = d.Digest.String()
-	} else if !errors.Is(err, registry.ErrNotFound) {
+	baseline, err := currentTarget(ctx, store, target)
+	if err != nil {
 		return nil, err
 	}
 	return judge(ctx, store, cand.String(), target, pol, baseline, "", now, judgeStanding)
@@ -378,13 +389,8 @@ func Standing(ctx context.Context, store registry.Store, cand v1.Hash, target re
 // now: it needs a passing gate report bound to the tag's current target
 // (approvals are not counted). It returns the newest usable report.
 func ApproveCheck(ctx context.Context, store registry.Store, cand v1.Hash, target registry.Ref, pol *policy.Policy) (*ReportCheck, error) {
-	if err := checkTarget(target); err != nil {
-		return nil, err
-	}
-	baseline := ""
-	if d, err := store.Resolve(ctx, target.Repository, target.Tag); err == nil {
-		baseline = d.Digest.String()
-	} else if !errors.Is(err, registry.ErrNotFound) {
+	baseline, err := currentTarget(ctx, store, target)
+	if err != nil {
 		return nil, err
 	}
 	if _, err := subjectOf(ctx, store, target.Repository, cand); err != nil {
