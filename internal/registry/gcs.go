@@ -616,7 +616,7 @@ func (g *GCS) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, desc v
 	}
 	d, err := g.tagTarget(ctx, repo, tag, desc)
 	if err != nil {
-		return fmt.Errorf("swapping %s:%s: %w", repo, tag, err)
+		return fmt.Errorf("swapping %s:%s: %w%w", repo, tag, err, errSwapUntried)
 	}
 	cur, gen, _, err := g.readTag(ctx, repo, tag)
 	var cond storage.Conditions
@@ -626,7 +626,7 @@ func (g *GCS) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, desc v
 	case errors.Is(err, ErrNotFound):
 		cond = storage.Conditions{DoesNotExist: true}
 	case err != nil:
-		return fmt.Errorf("swapping %s:%s: %w", repo, tag, err)
+		return fmt.Errorf("swapping %s:%s: %w%w", repo, tag, err, errSwapUntried) // nothing written
 	case old == (v1.Hash{}):
 		return errkind.New(errkind.Conflict, "tag %s:%s exists (points at %s), want it absent: %w", repo, tag, cur.Digest, ErrConflict)
 	case cur.Digest != old:

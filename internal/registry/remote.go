@@ -719,7 +719,7 @@ func (r *Remote) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, des
 	}
 	raw, md, err := r.tagTarget(ctx, repo, tag, desc)
 	if err != nil {
-		return fmt.Errorf("swapping %s:%s: %w", repo, tag, err)
+		return fmt.Errorf("swapping %s:%s: %w%w", repo, tag, err, errSwapUntried)
 	}
 	full := fullName(r.prefix, repo)
 	lk, _ := r.tagLocks.LoadOrStore(full+":"+tag, &sync.Mutex{})
@@ -732,7 +732,9 @@ func (r *Remote) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, des
 		return errkind.New(errkind.Conflict, "tag %s:%s does not exist, want it at %s: %w", repo, tag, old, ErrConflict)
 	case errors.Is(err, ErrNotFound):
 	case err != nil:
-		return fmt.Errorf("swapping %s:%s: %w", repo, tag, err)
+		// Nothing was written: a retry that then finds the tag moved
+		// must not take the move for its own.
+		return fmt.Errorf("swapping %s:%s: %w%w", repo, tag, err, errSwapUntried)
 	case old == (v1.Hash{}):
 		return errkind.New(errkind.Conflict, "tag %s:%s exists (points at %s), want it absent: %w", repo, tag, cur.Digest, ErrConflict)
 	case cur.Digest != old:

@@ -45,9 +45,11 @@ type retryStore struct {
 //     it started) or nothing was read from it yet; otherwise the error is
 //     returned.
 //   - SwapTag: when a retry of a swap whose earlier attempt failed
-//     transiently finds the tag moved, and moved to desc, the earlier
-//     attempt may have landed: it reports success. The outcome (the tag at
-//     desc) is the one asked for; who moved it cannot be told apart.
+//     transiently after it wrote (or may have written) the tag finds the
+//     tag moved, and moved to desc, the earlier attempt may have landed: it
+//     reports success. The outcome (the tag at desc) is the one asked for;
+//     who moved it cannot be told apart. An attempt that failed before
+//     writing (a backend marks it) makes no such claim.
 func NewRetry(s Store, o RetryOptions) Store {
 	if o.Attempts <= 0 {
 		o.Attempts = 6
@@ -287,12 +289,22 @@ func (w retrySwapper) SwapTag(ctx context.Context, repo, tag string, old v1.Hash
 				return nil
 			}
 		}
-		if IsTransient(err) {
-			failedBefore = true
+		if IsTransient(err) && !errors.Is(err, errSwapUntried) {
+			failedBefore = true // the write may have landed
 		}
 		return err
 	}, nil)
 }
+
+// errSwapUntried marks a SwapTag failure that came before the tag was
+// written, so a retry that finds the tag at desc knows another writer put
+// it there (a conflict), not its own earlier attempt. It is added to the
+// error's chain with an empty message.
+var errSwapUntried = untried{}
+
+type untried struct{}
+
+func (untried) Error() string { return "" }
 
 type retryLister struct{ r *retryStore }
 
