@@ -451,6 +451,25 @@ func (g *GCS) Manifest(ctx context.Context, repo string, dgst v1.Hash) ([]byte, 
 	return raw, descriptorOf(mt, raw, mf), nil
 }
 
+// eachObject calls f on every object under prefix, in listing order; a
+// listing failure is reported as what (f's errors are returned as they
+// are).
+func (g *GCS) eachObject(ctx context.Context, prefix, what string, f func(*storage.ObjectAttrs) error) error {
+	it := g.bucket.Objects(ctx, &storage.Query{Prefix: prefix})
+	for {
+		a, err := it.Next()
+		if err == iterator.Done {
+			return nil
+		}
+		if err != nil {
+			return fmt.Errorf("%s: %w", what, gcsErr(err))
+		}
+		if err := f(a); err != nil {
+			return err
+		}
+	}
+}
+
 // Manifests lists every manifest of repo from the object listing (no
 // reads), sorted by digest, with media type, size and artifactType.
 func (g *GCS) Manifests(ctx context.Context, repo string) ([]v1.Descriptor, error) {
@@ -459,21 +478,17 @@ func (g *GCS) Manifests(ctx context.Context, repo string) ([]v1.Descriptor, erro
 	}
 	prefix := g.key("repositories", repo, "_manifests", "sha256") + "/"
 	out := []v1.Descriptor{}
-	it := g.bucket.Objects(ctx, &storage.Query{Prefix: prefix})
-	for {
-		a, err := it.Next()
-		if err == iterator.Done {
-			break
-		}
-		if err != nil {
-			return nil, fmt.Errorf("listing manifests of %s: %w", repo, gcsErr(err))
-		}
+	err := g.eachObject(ctx, prefix, "listing manifests of "+repo, func(a *storage.ObjectAttrs) error {
 		h := strings.TrimPrefix(a.Name, prefix)
 		if !hexPattern.MatchString(h) {
-			continue
+			return nil
 		}
 		out = append(out, v1.Descriptor{MediaType: types.MediaType(a.ContentType), Size: a.Size,
 			Digest: v1.Hash{Algorithm: "sha256", Hex: h}, ArtifactType: a.Metadata["artifactType"]})
+		return nil
+	})
+	if err != nil {
+		return nil, err
 	}
 	sort.Slice(out, func(i, j int) bool { return out[i].Digest.String() < out[j].Digest.String() })
 	return out, nil
@@ -490,34 +505,30 @@ func (g *GCS) Referrers(ctx context.Context, repo string, subject v1.Hash, artif
 	}
 	prefix := g.referrersKey(repo, subject)
 	out := []v1.Descriptor{}
-	it := g.bucket.Objects(ctx, &storage.Query{Prefix: prefix})
-	for {
-		a, err := it.Next()
-		if err == iterator.Done {
-			break
-		}
-		if err != nil {
-			return nil, fmt.Errorf("listing referrers of %s: %w", subject, gcsErr(err))
-		}
+	err := g.eachObject(ctx, prefix, "listing referrers of "+subject.String(), func(a *storage.ObjectAttrs) error {
 		h := strings.TrimPrefix(a.Name, prefix)
 		if !hexPattern.MatchString(h) {
-			continue
+			return nil
 		}
 		raw, d, err := g.Manifest(ctx, repo, v1.Hash{Algorithm: "sha256", Hex: h})
 		if err != nil {
-			return nil, fmt.Errorf("referrer of %s: %w", subject, err)
+			return fmt.Errorf("referrer of %s: %w", subject, err)
 		}
 		var mf manifestFields
 		if json.Unmarshal(raw, &mf) != nil || mf.Subject == nil || mf.Subject.Digest != subject {
-			return nil, errkind.New(errkind.Integrity, "referrer link %s names a manifest whose subject is not %s", a.Name, subject)
+			return errkind.New(errkind.Integrity, "referrer link %s names a manifest whose subject is not %s", a.Name, subject)
 		}
 		if artifactType != "" && d.ArtifactType != artifactType {
-			continue
+			return nil
 		}
 		if len(mf.Annotations) > 0 {
 			d.Annotations = mf.Annotations
 		}
 		out = append(out, d)
+		return nil
+	})
+	if err != nil {
+		return nil, err
 	}
 	sort.Slice(out, func(i, j int) bool { return out[i].Digest.String() < out[j].Digest.String() })
 	return out, nil
@@ -659,18 +670,14 @@ func (g *GCS) Tags(ctx context.Context, repo string) ([]string, error) {
 	}
 	prefix := g.key("repositories", repo, "_tags") + "/"
 	tags := []string{}
-	it := g.bucket.Objects(ctx, &storage.Query{Prefix: prefix})
-	for {
-		a, err := it.Next()
-		if err == iterator.Done {
-			break
-		}
-		if err != nil {
-			return nil, fmt.Errorf("listing tags of %s: %w", repo, gcsErr(err))
-		}
+	err := g.eachObject(ctx, prefix, "listing tags of "+repo, func(a *storage.ObjectAttrs) error {
 		if t := strings.TrimPrefix(a.Name, prefix); ValidateTag(t) == nil {
 			tags = append(tags, t)
 		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
 	}
 	sort.Strings(tags)
 	return tags, nil
@@ -680,18 +687,14 @@ func (g *GCS) Tags(ctx context.Context, repo string) ([]string, error) {
 func (g *GCS) Repositories(ctx context.Context) ([]string, error) {
 	prefix := g.key("_repositories") + "/"
 	repos := []string{}
-	it := g.bucket.Objects(ctx, &storage.Query{Prefix: prefix})
-	for {
-		a, err := it.Next()
-		if err == iterator.Done {
-			break
-		}
-		if err != nil {
-			return nil, fmt.Errorf("listing repositories: %w", gcsErr(err))
-		}
+	err := g.eachObject(ctx, prefix, "listing repositories", func(a *storage.ObjectAttrs) error {
 		if r := strings.TrimPrefix(a.Name, prefix); ValidateRepository(r) == nil {
 			repos = append(repos, r)
 		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
 	}
 	sort.Strings(repos)
 	return repos, nil
@@ -707,19 +710,11 @@ func (g *GCS) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Finding
 		out = append(out, Finding{Severity: sev, Where: where, Message: fmt.Sprintf(format, args...)})
 	}
 	prefix := g.key("blobs", "sha256") + "/"
-	it := g.bucket.Objects(ctx, &storage.Query{Prefix: prefix})
-	for {
-		a, err := it.Next()
-		if err == iterator.Done {
-			break
-		}
-		if err != nil {
-			return out, fmt.Errorf("scrubbing: %w", gcsErr(err))
-		}
+	err := g.eachObject(ctx, prefix, "scrubbing", func(a *storage.ObjectAttrs) error {
 		h := strings.TrimPrefix(a.Name, prefix)
 		if !hexPattern.MatchString(h) {
 			add(SeverityHint, a.Name, "unexpected object: not named by a sha256 digest")
-			continue
+			return nil
 		}
 		d := v1.Hash{Algorithm: "sha256", Hex: h}
 		rc, err := g.Blob(ctx, "scrub", d)
@@ -728,15 +723,18 @@ func (g *GCS) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Finding
 			rc.Close()
 		}
 		if err != nil {
-			if errors.Is(err, ErrDigestMismatch) {
-				add(SeverityDamage, d.String(), "the blob is corrupt: %v", err)
-			} else {
-				return out, fmt.Errorf("scrubbing blob %s: %w", d, err)
+			if !errors.Is(err, ErrDigestMismatch) {
+				return fmt.Errorf("scrubbing blob %s: %w", d, err)
 			}
+			add(SeverityDamage, d.String(), "the blob is corrupt: %v", err)
 		}
 		if !referenced[d] {
 			add(SeverityHint, d.String(), "blob is not referenced by any manifest (left by an interrupted push); it can be collected")
 		}
+		return nil
+	})
+	if err != nil {
+		return out, err
 	}
 	repos, err := g.Repositories(ctx)
 	if err != nil {
