@@ -12,6 +12,7 @@ import (
 	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
+	"modelgate/internal/report"
 )
 
 // EnvInsecure allows plain HTTP to registries that are not on a loopback
@@ -159,7 +160,7 @@ func runCopy(ctx context.Context, g *globals, o *copyOptions, args []string) err
 		}
 	}
 	g.logf("copied %s → %s: %d manifest(s) (%d already there), %d blob(s) copied (%s), %d already there, %d tag(s)",
-		res.Source, res.Destination, len(res.Manifests), present, res.BlobsCopied, humanBytes(res.BytesCopied), res.BlobsSkipped, len(res.Tags))
+		res.Source, res.Destination, len(res.Manifests), present, res.BlobsCopied, report.HumanBytes(res.BytesCopied), res.BlobsSkipped, len(res.Tags))
 	return nil
 }
 

@@ -10,6 +10,7 @@ import (
 	"github.com/spf13/cobra"
 
 	"modelgate/internal/freeze"
+	"modelgate/internal/report"
 )
 
 type freezeOptions struct {
@@ -104,7 +105,7 @@ func printFreeze(w io.Writer, res *freeze.Result) error {
 	v := rec.Verification
 	fmt.Fprintf(w, "froze %s (%s)\n  onto encoder %s (%s)\n", res.Source.Ref, res.Source.Digest, res.Encoder.Ref, res.Encoder.Digest)
 	fmt.Fprintf(w, "frozen scorer  %s  %s  (%d blob(s) written, %s; %d already in the store)\n",
-		res.Frozen.Ref, res.Frozen.Digest, res.Push.BlobsWritten, humanBytes(res.Push.BytesWritten), res.Push.BlobsSkipped)
+		res.Frozen.Ref, res.Frozen.Digest, res.Push.BlobsWritten, report.HumanBytes(res.Push.BytesWritten), res.Push.BlobsSkipped)
 	fmt.Fprintf(w, "freeze record  %s  (a report whose subject is the frozen scorer)\n\n", res.RecordRef)
 
 	status := "PASS"
@@ -149,7 +150,7 @@ func printFreeze(w io.Writer, res *freeze.Result) error {
 	fmt.Fprintln(w, "\nencoder blobs, shared by digest:")
 	tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
 	for _, b := range rec.EncoderBlobs {
-		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\n", b.File, b.Digest, humanBytes(b.Size), strings.Join(b.Tensors, ", "))
+		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\n", b.File, b.Digest, report.HumanBytes(b.Size), strings.Join(b.Tensors, ", "))
 	}
 	tw.Flush()
 	fmt.Fprintln(w, "head files:")
@@ -159,7 +160,7 @@ func printFreeze(w io.Writer, res *freeze.Result) error {
 		if !h.Identical {
 			how = "re-encoded: " + h.Why
 		}
-		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\n", h.File, h.Digest, humanBytes(h.Size), how)
+		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\n", h.File, h.Digest, report.HumanBytes(h.Size), how)
 	}
 	tw.Flush()
 	if len(rec.Stripped) == 0 {

@@ -7,6 +7,7 @@ import (
 	"github.com/spf13/cobra"
 
 	"modelgate/internal/artifact"
+	"modelgate/internal/report"
 )
 
 type pushOptions struct {
@@ -65,7 +66,7 @@ func printPush(g *globals, res *artifact.PushResult) error {
 		return g.printJSON(res)
 	}
 	g.logf("pushed %s %s: %d blob(s) written (%s), %d already present%s", res.Kind, res.Ref,
-		res.BlobsWritten, humanBytes(res.BytesWritten), res.BlobsSkipped, map[bool]string{true: ", identical manifest reused", false: ""}[res.ManifestReused])
+		res.BlobsWritten, report.HumanBytes(res.BytesWritten), res.BlobsSkipped, map[bool]string{true: ", identical manifest reused", false: ""}[res.ManifestReused])
 	_, err := fmt.Fprintln(g.Stdout, res.Digest)
 	return err
 }

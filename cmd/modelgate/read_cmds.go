@@ -14,6 +14,7 @@ import (
 	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
+	"modelgate/internal/report"
 )
 
 func newPullCmd(g *globals) *cobra.Command {
@@ -118,7 +119,7 @@ func runLs(ctx context.Context, g *globals, name string) error {
 	tw := tabwriter.NewWriter(g.Stdout, 0, 4, 2, ' ', 0)
 	fmt.Fprintln(tw, "NAME:TAG\tKIND\tDIGEST\tSIZE\tCREATED")
 	for _, r := range rows {
-		fmt.Fprintf(tw, "%s:%s\t%s\t%s\t%s\t%s\n", r.Repository, r.Tag, r.Kind, shortDigest(r.Digest), humanBytes(r.Size), r.Created)
+		fmt.Fprintf(tw, "%s:%s\t%s\t%s\t%s\t%s\n", r.Repository, r.Tag, r.Kind, shortDigest(r.Digest), report.HumanBytes(r.Size), r.Created)
 	}
 	return tw.Flush()
 }
@@ -180,7 +181,7 @@ func printDescription(g *globals, d *artifact.Description) {
 		fmt.Fprintf(w, "description: %s\n", d.Description)
 	}
 	fmt.Fprintf(w, "tags:        %s\n", strings.Join(d.Tags, ", "))
-	fmt.Fprintf(w, "size:        %s in %d blobs, %d parameters, %d probe rows\n", humanBytes(d.TotalSize), len(d.Blobs), d.Params, d.Probes)
+	fmt.Fprintf(w, "size:        %s in %d blobs, %d parameters, %d probe rows\n", report.HumanBytes(d.TotalSize), len(d.Blobs), d.Params, d.Probes)
 	fmt.Fprintln(w, "\ninputs:")
 	for _, in := range d.Inputs.Sparse {
 		fmt.Fprintf(w, "  sparse %-20s vocabulary %d (%s), unknown ids: %s, transform %s, duplicates: %s\n",
@@ -243,7 +244,7 @@ func printOther(g *globals, d *artifact.Description) {
 	fmt.Fprintf(w, "%s  %s\n", d.Ref, d.Digest)
 	fmt.Fprintf(w, "kind:        %s (%s)\n", d.Kind, d.ArtifactType)
 	fmt.Fprintf(w, "tags:        %s\n", strings.Join(d.Tags, ", "))
-	fmt.Fprintf(w, "size:        %s in %d blobs\n", humanBytes(d.TotalSize), len(d.Blobs))
+	fmt.Fprintf(w, "size:        %s in %d blobs\n", report.HumanBytes(d.TotalSize), len(d.Blobs))
 	if d.Subject != "" {
 		fmt.Fprintf(w, "about:       %s\n", d.Subject)
 	}
@@ -287,7 +288,7 @@ func printBlobsAndAnnotations(w io.Writer, d *artifact.Description) {
 	fmt.Fprintln(w, "\nblobs:")
 	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
 	for _, b := range d.Blobs {
-		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\n", b.Title, b.MediaType, shortDigest(b.Digest), humanBytes(b.Size))
+		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\n", b.Title, b.MediaType, shortDigest(b.Digest), report.HumanBytes(b.Size))
 	}
 	tw.Flush()
 	fmt.Fprintln(w, "\nannotations:")
@@ -339,7 +340,7 @@ func runDiff(ctx context.Context, g *globals, a, b string) error {
 		return g.printJSON(d)
 	}
 	w := g.Stdout
-	fmt.Fprintf(w, "A %s  %s  %s\nB %s  %s  %s\n", a, d.DigestA, humanBytes(d.SizeA), b, d.DigestB, humanBytes(d.SizeB))
+	fmt.Fprintf(w, "A %s  %s  %s\nB %s  %s  %s\n", a, d.DigestA, report.HumanBytes(d.SizeA), b, d.DigestB, report.HumanBytes(d.SizeB))
 	if d.Identical {
 		fmt.Fprintln(w, "identical artifacts")
 		return nil

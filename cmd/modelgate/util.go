@@ -1,24 +1,7 @@
 package main
 
-import (
-	"fmt"
-
-	"modelgate/internal/errkind"
-)
+import "modelgate/internal/errkind"
 
 func usageErr(format string, args ...any) error {
 	return errkind.New(errkind.BadInput, format, args...)
-}
-
-func humanBytes(n int64) string {
-	const unit = 1024
-	if n < unit {
-		return fmt.Sprintf("%d B", n)
-	}
-	div, exp := int64(unit), 0
-	for m := n / unit; m >= unit; m /= unit {
-		div *= unit
-		exp++
-	}
-	return fmt.Sprintf("%.1f %ciB", float64(n)/float64(div), "KMGTPE"[exp])
 }

@@ -213,3 +213,19 @@ type BudgetItem struct {
 	Baseline *float64 `json:"baseline,omitempty"`
 	Status   string   `json:"status"`
 }
+
+// StatusMark is a symbol for a check or finding status, so that a status
+// reads without colour (reports and the web view use it).
+func StatusMark(s string) string {
+	switch s {
+	case StatusPass:
+		return "✓"
+	case StatusFail:
+		return "✗"
+	case StatusWarn:
+		return "!"
+	case StatusSkip:
+		return "–"
+	}
+	return "?"
+}

@@ -386,28 +386,14 @@ func fontFace() (template.CSS, error) {
 		base64.StdEncoding.EncodeToString(raw.Bytes()) + ") format(\"truetype\");}"), nil
 }
 
-// statusClass and statusMark give each status a class and a symbol, so a
-// status reads without colour.
+// statusClass gives each status a class (checks.StatusMark its symbol, so
+// a status reads without colour).
 func statusClass(s string) string {
 	switch s {
 	case checks.StatusPass, checks.StatusFail, checks.StatusWarn, checks.StatusSkip:
 		return "s-" + strings.ToLower(s)
 	}
 	return "s-other"
-}
-
-func statusMark(s string) string {
-	switch s {
-	case checks.StatusPass:
-		return "✓"
-	case checks.StatusFail:
-		return "✗"
-	case checks.StatusWarn:
-		return "!"
-	case checks.StatusSkip:
-		return "–"
-	}
-	return "?"
 }
 
 // severity orders statuses for reading: FAIL, WARN, then the rest.
@@ -434,6 +420,6 @@ func rowClass(s string) string {
 
 var pageTemplate = template.Must(template.New("page").Funcs(template.FuncMap{
 	"statusClass": statusClass,
-	"statusMark":  statusMark,
+	"statusMark":  checks.StatusMark,
 	"rowClass":    rowClass,
 }).Parse(pageHTML))

@@ -165,3 +165,13 @@ func TestArtifactName(t *testing.T) {
 		}
 	}
 }
+
+// TestHumanBytes: binary prefixes as IEC 80000-13 defines them (1 KiB =
+// 1024 B, 1 MiB = 1024 KiB).
+func TestHumanBytes(t *testing.T) {
+	for n, want := range map[int64]string{0: "0 B", 1023: "1023 B", 1024: "1.0 KiB", 1536: "1.5 KiB", 200 << 20: "200.0 MiB", 3 << 30: "3.0 GiB"} {
+		if got := HumanBytes(n); got != want {
+			t.Errorf("HumanBytes(%d) = %q, want %q", n, got, want)
+		}
+	}
+}

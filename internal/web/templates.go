@@ -11,6 +11,7 @@ import (
 	"strings"
 
 	"modelgate/internal/checks"
+	"modelgate/internal/report"
 )
 
 //go:embed templates/*.html
@@ -35,8 +36,8 @@ var funcs = template.FuncMap{
 	"verdictClass":  verdictClass,
 	"verdictMark":   verdictMark,
 	"statusClass":   statusClass,
-	"statusMark":    statusMark,
-	"bytes":         humanBytes,
+	"statusMark":    checks.StatusMark,
+	"bytes":         report.HumanBytes,
 	"num":           func(v int64) string { return groupDigits(v) },
 	"join":          strings.Join,
 	"inc":           func(i int) int { return i + 1 },
@@ -142,33 +143,6 @@ func statusClass(s string) string {
 		return "warn"
 	}
 	return "other"
-}
-
-func statusMark(s string) string {
-	switch s {
-	case checks.StatusPass:
-		return "✓"
-	case checks.StatusFail:
-		return "✗"
-	case checks.StatusWarn:
-		return "!"
-	case checks.StatusSkip:
-		return "–"
-	}
-	return "?"
-}
-
-func humanBytes(n int64) string {
-	const unit = 1024
-	if n < unit {
-		return fmt.Sprintf("%d B", n)
-	}
-	div, exp := int64(unit), 0
-	for m := n / unit; m >= unit; m /= unit {
-		div *= unit
-		exp++
-	}
-	return fmt.Sprintf("%.1f %ciB", float64(n)/float64(div), "KMGTPE"[exp])
 }
 
 // groupDigits writes 1234567 as 1 234 567 (thin spaces would not survive
