@@ -383,44 +383,15 @@ func (g *GCS) PutManifest(ctx context.Context, repo string, mediaType types.Medi
 	return desc, nil
 }
 
+// checkReferences applies checkRefs with the bucket's lookups.
 func (g *GCS) checkReferences(ctx context.Context, repo string, mt types.MediaType, mf manifestFields) error {
-	var missing, wrong []string
-	if isImageManifest(mt) {
-		for i, d := range append([]v1.Descriptor{*mf.Config}, mf.Layers...) {
-			role := "config"
-			if i > 0 {
-				role = fmt.Sprintf("layer %d", i-1)
-			}
-			size, err := g.StatBlob(ctx, repo, d.Digest)
-			switch {
-			case errors.Is(err, ErrNotFound):
-				missing = append(missing, fmt.Sprintf("%s %s", role, d.Digest))
-			case err != nil:
-				return err
-			case size != d.Size:
-				wrong = append(wrong, fmt.Sprintf("%s %s is %d bytes in the store, the manifest says %d", role, d.Digest, size, d.Size))
-			}
+	return checkRefs(mt, mf, func(d v1.Hash) (int64, error) { return g.StatBlob(ctx, repo, d) }, func(d v1.Hash) error {
+		_, err := g.bucket.Object(g.manifestKey(repo, d)).Attrs(ctx)
+		if errors.Is(err, storage.ErrObjectNotExist) {
+			return notFound("manifest %s", d)
 		}
-	} else {
-		for i, d := range mf.Manifests {
-			if err := checkDigest(d.Digest); err != nil {
-				return err
-			}
-			_, err := g.bucket.Object(g.manifestKey(repo, d.Digest)).Attrs(ctx)
-			if errors.Is(err, storage.ErrObjectNotExist) {
-				missing = append(missing, fmt.Sprintf("manifest %d %s", i, d.Digest))
-			} else if err != nil {
-				return gcsErr(err)
-			}
-		}
-	}
-	if len(missing) > 0 {
-		return errkind.New(errkind.BadInput, "missing from the store: %s: %w", strings.Join(missing, ", "), ErrNotFound)
-	}
-	if len(wrong) > 0 {
-		return errkind.New(errkind.BadInput, "%w: %s", ErrDigestMismatch, strings.Join(wrong, "; "))
-	}
-	return nil
+		return gcsErr(err)
+	})
 }
 
 // Manifest reads and verifies a manifest of repo.

@@ -671,47 +671,19 @@ func parseManifest(mediaType types.MediaType, raw []byte) (manifestFields, types
 	return mf, mt, nil
 }
 
-// checkReferences reports every blob (or, for an index, manifest) that mf
-// references and the store lacks or holds at another size.
+// checkReferences applies checkRefs with the store's own lookups.
 func (l *Local) checkReferences(repo string, mt types.MediaType, mf manifestFields) error {
-	var missing, wrong []string
-	if isImageManifest(mt) {
-		refs := append([]v1.Descriptor{*mf.Config}, mf.Layers...)
-		for i, d := range refs {
-			role := "config"
-			if i > 0 {
-				role = fmt.Sprintf("layer %d", i-1)
-			}
-			size, err := l.statBlob(d.Digest)
-			switch {
-			case errors.Is(err, ErrNotFound):
-				missing = append(missing, fmt.Sprintf("%s %s", role, d.Digest))
-			case err != nil:
-				return err
-			case size != d.Size:
-				wrong = append(wrong, fmt.Sprintf("%s %s is %d bytes in the store, the manifest says %d", role, d.Digest, size, d.Size))
-			}
-		}
-	} else if len(mf.Manifests) > 0 {
-		idx, err := l.readIndex()
-		if err != nil {
-			return err
-		}
-		for i, d := range mf.Manifests {
-			if _, err := l.lookupManifest(idx, repo, d.Digest); errors.Is(err, ErrNotFound) {
-				missing = append(missing, fmt.Sprintf("manifest %d %s", i, d.Digest))
-			} else if err != nil {
+	var idx *v1.IndexManifest
+	return checkRefs(mt, mf, l.statBlob, func(d v1.Hash) error {
+		if idx == nil {
+			var err error
+			if idx, err = l.readIndex(); err != nil {
 				return err
 			}
 		}
-	}
-	if len(missing) > 0 {
-		return errkind.New(errkind.BadInput, "missing from the store: %s: %w", strings.Join(missing, ", "), ErrNotFound)
-	}
-	if len(wrong) > 0 {
-		return errkind.New(errkind.BadInput, "%w: %s", ErrDigestMismatch, strings.Join(wrong, "; "))
-	}
-	return nil
+		_, err := l.lookupManifest(idx, repo, d)
+		return err
+	})
 }
 
 // Manifest returns the bytes of a manifest recorded in repo, read through

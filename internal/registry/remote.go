@@ -538,51 +538,19 @@ func (r *Remote) putManifest(ctx context.Context, full, ref string, mt types.Med
 	return resp, nil
 }
 
-// checkReferences reports every referenced blob or manifest that repo
-// lacks or holds at another size.
+// checkReferences applies checkRefs with the registry's lookups; a blob
+// this process saw present (uploaded or mounted) is not asked for again.
 func (r *Remote) checkReferences(ctx context.Context, repo string, mt types.MediaType, mf manifestFields) error {
-	var missing, wrong []string
 	full := fullName(r.prefix, repo)
-	if isImageManifest(mt) {
-		for i, d := range append([]v1.Descriptor{*mf.Config}, mf.Layers...) {
-			role := "config"
-			if i > 0 {
-				role = fmt.Sprintf("layer %d", i-1)
-			}
-			size := int64(-1)
-			if v, ok := r.present.Load(repoKey(full, d.Digest)); ok {
-				size = v.(int64)
-			} else {
-				s, err := r.StatBlob(ctx, repo, d.Digest)
-				switch {
-				case errors.Is(err, ErrNotFound):
-					missing = append(missing, fmt.Sprintf("%s %s", role, d.Digest))
-					continue
-				case err != nil:
-					return err
-				}
-				size = s
-			}
-			if size != d.Size {
-				wrong = append(wrong, fmt.Sprintf("%s %s is %d bytes in the registry, the manifest says %d", role, d.Digest, size, d.Size))
-			}
+	return checkRefs(mt, mf, func(d v1.Hash) (int64, error) {
+		if v, ok := r.present.Load(repoKey(full, d)); ok {
+			return v.(int64), nil
 		}
-	} else {
-		for i, d := range mf.Manifests {
-			if _, _, err := r.Manifest(ctx, repo, d.Digest); errors.Is(err, ErrNotFound) {
-				missing = append(missing, fmt.Sprintf("manifest %d %s", i, d.Digest))
-			} else if err != nil {
-				return err
-			}
-		}
-	}
-	if len(missing) > 0 {
-		return errkind.New(errkind.BadInput, "missing from the store: %s: %w", strings.Join(missing, ", "), ErrNotFound)
-	}
-	if len(wrong) > 0 {
-		return errkind.New(errkind.BadInput, "%w: %s", ErrDigestMismatch, strings.Join(wrong, "; "))
-	}
-	return nil
+		return r.StatBlob(ctx, repo, d)
+	}, func(d v1.Hash) error {
+		_, _, err := r.Manifest(ctx, repo, d)
+		return err
+	})
 }
 
 // Manifest reads a manifest of repo by digest, at most MaxManifestSize

@@ -11,10 +11,14 @@ package registry
 import (
 	"context"
 	"errors"
+	"fmt"
 	"io"
+	"strings"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
+
+	"modelgate/internal/errkind"
 )
 
 // Errors that callers test with errors.Is. Backends wrap them with context
@@ -161,4 +165,50 @@ type Scrubber interface {
 	// of blob digests that some manifest references; blobs outside it are
 	// reported as hints.
 	Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Finding, error)
+}
+
+// checkRefs is the rule every backend applies before it puts a manifest:
+// every blob an image manifest references (config, layers) is present at
+// the size the manifest gives, and every manifest an index lists is
+// present. blobSize returns a blob's stored size, an error wrapping
+// ErrNotFound when it is absent; hasManifest returns nil or such an error.
+// What is missing is refused with ErrNotFound, a wrong size with
+// ErrDigestMismatch, both errkind.BadInput.
+func checkRefs(mt types.MediaType, mf manifestFields, blobSize func(v1.Hash) (int64, error), hasManifest func(v1.Hash) error) error {
+	var missing, wrong []string
+	if isImageManifest(mt) {
+		for i, d := range append([]v1.Descriptor{*mf.Config}, mf.Layers...) {
+			role := "config"
+			if i > 0 {
+				role = fmt.Sprintf("layer %d", i-1)
+			}
+			size, err := blobSize(d.Digest)
+			switch {
+			case errors.Is(err, ErrNotFound):
+				missing = append(missing, fmt.Sprintf("%s %s", role, d.Digest))
+			case err != nil:
+				return err
+			case size != d.Size:
+				wrong = append(wrong, fmt.Sprintf("%s %s is %d bytes in the store, the manifest says %d", role, d.Digest, size, d.Size))
+			}
+		}
+	} else {
+		for i, d := range mf.Manifests {
+			if err := checkDigest(d.Digest); err != nil {
+				return err
+			}
+			if err := hasManifest(d.Digest); errors.Is(err, ErrNotFound) {
+				missing = append(missing, fmt.Sprintf("manifest %d %s", i, d.Digest))
+			} else if err != nil {
+				return err
+			}
+		}
+	}
+	if len(missing) > 0 {
+		return errkind.New(errkind.BadInput, "missing from the store: %s: %w", strings.Join(missing, ", "), ErrNotFound)
+	}
+	if len(wrong) > 0 {
+		return errkind.New(errkind.BadInput, "%w: %s", ErrDigestMismatch, strings.Join(wrong, "; "))
+	}
+	return nil
 }
