@@ -12,10 +12,9 @@ package main
 import (
 	"flag"
 	"fmt"
-	"math/rand/v2"
 	"os"
 
-	"modelgate/internal/model"
+	"modelgate/internal/fixture/bigmodel"
 	"modelgate/internal/model/modeldir"
 )
 
@@ -35,28 +34,5 @@ func main() {
 }
 
 func run(mib int, out string, seed uint64) error {
-	const width = 256
-	rows := mib << 20 / 4 / width
-	ids := make([]string, rows-1) // the last row is the unknown-id bucket
-	for i := range ids {
-		ids[i] = fmt.Sprintf("show-%07d", i)
-	}
-	r := rand.New(rand.NewPCG(seed, 2))
-	w := make([]float32, rows*width)
-	for i := range w {
-		w[i] = float32(r.NormFloat64()) / 16
-	}
-	in := model.SparseInput{Name: "episodes_played", VocabularySize: len(ids), Unknown: model.UnknownBucket,
-		Transform: model.TransformLog1p, Duplicates: model.DuplicatesSum, Vocabulary: "vocabulary.txt"}
-	m := &modeldir.Model{
-		Spec: &model.Spec{SchemaVersion: 1, Kind: model.KindEncoder, Name: "bench-encoder",
-			Description: "benchmark encoder: random weights",
-			Inputs:      model.Inputs{Sparse: []model.SparseInput{in}},
-			Tensors:     []model.Tensor{{Name: "w", File: "encoder.safetensors", Shape: []int{rows, width}, DType: "F32", Part: "encoder"}},
-			Layers:      []model.Layer{{Name: "code", Op: model.OpSparseDense, Input: in.Name, Weight: "w", Activation: model.ActIdentity}},
-			Code:        "code", Output: "code"},
-		Tensors:    map[string][]float32{"w": w},
-		Vocabulary: ids,
-	}
-	return modeldir.Write(out, m)
+	return modeldir.Write(out, bigmodel.Encoder(mib, seed, 1.0/16))
 }

@@ -2,16 +2,14 @@ package artifact
 
 import (
 	"context"
-	"fmt"
 	"io"
-	"math/rand/v2"
 	"os"
 	"path/filepath"
 	"syscall"
 	"testing"
 	"time"
 
-	"modelgate/internal/model"
+	"modelgate/internal/fixture/bigmodel"
 	"modelgate/internal/model/modeldir"
 	"modelgate/internal/registry"
 )
@@ -19,31 +17,8 @@ import (
 // bigModel writes an encoder whose one tensor file is about mb megabytes.
 func bigModel(b testing.TB, dir string, mb int) string {
 	b.Helper()
-	const width = 256
-	rows := mb << 20 / 4 / width
-	vocab := rows - 1
-	ids := make([]string, vocab)
-	for i := range ids {
-		ids[i] = fmt.Sprintf("show-%07d", i)
-	}
-	r := rand.New(rand.NewPCG(1, 2))
-	w := make([]float32, rows*width)
-	for i := range w {
-		w[i] = float32(r.NormFloat64())
-	}
-	in := model.SparseInput{Name: "episodes_played", VocabularySize: vocab, Unknown: model.UnknownBucket,
-		Transform: model.TransformLog1p, Duplicates: model.DuplicatesSum, Vocabulary: "vocabulary.txt"}
-	m := &modeldir.Model{
-		Spec: &model.Spec{SchemaVersion: 1, Kind: model.KindEncoder, Name: "bench-encoder",
-			Inputs:  model.Inputs{Sparse: []model.SparseInput{in}},
-			Tensors: []model.Tensor{{Name: "w", File: "encoder.safetensors", Shape: []int{rows, width}, DType: "F32", Part: "encoder"}},
-			Layers:  []model.Layer{{Name: "code", Op: model.OpSparseDense, Input: in.Name, Weight: "w", Activation: model.ActIdentity}},
-			Code:    "code", Output: "code"},
-		Tensors:    map[string][]float32{"w": w},
-		Vocabulary: ids,
-	}
 	p := filepath.Join(dir, "model")
-	if err := modeldir.Write(p, m); err != nil {
+	if err := modeldir.Write(p, bigmodel.Encoder(mb, 1, 1)); err != nil {
 		b.Fatal(err)
 	}
 	return p

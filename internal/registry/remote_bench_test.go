@@ -2,13 +2,12 @@ package registry_test
 
 import (
 	"context"
-	"fmt"
-	"math/rand/v2"
 	"net/http"
 	"path/filepath"
 	"testing"
 
 	"modelgate/internal/artifact"
+	"modelgate/internal/fixture/bigmodel"
 	"modelgate/internal/model"
 	"modelgate/internal/model/modeldir"
 	"modelgate/internal/registry"
@@ -18,29 +17,7 @@ import (
 // returns its checked directory (blobs in memory).
 func benchModel(b *testing.B, mb int) *modeldir.Dir {
 	b.Helper()
-	const width = 256
-	rows := mb << 20 / 4 / width
-	vocab := rows - 1
-	ids := make([]string, vocab)
-	for i := range ids {
-		ids[i] = fmt.Sprintf("show-%07d", i)
-	}
-	r := rand.New(rand.NewPCG(1, 2))
-	w := make([]float32, rows*width)
-	for i := range w {
-		w[i] = float32(r.NormFloat64())
-	}
-	in := model.SparseInput{Name: "episodes_played", VocabularySize: vocab, Unknown: model.UnknownBucket,
-		Transform: model.TransformLog1p, Duplicates: model.DuplicatesSum, Vocabulary: "vocabulary.txt"}
-	m := &modeldir.Model{
-		Spec: &model.Spec{SchemaVersion: 1, Kind: model.KindEncoder, Name: "bench-encoder",
-			Inputs:  model.Inputs{Sparse: []model.SparseInput{in}},
-			Tensors: []model.Tensor{{Name: "w", File: "encoder.safetensors", Shape: []int{rows, width}, DType: "F32", Part: "encoder"}},
-			Layers:  []model.Layer{{Name: "code", Op: model.OpSparseDense, Input: in.Name, Weight: "w", Activation: model.ActIdentity}},
-			Code:    "code", Output: "code"},
-		Tensors:    map[string][]float32{"w": w},
-		Vocabulary: ids,
-	}
+	m := bigmodel.Encoder(mb, 1, 1)
 	p := filepath.Join(b.TempDir(), "model")
 	if err := modeldir.Write(p, m); err != nil {
 		b.Fatal(err)
