@@ -182,7 +182,7 @@ func demoPolicy(work string, keys map[string]*release.Key) (string, error) {
 	}
 	text := string(raw)
 	entry := func(name string) string {
-		return fmt.Sprintf("        - name: %s\n          keyFile: ../keys/%s.pub.pem\n          keyId: %s\n", name, name, keys[name].ID)
+		return fmt.Sprintf("        - name: %s\n          keyFile: ../keys/%s.pub.pem\n          keyId: \"%s\"\n", name, name, keys[name].ID)
 	}
 	for _, r := range []struct{ old, new string }{
 		{"      required: 0\n      approvers: []\n", "      required: 2\n      approvers:\n" + entry("ana") + entry("ben") + entry("rita")},

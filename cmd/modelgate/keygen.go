@@ -60,6 +60,6 @@ func runKeygen(g *globals, o *keygenOptions) error {
 	}
 	w := g.Stdout
 	fmt.Fprintf(w, "key id:      %s\nname:        %s\nprivate key: %s (keep it secret)\npublic key:  %s\n", k.ID, k.Name, priv, pub)
-	fmt.Fprintf(w, "\nList it in a policy's approvals (keyFile is relative to the policy file):\n  - name: %s\n    keyFile: %s\n    keyId: %s\n", k.Name, filepath.ToSlash(pub), k.ID)
+	fmt.Fprintf(w, "\nList it in a policy's approvals (keyFile is relative to the policy file):\n  - name: %s\n    keyFile: %s\n    keyId: \"%s\"   # quoted: a key id of digits alone would read as a number\n", k.Name, filepath.ToSlash(pub), k.ID)
 	return nil
 }

@@ -10,6 +10,7 @@ import (
 	"sync"
 	"testing"
 
+	"modelgate/internal/policy"
 	"modelgate/internal/fixture"
 	"modelgate/internal/model/modeldir"
 )
@@ -75,7 +76,7 @@ rules:
     approvals:
       required: %d
       approvers:
-        - {name: ana, keyFile: ana.pub.pem, keyId: %s}
+        - {name: ana, keyFile: ana.pub.pem, keyId: "%s"}
         - {name: ben, keyFile: ben.pub.pem}
         - {name: rita, keyFile: rita.pub.pem}
       reportSigners:
@@ -387,5 +388,41 @@ func TestDemoReleaseStory(t *testing.T) {
 	r = mustMG(t, store, "demo", "--work", work)
 	if !strings.Contains(r.stdout, "already ran on this store") {
 		t.Errorf("second demo run:\n%s", r.stdout)
+	}
+}
+
+// TestDemoPolicyKeyIDsStayStrings: a key id is 16 hex digits, so now and
+// then one has no letter (or reads like 12e4...), and YAML takes a plain
+// scalar of that form for a number (YAML 1.2.2, §10.3.2, the core
+// schema's int and float). The demo's policy copy (and keygen's snippet)
+// quote it; this demo run once failed on an id of digits.
+func TestDemoPolicyKeyIDsStayStrings(t *testing.T) {
+	work := t.TempDir()
+	keys, err := demoKeys(filepath.Join(work, "keys"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	keys["ana"].ID, keys["ben"].ID, keys["ci"].ID = "1234567890123456", "12e4567890123456", "0000000000000017"
+	p, err := demoPolicy(work, keys)
+	if err != nil {
+		t.Fatalf("demo policy with digit-only key ids: %v", err)
+	}
+	pol, err := policy.Load(p)
+	if err != nil {
+		t.Fatal(err)
+	}
+	r, err := pol.Rule("promo-scorer:prod")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got := r.Approvals.Approvers[1].KeyID; got != "12e4567890123456" {
+		t.Errorf("ben's key id reads back as %q", got)
+	}
+	if got := r.Approvals.ReportSigners[0].KeyID; got != "0000000000000017" {
+		t.Errorf("ci's key id reads back as %q", got)
+	}
+	out := mustMG(t, filepath.Join(work, "store"), "keygen", "--out", filepath.Join(work, "sam"), "--name", "sam").stdout
+	if !strings.Contains(out, `keyId: "`) {
+		t.Errorf("keygen's policy snippet does not quote the key id:\n%s", out)
 	}
 }

@@ -98,7 +98,7 @@ rules:
           keyFile: ana.pub.pem
         - name: ben
           keyFile: ben.pub.pem
-          keyId: %s
+          keyId: "%s"
         - name: rita
           keyFile: rita.pub.pem
       reportSigners: %s

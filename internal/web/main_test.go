@@ -164,7 +164,7 @@ func approvalPolicy(dir string, keys map[string]*release.Key) (*policy.Policy, e
 		return nil, err
 	}
 	entry := func(name string) string {
-		return fmt.Sprintf("        - name: %s\n          keyFile: ../keys/%s.pub.pem\n          keyId: %s\n", name, name, keys[name].ID)
+		return fmt.Sprintf("        - name: %s\n          keyFile: ../keys/%s.pub.pem\n          keyId: \"%s\"\n", name, name, keys[name].ID)
 	}
 	old := "      required: 0\n      approvers: []\n"
 	if !strings.Contains(string(raw), old) {
