@@ -10,9 +10,9 @@ import (
 	"sync"
 	"testing"
 
-	"modelgate/internal/policy"
 	"modelgate/internal/fixture"
 	"modelgate/internal/model/modeldir"
+	"modelgate/internal/policy"
 )
 
 // releaseWorld is a store with tiny encoder variants, keys and a policy
