@@ -59,6 +59,9 @@ func schemaCheck(doc []byte, probs *Problems) error {
 			msg += " (the integrity check cannot be disabled)"
 		case strings.HasSuffix(v.Pointer, "/keyFile") && msg == "not allowed":
 			msg = "not allowed together with publicKey: give one of them"
+		case strings.HasSuffix(v.Pointer, "/keyId") && strings.Contains(msg, "got number"):
+			// YAML reads a plain scalar of digits as a number.
+			msg += ` (a key id of digits alone must be quoted: keyId: "0123456789012345")`
 		}
 		probs.add(orRoot(v.Pointer), "%s", msg)
 	}

@@ -293,6 +293,8 @@ func TestMalformed(t *testing.T) {
 		{"unknown field", "", minimalScorer + "    checks: {holdout: {marginn: 0.1}}\n",
 			[]string{"/rules/0/checks/holdout", "'marginn' not allowed"}},
 		{"unknown top-level field", "", minimalScorer + "owner: ana\n", []string{"/: additionalProperties 'owner' not allowed"}},
+		{"key id of digits, unquoted", "", minimalScorer + "    approvals:\n      approvers:\n        - {name: ana, publicKey: x, keyId: 1234567890123456}\n",
+			[]string{"/rules/0/approvals/approvers/0/keyId", "must be quoted"}},
 		{"scorer knob on an encoder", "", minimalEncoder + "    checks: {holdout: {slices: {failOnSlice: true}}}\n",
 			[]string{"/rules/0/checks/holdout", "'slices' not allowed"}},
 		{"wrong kind", "", strings.Replace(minimalScorer, "kind: scorer", "kind: ranker", 1), []string{"/rules/0/kind"}},
