@@ -8,6 +8,7 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
+	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
 )
@@ -277,7 +278,20 @@ func orphans(ctx context.Context, store registry.Store, target registry.Ref, rep
 	}
 	var out []string
 	for _, d := range ds {
-		if d.ArtifactType == ArtifactTypeRelease && d.Annotations[AnnotationTarget] == target.String() && !inChain[d.Digest.String()] {
+		if inChain[d.Digest.String()] {
+			continue
+		}
+		at, ann := d.ArtifactType, d.Annotations
+		if at == "" {
+			// A registry lists its manifests by digest alone: read the
+			// manifest for its type and target.
+			a, err := artifact.ReadArtifact(ctx, store, registry.Ref{Repository: target.Repository, Digest: d.Digest})
+			if err != nil {
+				continue
+			}
+			at, ann = a.Manifest.ArtifactType, a.Manifest.Annotations
+		}
+		if at == ArtifactTypeRelease && ann[AnnotationTarget] == target.String() {
 			out = append(out, d.Digest.String())
 		}
 	}

@@ -1,6 +1,7 @@
 package release
 
 import (
+	"context"
 	"os"
 	"strings"
 	"testing"
@@ -201,6 +202,15 @@ func TestLogDetectsDamage(t *testing.T) {
 				t.Errorf("damage reported at %s, want only the overwritten record %s", f.Where, headA)
 			}
 		}
+		// A registry lists its manifests by digest alone (no type, no
+		// annotations): the overwritten record must be found all the same.
+		lg, err = Log(e.ctx, digestsOnly{e.store}, prodRef, LogOptions{Trusted: []PublicKey{e.keys["rita"].Trusted()}})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !strings.Contains(findings(lg, SeverityDamage), "no longer in the chain") {
+			t.Errorf("a store listing digests alone: lost race not exposed: %+v", lg.Findings)
+		}
 	})
 	t.Run("signature altered", func(t *testing.T) {
 		e, lg := setup(t)
@@ -316,4 +326,15 @@ func TestInterruptedRelease(t *testing.T) {
 	if lg = e.log("rita"); lg.Worst() != 0 || len(lg.Entries) != 4 {
 		t.Errorf("after completion: %d entries, %+v", len(lg.Entries), lg.Findings)
 	}
+}
+
+// digestsOnly lists manifests as a registry does: digests, nothing else.
+type digestsOnly struct{ *registry.Local }
+
+func (d digestsOnly) Manifests(ctx context.Context, repo string) ([]v1.Descriptor, error) {
+	ds, err := d.Local.Manifests(ctx, repo)
+	for i := range ds {
+		ds[i] = v1.Descriptor{Digest: ds[i].Digest}
+	}
+	return ds, err
 }
