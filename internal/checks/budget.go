@@ -1,13 +1,13 @@
 package checks
 
 import (
+	"context"
 	"fmt"
 	"math"
 	"math/rand/v2"
 	"runtime"
 	"sort"
 	"strings"
-	"time"
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
@@ -21,15 +21,40 @@ type BudgetConfig struct {
 	MaxBytes     *float64 // artifact bytes (a referenced encoder included)
 	MaxParams    *float64 // parameters of serving tensors
 	MaxGrowth    *float64 // (bytes − baseline bytes) / baseline bytes
-	MaxLoadBytes *float64 // heap bytes allocated to load and compile
+	MaxLoadBytes *float64 // bytes allocated to load and prepare (see loadmem.go)
 	// Latency of one request: one user's sparse row through the encoder
 	// once, then Candidates rows of candidate features through the scorer
-	// head, on one thread, Runs times.
+	// head, on one thread. Runs requests per model, split into Blocks
+	// blocks that alternate candidate and baseline (see measureLatency).
 	Candidates int
 	Runs       int
+	Blocks     int
 	P50ms      *float64
 	P99ms      *float64
-	Seed       uint64
+	// MaxRatio bounds the candidate's median request time over the
+	// baseline's, measured in the same blocks.
+	MaxRatio *float64
+	Seed     uint64
+}
+
+// LatencyDetail is how the budget's latency was measured, and the figures.
+type LatencyDetail struct {
+	// Clock is what was timed: "thread CPU time" (Linux) or "wall time".
+	Clock        string `json:"clock"`
+	Blocks       int    `json:"blocks"`
+	RunsPerBlock int    `json:"runsPerBlock"`
+	// Candidate and Baseline: medians over blocks of each block's p50 and
+	// p99 request time. Baseline is nil on a first release.
+	Candidate LatencyFigures  `json:"candidate"`
+	Baseline  *LatencyFigures `json:"baseline,omitempty"`
+	// Ratio is the median over blocks of candidate p50 / baseline p50.
+	Ratio float64 `json:"ratio,omitempty"`
+}
+
+// LatencyFigures are one model's request times, in milliseconds.
+type LatencyFigures struct {
+	P50ms float64 `json:"p50Ms"`
+	P99ms float64 `json:"p99Ms"`
 }
 
 // Footprint is what the budget measures of one model.
@@ -70,29 +95,9 @@ func Measure(l *artifact.Loaded) Footprint {
 	return f
 }
 
-// LoadAndPrepare loads and compiles a model, recording the heap bytes it
-// allocated to do so (Footprint.LoadBytes).
-func LoadAndPrepare(load func() (*artifact.Loaded, error)) (*score.Model, Footprint, error) {
-	var before, after runtime.MemStats
-	runtime.GC()
-	runtime.ReadMemStats(&before)
-	l, err := load()
-	if err != nil {
-		return nil, Footprint{}, err
-	}
-	m, err := score.Prepare(l)
-	if err != nil {
-		return nil, Footprint{}, err
-	}
-	runtime.ReadMemStats(&after)
-	f := Measure(l)
-	f.LoadBytes = int64(after.TotalAlloc - before.TotalAlloc)
-	return m, f, nil
-}
-
-// Budget compares a candidate's footprint and request latency with the
-// policy's budget and with the baseline's footprint.
-func Budget(m *score.Model, cand Footprint, base *Footprint, cfg BudgetConfig) CheckResult {
+// budget compares a candidate's footprint and request latency with the
+// policy's budget and with the baseline's (nil on a first release).
+func budget(ctx context.Context, cand, base *loadedModel, cfg BudgetConfig) CheckResult {
 	res := CheckResult{Name: CheckBudget, Budget: &BudgetDetail{}}
 	item := func(name, unit string, v float64, limit *float64, b *float64) {
 		it := BudgetItem{Name: name, Unit: unit, Value: v, Limit: limit, Baseline: b, Status: StatusPass}
@@ -103,27 +108,49 @@ func Budget(m *score.Model, cand Footprint, base *Footprint, cfg BudgetConfig) C
 		}
 		res.Budget.Items = append(res.Budget.Items, it)
 	}
+	fail := func(code string, err error) {
+		res.Findings = append(res.Findings, Finding{Status: StatusFail, Code: code, Message: err.Error()})
+	}
+	cf := cand.foot
 	var bb, bp *float64
 	if base != nil {
-		bb, bp = ptr(float64(base.Bytes)), ptr(float64(base.Params))
+		bb, bp = ptr(float64(base.foot.Bytes)), ptr(float64(base.foot.Params))
 	}
-	item("bytes", "bytes", float64(cand.Bytes), cfg.MaxBytes, bb)
-	item("params", "count", float64(cand.Params), cfg.MaxParams, bp)
-	if base != nil && base.Bytes > 0 {
-		item("growth", "fraction", float64(cand.Bytes-base.Bytes)/float64(base.Bytes), cfg.MaxGrowth, nil)
+	item("bytes", "bytes", float64(cf.Bytes), cfg.MaxBytes, bb)
+	item("params", "count", float64(cf.Params), cfg.MaxParams, bp)
+	if base != nil && base.foot.Bytes > 0 {
+		item("growth", "fraction", float64(cf.Bytes-base.foot.Bytes)/float64(base.foot.Bytes), cfg.MaxGrowth, nil)
 	}
-	var lb *float64
-	if base != nil {
-		lb = ptr(float64(base.LoadBytes))
+	if cl, err := cand.loadBytes(ctx); err != nil {
+		fail("budget.load-memory", err)
+	} else {
+		var lb *float64
+		if base != nil {
+			if n, err := base.loadBytes(ctx); err == nil {
+				lb = ptr(float64(n))
+			}
+		}
+		item("load-memory", "bytes", float64(cl), cfg.MaxLoadBytes, lb)
 	}
-	item("load-memory", "bytes", float64(cand.LoadBytes), cfg.MaxLoadBytes, lb)
 	if cfg.Runs > 0 {
-		p50, p99, err := RequestLatency(m, cfg.Candidates, cfg.Runs, cfg.Seed)
+		var bm *score.Model
+		if base != nil {
+			bm = base.model
+		}
+		lat, err := measureLatency(cand.model, bm, cfg)
 		if err != nil {
-			res.Findings = append(res.Findings, Finding{Status: StatusFail, Code: "budget.latency", Message: err.Error()})
+			fail("budget.latency", err)
 		} else {
-			item("latency-p50", "ms", p50, cfg.P50ms, nil)
-			item("latency-p99", "ms", p99, cfg.P99ms, nil)
+			res.Budget.Latency = lat
+			var b50, b99 *float64
+			if lat.Baseline != nil {
+				b50, b99 = ptr(lat.Baseline.P50ms), ptr(lat.Baseline.P99ms)
+			}
+			item("latency-p50", "ms", lat.Candidate.P50ms, cfg.P50ms, b50)
+			item("latency-p99", "ms", lat.Candidate.P99ms, cfg.P99ms, b99)
+			if lat.Baseline != nil {
+				item("latency-ratio", "ratio", lat.Ratio, cfg.MaxRatio, nil)
+			}
 		}
 	}
 	finish(&res)
@@ -136,6 +163,9 @@ func Budget(m *score.Model, cand Footprint, base *Footprint, cfg BudgetConfig) C
 	res.Summary = strings.Join(parts, ", ")
 	if res.Summary == "" {
 		res.Summary = "no limits set"
+	}
+	if lat := res.Budget.Latency; lat != nil && strings.Contains(res.Summary, "latency") {
+		res.Summary += fmt.Sprintf(" (latency: %s, median of %d blocks)", lat.Clock, lat.Blocks)
 	}
 	return res
 }
@@ -157,15 +187,102 @@ func fmtUnit(v float64, unit string) string {
 		return fmt.Sprintf("%.4g ms", v)
 	case "fraction":
 		return fmt.Sprintf("%+.1f%%", 100*v)
+	case "ratio":
+		return fmt.Sprintf("%.2f×", v)
 	}
 	return fmt.Sprintf("%.0f", v)
 }
 
-// RequestLatency times one serving request on one thread, runs times:
-// the user's sparse row through the encoder once, then n candidate rows
-// through the scorer head with the code broadcast. For an encoder it times
-// the encoder on one row. It returns p50 and p99 in milliseconds.
-func RequestLatency(m *score.Model, n, runs int, seed uint64) (p50, p99 float64, err error) {
+// measureLatency times serving requests of the candidate and, when there
+// is one, the baseline, in one process on one locked thread, interleaved:
+// the runs of each model are split into blocks; block b runs the
+// candidate's share then the baseline's (the other way round in odd
+// blocks), so a slow stretch of the machine falls on both. Each block
+// gives each model a p50 and a p99; the reported figures are the medians
+// over blocks (one disturbed block moves none of them), and the ratio is
+// the median over blocks of candidate p50 / baseline p50. Times are the
+// thread's CPU time where the platform has it (requestClock), so time
+// spent waiting for a core on a busy machine is not counted.
+func measureLatency(cand, base *score.Model, cfg BudgetConfig) (*LatencyDetail, error) {
+	runs, blocks := cfg.Runs, cfg.Blocks
+	if blocks < 1 {
+		blocks = 1
+	}
+	if runs < blocks {
+		runs = blocks
+	}
+	per := (runs + blocks - 1) / blocks
+	clock, clockName := requestClock()
+	type sut struct {
+		run      func() error
+		p50, p99 []float64
+		times    []float64
+	}
+	var suts []*sut
+	for _, m := range []*score.Model{cand, base} {
+		if m == nil {
+			continue
+		}
+		run, stop, err := newRequest(m, cfg.Candidates, cfg.Seed)
+		if err != nil {
+			return nil, err
+		}
+		defer stop()
+		suts = append(suts, &sut{run: run, times: make([]float64, per)})
+	}
+	runtime.LockOSThread()
+	defer runtime.UnlockOSThread()
+	for _, s := range suts { // the first run warms caches and buffers
+		if err := s.run(); err != nil {
+			return nil, err
+		}
+	}
+	for b := 0; b < blocks; b++ {
+		for k := range suts {
+			s := suts[k]
+			if b%2 == 1 {
+				s = suts[len(suts)-1-k]
+			}
+			for r := 0; r < per; r++ {
+				t0 := clock()
+				if err := s.run(); err != nil {
+					return nil, err
+				}
+				s.times[r] = float64(clock()-t0) / 1e6
+			}
+			p50, p99, err := percentiles(s.times)
+			if err != nil {
+				return nil, err
+			}
+			s.p50, s.p99 = append(s.p50, p50), append(s.p99, p99)
+		}
+	}
+	det := &LatencyDetail{Clock: clockName, Blocks: blocks, RunsPerBlock: per,
+		Candidate: LatencyFigures{P50ms: median(suts[0].p50), P99ms: median(suts[0].p99)}}
+	if len(suts) == 2 {
+		b := suts[1]
+		det.Baseline = &LatencyFigures{P50ms: median(b.p50), P99ms: median(b.p99)}
+		ratios := make([]float64, blocks)
+		for i := range ratios {
+			ratios[i] = suts[0].p50[i] / math.Max(b.p50[i], 1e-9)
+		}
+		det.Ratio = median(ratios)
+	}
+	return det, nil
+}
+
+// median is the type-7 median of xs (xs is not modified).
+func median(xs []float64) float64 {
+	s := append([]float64(nil), xs...)
+	p50, _, _ := percentiles(s)
+	return p50
+}
+
+// newRequest builds one serving request of m on one thread: the user's
+// sparse row through the encoder once, then n candidate rows through the
+// scorer head with the code broadcast; for an encoder, the encoder on one
+// row. Inputs are drawn from seed. stop releases the runners.
+func newRequest(m *score.Model, n int, seed uint64) (run func() error, stop func(), err error) {
 	if n < 1 {
 		n = 1
 	}
@@ -179,25 +296,21 @@ func RequestLatency(m *score.Model, n, runs int, seed uint64) (p50, p99 float64,
 	}
 	user.Indptr = append(user.Indptr, int32(len(user.Indices)))
 	encRunner := m.Net.NewRunner(1)
-	defer encRunner.Close()
-	times := make([]float64, 0, runs)
 	if spec.Kind == model.KindEncoder {
 		var out []float32
-		for r := 0; r < runs; r++ {
-			t0 := time.Now()
-			if out, err = encRunner.Run(user, m.Net.Code(), out); err != nil {
-				return 0, 0, err
-			}
-			times = append(times, float64(time.Since(t0).Nanoseconds())/1e6)
-		}
-		return percentiles(times)
+		return func() error {
+			var err error
+			out, err = encRunner.Run(user, m.Net.Code(), out)
+			return err
+		}, encRunner.Close, nil
 	}
 	head, codeLayer, err := headNet(m)
 	if err != nil {
-		return 0, 0, err
+		encRunner.Close()
+		return nil, nil, err
 	}
 	headRunner := head.NewRunner(1)
-	defer headRunner.Close()
+	stop = func() { encRunner.Close(); headRunner.Close() }
 	width := m.Net.Width(codeLayer)
 	cand := &model.Batch{Indptr: make([]int32, n+1), Dense: map[string][]float32{}}
 	for _, d := range head.Dense() {
@@ -215,24 +328,19 @@ func RequestLatency(m *score.Model, n, runs int, seed uint64) (p50, p99 float64,
 		user.Dense[d.Name] = make([]float32, d.Size)
 	}
 	codes := make([]float32, n*width)
+	cand.Dense[headCodeInput] = codes
 	var code, out []float32
-	for r := 0; r < runs+1; r++ {
-		t0 := time.Now()
+	return func() error {
+		var err error
 		if code, err = encRunner.Run(user, codeLayer, code); err != nil {
-			return 0, 0, err
+			return err
 		}
 		for i := 0; i < n; i++ {
 			copy(codes[i*width:], code)
 		}
-		cand.Dense[headCodeInput] = codes
-		if out, err = headRunner.Run(cand, head.Output(), out); err != nil {
-			return 0, 0, err
-		}
-		if r > 0 { // the first run warms caches and buffers
-			times = append(times, float64(time.Since(t0).Nanoseconds())/1e6)
-		}
-	}
-	return percentiles(times)
+		out, err = headRunner.Run(cand, head.Output(), out)
+		return err
+	}, stop, nil
 }
 
 func percentiles(ts []float64) (float64, float64, error) {

@@ -90,7 +90,11 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 	emit(Event{Phase: "load"})
 	start := time.Now()
 	integ := CheckResult{Name: CheckIntegrity}
-	cand, candFoot, err := LoadAndPrepare(func() (*artifact.Loaded, error) { return artifact.Load(ctx, g.Store, candRef) })
+	var cand *score.Model
+	candLM, err := loadModel(ctx, g.Store, candRef)
+	if err == nil {
+		cand = candLM.model
+	}
 	if err != nil {
 		if !errkind.Is(err, errkind.Integrity) {
 			return nil, err
@@ -108,16 +112,19 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 			Message: fmt.Sprintf("the candidate is in repository %s but the target tag is in %s: push or copy it there first", g.Candidate.Repository, g.Target.Repository)})
 	}
 	var base *score.Model
-	var baseFoot Footprint
+	var baseLM *loadedModel
 	if baseRef != nil {
-		base, baseFoot, err = LoadAndPrepare(func() (*artifact.Loaded, error) { return artifact.Load(ctx, g.Store, *baseRef) })
+		baseLM, err = loadModel(ctx, g.Store, registry.Ref{Repository: baseRef.Repository, Digest: baseRef.Digest})
+		if err == nil {
+			base = baseLM.model
+		}
 		if err != nil {
 			if !errkind.Is(err, errkind.Integrity) {
 				return nil, err
 			}
 			integ.Findings = append(integ.Findings, Finding{Status: StatusFail, Code: "integrity.baseline", Where: rep.Baseline.Digest,
 				Message: "the baseline cannot be compared: " + err.Error()})
-			base = nil
+			base, baseLM = nil, nil
 		} else {
 			rep.Baseline.Kind, rep.Baseline.Name = base.Loaded.Spec.Kind, base.Loaded.Spec.Name
 		}
@@ -181,11 +188,7 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 		}
 		return Holdout(ctx, cand, base, hold, g.Config.Holdout, func(done, total int64) { emit(Event{Phase: CheckHoldout, Done: done, Total: total}) })
 	})
-	var bf *Footprint
-	if base != nil {
-		bf = &baseFoot
-	}
-	run(CheckBudget, g.Config.Budget.Enabled, func() CheckResult { return Budget(cand, candFoot, bf, g.Config.Budget) })
+	run(CheckBudget, g.Config.Budget.Enabled, func() CheckResult { return budget(ctx, candLM, baseLM, g.Config.Budget) })
 	return conclude(rep), nil
 }
 
@@ -260,18 +263,14 @@ func RunShard(ctx context.Context, g Gate, i, n int) (*ShardResult, error) {
 	}
 	r := &ShardResult{SchemaVersion: 1, Tool: Tool{Name: "modelgate", Version: version.Version}, Target: g.Target.String(),
 		Candidate: candDesc.Digest.String(), Policy: g.Policy.Digest, Shard: i, Of: n}
-	cand, _, err := LoadAndPrepare(func() (*artifact.Loaded, error) {
-		return artifact.Load(ctx, g.Store, registry.Ref{Repository: g.Candidate.Repository, Digest: candDesc.Digest})
-	})
+	cand, err := loadPrepared(ctx, g.Store, registry.Ref{Repository: g.Candidate.Repository, Digest: candDesc.Digest})
 	if err != nil {
 		return nil, err
 	}
 	var base *score.Model
 	if bd, err := g.Store.Resolve(ctx, g.Target.Repository, g.Target.Tag); err == nil {
 		r.Baseline = bd.Digest.String()
-		if base, _, err = LoadAndPrepare(func() (*artifact.Loaded, error) {
-			return artifact.Load(ctx, g.Store, registry.Ref{Repository: g.Target.Repository, Digest: bd.Digest})
-		}); err != nil {
+		if base, err = loadPrepared(ctx, g.Store, registry.Ref{Repository: g.Target.Repository, Digest: bd.Digest}); err != nil {
 			return nil, fmt.Errorf("baseline: %w", err)
 		}
 	} else if !errors.Is(err, registry.ErrNotFound) {
@@ -293,4 +292,14 @@ func RunShard(ctx context.Context, g Gate, i, n int) (*ShardResult, error) {
 	}
 	r.Seconds = time.Since(start).Seconds()
 	return r, nil
+}
+
+// loadPrepared loads and prepares a model (no footprint: shards do not
+// run the budget).
+func loadPrepared(ctx context.Context, store registry.Store, ref registry.Ref) (*score.Model, error) {
+	l, err := artifact.Load(ctx, store, ref)
+	if err != nil {
+		return nil, err
+	}
+	return score.Prepare(l)
 }

@@ -89,7 +89,7 @@ func gateAs(t *testing.T, store registry.Store, cand, target, ruleTarget, policy
 	c, _ := registry.ParseRef(cand, false)
 	tg, _ := registry.ParseRef(target, false)
 	cfg := FromRule(rule, encTag)
-	cfg.Budget.P50ms, cfg.Budget.P99ms = nil, nil // timings are never pass/fail in tests
+	cfg.Budget.P50ms, cfg.Budget.P99ms, cfg.Budget.MaxRatio = nil, nil, nil // timings are never pass/fail in tests (but see TestBudgetVerdictRepeats)
 	rep, err := Run(ctx, Gate{Store: store, Candidate: c, Target: tg, Holdout: rule.HoldoutRef, Config: cfg,
 		Policy: Policy{Name: pol.Name, Source: policyFile, Digest: pol.Digest()}})
 	if err != nil {

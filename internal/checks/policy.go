@@ -40,7 +40,8 @@ func FromRule(r *policy.Rule, encoderTagDigest string) Config {
 		c.Budget.MaxLoadBytes = ptr(float64(*b.MaxLoadBytes))
 	}
 	if l := b.Latency; l != nil {
-		c.Budget.Candidates, c.Budget.Runs, c.Budget.P50ms, c.Budget.P99ms = l.Candidates, l.Runs, l.P50Ms, l.P99Ms
+		c.Budget.Candidates, c.Budget.Runs, c.Budget.Blocks = l.Candidates, l.Runs, l.Blocks
+		c.Budget.P50ms, c.Budget.P99ms, c.Budget.MaxRatio = l.P50Ms, l.P99Ms, l.MaxRatio
 	}
 	return c
 }

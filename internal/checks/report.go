@@ -202,11 +202,13 @@ type HoldoutDetail struct {
 // BudgetDetail lists the budget items.
 type BudgetDetail struct {
 	Items []BudgetItem `json:"items"`
+	// Latency says how the latency items were measured (nil: not measured).
+	Latency *LatencyDetail `json:"latency,omitempty"`
 }
 
 // BudgetItem is one budgeted quantity against its limit.
 type BudgetItem struct {
-	Name     string   `json:"name"` // bytes, params, growth, load-memory, latency-p50, latency-p99
+	Name     string   `json:"name"` // bytes, params, growth, load-memory, latency-p50, latency-p99, latency-ratio
 	Unit     string   `json:"unit"`
 	Value    float64  `json:"value"`
 	Limit    *float64 `json:"limit,omitempty"`

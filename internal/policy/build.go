@@ -37,6 +37,7 @@ const (
 	defaultMaxGrowth         = 0.2
 	defaultCandidates        = 1000
 	defaultRuns              = 200
+	defaultBlocks            = 5
 	defaultMaxAge            = 72 * time.Hour
 )
 
@@ -135,8 +136,10 @@ type wireChecks struct {
 		Latency      *struct {
 			Candidates *wint    `json:"candidates"`
 			Runs       *wint    `json:"runs"`
+			Blocks     *wint    `json:"blocks"`
 			P50Ms      *float64 `json:"p50Ms"`
 			P99Ms      *float64 `json:"p99Ms"`
+			MaxRatio   *float64 `json:"maxRatio"`
 		} `json:"latency"`
 	} `json:"budget"`
 }
@@ -371,8 +374,13 @@ func buildRule(name, at string, w *wireRule, probs *Problems) Rule {
 		r.Budget.Latency = &LatencyBudget{
 			Candidates: intOr(l.Candidates, defaultCandidates),
 			Runs:       intOr(l.Runs, defaultRuns),
+			Blocks:     intOr(l.Blocks, defaultBlocks),
 			P50Ms:      clonePtr(l.P50Ms),
 			P99Ms:      clonePtr(l.P99Ms),
+			MaxRatio:   clonePtr(l.MaxRatio),
+		}
+		if lb := r.Budget.Latency; lb.Runs < lb.Blocks {
+			probs.add(at+"/checks/budget/latency/runs", "runs %d is below blocks %d: every block needs at least one timed request", lb.Runs, lb.Blocks)
 		}
 		if l.P50Ms != nil && l.P99Ms != nil && *l.P99Ms < *l.P50Ms {
 			probs.add(at+"/checks/budget/latency/p99Ms", "p99Ms %v is below p50Ms %v", *l.P99Ms, *l.P50Ms)

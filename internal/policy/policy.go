@@ -295,7 +295,8 @@ type BudgetCheck struct {
 	// MaxGrowth is the largest growth of bytes and of parameters over the
 	// baseline, a fraction (0.2 = 20%). Default 0.2.
 	MaxGrowth float64
-	// MaxLoadBytes is the largest peak memory to load the model, in bytes.
+	// MaxLoadBytes is the largest number of bytes allocated to load and
+	// prepare the model for serving.
 	MaxLoadBytes *int64
 	// Latency, when not nil, asks for latency to be measured.
 	Latency *LatencyBudget
@@ -305,14 +306,23 @@ type BudgetCheck struct {
 type LatencyBudget struct {
 	// Candidates is the number of rows per request. Default 1000.
 	Candidates int
-	// Runs is the number of timed requests. Default 200.
+	// Runs is the number of timed requests per model (candidate and
+	// baseline each), split evenly into Blocks. Default 200.
 	Runs int
+	// Blocks is how many blocks the runs are split into; blocks alternate
+	// candidate and baseline, and each figure is the median over blocks.
+	// Default 5; at most Runs.
+	Blocks int
 	// P50Ms is the largest median latency, in milliseconds; nil: not
 	// enforced.
 	P50Ms *float64
 	// P99Ms is the largest 99th-percentile latency, in milliseconds; nil:
 	// not enforced.
 	P99Ms *float64
+	// MaxRatio is the largest ratio of the candidate's median request time
+	// to the baseline's, measured interleaved in the same process; nil:
+	// not enforced. Not applied on a first release.
+	MaxRatio *float64
 }
 
 // Approvals is what promote demands besides a passing gate report.

@@ -156,7 +156,7 @@ func TestDefaults(t *testing.T) {
 		t.Fatal(err)
 	}
 	r := p.Rules[0]
-	if l := r.Budget.Latency; l == nil || l.Candidates != 1000 || l.Runs != 200 || l.P50Ms != nil || *l.P99Ms != 3 {
+	if l := r.Budget.Latency; l == nil || l.Candidates != 1000 || l.Runs != 200 || l.Blocks != 5 || l.P50Ms != nil || *l.P99Ms != 3 || l.MaxRatio != nil {
 		t.Errorf("latency defaults: %+v", l)
 	}
 	if r.Holdout.Slices.PerSliceMargin != 0.01 {
@@ -232,6 +232,7 @@ func TestSchemaDefaultsMatch(t *testing.T) {
 		{[]string{d, "budget", p, "maxGrowth"}, r.Budget.MaxGrowth},
 		{[]string{d, "budget", p, "latency", p, "candidates"}, float64(defaultCandidates)},
 		{[]string{d, "budget", p, "latency", p, "runs"}, float64(defaultRuns)},
+		{[]string{d, "budget", p, "latency", p, "blocks"}, float64(defaultBlocks)},
 		{[]string{d, "approvals", p, "required"}, float64(r.Approvals.Required)},
 		{[]string{d, "approvals", p, "allowSelfApproval"}, r.Approvals.AllowSelfApproval},
 		{[]string{d, "approvals", p, "maxAge"}, "72h"},
@@ -324,6 +325,10 @@ func TestMalformed(t *testing.T) {
 			[]string{"/rules/0/checks/holdout/slices/nonzeroQuantiles/1", "anomalyQuantile"}},
 		{"p99 below p50", "", minimalScorer + "    checks: {budget: {latency: {p50Ms: 5, p99Ms: 2}}}\n",
 			[]string{"/rules/0/checks/budget/latency/p99Ms", "below p50Ms"}},
+		{"fewer runs than blocks", "", minimalScorer + "    checks: {budget: {latency: {runs: 3, blocks: 4}}}\n",
+			[]string{"/rules/0/checks/budget/latency/runs", "below blocks 4"}},
+		{"ratio not positive", "", minimalScorer + "    checks: {budget: {latency: {maxRatio: 0}}}\n",
+			[]string{"/rules/0/checks/budget/latency/maxRatio", "must be > 0"}},
 		{"fractional integer", "", minimalScorer + "    checks: {budget: {maxBytes: 1.5}}\n",
 			[]string{"/rules/0/checks/budget/maxBytes", "expected integer"}},
 		{"duplicate targets", "", minimalScorer + "  - target: promo-scorer:prod\n    kind: scorer\n    holdout: promo-holdout:v2\n",
