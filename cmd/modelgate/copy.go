@@ -131,6 +131,9 @@ func runCopy(ctx context.Context, g *globals, o *copyOptions, args []string) err
 	var res *registry.CopyResult
 	if o.All {
 		res, err = registry.CopyAll(ctx, src, dst, opts)
+		if errors.Is(err, registry.ErrNoCatalog) {
+			return noCatalogErr(err, "copy NAME:TAG --dest STORE")
+		}
 	} else {
 		res, err = registry.Copy(ctx, src, dst, ref, opts)
 	}

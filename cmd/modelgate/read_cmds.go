@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"io"
 	"sort"
@@ -87,6 +88,9 @@ func runLs(ctx context.Context, g *globals, name string) error {
 		}
 		repos = []string{name}
 	} else if repos, err = store.Repositories(ctx); err != nil {
+		if errors.Is(err, registry.ErrNoCatalog) {
+			return noCatalogErr(err, "ls NAME")
+		}
 		return err
 	}
 	rows := []lsRow{}
@@ -370,25 +374,34 @@ func orNone(b []byte) string {
 
 func newVerifyCmd(g *globals) *cobra.Command {
 	return &cobra.Command{
-		Use:   "verify",
-		Short: "Check the whole store: digests, manifests, specs, tensors, tags",
+		Use:   "verify [NAME...]",
+		Short: "Check the store: digests, manifests, specs, tensors, tags",
 		Long: `verify re-hashes every blob, checks every manifest and spec against its
 schema, every tensor against its spec (shape, dtype, NaN/Inf), and every
-tag. Unreferenced blobs (left by an interrupted push) are reported as hints.
-Exits 5 when anything is damaged.`,
-		Args: exactArgs(0, "(none)"),
+tag, of the whole store or of the repositories NAME... (a registry that
+does not list its repositories needs them named). Unreferenced blobs (left
+by an interrupted push) are reported as hints when the whole store is
+verified. Exits 5 when anything is damaged.`,
 		RunE: func(cmd *cobra.Command, args []string) error {
-			return runVerify(cmd.Context(), g)
+			return runVerify(cmd.Context(), g, args)
 		},
 	}
 }
 
-func runVerify(ctx context.Context, g *globals) error {
+func runVerify(ctx context.Context, g *globals, names []string) error {
 	store, err := g.openStore()
 	if err != nil {
 		return err
 	}
-	rep, err := artifact.VerifyStore(ctx, store, g.progress())
+	var rep *artifact.VerifyReport
+	if len(names) > 0 {
+		rep, err = artifact.VerifyRepositories(ctx, store, names, g.progress())
+	} else {
+		rep, err = artifact.VerifyStore(ctx, store, g.progress())
+		if errors.Is(err, registry.ErrNoCatalog) {
+			return noCatalogErr(err, "verify NAME...")
+		}
+	}
 	if err != nil {
 		return err
 	}
@@ -407,4 +420,11 @@ func runVerify(ctx context.Context, g *globals) error {
 		return errkind.New(errkind.Integrity, "store %s is damaged: %d finding(s)", rep.Store, rep.Damage)
 	}
 	return nil
+}
+
+// noCatalogErr explains a store that cannot list its repositories to a
+// command that wanted all of them, keeping err's kind (bad input, or not
+// authorised when the catalog is limited to other accounts).
+func noCatalogErr(err error, usage string) error {
+	return errkind.Wrap(errkind.Of(err), fmt.Errorf("%w\n  name a repository instead: modelgate %s", err, usage))
 }

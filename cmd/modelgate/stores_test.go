@@ -11,6 +11,8 @@ import (
 
 	"github.com/fsouza/fake-gcs-server/fakestorage"
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
+
+	"modelgate/internal/registry/storetest"
 )
 
 // storeKind is a store location for the CLI, with whether tags move by a
@@ -30,6 +32,10 @@ func everyStore(t *testing.T, prefix string) []storeKind {
 	t.Helper()
 	reg := httptest.NewServer(ggcrregistry.New(ggcrregistry.WithReferrersSupport(true), ggcrregistry.Logger(nopLogger())))
 	t.Cleanup(reg.Close)
+	// The same registry code behind a handler that refuses the catalog, as
+	// many hosted registries do.
+	noCat := httptest.NewServer(storetest.NoCatalog(ggcrregistry.New(ggcrregistry.WithReferrersSupport(true), ggcrregistry.Logger(nopLogger()))))
+	t.Cleanup(noCat.Close)
 	gcs, err := fakestorage.NewServerWithOptions(fakestorage.Options{Scheme: "http", Host: "127.0.0.1", PublicHost: "127.0.0.1", Writer: io.Discard})
 	if err != nil {
 		t.Fatalf("starting fake-gcs-server: %v", err)
@@ -41,6 +47,7 @@ func everyStore(t *testing.T, prefix string) []storeKind {
 		{"local", filepath.Join(t.TempDir(), "store"), true},
 		{"registry", "oci://" + strings.TrimPrefix(reg.URL, "http://") + "/" + prefix, false},
 		{"gcs", "gs://podcast-models/" + prefix, true},
+		{"registry-no-catalog", "oci://" + strings.TrimPrefix(noCat.URL, "http://") + "/" + prefix, false},
 	}
 	if addr := os.Getenv("MODELGATE_TEST_REGISTRY"); addr != "" {
 		t.Setenv("MODELGATE_REGISTRY_USER", os.Getenv("MODELGATE_TEST_REGISTRY_USER"))
@@ -69,6 +76,19 @@ func TestFullFlowOnEveryStore(t *testing.T) {
 				}
 			}
 			mustMG(t, k.loc, "log", "promo-scorer:prod", "--policy", filepath.Join(work, "policies", "promo-scorer.yaml"))
+			if k.name == "registry-no-catalog" {
+				r := mg(t, k.loc, "verify")
+				if r.code != 2 || !strings.Contains(r.stderr, "does not list repositories") || !strings.Contains(r.stderr, "modelgate verify NAME") {
+					t.Errorf("verify without names on a store without a catalog: exit %d, stderr %q; want 2, explained", r.code, r.stderr)
+				}
+				r = mg(t, k.loc, "ls")
+				if r.code != 2 || !strings.Contains(r.stderr, "does not list repositories") || !strings.Contains(r.stderr, "modelgate ls NAME") {
+					t.Errorf("ls without a name on a store without a catalog: exit %d, stderr %q; want 2, explained", r.code, r.stderr)
+				}
+				mustMG(t, k.loc, "ls", "promo-scorer")
+				mustMG(t, k.loc, "verify", "promo-scorer", "listener-encoder", "promo-holdout")
+				return
+			}
 			mustMG(t, k.loc, "verify")
 		})
 	}

@@ -531,40 +531,48 @@ func BuildManifest(artifactType string, config Blob, layers []Blob, subject *v1.
 	return raw, nil
 }
 
-// FindEncoder locates the encoder a scorer references: by digest, in the
-// repository named by ref.Name (when it names one) or else in any
-// repository of the store. It fails with BadInput when the digest is absent
-// or names something other than an encoder.
+// FindEncoder locates the encoder a scorer references: by digest, first in
+// the repository ref.Name names (when it names one), then — only when the
+// digest is not there — in the store's other repositories, when the store
+// can list them. It fails with BadInput when the digest is not found or
+// names something other than an encoder; a store that cannot list its
+// repositories (registry.ErrNoCatalog) is a place the encoder was not
+// found, not damage.
 func FindEncoder(ctx context.Context, store registry.Store, ref *model.EncoderRef) (*Located, error) {
 	dg, err := registry.ParseDigest(ref.Digest)
 	if err != nil {
 		return nil, err
 	}
-	var repos []string
+	named := ""
 	if ref.Name != "" {
 		if r, err := registry.ParseRef(ref.Name, true); err == nil {
-			repos = append(repos, r.Repository)
+			named = r.Repository
 		}
 	}
-	all, err := store.Repositories(ctx)
-	if err != nil {
-		return nil, err
-	}
-	repos = append(repos, all...)
-	for _, repo := range repos {
-		if _, _, err := store.Manifest(ctx, repo, dg); err == nil {
-			loc := &Located{Repository: repo, Digest: dg}
-			art, err := ReadArtifact(ctx, store, registry.Ref{Repository: repo, Digest: dg})
-			if err != nil {
-				return nil, err
-			}
-			if art.Manifest.ArtifactType != ArtifactType(model.KindEncoder) {
-				return nil, errkind.New(errkind.BadInput, "encoder %s (%s) is a %q artifact, not an encoder", ref.Digest, repo, art.Manifest.ArtifactType)
-			}
-			return loc, nil
+	check := func(repo string) (*Located, error) {
+		art, err := ReadArtifact(ctx, store, registry.Ref{Repository: repo, Digest: dg})
+		if err != nil {
+			return nil, err
 		}
+		if art.Manifest.ArtifactType != ArtifactType(model.KindEncoder) {
+			return nil, errkind.New(errkind.BadInput, "encoder %s (%s) is a %q artifact, not an encoder", ref.Digest, repo, art.Manifest.ArtifactType)
+		}
+		return &Located{Repository: repo, Digest: dg}, nil
 	}
-	return nil, errkind.New(errkind.BadInput, "the scorer's encoder %s (%s) is not in the store: push the encoder first", ref.Digest, ref.Name)
+	repo, err := registry.FindManifest(ctx, store, dg, named)
+	switch {
+	case err == nil:
+		return check(repo)
+	case errors.Is(err, registry.ErrNoCatalog):
+		where := "the store"
+		if named != "" {
+			where = "repository " + named
+		}
+		return nil, errkind.New(errkind.BadInput, "the scorer's encoder %s (%s) is not in %s, and %v to search further: push the encoder, or name its repository in the spec's encoder.name", ref.Digest, ref.Name, where, err)
+	case errors.Is(err, registry.ErrNotFound):
+		return nil, errkind.New(errkind.BadInput, "the scorer's encoder %s (%s) is not in the store: push the encoder first", ref.Digest, ref.Name)
+	}
+	return nil, err
 }
 
 // Located is a manifest found in a repository.

@@ -366,6 +366,9 @@ func Load(ctx context.Context, store registry.Store, ref registry.Ref) (*Loaded,
 	l.checkSmallFiles(spec, byName)
 	if spec.Encoder != nil && !spec.Encoder.Embedded {
 		loc, err := FindEncoder(ctx, store, spec.Encoder)
+		if err != nil && !encoderAbsent(err) {
+			return nil, err
+		}
 		if err != nil {
 			l.Problems = append(l.Problems, err.Error())
 		} else {
@@ -496,6 +499,8 @@ func checkModel(ctx context.Context, store registry.Store, a *Artifact, deep boo
 	if spec.Encoder != nil && !spec.Encoder.Embedded {
 		loc, err := FindEncoder(ctx, store, spec.Encoder)
 		switch {
+		case err != nil && !encoderAbsent(err):
+			return nil, err
 		case err != nil:
 			l.Problems = append(l.Problems, err.Error())
 		case deep:
@@ -520,4 +525,11 @@ func prefixAll(p string, xs []string) []string {
 		out[i] = p + x
 	}
 	return out
+}
+
+// encoderAbsent reports whether FindEncoder's err says the store lacks the
+// encoder (a problem of the stored scorer), rather than that the store
+// could not be searched or asked (returned as it is).
+func encoderAbsent(err error) bool {
+	return errkind.Is(err, errkind.BadInput) && !errors.Is(err, registry.ErrNoCatalog)
 }

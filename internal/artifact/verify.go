@@ -38,11 +38,28 @@ func (r *VerifyReport) add(sev, where, format string, args ...any) {
 // tensors match the spec with finite values, and (when the store can scrub)
 // every blob re-hashes to its digest. Unreferenced blobs are hints.
 func VerifyStore(ctx context.Context, store registry.Store, progress func(Event)) (*VerifyReport, error) {
-	rep := &VerifyReport{Store: store.String()}
 	repos, err := store.Repositories(ctx)
 	if err != nil {
 		return nil, err
 	}
+	return verify(ctx, store, repos, true, progress)
+}
+
+// VerifyRepositories checks the named repositories of a store as
+// VerifyStore checks all of them, for stores that cannot list their
+// repositories (registry.ErrNoCatalog). It does not look for unreferenced
+// blobs: other repositories may reference them.
+func VerifyRepositories(ctx context.Context, store registry.Store, repos []string, progress func(Event)) (*VerifyReport, error) {
+	for _, r := range repos {
+		if err := registry.ValidateRepository(r); err != nil {
+			return nil, err
+		}
+	}
+	return verify(ctx, store, repos, false, progress)
+}
+
+func verify(ctx context.Context, store registry.Store, repos []string, scrub bool, progress func(Event)) (*VerifyReport, error) {
+	rep := &VerifyReport{Store: store.String()}
 	rep.Repositories = len(repos)
 	referenced := map[v1.Hash]bool{}
 	for _, repo := range repos {
@@ -126,7 +143,7 @@ func VerifyStore(ctx context.Context, store registry.Store, progress func(Event)
 			return nil, err
 		}
 	}
-	if sc, ok := store.(registry.Scrubber); ok {
+	if sc, ok := store.(registry.Scrubber); ok && scrub {
 		fs, err := sc.Scrub(ctx, referenced)
 		if err != nil {
 			return nil, err

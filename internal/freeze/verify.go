@@ -206,27 +206,22 @@ func Verify(ctx context.Context, store registry.Store, l *artifact.Loaded, opts 
 	return got, nil
 }
 
-// findByDigest loads the manifest of digest from repo first, then from any
-// repository; nil when the store does not have it.
+// findByDigest loads the manifest of digest from repo first, then from the
+// store's other repositories when it can list them; nil when the store does
+// not have it (or cannot be searched beyond repo).
 func findByDigest(ctx context.Context, store registry.Store, digest, repo string) (*artifact.Loaded, error) {
 	dg, err := registry.ParseDigest(digest)
 	if err != nil {
 		return nil, errkind.New(errkind.Integrity, "lineage.frozenFrom %q: %w", digest, err)
 	}
-	repos, err := store.Repositories(ctx)
+	r, err := registry.FindManifest(ctx, store, dg, repo)
+	if errors.Is(err, registry.ErrNotFound) || errors.Is(err, registry.ErrNoCatalog) {
+		return nil, nil
+	}
 	if err != nil {
 		return nil, err
 	}
-	for _, r := range append([]string{repo}, repos...) {
-		if _, _, err := store.Manifest(ctx, r, dg); err != nil {
-			if errors.Is(err, registry.ErrNotFound) {
-				continue
-			}
-			return nil, err
-		}
-		return artifact.Load(ctx, store, registry.Ref{Repository: r, Digest: dg})
-	}
-	return nil, nil
+	return artifact.Load(ctx, store, registry.Ref{Repository: r, Digest: dg})
 }
 
 // compareEncoderSide requires each of s's encoder-side layers to be the

@@ -778,7 +778,7 @@ func (r *Remote) Repositories(ctx context.Context) ([]string, error) {
 	}
 	all, err := remote.Catalog(ctx, r.reg, remote.WithTransport(c.Transport))
 	if err != nil {
-		return nil, r.classify(fmt.Errorf("listing the registry's catalog: %w", err), 0)
+		return nil, r.catalogError(err)
 	}
 	repos := []string{}
 	for _, full := range all {
@@ -795,6 +795,31 @@ func (r *Remote) Repositories(ctx context.Context) ([]string, error) {
 	}
 	sort.Strings(repos)
 	return compactStrings(repos), nil
+}
+
+// catalogError classifies a failed catalog listing: a registry that
+// answers it 404 or 405, or with the distribution spec's UNSUPPORTED code,
+// does not list repositories (ErrNoCatalog, bad input: ask by name); one
+// that refuses it 401 or 403 limits it to other accounts (ErrNoCatalog,
+// not authorised). Anything else is classified as any other request.
+func (r *Remote) catalogError(err error) error {
+	var te *transport.Error
+	if errors.As(err, &te) {
+		unsupported := te.StatusCode == http.StatusNotFound || te.StatusCode == http.StatusMethodNotAllowed
+		for _, d := range te.Errors {
+			if d.Code == transport.UnsupportedErrorCode {
+				unsupported = true
+			}
+		}
+		host := r.reg.RegistryStr()
+		switch {
+		case te.StatusCode == http.StatusUnauthorized || te.StatusCode == http.StatusForbidden:
+			return errkind.New(errkind.Unauthorized, "%w: %s refuses its catalog to this account (HTTP %d)", ErrNoCatalog, host, te.StatusCode)
+		case unsupported:
+			return errkind.New(errkind.BadInput, "%w: %s has its catalog endpoint switched off (HTTP %d)", ErrNoCatalog, host, te.StatusCode)
+		}
+	}
+	return r.classify(fmt.Errorf("listing the registry's catalog: %w", err), 0)
 }
 
 // Manifests lists the manifests of repo that the store put (their keep

@@ -51,6 +51,18 @@ func TestRemoteConformanceMemFallback(t *testing.T) {
 	})
 }
 
+// TestRemoteConformanceNoCatalog runs the suite against the in-memory
+// registry behind a handler that refuses /v2/_catalog as hosted registries
+// do (404 UNSUPPORTED).
+func TestRemoteConformanceNoCatalog(t *testing.T) {
+	storetest.RunWithoutCatalog(t, func(t *testing.T) registry.Store {
+		h := ggcrregistry.New(ggcrregistry.WithReferrersSupport(true), ggcrregistry.Logger(log.New(io.Discard, "", 0)))
+		srv := httptest.NewServer(storetest.NoCatalog(h))
+		t.Cleanup(srv.Close)
+		return openRemote(t, strings.TrimPrefix(srv.URL, "http://")+"/podcasts", registry.WithRemoteAuth(authn.Anonymous))
+	})
+}
+
 // serviceRegistry returns the address and credentials of the real
 // registry server (Debian's docker-registry) that .ci/services.sh starts,
 // skipping when it is not configured — or failing, in CI when

@@ -31,6 +31,11 @@ var (
 	ErrDigestMismatch = errors.New("digest mismatch")
 	// ErrConflict: a compare-and-swap lost (the tag moved).
 	ErrConflict = errors.New("conflict")
+	// ErrNoCatalog: the store cannot list its repositories (a registry
+	// whose catalog endpoint is switched off or limited to admins, as many
+	// hosted registries have it). Nothing is damaged: callers that only
+	// search look where names and annotations point instead.
+	ErrNoCatalog = errors.New("the registry does not list repositories")
 )
 
 // MaxManifestSize bounds manifests read or written: the OCI distribution
@@ -77,7 +82,8 @@ type Store interface {
 
 	// Tag points tag at a manifest already present in repo.
 	Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) error
-	// Repositories lists the repositories, sorted.
+	// Repositories lists the repositories, sorted. A store that cannot
+	// list them returns an error wrapping ErrNoCatalog.
 	Repositories(ctx context.Context) ([]string, error)
 	// Tags lists repo's tags, sorted.
 	Tags(ctx context.Context, repo string) ([]string, error)

@@ -673,6 +673,9 @@ func (s *Server) usedBy(ctx context.Context, digest string) ([]manifestRow, erro
 		return nil, nil
 	}
 	repos, err := s.store.Repositories(ctx)
+	if errors.Is(err, registry.ErrNoCatalog) {
+		return nil, nil // a registry without a catalog: no way to search
+	}
 	if err != nil {
 		return nil, err
 	}

@@ -47,6 +47,18 @@ const (
 // errkind.BadInput before any I/O; Referrers descriptors carry the
 // referrer's artifactType and annotations.
 func Run(t *testing.T, open func(t *testing.T) registry.Store) {
+	run(t, open, false)
+}
+
+// RunWithoutCatalog runs the suite against a store that cannot list its
+// repositories (a registry whose catalog endpoint is switched off):
+// Repositories must fail with an error wrapping registry.ErrNoCatalog, and
+// everything else must behave as in Run.
+func RunWithoutCatalog(t *testing.T, open func(t *testing.T) registry.Store) {
+	run(t, open, true)
+}
+
+func run(t *testing.T, open func(t *testing.T) registry.Store, noCatalog bool) {
 	t.Run("BlobRoundTrip", func(t *testing.T) { testBlobRoundTrip(t, open(t)) })
 	t.Run("BlobIdempotent", func(t *testing.T) { testBlobIdempotent(t, open(t)) })
 	t.Run("BlobMismatchRefused", func(t *testing.T) { testBlobMismatch(t, open(t)) })
@@ -55,7 +67,8 @@ func Run(t *testing.T, open func(t *testing.T) registry.Store) {
 	t.Run("ManifestMissingBlobRefused", func(t *testing.T) { testManifestMissingBlob(t, open(t)) })
 	t.Run("ManifestBadInputRefused", func(t *testing.T) { testManifestBadInput(t, open(t)) })
 	t.Run("TagResolveRetag", func(t *testing.T) { testTagResolve(t, open(t)) })
-	t.Run("ListingsSorted", func(t *testing.T) { testListings(t, open(t)) })
+	t.Run("ListingsSorted", func(t *testing.T) { testListings(t, open(t), noCatalog) })
+	t.Run("FindManifest", func(t *testing.T) { testFindManifest(t, open(t), noCatalog) })
 	t.Run("Referrers", func(t *testing.T) { testReferrers(t, open(t)) })
 	t.Run("TaggedReferrersListedOnce", func(t *testing.T) { testTaggedReferrers(t, open(t)) })
 	t.Run("SwapTag", func(t *testing.T) { testSwapTag(t, open(t)) })
@@ -396,7 +409,7 @@ func testTagResolve(t *testing.T, s registry.Store) {
 	wantNotFound(t, "Tag of another repository's manifest", err)
 }
 
-func testListings(t *testing.T, s registry.Store) {
+func testListings(t *testing.T, s registry.Store, noCatalog bool) {
 	ctx := context.Background()
 	repos := []string{"podcast/shows", "alpha", "podcast/episodes-played", "podcast/listener-encoder"}
 	tags := []string{"prod", "Canary", "v10", "v2", "_rc", "a.b-c"}
@@ -410,13 +423,19 @@ func testListings(t *testing.T, s registry.Store) {
 	Push(t, s, "zeta/untagged", "", NewArtifact(40, encoderType, nil, nil))
 
 	got, err := s.Repositories(ctx)
-	if err != nil {
-		t.Fatal(err)
-	}
-	want := append(slices.Clone(repos), "zeta/untagged")
-	slices.Sort(want)
-	if !slices.Equal(got, want) {
-		t.Errorf("Repositories = %q, want %q", got, want)
+	if noCatalog {
+		if !errors.Is(err, registry.ErrNoCatalog) || errkind.Of(err) == errkind.Integrity {
+			t.Errorf("Repositories without a catalog = %q, %v; want an error wrapping ErrNoCatalog, not integrity", got, err)
+		}
+	} else {
+		if err != nil {
+			t.Fatal(err)
+		}
+		want := append(slices.Clone(repos), "zeta/untagged")
+		slices.Sort(want)
+		if !slices.Equal(got, want) {
+			t.Errorf("Repositories = %q, want %q", got, want)
+		}
 	}
 	wantTags := slices.Clone(tags)
 	slices.Sort(wantTags) // byte order: "Canary" < "_rc" < "a.b-c" < "prod" < "v10" < "v2"
@@ -431,6 +450,36 @@ func testListings(t *testing.T, s registry.Store) {
 	}
 	if got, err := s.Tags(ctx, "never/written"); len(got) != 0 || (err != nil && !errors.Is(err, registry.ErrNotFound)) {
 		t.Errorf("Tags of an unknown repository = %q, %v; want none or ErrNotFound", got, err)
+	}
+}
+
+// testFindManifest: a manifest is found in the repository named first
+// without a listing (so on stores without a catalog too); elsewhere only by
+// listing, and a store that cannot list says so rather than "not found".
+func testFindManifest(t *testing.T, s registry.Store, noCatalog bool) {
+	ctx := context.Background()
+	a := NewArtifact(50, encoderType, nil, nil)
+	d := Push(t, s, "podcast/listener-encoder", "v1", a)
+	Push(t, s, "podcast/shows", "v1", NewArtifact(51, encoderType, nil, nil))
+	got, err := registry.FindManifest(ctx, s, d.Digest, "podcast/shows", "podcast/listener-encoder")
+	if err != nil || got != "podcast/listener-encoder" {
+		t.Errorf("FindManifest with the repository named = %q, %v; want podcast/listener-encoder", got, err)
+	}
+	got, err = registry.FindManifest(ctx, s, d.Digest, "podcast/shows")
+	switch {
+	case noCatalog && !errors.Is(err, registry.ErrNoCatalog):
+		t.Errorf("FindManifest elsewhere without a catalog = %q, %v; want ErrNoCatalog", got, err)
+	case !noCatalog && (err != nil || got != "podcast/listener-encoder"):
+		t.Errorf("FindManifest by listing = %q, %v; want podcast/listener-encoder", got, err)
+	}
+	missing := NewArtifact(52, encoderType, nil, nil).Descriptor().Digest
+	_, err = registry.FindManifest(ctx, s, missing, "podcast/listener-encoder")
+	want := registry.ErrNotFound
+	if noCatalog {
+		want = registry.ErrNoCatalog
+	}
+	if !errors.Is(err, want) || errkind.Of(err) == errkind.Integrity {
+		t.Errorf("FindManifest of a digest nowhere: %v; want %v, not integrity", err, want)
 	}
 }
 
