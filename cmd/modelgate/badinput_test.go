@@ -410,3 +410,28 @@ func TestCrashDuringPush(t *testing.T) {
 		targets[cur] = true
 	}
 }
+
+// TestPushLinkInsideDirectory: a file of the model directory may be a
+// symbolic link to another file inside it (an exporter's alias); the push
+// stores the target's bytes, the same artifact as a plain copy. A model
+// directory that is itself reached through a link is read as usual.
+func TestPushLinkInsideDirectory(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "store")
+	encDir, _ := fixtures(t)
+	want := strings.TrimSpace(mustMG(t, store, "push", encDir, "tiny-encoder:plain").stdout)
+	d := copyDir(t, encDir)
+	if err := os.Rename(filepath.Join(d, "vocabulary.txt"), filepath.Join(d, "vocab-v7.txt")); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.Symlink("vocab-v7.txt", filepath.Join(d, "vocabulary.txt")); err != nil {
+		t.Fatal(err)
+	}
+	alias := filepath.Join(t.TempDir(), "model-link")
+	if err := os.Symlink(d, alias); err != nil {
+		t.Fatal(err)
+	}
+	got := strings.TrimSpace(mustMG(t, store, "push", alias, "tiny-encoder:linked").stdout)
+	if got != want {
+		t.Fatalf("push through links stored %s, the plain directory %s", got, want)
+	}
+}

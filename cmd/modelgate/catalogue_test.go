@@ -7,6 +7,7 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
+	"syscall"
 	"testing"
 )
 
@@ -123,6 +124,52 @@ rules:
 		setFile(d, "probes.jsonl", []byte(`{"items":["show-003"],"values":[-1],"dense":{"listener_tenure":[0.1],"show_age":[0.2]},"expect":{"p":[0.5]}}`+"\n"))
 	})
 
+	// Files that are not regular files, or links out of the directory:
+	// a named pipe would hold push in open(2) until a writer came; a link
+	// out of the directory would store a file the directory does not hold.
+	fifo := func(p string) {
+		os.Remove(p)
+		if err := syscall.Mkfifo(p, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	pipeVocab := badModel(encDir, func(d string) { fifo(filepath.Join(d, "vocabulary.txt")) })
+	pipeTensors := badModel(encDir, func(d string) { fifo(filepath.Join(d, "encoder.safetensors")) })
+	pipeSpec := badModel(encDir, func(d string) { fifo(filepath.Join(d, "spec.json")) })
+	pipeHoldout := filepath.Join(dir, "pipe.jsonl")
+	fifo(pipeHoldout)
+	linkOut := func(src, name string) string {
+		return badModel(src, func(d string) {
+			outside := filepath.Join(t.TempDir(), name)
+			b, err := os.ReadFile(filepath.Join(d, name))
+			if err != nil {
+				t.Fatal(err)
+			}
+			if err := os.WriteFile(outside, b, 0o644); err != nil {
+				t.Fatal(err)
+			}
+			os.Remove(filepath.Join(d, name))
+			if err := os.Symlink(outside, filepath.Join(d, name)); err != nil {
+				t.Fatal(err)
+			}
+		})
+	}
+	linkVocab := linkOut(encDir, "vocabulary.txt")
+	linkTensors := linkOut(encDir, "encoder.safetensors")
+	linkSpec := linkOut(encDir, "spec.json")
+	linkUp := badModel(encDir, func(d string) {
+		// A relative link climbing out of the directory and back into a
+		// sibling: outside all the same.
+		sib := filepath.Join(filepath.Dir(d), "sibling")
+		os.MkdirAll(sib, 0o755)
+		b, _ := os.ReadFile(filepath.Join(d, "probes.jsonl"))
+		os.WriteFile(filepath.Join(sib, "probes.jsonl"), b, 0o644)
+		os.Remove(filepath.Join(d, "probes.jsonl"))
+		if err := os.Symlink("../sibling/probes.jsonl", filepath.Join(d, "probes.jsonl")); err != nil {
+			t.Fatal(err)
+		}
+	})
+
 	// Holdouts, each wrong in one way.
 	row := func(id int, items string, values string, label string) string {
 		return fmt.Sprintf(`{"row_id":%d,"items":%s,"values":%s,"label":%s,"listener_tenure":[0.1],"show_age":[0.2]}`+"\n", id, items, values, label)
@@ -184,6 +231,17 @@ rules:
 		{name: "probe line not JSON", args: []string{"push", probesNotJSON, "bad:v1"}, code: 2, want: []string{"probes.jsonl:3"}},
 		{name: "stats not an object", args: []string{"push", statsNotObject, "bad:v1"}, code: 2, want: []string{"stats.json"}},
 		{name: "probe value negative", args: []string{"push", probeNaN, "bad:v1"}, code: 2, want: []string{"probes.jsonl:1", "negative"}},
+
+		// Named pipes and links out of the model directory (push).
+		{name: "vocabulary a named pipe", args: []string{"push", pipeVocab, "bad:v1"}, code: 2, want: []string{"vocabulary.txt", "not a regular file", "named pipe"}},
+		{name: "tensor file a named pipe", args: []string{"push", pipeTensors, "bad:v1"}, code: 2, want: []string{"encoder.safetensors", "named pipe"}},
+		{name: "spec a named pipe", args: []string{"push", pipeSpec, "bad:v1"}, code: 2, want: []string{"spec.json", "named pipe"}},
+		{name: "holdout a named pipe", args: []string{"push", "--kind", "holdout", pipeHoldout, "bad-holdout:v1"}, code: 2, want: []string{"pipe.jsonl", "named pipe"}},
+		{name: "score: holdout a named pipe", args: []string{"score", "tiny-scorer:v1", "--holdout", pipeHoldout, "--out", filepath.Join(dir, "p.jsonl")}, code: 2, want: []string{"pipe.jsonl", "named pipe"}},
+		{name: "vocabulary a link out of the directory", args: []string{"push", linkVocab, "bad:v1"}, code: 2, want: []string{"vocabulary.txt", "outside the directory"}},
+		{name: "tensor file a link out of the directory", args: []string{"push", linkTensors, "bad:v1"}, code: 2, want: []string{"encoder.safetensors", "outside the directory"}},
+		{name: "spec a link out of the directory", args: []string{"push", linkSpec, "bad:v1"}, code: 2, want: []string{"spec.json", "outside the directory"}},
+		{name: "probes a relative link climbing out", args: []string{"push", linkUp, "bad:v1"}, code: 2, want: []string{"probes.jsonl", "outside the directory"}},
 
 		// Holdouts: push --kind holdout, score, gate --holdout.
 		{name: "holdout label 2", args: []string{"push", "--kind", "holdout", labelTwo, "bad-holdout:v1"}, code: 2, want: []string{"label-two.jsonl", "row 3", "label"}},

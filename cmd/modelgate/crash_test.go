@@ -1,6 +1,7 @@
 package main
 
 import (
+	"bufio"
 	"bytes"
 	"encoding/json"
 	"errors"
@@ -419,4 +420,74 @@ func TestCrashDuringRollback(t *testing.T) {
 	}
 	t.Logf("rollback: %d kill points over %v: %v", runs, full, c.tally)
 	c.finish()
+}
+
+// TestInterruptedPush sends SIGTERM, then SIGINT, to a push that waits for
+// the store's lock (held here, so it can never finish): each exits with
+// the signal's code (143, 130), leaves no temporary file in the store, and
+// moves no tag. A push blocked in the wait used to ignore both signals.
+func TestInterruptedPush(t *testing.T) {
+	store := filepath.Join(t.TempDir(), "store")
+	encDir, _ := fixtures(t)
+	mustMG(t, store, "push", encDir, "tiny-encoder:v1")
+	lock, err := os.OpenFile(filepath.Join(store, ".modelgate", "lock"), os.O_RDWR, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer lock.Close()
+	if err := syscall.Flock(int(lock.Fd()), syscall.LOCK_EX); err != nil {
+		t.Fatal(err)
+	}
+	dir := bigEncoder(t, t.TempDir(), "interrupted-encoder", 5, 20000)
+	for _, c := range []struct {
+		sig  syscall.Signal
+		code int
+	}{{syscall.SIGTERM, 143}, {syscall.SIGINT, 130}} {
+		before := storeTags(t, store)
+		cmd := exec.Command(mgBinary, "push", "--json", dir, "tiny-encoder:v2")
+		cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
+		stderr, err := cmd.StderrPipe()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := cmd.Start(); err != nil {
+			t.Fatal(err)
+		}
+		// The first progress event says the signal handlers are in place
+		// and the push is under way.
+		sc := bufio.NewScanner(stderr)
+		var rest strings.Builder
+		for sc.Scan() {
+			if strings.Contains(sc.Text(), `"event":"progress"`) {
+				break
+			}
+			rest.WriteString(sc.Text() + "\n")
+		}
+		if err := cmd.Process.Signal(c.sig); err != nil {
+			t.Fatal(err)
+		}
+		for sc.Scan() {
+			rest.WriteString(sc.Text() + "\n")
+		}
+		err = cmd.Wait()
+		var ee *exec.ExitError
+		if !errors.As(err, &ee) || ee.ExitCode() != c.code {
+			t.Fatalf("push sent %v: %v, want exit %d\n%s", c.sig, err, c.code, rest.String())
+		}
+		if !strings.Contains(rest.String(), "interrupted by") {
+			t.Errorf("push sent %v does not say it was interrupted:\n%s", c.sig, rest.String())
+		}
+		tmp, err := os.ReadDir(filepath.Join(store, ".modelgate", "tmp"))
+		if err != nil || len(tmp) != 0 {
+			t.Errorf("push sent %v left %d temporary files (%v)", c.sig, len(tmp), err)
+		}
+		syscall.Flock(int(lock.Fd()), syscall.LOCK_UN)
+		if after := storeTags(t, store); fmt.Sprint(after) != fmt.Sprint(before) {
+			t.Errorf("push sent %v moved tags: %v → %v", c.sig, before, after)
+		}
+		mustVerify(t, store, fmt.Sprintf("after a push sent %v", c.sig))
+		if err := syscall.Flock(int(lock.Fd()), syscall.LOCK_EX); err != nil {
+			t.Fatal(err)
+		}
+	}
 }

@@ -103,7 +103,8 @@ The store is --store, else $` + EnvStore + `, else a local OCI image layout in
 $XDG_DATA_HOME/modelgate/store (default ~/.local/share/modelgate/store).
 
 Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
-3 conflict (the tag moved); 4 not authorised; 5 integrity (store damage).`,
+3 conflict (the tag moved); 4 not authorised; 5 integrity (store damage);
+70 internal error; 130 / 143 stopped by SIGINT / SIGTERM.`,
 		Version:       version.Version,
 		SilenceUsage:  true,
 		SilenceErrors: true,
@@ -168,6 +169,11 @@ func run(ctx context.Context, args []string, stdin io.Reader, stdout, stderr io.
 	k := errkind.Of(err)
 	if k == errkind.Internal && isUsageError(err) {
 		k = errkind.BadInput
+	}
+	if code, ok := interruptCode(ctx); ok {
+		// Whatever the command made of its cancelled work, it was stopped.
+		fmt.Fprintf(stderr, "modelgate: %v\n", context.Cause(ctx))
+		return code
 	}
 	if errors.Is(err, context.Canceled) {
 		fmt.Fprintln(stderr, "modelgate: interrupted")

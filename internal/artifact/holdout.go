@@ -18,6 +18,7 @@ import (
 
 	"modelgate/internal/data"
 	"modelgate/internal/errkind"
+	"modelgate/internal/fileio"
 	"modelgate/internal/model"
 	"modelgate/internal/registry"
 )
@@ -60,15 +61,11 @@ func ScanHoldout(path string, progress func(Event)) (*HoldoutInfo, error) {
 	if err != nil {
 		return nil, err
 	}
-	f, err := os.Open(path)
+	f, st, err := openHoldout(path)
 	if err != nil {
-		return nil, errkind.Wrap(errkind.BadInput, fmt.Errorf("opening holdout: %w", err))
+		return nil, err
 	}
 	defer f.Close()
-	st, err := f.Stat()
-	if err != nil {
-		return nil, fmt.Errorf("opening holdout %q: %w", path, err)
-	}
 	return scanHoldoutAt(f, st.Size(), path, format, progress)
 }
 
@@ -117,6 +114,16 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress fun
 		info.Slices = nil
 	}
 	return info, nil
+}
+
+// openHoldout opens a holdout file: a regular file (a named pipe or a
+// device is refused before it is read).
+func openHoldout(path string) (*os.File, os.FileInfo, error) {
+	f, st, err := fileio.OpenRegular(path)
+	if err != nil {
+		return nil, nil, errkind.Wrap(errkind.BadInput, fmt.Errorf("opening holdout: %w", err))
+	}
+	return f, st, nil
 }
 
 var holdoutMediaTypes = map[string]types.MediaType{
@@ -181,15 +188,11 @@ func PushHoldout(ctx context.Context, store registry.Store, path string, ref reg
 
 // stageHoldout streams the file into the store and checks the staged copy.
 func stageHoldout(ctx context.Context, stager registry.BlobStager, repo, path, format string, opts Options) (*HoldoutInfo, Blob, error) {
-	f, err := os.Open(path)
+	f, st, err := openHoldout(path)
 	if err != nil {
-		return nil, Blob{}, errkind.Wrap(errkind.BadInput, fmt.Errorf("opening holdout: %w", err))
+		return nil, Blob{}, err
 	}
 	defer f.Close()
-	st, err := f.Stat()
-	if err != nil {
-		return nil, Blob{}, fmt.Errorf("opening holdout %q: %w", path, err)
-	}
 	name := filepath.Base(path)
 	opts.emit(Event{Phase: "upload", Name: name, Total: st.Size()})
 	sb, err := stager.StageBlob(ctx, repo, st.Size(), &progressReader{r: f, opts: opts, name: name, total: st.Size()})
@@ -217,9 +220,9 @@ func hashHoldout(ctx context.Context, store registry.Store, repo, path string, o
 	if err != nil {
 		return nil, Blob{}, err
 	}
-	f, err := os.Open(path)
+	f, _, err := openHoldout(path)
 	if err != nil {
-		return nil, Blob{}, errkind.Wrap(errkind.BadInput, err)
+		return nil, Blob{}, err
 	}
 	defer f.Close()
 	h := sha256.New()
@@ -282,7 +285,8 @@ func FetchHoldout(ctx context.Context, store registry.Store, ref registry.Ref) (
 	if err != nil {
 		return nil, err
 	}
-	h.cleanup = func() { os.RemoveAll(dir) }
+	forget := fileio.RemoveOnExit(dir)
+	h.cleanup = func() { os.RemoveAll(dir); forget() }
 	ext := map[types.MediaType]string{MediaTypeHoldoutParquet: ".parquet", MediaTypeHoldoutJSONL: ".jsonl"}[layer.MediaType]
 	if ext == "" {
 		h.Close()

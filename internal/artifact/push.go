@@ -9,8 +9,6 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"os"
-	"path/filepath"
 	"sort"
 	"strings"
 	"sync"
@@ -19,6 +17,7 @@ import (
 	"github.com/google/go-containerregistry/pkg/v1/types"
 
 	"modelgate/internal/errkind"
+	"modelgate/internal/fileio"
 	"modelgate/internal/model"
 	"modelgate/internal/model/modeldir"
 	"modelgate/internal/model/safetensors"
@@ -211,8 +210,8 @@ type tensorFile struct {
 // with their sizes, and the spec's bytes; nil when the spec or a file
 // cannot be read (the check on the side reports why).
 func tensorFilesOf(dir string) ([]tensorFile, []byte) {
-	raw, err := os.ReadFile(filepath.Join(dir, modeldir.SpecFile))
-	if err != nil || int64(len(raw)) > modeldir.MaxSpecSize {
+	raw, err := fileio.ReadInDir(dir, modeldir.SpecFile, modeldir.MaxSpecSize)
+	if err != nil {
 		return nil, nil
 	}
 	spec, vs, err := modeldir.ParseSpec(raw)
@@ -221,10 +220,11 @@ func tensorFilesOf(dir string) ([]tensorFile, []byte) {
 	}
 	var out []tensorFile
 	for _, name := range modeldir.TensorFileNames(spec) {
-		st, err := os.Stat(filepath.Join(dir, name))
-		if err != nil || !st.Mode().IsRegular() {
+		f, st, err := fileio.OpenInDir(dir, name)
+		if err != nil {
 			return nil, nil
 		}
+		f.Close()
 		out = append(out, tensorFile{name, st.Size()})
 	}
 	return out, raw
@@ -239,7 +239,7 @@ func stageFiles(ctx context.Context, stager registry.BlobStager, repo, dir strin
 	scans := map[string]*safetensors.Scanner{}
 	for _, f := range files {
 		sc := safetensors.NewScanner(f.size)
-		in, err := os.Open(filepath.Join(dir, f.name))
+		in, _, err := fileio.OpenInDir(dir, f.name)
 		if err != nil {
 			return staged, nil, errkind.New(errkind.BadInput, "model directory %s: %w", dir, err)
 		}

@@ -255,6 +255,7 @@ func pullBlob(ctx context.Context, store registry.Store, repo string, d v1.Descr
 		return err
 	}
 	defer os.Remove(tmp.Name())
+	defer fileio.RemoveOnExit(tmp.Name())()
 	var w io.Writer = fileio.NewWriteback(tmp)
 	if scan != nil {
 		w = io.MultiWriter(w, scan)

@@ -10,6 +10,7 @@ import (
 	"strings"
 
 	"modelgate/internal/errkind"
+	"modelgate/internal/fileio"
 	"modelgate/internal/model"
 )
 
@@ -126,14 +127,9 @@ func Open(path string, opts Options) (Reader, error) {
 	if opts.Name == "" {
 		opts.Name = path
 	}
-	f, err := os.Open(path)
+	f, st, err := fileio.OpenRegular(path)
 	if err != nil {
 		return nil, errkind.Wrap(errkind.BadInput, fmt.Errorf("opening holdout: %w", err))
-	}
-	st, err := f.Stat()
-	if err != nil {
-		f.Close()
-		return nil, fmt.Errorf("opening holdout %q: %w", path, err)
 	}
 	r, err := OpenReader(f, st.Size(), format, opts)
 	if err != nil {

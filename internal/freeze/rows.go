@@ -15,6 +15,7 @@ import (
 	"modelgate/internal/artifact"
 	"modelgate/internal/data"
 	"modelgate/internal/errkind"
+	"modelgate/internal/fileio"
 	"modelgate/internal/model"
 	"modelgate/internal/model/modeldir"
 	"modelgate/internal/registry"
@@ -90,7 +91,7 @@ func openHoldout(ctx context.Context, store registry.Store, s string, n int) *ho
 }
 
 func fileDigest(path string) (string, error) {
-	f, err := os.Open(path)
+	f, _, err := fileio.OpenRegular(path)
 	if err != nil {
 		return "", err
 	}

@@ -17,6 +17,7 @@ import (
 	"sort"
 	"strings"
 	"sync"
+	"syscall"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
@@ -154,13 +155,24 @@ func OpenLocal(dir string) (*Local, error) {
 		return nil, fmt.Errorf("opening store %q: %w", dir, err)
 	}
 	l := &Local{dir: abs}
+	if l.ready() {
+		// Nothing to create or convert: no lock, so a store the user can
+		// only read opens too.
+		return l, nil
+	}
 	for _, d := range []string{blobsDir, tmpDir, reposDir} {
 		if err := os.MkdirAll(l.path(d), 0o755); err != nil {
+			if l.readOnly(err) {
+				return l, nil
+			}
 			return nil, fmt.Errorf("opening store %q: %w", abs, err)
 		}
 	}
 	unlock, err := l.lock(context.Background())
 	if err != nil {
+		if l.readOnly(err) {
+			return l, nil
+		}
 		return nil, fmt.Errorf("opening store %q: %w", abs, err)
 	}
 	defer unlock()
@@ -194,6 +206,52 @@ func OpenLocal(dir string) (*Local, error) {
 		return nil, fmt.Errorf("opening store %q: %w", abs, err)
 	}
 	return l, nil
+}
+
+// ready reports whether the store needs nothing from OpenLocal: its
+// folders, oci-layout file (of our version) and index.json are there, and
+// index.json holds nothing an earlier version left to convert.
+func (l *Local) ready() bool {
+	for _, d := range []string{blobsDir, tmpDir, reposDir} {
+		if fi, err := os.Stat(l.path(d)); err != nil || !fi.IsDir() {
+			return false
+		}
+	}
+	b, err := os.ReadFile(l.path(layoutFile))
+	if err != nil {
+		return false
+	}
+	var lf struct {
+		Version string `json:"imageLayoutVersion"`
+	}
+	if err := json.Unmarshal(b, &lf); err != nil || lf.Version != layoutVersion {
+		return false
+	}
+	idx, err := l.readIndex()
+	if err != nil {
+		return false
+	}
+	return !l.needsMigration(idx)
+}
+
+// readOnly reports whether err, met while preparing the store for writes,
+// says the user may not write there (permissions, a read-only mount) while
+// the store can be read as it is: its oci-layout file is ours and its
+// index.json parses. Such a store opens for reading; a write fails when it
+// is tried, naming the file.
+func (l *Local) readOnly(err error) bool {
+	if !errors.Is(err, fs.ErrPermission) && !errors.Is(err, syscall.EROFS) {
+		return false
+	}
+	b, rerr := os.ReadFile(l.path(layoutFile))
+	var lf struct {
+		Version string `json:"imageLayoutVersion"`
+	}
+	if rerr != nil || json.Unmarshal(b, &lf) != nil || lf.Version != layoutVersion {
+		return false
+	}
+	_, ierr := l.readIndex()
+	return ierr == nil
 }
 
 // Dir returns the store's directory as an absolute path.
@@ -353,10 +411,12 @@ func (l *Local) stage(ctx context.Context, size int64, r io.Reader) (_ *localSta
 	if err != nil {
 		return nil, err
 	}
+	forget := fileio.RemoveOnExit(f.Name())
 	defer func() {
 		if err != nil {
 			f.Close()
 			os.Remove(f.Name())
+			forget()
 		}
 	}()
 	h := sha256.New()
@@ -367,7 +427,7 @@ func (l *Local) stage(ctx context.Context, size int64, r io.Reader) (_ *localSta
 	if n != size {
 		return nil, errkind.New(errkind.BadInput, "%w: got %d bytes, want %d", ErrDigestMismatch, n, size)
 	}
-	return &localStaged{l: l, f: f, tmp: f.Name(), size: size,
+	return &localStaged{l: l, f: f, tmp: f.Name(), size: size, forget: forget,
 		digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(h.Sum(nil))}}, nil
 }
 
@@ -377,6 +437,7 @@ type localStaged struct {
 	l       *Local
 	f       *os.File // open until Commit or Discard
 	tmp     string   // its name
+	forget  func()   // unregisters tmp from fileio.RemoveOnExit
 	size    int64
 	digest  v1.Hash
 	state   int // stagedOpen, stagedCommitted, stagedDiscarded
@@ -439,6 +500,7 @@ func (s *localStaged) Commit(ctx context.Context) (existed bool, err error) {
 	if err := os.Rename(tmp, final); err != nil {
 		return false, err
 	}
+	s.forget()
 	s.state = stagedCommitted
 	if err := syncDir(filepath.Dir(final)); err != nil {
 		return false, err
@@ -455,6 +517,7 @@ func (s *localStaged) Discard() error {
 		s.f.Close()
 		s.f = nil
 	}
+	defer s.forget()
 	return os.Remove(s.tmp)
 }
 

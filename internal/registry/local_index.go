@@ -11,6 +11,7 @@ import (
 	"path/filepath"
 	"slices"
 	"sync"
+	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
@@ -176,11 +177,28 @@ func (l *Local) lock(ctx context.Context) (func(), error) {
 		return nil, fmt.Errorf("locking store: %w", err)
 	}
 	fd := int(f.Fd())
+	// Polled rather than blocking, so that a cancelled ctx (an interrupt)
+	// stops the wait for another process's lock.
+	wait := time.Millisecond
 	for {
-		err = unix.Flock(fd, unix.LOCK_EX)
-		if !errors.Is(err, unix.EINTR) {
+		err = unix.Flock(fd, unix.LOCK_EX|unix.LOCK_NB)
+		if errors.Is(err, unix.EINTR) {
+			continue
+		}
+		if !errors.Is(err, unix.EWOULDBLOCK) {
 			break
 		}
+		t := time.NewTimer(wait)
+		select {
+		case <-ctx.Done():
+			t.Stop()
+		case <-t.C:
+		}
+		if ctx.Err() != nil {
+			err = ctx.Err()
+			break
+		}
+		wait = min(2*wait, 20*time.Millisecond)
 	}
 	if err != nil {
 		f.Close()

@@ -419,6 +419,24 @@ func (l *Local) migrate(ctx context.Context) error {
 	return l.writeIndex(&next)
 }
 
+// needsMigration reports whether migrate would have work to do on idx:
+// an untagged entry of ours, or a tagged one without its side file.
+func (l *Local) needsMigration(idx *v1.IndexManifest) bool {
+	for _, d := range idx.Manifests {
+		repo := d.Annotations[annotationRepository]
+		if ValidateRepository(repo) != nil || checkDigest(d.Digest) != nil {
+			continue
+		}
+		if d.Annotations[annotationRefName] == "" {
+			return true
+		}
+		if _, err := os.Lstat(l.manifestEntryPath(repo, d.Digest)); err != nil {
+			return true
+		}
+	}
+	return false
+}
+
 // adopt records the manifest of index entry d in side files, from the
 // manifest itself (verified). ok is false when the manifest cannot be
 // read, does not match d, or does not parse.

@@ -2,10 +2,8 @@
 
 package modeldir
 
-import "os"
-
-func mapFile(path string) ([]byte, bool, error) {
-	b, err := os.ReadFile(path)
+func mapFile(dir, name string) ([]byte, bool, error) {
+	b, err := readLimited(dir, name, maxTensorFile)
 	return b, false, err
 }
 

@@ -23,16 +23,15 @@ import (
 	"errors"
 	"fmt"
 	"hash/maphash"
-	"io"
 	"math"
 	"os"
-	"path/filepath"
 	"sort"
 	"strconv"
 	"strings"
 	"unicode/utf8"
 
 	"modelgate/internal/errkind"
+	"modelgate/internal/fileio"
 	"modelgate/internal/model"
 	"modelgate/internal/model/safetensors"
 	"modelgate/schemas"
@@ -50,6 +49,10 @@ const (
 	MaxProbeLine  = 4 << 20
 	MaxVocabSize  = 1 << 30
 )
+
+// maxTensorFile bounds a tensor file read whole (no real limit: the
+// safetensors reader bounds what it allocates).
+const maxTensorFile = 1 << 62
 
 // Probe is one probe row: an input given as raw item ids and values, and
 // the outputs the training side computed for it, by layer name.
@@ -297,20 +300,10 @@ func TensorFileNames(s *model.Spec) []string {
 	return out
 }
 
-func readLimited(path string, limit int64) ([]byte, error) {
-	f, err := os.Open(path)
-	if err != nil {
-		return nil, err
-	}
-	defer f.Close()
-	b, err := io.ReadAll(io.LimitReader(f, limit+1))
-	if err != nil {
-		return nil, err
-	}
-	if int64(len(b)) > limit {
-		return nil, fmt.Errorf("larger than %d bytes", limit)
-	}
-	return b, nil
+// readLimited reads the file name of the model directory dir: a regular
+// file, or a symbolic link to one inside dir, of at most limit bytes.
+func readLimited(dir, name string, limit int64) ([]byte, error) {
+	return fileio.ReadInDir(dir, name, limit)
 }
 
 // Read reads and validates the model directory at dir, decoding every
@@ -371,7 +364,7 @@ func read(dir string, opt readOptions) (*Dir, error) {
 	if !st.IsDir() {
 		return nil, errkind.New(errkind.BadInput, "model directory %s: not a directory", dir)
 	}
-	specBytes, err := readLimited(filepath.Join(dir, SpecFile), MaxSpecSize)
+	specBytes, err := readLimited(dir, SpecFile, MaxSpecSize)
 	if err != nil {
 		return nil, errkind.New(errkind.BadInput, "model directory %s: reading %s: %w", dir, SpecFile, err)
 	}
@@ -409,7 +402,6 @@ func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 	spec := d.Model.Spec
 	byFile := declaredByFile(spec)
 	for _, name := range TensorFileNames(spec) {
-		path := filepath.Join(d.Path, name)
 		sc, scanned := opt.scans[name]
 		switch {
 		case scanned:
@@ -417,7 +409,7 @@ func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 			probs.List = append(probs.List, ScanProblems(name, sc, byFile[name])...)
 			continue
 		case opt.headers:
-			size, problems := checkHeader(path, name, byFile[name])
+			size, problems := checkHeader(d.Path, name, byFile[name])
 			d.TensorFiles = append(d.TensorFiles, File{Name: name, Size: size})
 			probs.List = append(probs.List, problems...)
 			continue
@@ -426,12 +418,12 @@ func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 		var err error
 		if opt.mmap {
 			var mapped bool
-			b, mapped, err = mapFile(path)
+			b, mapped, err = mapFile(d.Path, name)
 			if mapped {
 				d.mapped = append(d.mapped, b)
 			}
 		} else {
-			b, err = os.ReadFile(path)
+			b, err = readLimited(d.Path, name, maxTensorFile)
 		}
 		if err != nil {
 			probs.add("%s: %v", name, err)
@@ -450,21 +442,14 @@ func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 	}
 }
 
-// checkHeader parses the header of the tensor file at path and compares it
+// checkHeader parses the header of the tensor file file of dir and compares it
 // with the declared tensors; it returns the file's size.
-func checkHeader(path, file string, declared []model.Tensor) (int64, []string) {
-	f, err := os.Open(path)
+func checkHeader(dir, file string, declared []model.Tensor) (int64, []string) {
+	f, st, err := fileio.OpenInDir(dir, file)
 	if err != nil {
 		return 0, []string{fmt.Sprintf("%s: %v", file, err)}
 	}
 	defer f.Close()
-	st, err := f.Stat()
-	if err != nil {
-		return 0, []string{fmt.Sprintf("%s: %v", file, err)}
-	}
-	if !st.Mode().IsRegular() {
-		return 0, []string{fmt.Sprintf("%s: not a regular file", file)}
-	}
 	sf, err := safetensors.Parse(f, st.Size())
 	if err != nil {
 		return st.Size(), []string{fmt.Sprintf("%s: %v", file, err)}
@@ -609,7 +594,7 @@ func equalInts(a, b []int) bool {
 
 func (d *Dir) readVocabulary(probs *Problems) {
 	in := d.Model.Spec.Inputs.Sparse[0]
-	b, err := readLimited(filepath.Join(d.Path, in.Vocabulary), MaxVocabSize)
+	b, err := readLimited(d.Path, in.Vocabulary, MaxVocabSize)
 	if err != nil {
 		probs.add("%s: %v", in.Vocabulary, err)
 		return
@@ -700,7 +685,7 @@ func (d *Dir) readStats(probs *Problems) {
 	if name == "" {
 		return
 	}
-	b, err := readLimited(filepath.Join(d.Path, name), MaxStatsSize)
+	b, err := readLimited(d.Path, name, MaxStatsSize)
 	if err != nil {
 		probs.add("%s: %v", name, err)
 		return
@@ -716,7 +701,7 @@ func (d *Dir) readProbes(probs *Problems) {
 	if name == "" {
 		return
 	}
-	b, err := readLimited(filepath.Join(d.Path, name), MaxProbesSize)
+	b, err := readLimited(d.Path, name, MaxProbesSize)
 	if err != nil {
 		probs.add("%s: %v", name, err)
 		return

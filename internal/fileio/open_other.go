@@ -1,0 +1,5 @@
+//go:build !unix
+
+package fileio
+
+const oNonblock = 0
