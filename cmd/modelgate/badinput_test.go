@@ -435,3 +435,118 @@ func TestPushLinkInsideDirectory(t *testing.T) {
 		t.Fatalf("push through links stored %s, the plain directory %s", got, want)
 	}
 }
+
+// TestReadOnlyStore: the reading commands (ls, show, log, verify, pull,
+// diff) work on a store the user cannot write — one whose files are all
+// read-only to a user who is not root (chmod -R a-w, the commands run as
+// uid 65534 when the test runs as root, which file modes do not bind), and
+// one on a read-only mount (a read-only bind mount; root only) — and
+// leave it byte-identical. A write on the read-only mount fails, naming
+// the file system, and changes nothing.
+func TestReadOnlyStore(t *testing.T) {
+	w := newReleaseWorld(t, 0)
+	w.push(0, "tiny-encoder:prod")
+	w.push(1, "")
+	w.gate("tiny-encoder:v1")
+	mustMG(t, w.store, "promote", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita"))
+	w.push(2, "")
+
+	// A folder every user may enter, holding a copy of the binary and the
+	// store (t.TempDir folders are private to the test's user).
+	shared, err := os.MkdirTemp("", "modelgate-ro-")
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() {
+		exec.Command("chmod", "-R", "u+w", shared).Run()
+		os.RemoveAll(shared)
+	})
+	os.Chmod(shared, 0o755)
+	bin := filepath.Join(shared, "modelgate")
+	if out, err := exec.Command("cp", mgBinary, bin).CombinedOutput(); err != nil {
+		t.Fatalf("cp: %v %s", err, out)
+	}
+	reads := func(store, out string) [][]string {
+		return [][]string{
+			{"ls"}, {"ls", "--json", "tiny-encoder"}, {"show", "tiny-encoder:prod"}, {"log", "tiny-encoder:prod"},
+			{"verify"}, {"diff", "tiny-encoder:v1", "tiny-encoder:v2"}, {"pull", "tiny-encoder:prod", out},
+		}
+	}
+	runIn := func(t *testing.T, store string, cred *syscall.Credential, args ...string) result {
+		t.Helper()
+		cmd := exec.Command(bin, args...)
+		cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store, "HOME="+shared)
+		if cred != nil {
+			cmd.SysProcAttr = &syscall.SysProcAttr{Credential: cred}
+		}
+		var so, se bytes.Buffer
+		cmd.Stdout, cmd.Stderr = &so, &se
+		err := cmd.Run()
+		code := 0
+		if ee, ok := err.(*exec.ExitError); ok {
+			code = ee.ExitCode()
+		} else if err != nil {
+			t.Fatalf("running modelgate %v: %v", args, err)
+		}
+		return result{code, so.String(), se.String()}
+	}
+
+	t.Run("no write permission", func(t *testing.T) {
+		store := filepath.Join(shared, "perm-store")
+		if out, err := exec.Command("cp", "-a", w.store, store).CombinedOutput(); err != nil {
+			t.Fatalf("cp: %v %s", err, out)
+		}
+		if out, err := exec.Command("chmod", "-R", "a+rX,a-w", store).CombinedOutput(); err != nil {
+			t.Fatalf("chmod: %v %s", err, out)
+		}
+		var cred *syscall.Credential
+		if os.Geteuid() == 0 {
+			cred = &syscall.Credential{Uid: 65534, Gid: 65534}
+		}
+		outDir := filepath.Join(shared, "pulled-perm")
+		os.Mkdir(outDir, 0o777)
+		os.Chmod(outDir, 0o777)
+		before := listing(t, store)
+		for _, args := range reads(store, filepath.Join(outDir, "m")) {
+			if r := runIn(t, store, cred, args...); r.code != 0 {
+				t.Errorf("modelgate %v on a store the user cannot write: exit %d\n%s%s", args, r.code, r.stdout, r.stderr)
+			}
+		}
+		// A write is refused by the file system, and says so.
+		r := runIn(t, store, cred, "push", nameVariant(t, shared, 7), "tiny-encoder:v7")
+		if r.code == 0 || !strings.Contains(r.stderr, "permission denied") {
+			t.Errorf("push to a store the user cannot write: exit %d\n%s", r.code, r.stderr)
+		}
+		if after := listing(t, store); after != before {
+			t.Errorf("the store changed:\n%s", listingDiff(before, after))
+		}
+	})
+
+	t.Run("read-only mount", func(t *testing.T) {
+		if os.Geteuid() != 0 {
+			t.Skip("a read-only bind mount needs root; the permission case above covers a user who cannot write")
+		}
+		mnt := filepath.Join(shared, "ro-mount")
+		os.Mkdir(mnt, 0o755)
+		if out, err := exec.Command("mount", "--bind", w.store, mnt).CombinedOutput(); err != nil {
+			t.Fatalf("mount --bind: %v %s", err, out)
+		}
+		t.Cleanup(func() { exec.Command("umount", mnt).Run() })
+		if out, err := exec.Command("mount", "-o", "remount,bind,ro", mnt).CombinedOutput(); err != nil {
+			t.Fatalf("mount -o remount,bind,ro: %v %s", err, out)
+		}
+		before := listing(t, mnt)
+		for _, args := range reads(mnt, filepath.Join(t.TempDir(), "m")) {
+			if r := runIn(t, mnt, nil, args...); r.code != 0 {
+				t.Errorf("modelgate %v on a read-only mount: exit %d\n%s%s", args, r.code, r.stdout, r.stderr)
+			}
+		}
+		r := runIn(t, mnt, nil, "push", nameVariant(t, t.TempDir(), 8), "tiny-encoder:v8")
+		if r.code == 0 || !strings.Contains(r.stderr, "read-only file system") {
+			t.Errorf("push to a read-only mount: exit %d\n%s", r.code, r.stderr)
+		}
+		if after := listing(t, mnt); after != before {
+			t.Errorf("the store changed:\n%s", listingDiff(before, after))
+		}
+	})
+}
