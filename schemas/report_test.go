@@ -205,3 +205,23 @@ func TestReportSchemaMatchesTypes(t *testing.T) {
 		t.Errorf("walked only %d types", len(seen))
 	}
 }
+
+// TestDuplicateKeys: a key given twice in one object is named by its JSON
+// pointer (RFC 6901 escaping), in nested objects and arrays too; the same
+// key in two different objects is fine.
+func TestDuplicateKeys(t *testing.T) {
+	doc := `{"kind":"encoder","a":[{"x":1},{"x":2,"x":3}],"b/c":{"~":1,"~":2},"kind":"scorer"}`
+	got := schemas.DuplicateKeys([]byte(doc))
+	want := []string{`/a/1/x: key "x" given twice in one object`, `/b~1c/~0: key "~" given twice in one object`, `/kind: key "kind" given twice in one object`}
+	if len(got) != len(want) {
+		t.Fatalf("got %v, want %v", got, want)
+	}
+	for i := range want {
+		if got[i].String() != want[i] {
+			t.Errorf("violation %d: %s, want %s", i, got[i], want[i])
+		}
+	}
+	if d := schemas.DuplicateKeys([]byte(`{"a":{"k":1},"b":{"k":1}}`)); len(d) != 0 {
+		t.Errorf("keys in different objects reported: %v", d)
+	}
+}

@@ -87,6 +87,11 @@ func Validate(name string, doc []byte) ([]Violation, error) {
 	if dec.More() {
 		return []Violation{{Pointer: "", Message: "not valid JSON: data after the top-level value"}}, nil
 	}
+	if dups := DuplicateKeys(doc); len(dups) > 0 {
+		// Which of the two values counts is up to each reader: refuse the
+		// document rather than validate one reading of it.
+		return dups, nil
+	}
 	err = s.Validate(v)
 	if err == nil {
 		return nil, nil
@@ -127,4 +132,60 @@ func Join(prefix string, vs []Violation) string {
 		b.WriteString(v.String())
 	}
 	return b.String()
+}
+
+// DuplicateKeys returns a violation for every object member of doc (valid
+// JSON) whose key the same object already has, at the JSON pointer of the
+// repeated member.
+func DuplicateKeys(doc []byte) []Violation {
+	dec := json.NewDecoder(bytes.NewReader(doc))
+	dec.UseNumber()
+	var out []Violation
+	var walk func(ptr string) error
+	walk = func(ptr string) error {
+		tok, err := dec.Token()
+		if err != nil {
+			return err
+		}
+		d, ok := tok.(json.Delim)
+		if !ok {
+			return nil
+		}
+		switch d {
+		case '{':
+			seen := map[string]bool{}
+			for dec.More() {
+				kt, err := dec.Token()
+				if err != nil {
+					return err
+				}
+				k, _ := kt.(string)
+				child := ptr + "/" + escapePointer(k)
+				if seen[k] {
+					out = append(out, Violation{Pointer: child, Message: fmt.Sprintf("key %q given twice in one object", k)})
+				}
+				seen[k] = true
+				if err := walk(child); err != nil {
+					return err
+				}
+			}
+		case '[':
+			for i := 0; dec.More(); i++ {
+				if err := walk(fmt.Sprintf("%s/%d", ptr, i)); err != nil {
+					return err
+				}
+			}
+		}
+		_, err = dec.Token() // the closing delimiter
+		return err
+	}
+	if err := walk(""); err != nil {
+		return nil
+	}
+	return out
+}
+
+// escapePointer escapes a key for a JSON pointer (RFC 6901: ~ as ~0, / as ~1).
+func escapePointer(k string) string {
+	return strings.ReplaceAll(strings.ReplaceAll(k, "~", "~0"), "/", "~1")
 }

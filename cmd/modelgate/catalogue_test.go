@@ -120,6 +120,10 @@ rules:
 		setFile(d, "probes.jsonl", []byte(strings.Join(lines, "")))
 	})
 	statsNotObject := badModel(encDir, func(d string) { setFile(d, "stats.json", []byte(`[1, 2, 3]`)) })
+	dupKind := badModel(encDir, func(d string) {
+		b, _ := os.ReadFile(filepath.Join(d, "spec.json"))
+		setFile(d, "spec.json", []byte(strings.Replace(string(b), "{", `{"kind": "scorer",`, 1)))
+	})
 	probeNaN := badModel(scorerDir, func(d string) {
 		setFile(d, "probes.jsonl", []byte(`{"items":["show-003"],"values":[-1],"dense":{"listener_tenure":[0.1],"show_age":[0.2]},"expect":{"p":[0.5]}}`+"\n"))
 	})
@@ -204,7 +208,7 @@ rules:
 	w.approve("tiny-encoder:v1", "ana")
 	w.approve("tiny-encoder:v1", "ben")
 	mustMG(t, w.store, "promote", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita"))
-	w.push(2, "")
+	unreleased := w.push(2, "")
 	var gated struct{ ReportDigest string }
 	if err := json.Unmarshal([]byte(mustMG(t, w.store, "gate", "--json", "tiny-encoder:v2", "--to", "tiny-encoder:prod",
 		"--policy", w.policy, "--sign-key", w.key("ci")).stdout), &gated); err != nil {
@@ -231,6 +235,8 @@ rules:
 		{name: "probe line not JSON", args: []string{"push", probesNotJSON, "bad:v1"}, code: 2, want: []string{"probes.jsonl:3"}},
 		{name: "stats not an object", args: []string{"push", statsNotObject, "bad:v1"}, code: 2, want: []string{"stats.json"}},
 		{name: "probe value negative", args: []string{"push", probeNaN, "bad:v1"}, code: 2, want: []string{"probes.jsonl:1", "negative"}},
+
+		{name: "spec with the key kind given twice", args: []string{"push", dupKind, "bad:v1"}, code: 2, want: []string{"spec.json", "/kind", "given twice"}},
 
 		// Named pipes and links out of the model directory (push).
 		{name: "vocabulary a named pipe", args: []string{"push", pipeVocab, "bad:v1"}, code: 2, want: []string{"vocabulary.txt", "not a regular file", "named pipe"}},
@@ -307,6 +313,7 @@ rules:
 		{name: "gate: target with a digest", args: []string{"gate", "tiny-scorer:v1", "--to", "tiny-scorer@" + missingDigest, "--policy", policy}, code: 2, want: []string{"--to"}},
 		{name: "gate: candidate digest not in the store", args: []string{"gate", "tiny-scorer@" + missingDigest, "--to", "tiny-scorer:prod", "--policy", policy}, code: 2, want: []string{missingDigest}},
 		{name: "approve: candidate in another repository", args: []string{"approve", "tiny-encoder:v1", "--to", "tiny-scorer:prod", "--policy", policy, "--key", key("ana")}, code: 2, want: []string{"tiny-encoder", "tiny-scorer"}},
+		{name: "rollback: --to a digest never released on the tag", store: w.store, args: []string{"rollback", "tiny-encoder:prod", "--reason", "x", "--to", unreleased}, code: 2, want: []string{unreleased, "never released"}},
 		{name: "rollback: malformed --to digest", args: []string{"rollback", "tiny-scorer:prod", "--reason", "x", "--to", "sha256:1234"}, code: 2, want: []string{"sha256:1234"}},
 		{name: "log: a digest instead of a tag", args: []string{"log", "tiny-scorer@" + missingDigest}, code: 2, want: []string{"NAME:TAG"}},
 

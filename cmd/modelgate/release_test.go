@@ -198,7 +198,7 @@ func TestReleaseCommands(t *testing.T) {
 		}
 	}
 	wantExit(t, mg(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "again"), 2, "nothing earlier")
-	wantExit(t, mg(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "x", "--to", cands[3]), 4, "never released")
+	wantExit(t, mg(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "x", "--to", cands[3]), 2, "never released")
 	wantExit(t, mg(t, w.store, "rollback", "tiny-encoder:prod"), 2, "--reason")
 
 	lg := mustMG(t, w.store, "log", "tiny-encoder:prod", "--policy", w.policy)

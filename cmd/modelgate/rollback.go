@@ -38,8 +38,9 @@ moves the tag by compare-and-swap, and writes a rollback record with who
 and why. If the tag had been moved outside modelgate, rollback restores the
 last released model.
 
-Exit codes: 0 done; 2 bad input or nothing earlier; 3 a concurrent change
-won; 4 --to names a digest never released on the tag; 5 the log is damaged.`,
+Exit codes: 0 done; 2 bad input, nothing earlier, or --to names a digest
+never released on the tag; 3 a concurrent change won; 4 a signature is
+missing or invalid; 5 the log is damaged.`,
 		Args: exactArgs(1, "NAME:TAG"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runRollback(cmd.Context(), g, o, args[0])

@@ -90,7 +90,7 @@ func Rollback(ctx context.Context, store registry.Store, req RollbackRequest) (*
 			return nil, err
 		}
 		if !contains(released, to) {
-			return res, refuse(&Refusal{Kind: errkind.Unauthorized, Action: "rollback", Problems: []string{fmt.Sprintf(
+			return res, refuse(&Refusal{Kind: errkind.BadInput, Action: "rollback", Problems: []string{fmt.Sprintf(
 				"%s was never released on %s: rollback goes only to versions released there before (%d are)", to, t, len(released))}})
 		}
 		res.To = to

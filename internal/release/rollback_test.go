@@ -92,7 +92,7 @@ func TestRollbackWalksBack(t *testing.T) {
 	}
 	never := e.pushVariant(9)
 	_, err = e.rollback(&never, false)
-	wantRefusal(t, err, errkind.Unauthorized, "was never released on tiny-encoder:prod")
+	wantRefusal(t, err, errkind.BadInput, "was never released on tiny-encoder:prod")
 	// A plain rollback undoes the --to jump.
 	if res, err := e.rollback(nil, false); err != nil || res.To != base.String() {
 		t.Errorf("rollback after --to: %+v, %v", res, err)
