@@ -105,7 +105,7 @@ func Validate(name string, doc []byte) ([]Violation, error) {
 	var walk func(e *jsonschema.ValidationError)
 	walk = func(e *jsonschema.ValidationError) {
 		if len(e.Causes) == 0 {
-			v := Violation{Pointer: e.InstanceLocation, Message: e.Message}
+			v := Violation{Pointer: e.InstanceLocation, Message: plainMessage(e.Message)}
 			if k := v.String(); !seen[k] {
 				seen[k] = true
 				out = append(out, v)
@@ -188,4 +188,22 @@ func DuplicateKeys(doc []byte) []Violation {
 // escapePointer escapes a key for a JSON pointer (RFC 6901: ~ as ~0, / as ~1).
 func escapePointer(k string) string {
 	return strings.ReplaceAll(strings.ReplaceAll(k, "~", "~0"), "/", "~1")
+}
+
+// patternNames says in words what the schemas' patterns accept, so that a
+// violation names the expected form rather than a regular expression.
+var patternNames = map[string]string{
+	`^[0-9]{4}-[0-9]{2}-[0-9]{2}[Tt][0-9]{2}:[0-9]{2}:[0-9]{2}(\.[0-9]+)?([Zz]|[+-][0-9]{2}:[0-9]{2})$`: "an RFC 3339 date-time such as 2026-03-01T12:00:00Z or 2026-03-01T12:00:00+00:00",
+	`^[0-9a-f]{7,64}$`: "a commit id: 7 to 64 lower-case hex digits",
+}
+
+func plainMessage(msg string) string {
+	const prefix = "does not match pattern "
+	if p, ok := strings.CutPrefix(msg, prefix); ok {
+		p = strings.ReplaceAll(strings.TrimSuffix(strings.TrimPrefix(p, "'"), "'"), `\\`, `\`)
+		if name, ok := patternNames[p]; ok {
+			return "is not " + name
+		}
+	}
+	return msg
 }

@@ -51,6 +51,16 @@ func openLocation(loc string) (registry.Store, error) {
 	return registry.OpenLocal(strings.TrimPrefix(loc, "file://"))
 }
 
+// isLocalLocation reports whether openLocation opens loc as a local
+// directory.
+func isLocalLocation(loc string) bool {
+	switch {
+	case strings.HasPrefix(loc, "gs://"), strings.HasPrefix(loc, "oci://"), strings.HasPrefix(loc, "http://"), strings.HasPrefix(loc, "https://"):
+		return false
+	}
+	return !looksLikeRegistry(loc)
+}
+
 // looksLikeRegistry applies the container tools' rule for the first
 // component of an image name (a domain has a '.' or ':' or is localhost)
 // to a location that is not an existing local path.

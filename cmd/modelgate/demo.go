@@ -3,7 +3,10 @@ package main
 import (
 	"bytes"
 	"context"
+	"crypto/sha256"
+	"encoding/hex"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"io"
 	"os"
@@ -18,6 +21,7 @@ import (
 	"modelgate/internal/demo"
 	"modelgate/internal/errkind"
 	"modelgate/internal/policy"
+	"modelgate/internal/registry"
 	"modelgate/internal/release"
 	"modelgate/policies"
 )
@@ -28,7 +32,7 @@ type demoOptions struct {
 }
 
 func (o *demoOptions) AddFlags(cmd *cobra.Command) {
-	cmd.Flags().StringVar(&o.Work, "work", "", "where to write the generated model directories and holdouts (default: a demo folder beside the default store)")
+	cmd.Flags().StringVar(&o.Work, "work", "", "where to write the generated model directories and holdouts (it holds the demo's private keys; default: DIR.demo beside a local store DIR, else a folder in the user's data directory named after the store)")
 	cmd.Flags().Uint64Var(&o.Seed, "seed", demo.DefaultConfig().Seed, "seed of the generated podcast network")
 }
 
@@ -66,11 +70,10 @@ func runDemo(ctx context.Context, g *globals, o *demoOptions) error {
 	start := time.Now()
 	work := o.Work
 	if work == "" {
-		d, err := defaultStoreDir()
-		if err != nil {
+		var err error
+		if work, err = g.defaultDemoWork(); err != nil {
 			return err
 		}
-		work = filepath.Join(filepath.Dir(d), "demo")
 	}
 	if err := clearWork(work); err != nil {
 		return err
@@ -119,14 +122,56 @@ func runDemo(ctx context.Context, g *globals, o *demoOptions) error {
 	fmt.Fprintln(w)
 	w.Write(story.Bytes())
 	fmt.Fprintf(w, "\nDemo done in %.1fs.\n", time.Since(start).Seconds())
+	mg := "modelgate"
+	if loc, err := g.storeLocation(); err == nil {
+		if d, err := defaultStoreDir(); err != nil || loc != d {
+			mg += " --store " + shellQuote(loc)
+		}
+	}
+	ls, verify := mg+" ls", mg+" verify"
+	if _, err := store.Repositories(ctx); errors.Is(err, registry.ErrNoCatalog) {
+		ls, verify = mg+" ls promo-scorer", mg+" verify promo-scorer listener-encoder promo-holdout"
+	}
 	fmt.Fprintln(w, "\nTry:")
-	fmt.Fprintln(w, "  modelgate ls")
-	fmt.Fprintln(w, "  modelgate show promo-scorer:cand-better")
-	fmt.Fprintln(w, "  modelgate diff promo-scorer:baseline promo-scorer:cand-shuffled-vocab")
-	fmt.Fprintln(w, "  modelgate score promo-scorer:prod --holdout promo-holdout:v1 --out predictions.csv")
-	fmt.Fprintln(w, "  modelgate verify")
-	fmt.Fprintln(w, "  modelgate log promo-scorer:prod --policy "+filepath.Join(work, "policies", "promo-scorer.yaml"))
+	fmt.Fprintln(w, "  "+ls)
+	fmt.Fprintln(w, "  "+mg+" show promo-scorer:cand-better")
+	fmt.Fprintln(w, "  "+mg+" diff promo-scorer:baseline promo-scorer:cand-shuffled-vocab")
+	fmt.Fprintln(w, "  "+mg+" score promo-scorer:prod --holdout promo-holdout:v1 --out predictions.csv")
+	fmt.Fprintln(w, "  "+verify)
+	fmt.Fprintln(w, "  "+mg+" log promo-scorer:prod --policy "+shellQuote(filepath.Join(work, "policies", "promo-scorer.yaml")))
 	return nil
+}
+
+// defaultDemoWork is the demo's work folder when --work is not given: it
+// holds private keys, so it belongs to the store it was made for — beside
+// the default store "demo", beside a local store DIR "DIR.demo", and for a
+// remote store a folder in the user's data directory named after it.
+func (g *globals) defaultDemoWork() (string, error) {
+	loc, err := g.storeLocation()
+	if err != nil {
+		return "", err
+	}
+	def, err := defaultStoreDir()
+	if err != nil {
+		return "", err
+	}
+	switch {
+	case loc == def:
+		return filepath.Join(filepath.Dir(def), "demo"), nil
+	case isLocalLocation(loc):
+		dir := filepath.Clean(strings.TrimPrefix(loc, "file://"))
+		return dir + ".demo", nil
+	}
+	sum := sha256.Sum256([]byte(loc))
+	return filepath.Join(filepath.Dir(def), "demo-"+hex.EncodeToString(sum[:6])), nil
+}
+
+// shellQuote quotes s for a POSIX shell when it needs quoting.
+func shellQuote(s string) string {
+	if s != "" && strings.Trim(s, "abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789-_./:@=+,") == "" {
+		return s
+	}
+	return "'" + strings.ReplaceAll(s, "'", `'\''`) + "'"
 }
 
 // clearWork empties a previous demo folder (one holding scenario.json) and

@@ -42,6 +42,26 @@ func TestDemo(t *testing.T) {
 		t.Errorf("listener-encoder:prod = %q, v1 = %q", tags["listener-encoder:prod"], tags["listener-encoder:v1"])
 	}
 	mustMG(t, store, "verify")
+	// show lists what the story wrote about the promoted candidate: its
+	// passing report for promo-scorer:prod, two approvals, the release.
+	var d struct {
+		Referrers []struct{ Kind, Target, Verdict, Signer string }
+	}
+	if err := json.Unmarshal([]byte(mustMG(t, store, "show", "promo-scorer:cand-better", "--json").stdout), &d); err != nil {
+		t.Fatal(err)
+	}
+	count := map[string]int{}
+	for _, r := range d.Referrers {
+		if r.Target == "promo-scorer:prod" && r.Signer != "" && (r.Kind != "report" || r.Verdict == "pass") {
+			count[r.Kind]++
+		}
+	}
+	if count["report"] < 1 || count["approval"] < 2 || count["release"] < 1 {
+		t.Errorf("show lists %+v; want a passing signed report, two approvals and a release record for promo-scorer:prod", d.Referrers)
+	}
+	if out := mustMG(t, store, "show", "promo-scorer:cand-better").stdout; !strings.Contains(out, "reports, approvals and records:") {
+		t.Errorf("show prints no reports and approvals:\n%s", out)
+	}
 	before := countBlobs(t, store)
 	mustMG(t, store, "demo", "--work", work)
 	if after := countBlobs(t, store); after != before {
@@ -140,4 +160,28 @@ func TestGateCommand(t *testing.T) {
 		}
 	}
 	mustMG(t, store, "verify")
+}
+
+// TestDemoWorkBelongsToItsStore: demo --store DIR keeps its work folder
+// (private keys included) beside DIR, not beside the default store, and its
+// "Try:" lines name the store.
+func TestDemoWorkBelongsToItsStore(t *testing.T) {
+	if testing.Short() {
+		t.Skip("runs the demo")
+	}
+	data := t.TempDir()
+	t.Setenv("XDG_DATA_HOME", data)
+	store := filepath.Join(t.TempDir(), "podcast store")
+	r := mustMG(t, "", "demo", "--store", store)
+	if _, err := os.Stat(filepath.Join(store+".demo", "keys")); err != nil {
+		t.Errorf("the work folder is not beside the store: %v", err)
+	}
+	if _, err := os.Stat(filepath.Join(data, "modelgate", "demo")); err == nil {
+		t.Errorf("demo --store wrote the default store's work folder %s", filepath.Join(data, "modelgate", "demo"))
+	}
+	for _, want := range []string{"modelgate --store '" + store + "' show promo-scorer:cand-better", "modelgate --store '" + store + "' verify"} {
+		if !strings.Contains(r.stdout, want) {
+			t.Errorf("the Try lines lack %q:\n%s", want, r.stdout[strings.LastIndex(r.stdout, "Try:"):])
+		}
+	}
 }

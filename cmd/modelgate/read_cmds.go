@@ -238,6 +238,7 @@ func printDescription(g *globals, d *artifact.Description) {
 			fmt.Fprintf(w, "  %-14s %s\n", kv[0]+":", kv[1])
 		}
 	}
+	printReferrers(w, d)
 	printBlobsAndAnnotations(w, d)
 }
 
@@ -285,6 +286,7 @@ func printOther(g *globals, d *artifact.Description) {
 			}
 		}
 	}
+	printReferrers(w, d)
 	printBlobsAndAnnotations(w, d)
 }
 
@@ -427,4 +429,35 @@ func runVerify(ctx context.Context, g *globals, names []string) error {
 // authorised when the catalog is limited to other accounts).
 func noCatalogErr(err error, usage string) error {
 	return errkind.Wrap(errkind.Of(err), fmt.Errorf("%w\n  name a repository instead: modelgate %s", err, usage))
+}
+
+// printReferrers lists the reports, approvals and records about d.
+func printReferrers(w io.Writer, d *artifact.Description) {
+	if len(d.Referrers) == 0 {
+		fmt.Fprintln(w, "\nreports, approvals and records: none")
+		return
+	}
+	fmt.Fprintln(w, "\nreports, approvals and records:")
+	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+	fmt.Fprintln(tw, "  KIND\tDIGEST\tFOR\tRESULT\tSIGNED BY\tCREATED")
+	for _, r := range d.Referrers {
+		result := r.Verdict
+		switch {
+		case r.Shard != "":
+			result = "shard " + r.Shard
+		case r.Action != "":
+			result = r.Action
+		case r.Kind == "approval":
+			result = "approves"
+		}
+		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\t%s\t%s\n", r.Kind, shortDigest(r.Digest), dash(r.Target), dash(result), dash(r.Signer), dash(r.Created))
+	}
+	tw.Flush()
+}
+
+func dash(s string) string {
+	if s == "" {
+		return "-"
+	}
+	return s
 }

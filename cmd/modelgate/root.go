@@ -102,9 +102,11 @@ candidate may replace what a tag serves now.
 The store is --store, else $` + EnvStore + `, else a local OCI image layout in
 $XDG_DATA_HOME/modelgate/store (default ~/.local/share/modelgate/store).
 
-Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
-3 conflict (the tag moved); 4 not authorised; 5 integrity (store damage);
-70 internal error; 130 / 143 stopped by SIGINT / SIGTERM.`,
+Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input
+(missing or unsuitable files, references or reports); 3 conflict (the tag
+moved); 4 not authorised (credentials, signatures, approvals); 5 integrity
+(bytes that do not match their digest or signature); 70 internal error (a
+bug or an environment failure); 130 / 143 stopped by SIGINT / SIGTERM.`,
 		Version:       version.Version,
 		SilenceUsage:  true,
 		SilenceErrors: true,
@@ -113,7 +115,7 @@ Exit codes: 0 ok or gate passed; 1 gate failed; 2 usage or bad input;
 	root.SetErr(g.Stderr)
 	root.SetIn(g.Stdin)
 	pf := root.PersistentFlags()
-	pf.StringVar(&g.Store, "store", "", "store location: a local directory (default $"+EnvStore+" or the embedded default)")
+	pf.StringVar(&g.Store, "store", "", "store location: a local directory (DIR, file://DIR), an OCI registry (oci://HOST[:PORT]/PREFIX or HOST[:PORT]/PREFIX) or a GCS bucket prefix (gs://BUCKET/PREFIX); default $"+EnvStore+", else the embedded default directory")
 	pf.BoolVar(&g.JSON, "json", false, "print machine-readable JSON on stdout")
 	pf.BoolVarP(&g.Quiet, "quiet", "q", false, "no progress or log lines on stderr")
 	pf.StringVar(&g.CPUProfile, "cpuprofile", "", "write a CPU profile of the command to this file (for performance work)")

@@ -3,6 +3,7 @@ package artifact
 import (
 	"context"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"math"
 	"sort"
@@ -55,6 +56,62 @@ type Description struct {
 	Subject string `json:"subject,omitempty"`
 	// Holdout is a holdout's summary (its config blob, verified).
 	Holdout *HoldoutInfo `json:"holdout,omitempty"`
+	// Referrers are the artifacts about this one in its repository (gate
+	// reports, approvals, release and freeze records), oldest first, as
+	// their manifests' annotations describe them (not verified here:
+	// promote and log verify signatures).
+	Referrers []ReferrerRow `json:"referrers"`
+}
+
+// ReferrerRow is one artifact whose subject is the described one.
+type ReferrerRow struct {
+	Digest  string `json:"digest"`
+	Kind    string `json:"kind"`
+	Created string `json:"created,omitempty"`
+	// Target is the tag a report, approval or record is for.
+	Target string `json:"target,omitempty"`
+	// Verdict is a gate report's verdict; Shard marks a shard's partial
+	// results.
+	Verdict string `json:"verdict,omitempty"`
+	Shard   string `json:"shard,omitempty"`
+	// Signer is the key id that signed it, when it is signed.
+	Signer string `json:"signer,omitempty"`
+	// Action is a release record's kind (promote, rollback, …).
+	Action string `json:"action,omitempty"`
+}
+
+// The annotations the packages that write referrers set (internal/checks,
+// internal/release, internal/freeze); read here by name only, to describe.
+const (
+	annTarget  = "dev.modelgate.target"
+	annVerdict = "dev.modelgate.verdict"
+	annShard   = "dev.modelgate.shard"
+	annSigner  = "dev.modelgate.signer.keyid"
+	annRelKind = "dev.modelgate.release.kind"
+)
+
+// referrersOf lists the artifacts about digest in repo, oldest first.
+func referrersOf(ctx context.Context, store registry.Store, repo string, digest v1.Hash) ([]ReferrerRow, error) {
+	ds, err := store.Referrers(ctx, repo, digest, "")
+	if err != nil {
+		if errors.Is(err, registry.ErrNotFound) {
+			return []ReferrerRow{}, nil
+		}
+		return nil, err
+	}
+	rows := []ReferrerRow{}
+	for _, d := range ds {
+		a := d.Annotations
+		rows = append(rows, ReferrerRow{Digest: d.Digest.String(), Kind: KindOf(d.ArtifactType), Created: a[AnnotationCreated],
+			Target: a[annTarget], Verdict: a[annVerdict], Shard: a[annShard], Signer: a[annSigner], Action: a[annRelKind]})
+	}
+	sort.SliceStable(rows, func(i, j int) bool {
+		if rows[i].Created != rows[j].Created {
+			return rows[i].Created < rows[j].Created
+		}
+		return rows[i].Digest < rows[j].Digest
+	})
+	return rows, nil
 }
 
 // BlobRow is one blob of an artifact.
@@ -92,6 +149,9 @@ func Describe(ctx context.Context, store registry.Store, ref registry.Ref) (*Des
 		d.TotalSize += b.Size
 	}
 	d.Tags = tagsOf(ctx, store, ref.Repository, a.Desc.Digest)
+	if d.Referrers, err = referrersOf(ctx, store, ref.Repository, a.Desc.Digest); err != nil {
+		return nil, err
+	}
 	if l.Spec == nil {
 		return d, nil
 	}
@@ -413,6 +473,10 @@ func describeOther(ctx context.Context, store registry.Store, ref registry.Ref, 
 		d.TotalSize += b.Size
 	}
 	d.Tags = tagsOf(ctx, store, ref.Repository, a.Desc.Digest)
+	var err error
+	if d.Referrers, err = referrersOf(ctx, store, ref.Repository, a.Desc.Digest); err != nil {
+		return nil, err
+	}
 	if m.Config.MediaType == MediaTypeHoldoutInfo {
 		raw, err := ReadBlob(ctx, store, a.Repository, m.Config, 1<<20)
 		if err != nil {

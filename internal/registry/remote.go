@@ -312,7 +312,7 @@ func (r *Remote) classify(err error, status int) error {
 	case errors.Is(err, context.Canceled), errors.Is(err, context.DeadlineExceeded):
 		return err
 	case status == http.StatusUnauthorized || status == http.StatusForbidden:
-		return errkind.Wrap(errkind.Unauthorized, err)
+		return r.authError(err, te, status)
 	case status == http.StatusNotFound:
 		return errkind.New(errkind.BadInput, "%w: %w", ErrNotFound, err)
 	case status == http.StatusRequestTimeout || status == http.StatusTooManyRequests || status >= 500:
@@ -323,6 +323,35 @@ func (r *Remote) classify(err error, status int) error {
 		return transient(err) // no answer: the network or the server went away
 	}
 	return err
+}
+
+// authError turns a 401 or 403 into a plain "authentication failed" or
+// "access denied" error for this registry (errkind.Unauthorized), keeping
+// what was being done but not the registry's raw error details.
+func (r *Remote) authError(err error, te *transport.Error, status int) error {
+	doing := err.Error()
+	if te != nil {
+		if i := strings.Index(doing, te.Error()); i > 0 {
+			doing = doing[:i]
+		}
+	}
+	// Drop the request line ("GET http://…", "HEAD /v2/…") the context ends with.
+	for _, m := range []string{"GET ", "HEAD ", "PUT ", "POST ", "PATCH ", "DELETE "} {
+		if i := strings.LastIndex(doing, ": "+m); i >= 0 {
+			doing = doing[:i]
+		} else if strings.HasPrefix(doing, m) {
+			doing = ""
+		}
+	}
+	doing = strings.TrimSuffix(strings.TrimSpace(doing), ":")
+	if doing != "" {
+		doing = " (" + doing + ")"
+	}
+	host := r.reg.RegistryStr()
+	if status == http.StatusForbidden {
+		return errkind.New(errkind.Unauthorized, "access denied by %s%s: the account has no permission for this repository (HTTP 403)", host, doing)
+	}
+	return errkind.New(errkind.Unauthorized, "authentication failed for %s%s: check %s and %s, or your container tools' login for %s (HTTP 401)", host, doing, EnvRegistryUser, EnvRegistryPassword, host)
 }
 
 // call sends one request to the repository full name ("" = catalog) and
@@ -778,7 +807,7 @@ func (r *Remote) Repositories(ctx context.Context) ([]string, error) {
 	}
 	all, err := remote.Catalog(ctx, r.reg, remote.WithTransport(c.Transport))
 	if err != nil {
-		return nil, r.catalogError(err)
+		return nil, r.catalogError(ctx, err)
 	}
 	repos := []string{}
 	for _, full := range all {
@@ -800,9 +829,10 @@ func (r *Remote) Repositories(ctx context.Context) ([]string, error) {
 // catalogError classifies a failed catalog listing: a registry that
 // answers it 404 or 405, or with the distribution spec's UNSUPPORTED code,
 // does not list repositories (ErrNoCatalog, bad input: ask by name); one
-// that refuses it 401 or 403 limits it to other accounts (ErrNoCatalog,
-// not authorised). Anything else is classified as any other request.
-func (r *Remote) catalogError(err error) error {
+// that refuses it 401 or 403 while its base endpoint accepts our
+// credentials limits it to other accounts (ErrNoCatalog, not authorised);
+// wrong credentials are an authentication failure. Anything else is classified as any other request.
+func (r *Remote) catalogError(ctx context.Context, err error) error {
 	var te *transport.Error
 	if errors.As(err, &te) {
 		unsupported := te.StatusCode == http.StatusNotFound || te.StatusCode == http.StatusMethodNotAllowed
@@ -814,6 +844,13 @@ func (r *Remote) catalogError(err error) error {
 		host := r.reg.RegistryStr()
 		switch {
 		case te.StatusCode == http.StatusUnauthorized || te.StatusCode == http.StatusForbidden:
+			// Wrong credentials are refused everywhere; a catalog kept
+			// for other accounts is refused while the base endpoint answers.
+			if resp, perr := r.call(ctx, "", http.MethodGet, "/v2/", nil, nil, 0, http.StatusOK); perr != nil {
+				return perr
+			} else {
+				resp.Body.Close()
+			}
 			return errkind.New(errkind.Unauthorized, "%w: %s refuses its catalog to this account (HTTP %d)", ErrNoCatalog, host, te.StatusCode)
 		case unsupported:
 			return errkind.New(errkind.BadInput, "%w: %s has its catalog endpoint switched off (HTTP %d)", ErrNoCatalog, host, te.StatusCode)

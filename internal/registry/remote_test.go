@@ -1,6 +1,7 @@
 package registry_test
 
 import (
+	"errors"
 	"fmt"
 	"io"
 	"log"
@@ -15,6 +16,7 @@ import (
 	"github.com/google/go-containerregistry/pkg/authn"
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
 
+	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
 	"modelgate/internal/registry/storetest"
 )
@@ -111,8 +113,52 @@ func TestRemoteDockerRegistryRefusesBadCredentials(t *testing.T) {
 	if err == nil {
 		t.Fatal("listing with wrong credentials succeeded")
 	}
-	if !strings.Contains(err.Error(), "401") && !strings.Contains(strings.ToLower(err.Error()), "unauthorized") {
-		t.Errorf("error does not say unauthorised: %v", err)
+	if !strings.Contains(err.Error(), "authentication failed for "+addr) || strings.Contains(err.Error(), "map[") || errkind.Of(err) != errkind.Unauthorized {
+		t.Errorf("a wrong password: %v (kind %v); want a plain \"authentication failed for %s\", not authorised", err, errkind.Of(err), addr)
+	}
+}
+
+// TestRemoteWrongPassword: a registry that checks basic auth (the scheme
+// of RFC 7617, answered 401 with a Basic challenge as docker-registry's
+// htpasswd mode does) refuses wrong credentials; every operation, the
+// catalog included, says "authentication failed for HOST" (exit 4) without
+// the registry's raw error details, and a catalog refused to good
+// credentials is a registry that does not list, not a failed login.
+func TestRemoteWrongPassword(t *testing.T) {
+	inner := storetest.NoCatalog(ggcrregistry.New(ggcrregistry.Logger(log.New(io.Discard, "", 0))))
+	srv := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		if u, p, ok := r.BasicAuth(); !ok || u != "ci" || p != "right" {
+			w.Header().Set("WWW-Authenticate", `Basic realm="podcasts"`)
+			w.Header().Set("Content-Type", "application/json")
+			w.WriteHeader(http.StatusUnauthorized)
+			_, _ = w.Write([]byte(`{"errors":[{"code":"UNAUTHORIZED","message":"authentication required","detail":[{"Type":"repository","Name":"podcasts/shows","Action":"pull"}]}]}`))
+			return
+		}
+		if r.URL.Path == "/v2/_catalog" {
+			w.WriteHeader(http.StatusForbidden)
+			return
+		}
+		inner.ServeHTTP(w, r)
+	}))
+	t.Cleanup(srv.Close)
+	host := strings.TrimPrefix(srv.URL, "http://")
+	open := func(pw string) *registry.Remote {
+		return openRemote(t, host+"/podcasts", registry.WithRemoteAuth(authn.FromConfig(authn.AuthConfig{Username: "ci", Password: pw})))
+	}
+	bad := open("wrong")
+	ctx := t.Context()
+	_, tagsErr := bad.Tags(ctx, "shows")
+	_, reposErr := bad.Repositories(ctx)
+	blobErr := bad.PutBlob(ctx, "shows", storetest.NewBlob(1, 10).Digest, 10, strings.NewReader("0123456789"))
+	for what, err := range map[string]error{"tags": tagsErr, "catalog": reposErr, "blob upload": blobErr} {
+		if err == nil || !strings.Contains(err.Error(), "authentication failed for "+host) || strings.Contains(err.Error(), "map[") ||
+			errkind.Of(err) != errkind.Unauthorized || errors.Is(err, registry.ErrNoCatalog) {
+			t.Errorf("%s with a wrong password: %v (kind %v); want a plain authentication failure, exit 4", what, err, errkind.Of(err))
+		}
+	}
+	_, err := open("right").Repositories(ctx)
+	if !errors.Is(err, registry.ErrNoCatalog) || errkind.Of(err) != errkind.Unauthorized {
+		t.Errorf("a catalog refused to good credentials: %v (kind %v); want ErrNoCatalog, not authorised", err, errkind.Of(err))
 	}
 }
 
