@@ -1,6 +1,7 @@
 package main
 
 import (
+	"context"
 	"encoding/binary"
 	"encoding/json"
 	"fmt"
@@ -9,6 +10,9 @@ import (
 	"strings"
 	"syscall"
 	"testing"
+
+	"modelgate/internal/artifact"
+	"modelgate/internal/registry"
 )
 
 // catCase is one malformed input of the bad-input catalogue: a command
@@ -188,6 +192,26 @@ rules:
 	notParquet := write("garbage.parquet", "PAR1 this is not a parquet file PAR1")
 	csvHoldout := write("holdout.csv", "row_id,items\n1,show-003\n")
 
+	longSlice := write("long-slice.jsonl", `{"row_id":1,"items":["show-003"],"values":[1],"label":1,"listener_tenure":[0.1],"show_age":[0.2],"slice":"`+strings.Repeat("s", 1<<20)+`"}`+"\n")
+	// A store holding such a holdout, written past push's checks (as an
+	// older modelgate or another tool could): verify must report it.
+	unreadable := filepath.Join(t.TempDir(), "unreadable-store")
+	{
+		ls, err := registry.OpenLocal(unreadable)
+		if err != nil {
+			t.Fatal(err)
+		}
+		info, _ := json.Marshal(artifact.HoldoutInfo{SchemaVersion: 1, Format: "jsonl", File: "long-slice.jsonl", Rows: 1, HasLabels: true, Positives: 1,
+			Slices: map[string]int64{strings.Repeat("s", 1<<20): 1}, Nonzeros: 1})
+		raw, _ := os.ReadFile(longSlice)
+		ref, _ := registry.ParseRef("long-holdout:v1", false)
+		if _, err := artifact.PushArtifact(context.Background(), ls, ref, artifact.ArtifactType("holdout"),
+			artifact.NewBlob(artifact.MediaTypeHoldoutInfo, info, nil), []artifact.Blob{artifact.NewBlob(artifact.MediaTypeHoldoutJSONL, raw, nil)},
+			nil, map[string]string{artifact.AnnotationKind: "holdout"}, artifact.Options{}); err != nil {
+			t.Fatal(err)
+		}
+	}
+
 	// Policies, each wrong in one way.
 	policySyntax := write("syntax.yaml", "schemaVersion: 1\nname: x\nrules:\n  - target: tiny-scorer:prod\n    kind: scorer\n   holdout: [\n")
 	policySchema := write("schema.yaml", "schemaVersion: 1\nname: x\nrules:\n  - target: tiny-scorer:prod\n    kind: scorer\n    holdout: tiny-holdout:v1\n    checks:\n      holdout: {margin: -1, colour: red}\n")
@@ -254,6 +278,8 @@ rules:
 		{name: "holdout items and values of different lengths", args: []string{"push", "--kind", "holdout", unpaired, "bad-holdout:v1"}, code: 2, want: []string{"unpaired.jsonl", "row 2", "values"}},
 		{name: "holdout negative value", args: []string{"push", "--kind", "holdout", negValue, "bad-holdout:v1"}, code: 2, want: []string{"negative.jsonl", "row 1"}},
 		{name: "holdout field given twice", args: []string{"push", "--kind", "holdout", dupField, "bad-holdout:v1"}, code: 2, want: []string{"dup-field.jsonl", "row 1", "label"}},
+		{name: "holdout slice name of 1 MiB", args: []string{"push", "--kind", "holdout", longSlice, "bad-holdout:v1"}, code: 2, want: []string{"long-slice.jsonl", "summary", "slice"}},
+		{name: "verify: a stored holdout summary over the readers' limit", store: unreadable, args: []string{"verify"}, code: 5, want: []string{"long-holdout", "over the 1048576 bytes modelgate reads"}, stdoutOK: true},
 		{name: "holdout not Parquet", args: []string{"push", "--kind", "holdout", notParquet, "bad-holdout:v1"}, code: 2, want: []string{"garbage.parquet", "Parquet"}},
 		{name: "holdout in CSV", args: []string{"push", "--kind", "holdout", csvHoldout, "bad-holdout:v1"}, code: 2, want: []string{"holdout.csv", "CSV"}},
 		{name: "score: holdout row with unpaired values", args: []string{"score", "tiny-scorer:v1", "--holdout", unpaired, "--out", filepath.Join(dir, "p.jsonl")}, code: 2, want: []string{"unpaired.jsonl", "row 2"}},

@@ -478,7 +478,7 @@ func describeOther(ctx context.Context, store registry.Store, ref registry.Ref, 
 		return nil, err
 	}
 	if m.Config.MediaType == MediaTypeHoldoutInfo {
-		raw, err := ReadBlob(ctx, store, a.Repository, m.Config, 1<<20)
+		raw, err := ReadBlob(ctx, store, a.Repository, m.Config, MaxHoldoutInfoSize)
 		if err != nil {
 			return nil, err
 		}

@@ -27,6 +27,12 @@ import (
 // holdout holds, computed when it was pushed.
 const MediaTypeHoldoutInfo types.MediaType = "application/vnd.modelgate.holdout.v1+json"
 
+// MaxHoldoutInfoSize is the largest holdout summary (config blob) any
+// reader accepts; push refuses a holdout whose summary would be larger (a
+// slice column of very long or very many values), and verify reports a
+// stored one as damage.
+const MaxHoldoutInfoSize = 1 << 20
+
 // HoldoutInfo describes a holdout artifact (its config blob).
 type HoldoutInfo struct {
 	SchemaVersion int    `json:"schemaVersion"`
@@ -113,6 +119,18 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress fun
 	if len(info.Slices) == 1 && info.Slices[""] > 0 {
 		info.Slices = nil
 	}
+	// The summary is stored as the artifact's config: it must be one that
+	// every reader accepts.
+	if cfg, err := json.Marshal(info); err != nil {
+		return nil, err
+	} else if len(cfg) > MaxHoldoutInfoSize {
+		longest := 0
+		for k := range info.Slices {
+			longest = max(longest, len(k))
+		}
+		return nil, errkind.New(errkind.BadInput, "holdout %s: its summary would be %d bytes, over the %d bytes modelgate reads back: the slice column has %d distinct values, the longest %d bytes; use fewer or shorter slice names",
+			path, len(cfg), MaxHoldoutInfoSize, len(info.Slices), longest)
+	}
 	return info, nil
 }
 
@@ -171,6 +189,7 @@ func PushHoldout(ctx context.Context, store registry.Store, path string, ref reg
 	if err != nil {
 		return nil, err
 	}
+
 	config := NewBlob(MediaTypeHoldoutInfo, cfg, nil)
 	ann := map[string]string{AnnotationKind: "holdout", AnnotationName: info.File}
 	res, err := PushArtifact(ctx, store, ref, ArtifactType("holdout"), config, []Blob{layer}, nil, ann, opts)
@@ -273,7 +292,7 @@ func FetchHoldout(ctx context.Context, store registry.Store, ref registry.Ref) (
 		return nil, errkind.New(errkind.BadInput, "%s is a %q artifact, not a holdout", ref, a.Manifest.ArtifactType)
 	}
 	h := &Holdout{Artifact: a}
-	raw, err := ReadBlob(ctx, store, a.Repository, a.Manifest.Config, 1<<20)
+	raw, err := ReadBlob(ctx, store, a.Repository, a.Manifest.Config, MaxHoldoutInfoSize)
 	if err != nil {
 		return nil, err
 	}

@@ -144,6 +144,18 @@ func layerLimit(mt types.MediaType) int64 {
 	return MaxBlobSize
 }
 
+// ReadLimit is the largest blob of media type mt that modelgate's
+// readers accept (MaxBlobSize for types without a limit of their own).
+func ReadLimit(mt types.MediaType) int64 {
+	switch mt {
+	case MediaTypeSpec:
+		return modeldir.MaxSpecSize
+	case MediaTypeHoldoutInfo:
+		return MaxHoldoutInfoSize
+	}
+	return layerLimit(mt)
+}
+
 var safeName = regexp.MustCompile(`^[A-Za-z0-9_][A-Za-z0-9_.-]{0,127}$`)
 
 // ModelFiles reads a model artifact's blobs back into the files of its

@@ -118,6 +118,17 @@ func verify(ctx context.Context, store registry.Store, repos []string, scrub boo
 					rep.add(registry.SeverityDamage, where, "blob %s (%s) missing: %v", l.Digest, l.MediaType, err)
 				} else if size != l.Size {
 					rep.add(registry.SeverityDamage, where, "blob %s is %d bytes, the manifest says %d", l.Digest, size, l.Size)
+				} else if lim := ReadLimit(l.MediaType); size > lim {
+					rep.add(registry.SeverityDamage, where, "blob %s (%s) is %d bytes, over the %d bytes modelgate reads: no command can read it", l.Digest, l.MediaType, size, lim)
+				}
+			}
+			if m.Config.MediaType == MediaTypeHoldoutInfo && m.Config.Size <= MaxHoldoutInfoSize {
+				// The summary every holdout reader parses first.
+				if raw, err := ReadBlob(ctx, store, repo, m.Config, MaxHoldoutInfoSize); err == nil {
+					var info HoldoutInfo
+					if err := json.Unmarshal(raw, &info); err != nil {
+						rep.add(registry.SeverityDamage, where, "holdout summary %s is not valid: %v", m.Config.Digest, err)
+					}
 				}
 			}
 			k := KindOf(m.ArtifactType)

@@ -493,7 +493,7 @@ func (s *Server) artifactPage(r *http.Request) (*view, error) {
 		}
 		d.Model, d.ModelProblem = m, problem
 	case "holdout":
-		raw, err := artifact.ReadBlob(ctx, s.store, a.Repository, a.Manifest.Config, 1<<20)
+		raw, err := artifact.ReadBlob(ctx, s.store, a.Repository, a.Manifest.Config, artifact.MaxHoldoutInfoSize)
 		if err != nil {
 			return nil, err
 		}
