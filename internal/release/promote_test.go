@@ -245,3 +245,18 @@ func TestApproveNeedsAReport(t *testing.T) {
 		t.Errorf("approval statement: %+v %+v", st, pred)
 	}
 }
+
+// TestApproveShardResultsAreNotDamage: a shard's partial results share the
+// gate report's artifactType; approving a candidate that has only those is
+// a missing report (not authorised, exit 4), not store damage (exit 5),
+// and the refusal says to merge the shards.
+func TestApproveShardResultsAreNotDamage(t *testing.T) {
+	e := newEnv(t, envOptions{required: 1})
+	e.mustPromote(e.models[0])
+	sr := &checks.ShardResult{Candidate: e.models[1].String(), Target: prodRef.String(), Shard: 0, Of: 2}
+	if _, err := checks.PushShard(e.ctx, e.store, testRepo, sr); err != nil {
+		t.Fatal(err)
+	}
+	_, err := ApproveCheck(e.ctx, e.store, e.models[1], prodRef, e.pol)
+	wantRefusal(t, err, errkind.Unauthorized, "shard's partial results", "gate --merge")
+}

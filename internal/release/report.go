@@ -37,6 +37,7 @@ type GateReportStatement struct {
 // it). Declared here so that release does not depend on the gate.
 const (
 	mediaTypeReport         = "application/vnd.modelgate.report.v1+json"
+	mediaTypeShard          = "application/vnd.modelgate.shard.v1+json" // a shard's partial sums
 	mediaTypeReportEnvelope = MediaTypeEnvelope
 	verdictPass             = "pass"
 )
@@ -154,8 +155,17 @@ func checkReport(ctx context.Context, store registry.Store, repo string, d v1.Ha
 		rc.Why, rc.integrity = "unreadable: "+err.Error(), errkind.Is(err, errkind.Integrity)
 		return rc
 	}
-	if a.Manifest.Config.MediaType != mediaTypeReport {
-		rc.Why, rc.integrity = "not a gate report", true
+	switch a.Manifest.Config.MediaType {
+	case mediaTypeReport:
+	case mediaTypeShard:
+		// A shard's partial sums share the report artifactType: not a
+		// verdict, and not damage.
+		rc.Why = "a shard's partial results, not a gate report: merge the shards with `modelgate gate --merge`"
+		return rc
+	default:
+		// Another referrer under the report artifactType: nothing that
+		// fails its digest, so not damage.
+		rc.Why = fmt.Sprintf("not a gate report (its config is %s)", a.Manifest.Config.MediaType)
 		return rc
 	}
 	raw, err := artifact.ReadBlob(ctx, store, repo, a.Manifest.Config, 64<<20)
