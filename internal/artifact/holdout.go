@@ -11,6 +11,7 @@ import (
 	"os"
 	"path/filepath"
 	"sort"
+	"strconv"
 	"strings"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
@@ -45,6 +46,48 @@ type HoldoutInfo struct {
 	Slices map[string]int64 `json:"slices,omitempty"`
 	// Nonzeros is the total number of (item, value) pairs.
 	Nonzeros int64 `json:"nonzeros"`
+	// NonzerosPerRow holds quantiles of the pairs per row, keyed like a
+	// model's stats.json ("q50", "q90", "q99", "q999"; numpy's default,
+	// Hyndman & Fan type 7). The gate slices and weights rows by them when
+	// there is no baseline to take them from. Absent in summaries written
+	// before it existed.
+	NonzerosPerRow map[string]float64 `json:"nonzerosPerRow,omitempty"`
+}
+
+// HoldoutQuantiles are the quantiles a holdout summary records of the
+// pairs per row.
+var HoldoutQuantiles = []float64{0.5, 0.9, 0.99, 0.999}
+
+// countQuantiles computes type-7 quantiles (numpy's default) of a sample
+// given as a histogram of integer values (value → rows), keyed "q50" etc.
+func countQuantiles(hist map[int]int64, rows int64) map[string]float64 {
+	if rows == 0 {
+		return nil
+	}
+	vals := make([]int, 0, len(hist))
+	for v := range hist {
+		vals = append(vals, v)
+	}
+	sort.Ints(vals)
+	// at returns the k-th smallest (0-based) value.
+	at := func(k int64) float64 {
+		for _, v := range vals {
+			if k < hist[v] {
+				return float64(v)
+			}
+			k -= hist[v]
+		}
+		return float64(vals[len(vals)-1])
+	}
+	out := map[string]float64{}
+	for _, q := range HoldoutQuantiles {
+		h := q * float64(rows-1)
+		lo := int64(h)
+		hi := min(lo+1, rows-1)
+		x := at(lo) + (h-float64(lo))*(at(hi)-at(lo))
+		out["q"+strings.ReplaceAll(strconv.FormatFloat(q*100, 'f', -1, 64), ".", "")] = x
+	}
+	return out
 }
 
 // structuralSpec is a stand-in model for reading a holdout without one:
@@ -92,6 +135,7 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress fun
 	defer r.Close()
 	info := &HoldoutInfo{SchemaVersion: 1, Format: format, File: filepath.Base(path), Slices: map[string]int64{}}
 	var f data.Frame
+	perRow := map[int]int64{}
 	for {
 		n, err := r.Read(&f, 8192)
 		if errors.Is(err, io.EOF) {
@@ -108,6 +152,7 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress fun
 				info.Positives++
 			}
 			info.Slices[f.Slices[i]]++
+			perRow[int(f.Indptr[i+1]-f.Indptr[i])]++
 		}
 		if progress != nil {
 			progress(Event{Phase: "scan", Name: path, Done: info.Rows, Total: r.Rows()})
@@ -119,6 +164,7 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress fun
 	if len(info.Slices) == 1 && info.Slices[""] > 0 {
 		info.Slices = nil
 	}
+	info.NonzerosPerRow = countQuantiles(perRow, info.Rows)
 	// The summary is stored as the artifact's config: it must be one that
 	// every reader accepts.
 	if cfg, err := json.Marshal(info); err != nil {

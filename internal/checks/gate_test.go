@@ -209,6 +209,11 @@ func TestFirstRelease(t *testing.T) {
 			}
 		}
 	}
+	// No baseline: the thresholds come from the holdout's summary, not
+	// from the candidate's stats.json.
+	if w := hc.Holdout.Weights; w == nil || w.Source != WeightsFromHoldout || w.From != rep.Holdout.Digest {
+		t.Errorf("first release weights %+v, want the holdout's summary (%s)", w, rep.Holdout.Digest)
+	}
 	if n != 4 || hc.Holdout.Test != nil {
 		t.Errorf("first release: %d threshold findings (want 4: log loss, NE, AUC, ECE), test %+v", n, hc.Holdout.Test)
 	}
@@ -456,7 +461,7 @@ func TestHoldoutSliceColumn(t *testing.T) {
 	var segW, segLoss, nzW, nzLoss float64
 	seen := 0
 	for _, s := range det.Slices {
-		wl := s.Candidate.WeightSum * s.Candidate.LogLoss
+		wl := s.Candidate.WeightSum * s.Candidate.WeightedLogLoss
 		if strings.HasPrefix(s.Name, "holdout slice ") {
 			seen++
 			v, err := strconv.Unquote(strings.TrimPrefix(s.Name, "holdout slice "))
@@ -484,9 +489,9 @@ func TestHoldoutSliceColumn(t *testing.T) {
 		w, wl float64
 	}{{"holdout slices", segRows, segW, segLoss}, {"nonzero slices", nzRows, nzW, nzLoss}} {
 		if g.rows != all.Rows || math.Abs(g.w-all.WeightSum) > 1e-9*all.WeightSum ||
-			math.Abs(g.wl-all.WeightSum*all.LogLoss) > 1e-9*all.WeightSum*all.LogLoss {
+			math.Abs(g.wl-all.WeightSum*all.WeightedLogLoss) > 1e-9*all.WeightSum*all.WeightedLogLoss {
 			t.Errorf("%s: %d rows, weight %.9g, weighted loss %.9g; all rows: %d, %.9g, %.9g",
-				g.name, g.rows, g.w, g.wl, all.Rows, all.WeightSum, all.WeightSum*all.LogLoss)
+				g.name, g.rows, g.w, g.wl, all.Rows, all.WeightSum, all.WeightSum*all.WeightedLogLoss)
 		}
 	}
 }

@@ -75,6 +75,7 @@ type sliceAcc struct {
 	cand, base *stats.Binary
 	paired     *stats.Paired
 	rc, rb     *stats.Recon
+	plain      plainLoss // unweighted per-row losses (weights.go)
 }
 
 // Holdout scores the candidate and the baseline on the same digest-pinned
@@ -135,7 +136,9 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		}
 		defer rb.Close()
 	}
-	// Slices by nonzero count, from the candidate's training statistics.
+	// Slices and weights by nonzero count, from the baseline or the
+	// holdout, never from the candidate (weights.go).
+	qstats, rw := quantileSource(base, hold)
 	type bound struct {
 		name  string
 		upper float64
@@ -143,10 +146,9 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	var bounds []bound
 	lower := ""
 	for _, q := range cfg.NonzeroQuantiles {
-		v, ok := NonzeroQuantile(cand.Loaded.Stats, q)
+		v, ok := NonzeroQuantile(qstats, q)
 		if !ok {
-			st.Findings = append(st.Findings, Finding{Status: StatusWarn, Code: "holdout.stats",
-				Message: fmt.Sprintf("the candidate's stats.json has no nonzerosPerRow quantile %g: rows are not sliced by it", q)})
+			st.Findings = append(st.Findings, missingQuantile(rw, q, "rows are not sliced by it"))
 			continue
 		}
 		if lower != "" && v <= bounds[len(bounds)-1].upper {
@@ -161,19 +163,21 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	}
 	anomaly := math.Inf(1)
 	if cfg.AnomalyQuantile > 0 {
-		if v, ok := NonzeroQuantile(cand.Loaded.Stats, cfg.AnomalyQuantile); ok {
+		if v, ok := NonzeroQuantile(qstats, cfg.AnomalyQuantile); ok {
 			anomaly = v
+			rw.AnomalyAbove, rw.AnomalyWeight = ptr(v), cfg.AnomalyWeight
 		} else {
-			st.Findings = append(st.Findings, Finding{Status: StatusWarn, Code: "holdout.stats",
-				Message: fmt.Sprintf("the candidate's stats.json has no nonzerosPerRow quantile %g: anomalous rows are not separated", cfg.AnomalyQuantile)})
+			st.Findings = append(st.Findings, missingQuantile(rw, cfg.AnomalyQuantile, "anomalous rows are not separated"))
 		}
 	}
 	weightQ := math.Inf(1)
 	if encoder && cfg.WeightQuantile > 0 {
-		if v, ok := NonzeroQuantile(cand.Loaded.Stats, cfg.WeightQuantile); ok {
+		if v, ok := NonzeroQuantile(qstats, cfg.WeightQuantile); ok {
 			weightQ = v
+			rw.DownWeightAbove, rw.DownWeightPower = ptr(v), cfg.WeightPower
 		}
 	}
+	st.Weights = rw
 	anomalousName, aboveName := fmt.Sprintf("anomalous (nonzeros > %g)", anomaly), "all rows"
 	if lower != "" {
 		aboveName = fmt.Sprintf("nonzeros > %s", lower)
@@ -320,6 +324,9 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		w = append(w[:0], fc.Weights[:n]...)
 		nnz := make([]int, n)
 		for i := 0; i < n; i++ {
+			if w[i] != 1 {
+				st.Weights.HoldoutWeights = true
+			}
 			nnz[i] = int(fc.Indptr[i+1] - fc.Indptr[i])
 			if float64(nnz[i]) > anomaly {
 				w[i] *= float32(cfg.AnomalyWeight)
@@ -417,6 +424,14 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				}
 			}
 		}
+		for i := 0; i < n; i++ {
+			all.plain.add(lc[i], lb[i])
+		}
+		for _, g := range groups {
+			for _, i := range g.rows {
+				g.acc.plain.add(lc[i], lb[i])
+			}
+		}
 		if base != nil {
 			for i := 0; i < n; i++ {
 				d[i] = lc[i] - lb[i]
@@ -459,7 +474,8 @@ func finalize(st *holdoutState, cfg HoldoutConfig, res *CheckResult) (*HoldoutDe
 	encoder := st.Kind == model.KindEncoder
 	all := st.All
 	rows := st.Rows
-	det := &HoldoutDetail{Kind: st.Kind, Examples: st.Examples}
+	rw := st.Weights
+	det := &HoldoutDetail{Kind: st.Kind, Examples: st.Examples, Weights: &rw}
 	res.Phases = map[string]float64{"read": st.Read, "forward": st.Forward, "statistics": st.Stats}
 	hasBase := st.HasBaseline
 	if rows == 0 {
@@ -502,10 +518,14 @@ func finalize(st *holdoutState, cfg HoldoutConfig, res *CheckResult) (*HoldoutDe
 				lossName, ni.MeanDiff, 100*cfg.Confidence, ni.Upper, cfg.Margin, ni.P, ni.N)
 		}
 		res.Findings = append(res.Findings, f)
-		res.Summary = fmt.Sprintf("%s %.5f vs baseline %.5f; upper bound of the difference %+.5f vs margin %.5f",
-			lossName, lossOf(det.Candidate, encoder), lossOf(*det.Baseline, encoder), ni.Upper, cfg.Margin)
+		diffName := "difference"
+		if !encoder && st.Weights.Weighted() {
+			diffName = "weighted difference"
+		}
+		res.Summary = fmt.Sprintf("%s %.5f vs baseline %.5f%s; upper bound of the %s %+.5f vs margin %.5f",
+			lossName, lossOf(det.Candidate, encoder), lossOf(*det.Baseline, encoder), weightedPart(det, st.Weights), diffName, ni.Upper, cfg.Margin)
 	} else {
-		res.Summary = fmt.Sprintf("first release: %s %.5f", lossName, lossOf(det.Candidate, encoder))
+		res.Summary = fmt.Sprintf("first release: %s %.5f%s", lossName, lossOf(det.Candidate, encoder), weightedPart(det, st.Weights))
 		firstRelease(det.Candidate, encoder, cfg, res)
 	}
 	// Slices, sorted by name.
@@ -698,7 +718,8 @@ func metricsOf(a *sliceAcc, candidate bool) Metrics {
 		return m
 	}
 	auc, _ := b.AUC()
-	m.LogLoss, m.NormalizedEntropy, m.AUC = finite(b.LogLoss()), finite(b.NormalizedEntropy()), finite(auc)
+	m.LogLoss, m.WeightedLogLoss = finite(a.plain.mean(candidate)), finite(b.LogLoss())
+	m.NormalizedEntropy, m.AUC = finite(b.NormalizedEntropy()), finite(auc)
 	m.ECE, m.MCE, m.PredictedObserved = finite(b.ECE()), finite(b.MCE()), finite(b.PredictedObserved())
 	return m
 }

@@ -113,8 +113,12 @@ type ContractItem struct {
 type Metrics struct {
 	Rows      int64   `json:"rows"`
 	WeightSum float64 `json:"weightSum"`
-	// Scorers.
+	// Scorers. LogLoss is the plain mean per-row log loss (what
+	// scikit-learn's log_loss computes, no weights); WeightedLogLoss the
+	// weighted mean the test and the other scorer metrics use (holdout
+	// weights × anomalous-row weight, see HoldoutDetail.Weights).
 	LogLoss           float64 `json:"logLoss,omitempty"`
+	WeightedLogLoss   float64 `json:"weightedLogLoss,omitempty"`
 	NormalizedEntropy float64 `json:"normalizedEntropy,omitempty"`
 	AUC               float64 `json:"auc,omitempty"`
 	ECE               float64 `json:"ece,omitempty"`
@@ -186,7 +190,9 @@ type ReconstructionExample struct {
 
 // HoldoutDetail is the holdout check's numbers and the data for its plots.
 type HoldoutDetail struct {
-	Kind      string          `json:"kind"` // scorer or encoder
+	Kind string `json:"kind"` // scorer or encoder
+	// Weights says where the rows' slices and weights came from.
+	Weights   *RowWeights     `json:"weights,omitempty"`
 	Candidate Metrics         `json:"candidate"`
 	Baseline  *Metrics        `json:"baseline,omitempty"`
 	Test      *NonInferiority `json:"test,omitempty"`

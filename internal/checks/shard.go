@@ -31,6 +31,8 @@ type holdoutState struct {
 	// must agree across shards).
 	Anomaly float64
 	Lower   string
+	// Weights says where the thresholds came from (must agree too).
+	Weights RowWeights
 	// Read, Forward and Stats are seconds spent reading the holdout,
 	// running the two models, and accumulating statistics.
 	Read, Forward, Stats float64
@@ -38,10 +40,15 @@ type holdoutState struct {
 
 // merge adds o's rows into s.
 func (s *holdoutState) merge(o *holdoutState) error {
+	sw, ow := s.Weights, o.Weights
+	sw.HoldoutWeights, ow.HoldoutWeights = false, false
+	sj, _ := json.Marshal(sw)
+	oj, _ := json.Marshal(ow)
 	if s.Kind != o.Kind || s.HasBaseline != o.HasBaseline || s.Seed != o.Seed || s.Replicas != o.Replicas || s.Lower != o.Lower ||
-		!(s.Anomaly == o.Anomaly || (math.IsInf(s.Anomaly, 1) && math.IsInf(o.Anomaly, 1))) {
+		!(s.Anomaly == o.Anomaly || (math.IsInf(s.Anomaly, 1) && math.IsInf(o.Anomaly, 1))) || string(sj) != string(oj) {
 		return errkind.New(errkind.BadInput, "shard results were made with different settings and cannot be merged")
 	}
+	s.Weights.HoldoutWeights = s.Weights.HoldoutWeights || o.Weights.HoldoutWeights
 	if err := s.All.merge(o.All); err != nil {
 		return err
 	}
@@ -96,17 +103,19 @@ func (a *sliceAcc) merge(o *sliceAcc) error {
 			return err
 		}
 	}
+	a.plain.merge(&o.plain)
 	return a.paired.Merge(o.paired)
 }
 
 // wireAcc is a sliceAcc in JSON: each accumulator in its binary encoding.
 type wireAcc struct {
-	Name   string `json:"name"`
-	Cand   []byte `json:"cand,omitempty"`
-	Base   []byte `json:"base,omitempty"`
-	RC     []byte `json:"rc,omitempty"`
-	RB     []byte `json:"rb,omitempty"`
-	Paired []byte `json:"paired"`
+	Name   string     `json:"name"`
+	Cand   []byte     `json:"cand,omitempty"`
+	Base   []byte     `json:"base,omitempty"`
+	RC     []byte     `json:"rc,omitempty"`
+	RB     []byte     `json:"rb,omitempty"`
+	Paired []byte     `json:"paired"`
+	Plain  *plainLoss `json:"plain,omitempty"`
 }
 
 type wireState struct {
@@ -122,6 +131,7 @@ type wireState struct {
 	Findings    []Finding               `json:"findings,omitempty"`
 	Anomaly     *float64                `json:"anomaly,omitempty"` // nil: +Inf
 	Lower       string                  `json:"lower"`
+	Weights     RowWeights              `json:"weights"`
 }
 
 type binaryMarshaler interface{ MarshalBinary() ([]byte, error) }
@@ -134,7 +144,7 @@ func enc(m binaryMarshaler, isNil bool) ([]byte, error) {
 }
 
 func (a *sliceAcc) wire() (wireAcc, error) {
-	w := wireAcc{Name: a.name}
+	w := wireAcc{Name: a.name, Plain: &a.plain}
 	var err error
 	if w.Cand, err = enc(a.cand, a.cand == nil); err != nil {
 		return w, err
@@ -154,6 +164,9 @@ func (a *sliceAcc) wire() (wireAcc, error) {
 
 func (w wireAcc) acc(hasBase bool) (*sliceAcc, error) {
 	a := &sliceAcc{name: w.Name, paired: &stats.Paired{}}
+	if w.Plain != nil {
+		a.plain = *w.Plain
+	}
 	if err := a.paired.UnmarshalBinary(w.Paired); err != nil {
 		return nil, err
 	}
@@ -186,7 +199,7 @@ func (w wireAcc) acc(hasBase bool) (*sliceAcc, error) {
 // MarshalJSON encodes the state for a shard result artifact.
 func (s *holdoutState) MarshalJSON() ([]byte, error) {
 	w := wireState{Kind: s.Kind, HasBaseline: s.HasBaseline, Seed: s.Seed, Replicas: s.Replicas, Rows: s.Rows,
-		Examples: s.Examples, Findings: s.Findings, Lower: s.Lower}
+		Examples: s.Examples, Findings: s.Findings, Lower: s.Lower, Weights: s.Weights}
 	if !math.IsInf(s.Anomaly, 1) {
 		w.Anomaly = &s.Anomaly
 	}
@@ -221,7 +234,7 @@ func (s *holdoutState) UnmarshalJSON(b []byte) error {
 		return err
 	}
 	*s = holdoutState{Kind: w.Kind, HasBaseline: w.HasBaseline, Seed: w.Seed, Replicas: w.Replicas, Rows: w.Rows,
-		Examples: w.Examples, Findings: w.Findings, Lower: w.Lower, Anomaly: math.Inf(1), Slices: map[string]*sliceAcc{}}
+		Examples: w.Examples, Findings: w.Findings, Lower: w.Lower, Weights: w.Weights, Anomaly: math.Inf(1), Slices: map[string]*sliceAcc{}}
 	if w.Anomaly != nil {
 		s.Anomaly = *w.Anomaly
 	}

@@ -91,6 +91,7 @@ type holdoutView struct {
 	Metrics     []metricRow
 	Test        []metricRow
 	TestText    string
+	WeightsText string // where the rows' weights and slices came from
 	TestPass    string // PASS / FAIL, empty without a test
 	Slices      []sliceView
 	SliceMetric string
@@ -246,13 +247,31 @@ func holdoutSection(h *checks.HoldoutDetail) *holdoutView {
 		name string
 		get  func(checks.Metrics) float64
 	}
+	weighted := h.Weights != nil && h.Weights.Weighted()
 	ms := []metric{
-		{"Log loss (lower is better)", func(m checks.Metrics) float64 { return m.LogLoss }},
+		{"Log loss, plain, as scikit-learn computes it (lower is better)", func(m checks.Metrics) float64 { return m.LogLoss }},
+	}
+	if weighted {
+		ms = append(ms, metric{"Log loss, weighted (the test's weights, see below)", func(m checks.Metrics) float64 { return m.WeightedLogLoss }})
+	}
+	ms = append(ms, []metric{
 		{"Normalized entropy (lower is better)", func(m checks.Metrics) float64 { return m.NormalizedEntropy }},
 		{"ROC AUC (higher is better)", func(m checks.Metrics) float64 { return m.AUC }},
 		{"Expected calibration error (lower is better)", func(m checks.Metrics) float64 { return m.ECE }},
 		{"Maximum calibration error (lower is better)", func(m checks.Metrics) float64 { return m.MCE }},
 		{"Predicted / observed (1 is ideal)", func(m checks.Metrics) float64 { return m.PredictedObserved }},
+	}...)
+	if w := h.Weights; w != nil {
+		hv.WeightsText = "Rows are sliced and weighted by thresholds from " + w.Describe() + ", never from the candidate's own files."
+		if a := w.AnomalyAbove; a != nil && h.Kind != "encoder" {
+			hv.WeightsText += fmt.Sprintf(" Rows with more than %s nonzeros are anomalous and weigh %s in the weighted figures and the test.", num(*a), num(w.AnomalyWeight))
+		}
+		if w.HoldoutWeights {
+			hv.WeightsText += " The holdout's weight column is multiplied in."
+		}
+		if h.Kind != "encoder" && weighted {
+			hv.WeightsText += " The other scorer metrics and the test are weighted."
+		}
 	}
 	if h.Kind == "encoder" {
 		ms = []metric{

@@ -127,6 +127,7 @@ a{color:#1f4f8f}
 {{range .Metrics}}<tr><th scope="row" class="wrap">{{.Name}}</th><td class="num">{{.Candidate}}</td>{{if .Baseline}}<td class="num">{{.Baseline}}</td><td class="num">{{.Diff}}</td>{{end}}</tr>
 {{end}}</tbody>
 </table>
+{{if .WeightsText}}<p>{{.WeightsText}}</p>{{end}}
 {{if .Test}}
 <h3>Non-inferiority test {{template "badge" .TestPass}}</h3>
 <p>{{.TestText}}</p>
