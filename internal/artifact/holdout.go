@@ -1,6 +1,7 @@
 package artifact
 
 import (
+	"cmp"
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
@@ -10,6 +11,7 @@ import (
 	"io"
 	"os"
 	"path/filepath"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -52,6 +54,15 @@ type HoldoutInfo struct {
 	// there is no baseline to take them from. Absent in summaries written
 	// before it existed.
 	NonzerosPerRow map[string]float64 `json:"nonzerosPerRow,omitempty"`
+	// ClusterColumn names the column declared at push to group rows that
+	// are not independent (a listener's rows); Clusters counts its
+	// distinct values. Empty and 0 when none was declared.
+	ClusterColumn string `json:"clusterColumn,omitempty"`
+	Clusters      int64  `json:"clusters,omitempty"`
+	// RowIDsChecked says the push found no row_id twice (with a cluster
+	// column: no row_id in two clusters). Holdouts pushed before the check
+	// existed lack it; the gate checks those itself.
+	RowIDsChecked bool `json:"rowIdsChecked,omitempty"`
 }
 
 // HoldoutQuantiles are the quantiles a holdout summary records of the
@@ -104,8 +115,10 @@ func structuralSpec() (*model.Spec, *data.Vocabulary, error) {
 }
 
 // ScanHoldout reads a holdout file once, checking every row's structure,
-// and summarises it.
-func ScanHoldout(path string, progress func(Event)) (*HoldoutInfo, error) {
+// and summarises it. cluster names the cluster column ("" for none): every
+// row must have it. A row_id given twice is refused (errkind.BadInput),
+// except, with a cluster column, twice within one cluster.
+func ScanHoldout(path, cluster string, progress func(Event)) (*HoldoutInfo, error) {
 	format, err := data.FormatOf(path)
 	if err != nil {
 		return nil, err
@@ -115,12 +128,12 @@ func ScanHoldout(path string, progress func(Event)) (*HoldoutInfo, error) {
 		return nil, err
 	}
 	defer f.Close()
-	return scanHoldoutAt(f, st.Size(), path, format, progress)
+	return scanHoldoutAt(f, st.Size(), path, format, cluster, progress)
 }
 
 // scanHoldoutAt is ScanHoldout over size bytes of r, named path in
 // messages.
-func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress func(Event)) (*HoldoutInfo, error) {
+func scanHoldoutAt(ra io.ReaderAt, size int64, path, format, cluster string, progress func(Event)) (*HoldoutInfo, error) {
 	if format == data.FormatCSV {
 		return nil, errkind.New(errkind.BadInput, "%s: CSV is not a holdout format (want .parquet, .jsonl or .ndjson)", path)
 	}
@@ -128,14 +141,15 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress fun
 	if err != nil {
 		return nil, err
 	}
-	r, err := data.OpenReader(ra, size, format, data.Options{Spec: spec, Vocab: vocab, Name: path})
+	r, err := data.OpenReader(ra, size, format, data.Options{Spec: spec, Vocab: vocab, Name: path, ClusterColumn: cluster})
 	if err != nil {
 		return nil, err
 	}
 	defer r.Close()
-	info := &HoldoutInfo{SchemaVersion: 1, Format: format, File: filepath.Base(path), Slices: map[string]int64{}}
+	info := &HoldoutInfo{SchemaVersion: 1, Format: format, File: filepath.Base(path), Slices: map[string]int64{}, ClusterColumn: cluster}
 	var f data.Frame
 	perRow := map[int]int64{}
+	var ids []rowIDKey
 	for {
 		n, err := r.Read(&f, 8192)
 		if errors.Is(err, io.EOF) {
@@ -153,6 +167,11 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress fun
 			}
 			info.Slices[f.Slices[i]]++
 			perRow[int(f.Indptr[i+1]-f.Indptr[i])]++
+			k := rowIDKey{id: f.RowIDs[i]}
+			if cluster != "" {
+				k.cluster = f.Clusters[i]
+			}
+			ids = append(ids, k)
 		}
 		if progress != nil {
 			progress(Event{Phase: "scan", Name: path, Done: info.Rows, Total: r.Rows()})
@@ -161,6 +180,10 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format string, progress fun
 	if info.Rows == 0 {
 		return nil, errkind.New(errkind.BadInput, "holdout %s has no rows", path)
 	}
+	if info.Clusters, err = checkRowIDs(ids, path, cluster); err != nil {
+		return nil, err
+	}
+	info.RowIDsChecked = true
 	if len(info.Slices) == 1 && info.Slices[""] > 0 {
 		info.Slices = nil
 	}
@@ -188,6 +211,51 @@ func openHoldout(path string) (*os.File, os.FileInfo, error) {
 		return nil, nil, errkind.Wrap(errkind.BadInput, fmt.Errorf("opening holdout: %w", err))
 	}
 	return f, st, nil
+}
+
+// rowIDKey is a row's id and cluster key (0 without a cluster column).
+type rowIDKey struct {
+	id      int64
+	cluster uint64
+}
+
+// checkRowIDs refuses a row id given twice (with a cluster column: given
+// in two clusters) and counts the clusters. It sorts ids.
+func checkRowIDs(ids []rowIDKey, path, cluster string) (clusters int64, err error) {
+	slices.SortFunc(ids, func(a, b rowIDKey) int {
+		if c := cmp.Compare(a.id, b.id); c != 0 {
+			return c
+		}
+		return cmp.Compare(a.cluster, b.cluster)
+	})
+	var bad []string
+	badRows := 0
+	for i := 1; i < len(ids); i++ {
+		if ids[i].id != ids[i-1].id || (cluster != "" && ids[i].cluster == ids[i-1].cluster) {
+			continue
+		}
+		badRows++
+		if len(bad) < 5 && (len(bad) == 0 || bad[len(bad)-1] != strconv.FormatInt(ids[i].id, 10)) {
+			bad = append(bad, strconv.FormatInt(ids[i].id, 10))
+		}
+	}
+	if badRows > 0 {
+		if cluster != "" {
+			return 0, errkind.New(errkind.BadInput, "holdout %s: %d rows reuse a row_id of another cluster (%q) (row_id %s): a row_id may repeat only within one cluster",
+				path, badRows, cluster, strings.Join(bad, ", "))
+		}
+		return 0, errkind.New(errkind.BadInput, "holdout %s: %d rows repeat a row_id (row_id %s): row ids must be unique; if the repeats are one listener's rows, declare the listener column with --cluster-column",
+			path, badRows, strings.Join(bad, ", "))
+	}
+	if cluster == "" {
+		return 0, nil
+	}
+	keys := make([]uint64, len(ids))
+	for i, k := range ids {
+		keys[i] = k.cluster
+	}
+	slices.Sort(keys)
+	return int64(len(slices.Compact(keys))), nil
 }
 
 var holdoutMediaTypes = map[string]types.MediaType{
@@ -271,7 +339,7 @@ func stageHoldout(ctx context.Context, stager registry.BlobStager, repo, path, f
 	if sr, ok := sb.(registry.StagedReader); ok {
 		ra = sr
 	}
-	info, err := scanHoldoutAt(ra, sb.Size(), path, format, opts.Progress)
+	info, err := scanHoldoutAt(ra, sb.Size(), path, format, opts.ClusterColumn, opts.Progress)
 	if err != nil {
 		sb.Discard()
 		return nil, Blob{}, err
@@ -281,7 +349,7 @@ func stageHoldout(ctx context.Context, stager registry.BlobStager, repo, path, f
 
 // hashHoldout checks, hashes and uploads the file, each a pass over it.
 func hashHoldout(ctx context.Context, store registry.Store, repo, path string, opts Options) (*HoldoutInfo, Blob, error) {
-	info, err := ScanHoldout(path, opts.Progress)
+	info, err := ScanHoldout(path, opts.ClusterColumn, opts.Progress)
 	if err != nil {
 		return nil, Blob{}, err
 	}

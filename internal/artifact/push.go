@@ -49,6 +49,9 @@ type Event struct {
 type Options struct {
 	// Progress receives events; nil means none.
 	Progress func(Event)
+	// ClusterColumn (holdouts) names the column grouping rows that are not
+	// independent, for example the listener id; "" for none.
+	ClusterColumn string
 }
 
 func (o Options) emit(e Event) {

@@ -144,6 +144,9 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 				if err := needLabels(cand, hold, *g.Holdout); err != nil {
 					return nil, err
 				}
+				if err := needUniqueRowIDs(hold, g.Config.Holdout); err != nil {
+					return nil, err
+				}
 			}
 		}
 	}
@@ -282,6 +285,9 @@ func RunShard(ctx context.Context, g Gate, i, n int) (*ShardResult, error) {
 	}
 	defer hold.Close()
 	if err := needLabels(cand, hold, *g.Holdout); err != nil {
+		return nil, err
+	}
+	if err := needUniqueRowIDs(hold, g.Config.Holdout); err != nil {
 		return nil, err
 	}
 	r.Holdout = hold.Artifact.Desc.Digest.String()

@@ -16,6 +16,7 @@ import (
 	"modelgate/internal/data"
 	"modelgate/internal/errkind"
 	"modelgate/internal/model"
+	"modelgate/internal/policy"
 	"modelgate/internal/score"
 )
 
@@ -52,6 +53,14 @@ type HoldoutConfig struct {
 	WeightQuantile    float64
 	WeightPower       float64
 	MaxReconstruction *float64
+	// ClusterColumn names the holdout column grouping rows that are not
+	// independent ("" : the holdout's declared one, if any); see
+	// clusterColumn.
+	ClusterColumn string
+	// TailExcess and TailAction: the label-free rule on confident
+	// mistakes (scorers; see tailFinding).
+	TailExcess float64
+	TailAction string
 	// BatchSize rows per batch (default 4096); Threads for the runtime.
 	BatchSize int
 	Threads   int
@@ -118,8 +127,15 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	if encoder && cand.Net.Reconstruction() == "" {
 		return nil, errkind.New(errkind.BadInput, "the encoder %s has no reconstruction layer: its reconstruction loss cannot be measured", cand.Loaded.Spec.Name)
 	}
+	clusterCol, err := clusterColumn(cfg, hold)
+	if err != nil {
+		return nil, err
+	}
+	st.ClusterColumn = clusterCol
 	open := func(m *score.Model) (data.Reader, error) {
-		return data.Open(hold.Path, m.ReadOptions(hold.Artifact.Repository+"@"+hold.Artifact.Desc.Digest.String(), !encoder))
+		opts := m.ReadOptions(hold.Artifact.Repository+"@"+hold.Artifact.Desc.Digest.String(), !encoder)
+		opts.ClusterColumn = clusterCol
+		return data.Open(hold.Path, opts)
 	}
 	rc, err := open(cand)
 	if err != nil {
@@ -216,7 +232,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	newAcc := func(name string, replicas int) (*sliceAcc, error) {
 		a := &sliceAcc{name: name}
 		var err error
-		if a.paired, err = stats.NewPaired(cfg.Seed, replicas); err != nil {
+		if a.paired, err = newPaired(clusterCol, cfg.Seed, replicas); err != nil {
 			return nil, err
 		}
 		if encoder {
@@ -242,6 +258,12 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		return nil, err
 	}
 	st.All = all
+	if !encoder && base != nil && (cfg.TailAction == policy.TailFail || cfg.TailAction == policy.TailWarn) {
+		if st.Tail, err = stats.NewTail(cfg.TailExcess); err != nil {
+			return nil, err
+		}
+	}
+	st.Repeats = newRepeats(hold.Info.Rows, clusterCol != "")
 	slice := func(name string) (*sliceAcc, error) {
 		if a, ok := st.Slices[name]; ok {
 			return a, nil
@@ -265,6 +287,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	var scr struct {
 		p, y, w []float32
 		ids     []int64
+		cl      []uint64
 		d, l    []float64
 	}
 	var (
@@ -319,6 +342,9 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			continue
 		}
 		pos += int64(n)
+		if err := st.Repeats.add(&fc, n); err != nil {
+			return nil, err
+		}
 		tStats := time.Now()
 		forward := 0.0
 		w = append(w[:0], fc.Weights[:n]...)
@@ -410,6 +436,11 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				if err := all.base.AddBatchLoss(pb[:n], y, w, lb); err != nil {
 					return nil, err
 				}
+				if st.Tail != nil {
+					if err := st.Tail.AddBatch(fc.RowIDs[:n], pc[:n], pb[:n], y, w); err != nil {
+						return nil, err
+					}
+				}
 			}
 			// Per slice, in one batch call each.
 			for _, g := range groups {
@@ -436,7 +467,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			for i := 0; i < n; i++ {
 				d[i] = lc[i] - lb[i]
 			}
-			if err := all.paired.AddBatch(fc.RowIDs[:n], d, w); err != nil {
+			if err := addPaired(all.paired, fc.RowIDs[:n], fc.Clusters, d, w); err != nil {
 				return nil, err
 			}
 			if err := diffHist.AddBatch(d, w); err != nil {
@@ -445,12 +476,16 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			for _, g := range groups {
 				ids := scr.ids[:0]
 				ds := scr.d[:0]
+				cl := scr.cl[:0]
 				for _, i := range g.rows {
 					ids = append(ids, fc.RowIDs[i])
 					ds = append(ds, d[i])
+					if len(fc.Clusters) > 0 {
+						cl = append(cl, fc.Clusters[i])
+					}
 				}
-				scr.ids, scr.d = ids, ds
-				if err := g.acc.paired.AddBatch(ids, ds, gather(w, g.rows, &scr.w)); err != nil {
+				scr.ids, scr.d, scr.cl = ids, ds, cl
+				if err := addPaired(g.acc.paired, ids, cl, ds, gather(w, g.rows, &scr.w)); err != nil {
 					return nil, err
 				}
 			}
@@ -518,6 +553,7 @@ func finalize(st *holdoutState, cfg HoldoutConfig, res *CheckResult) (*HoldoutDe
 				lossName, ni.MeanDiff, 100*cfg.Confidence, ni.Upper, cfg.Margin, ni.P, ni.N)
 		}
 		res.Findings = append(res.Findings, f)
+		res.Findings = append(res.Findings, holdoutRuleFindings(st, ni, cfg)...)
 		diffName := "difference"
 		if !encoder && st.Weights.Weighted() {
 			diffName = "weighted difference"
@@ -738,7 +774,8 @@ func finiteTest(t NonInferiority) NonInferiority {
 		}
 		return v
 	}
-	t.T, t.P, t.Upper = clampInf(t.T), clampInf(t.P), clampInf(t.Upper)
+	t.T, t.P, t.Upper, t.SkewUpper = clampInf(t.T), clampInf(t.P), clampInf(t.Upper), clampInf(t.SkewUpper)
+	t.Skewness = clampInf(t.Skewness)
 	t.MeanDiff, t.StdErr = clampInf(t.MeanDiff), clampInf(t.StdErr)
 	t.BootstrapLower, t.BootstrapUpper = clampInf(t.BootstrapLower), clampInf(t.BootstrapUpper)
 	return t

@@ -139,12 +139,20 @@ type NonInferiority struct {
 	Margin     float64 `json:"margin"`
 	Confidence float64 `json:"confidence"`
 	N          int64   `json:"n"`
-	MeanDiff   float64 `json:"meanDiff"`
-	StdErr     float64 `json:"stdErr"`
-	T          float64 `json:"t"`
-	DF         float64 `json:"df"`
-	P          float64 `json:"p"`     // one-sided p-value of H0
-	Upper      float64 `json:"upper"` // upper one-sided bound (t)
+	// Clusters counts the clusters (listeners) whose rows were summed
+	// together for a cluster-robust test; 0 when rows are not clustered.
+	Clusters int64   `json:"clusters,omitempty"`
+	MeanDiff float64 `json:"meanDiff"`
+	StdErr   float64 `json:"stdErr"`
+	T        float64 `json:"t"`
+	DF       float64 `json:"df"`
+	P        float64 `json:"p"`     // one-sided p-value of H0
+	Upper    float64 `json:"upper"` // upper one-sided bound (t)
+	// Skewness of the differences (of the cluster totals when clustered)
+	// and the upper bound corrected for it; both bounds must be below the
+	// margin.
+	Skewness  float64 `json:"skewness"`
+	SkewUpper float64 `json:"skewUpper"`
 	// Poisson-bootstrap percentile interval of mean(d).
 	BootstrapLower    float64 `json:"bootstrapLower"`
 	BootstrapUpper    float64 `json:"bootstrapUpper"`

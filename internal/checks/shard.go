@@ -1,6 +1,7 @@
 package checks
 
 import (
+	"encoding/binary"
 	"encoding/json"
 	"fmt"
 	"math"
@@ -27,6 +28,12 @@ type holdoutState struct {
 	Diff        *stats.Histogram
 	Examples    []ReconstructionExample
 	Findings    []Finding
+	// ClusterColumn groups rows for a cluster-robust test ("" for none);
+	// Tail holds the label-free confident-mistake statistics (scorers with
+	// a baseline; nil otherwise); Repeats the hashes of rows' content.
+	ClusterColumn string
+	Tail          *stats.Tail
+	Repeats       *repeats
 	// Anomaly and Lower are the slicing thresholds used (for merging, they
 	// must agree across shards).
 	Anomaly float64
@@ -45,11 +52,20 @@ func (s *holdoutState) merge(o *holdoutState) error {
 	sj, _ := json.Marshal(sw)
 	oj, _ := json.Marshal(ow)
 	if s.Kind != o.Kind || s.HasBaseline != o.HasBaseline || s.Seed != o.Seed || s.Replicas != o.Replicas || s.Lower != o.Lower ||
+		s.ClusterColumn != o.ClusterColumn || (s.Tail == nil) != (o.Tail == nil) || (s.Repeats == nil) != (o.Repeats == nil) ||
 		!(s.Anomaly == o.Anomaly || (math.IsInf(s.Anomaly, 1) && math.IsInf(o.Anomaly, 1))) || string(sj) != string(oj) {
 		return errkind.New(errkind.BadInput, "shard results were made with different settings and cannot be merged")
 	}
 	s.Weights.HoldoutWeights = s.Weights.HoldoutWeights || o.Weights.HoldoutWeights
 	if err := s.All.merge(o.All); err != nil {
+		return err
+	}
+	if s.Tail != nil {
+		if err := s.Tail.Merge(o.Tail); err != nil {
+			return err
+		}
+	}
+	if err := s.Repeats.merge(o.Repeats); err != nil {
 		return err
 	}
 	for name, a := range o.Slices {
@@ -132,6 +148,16 @@ type wireState struct {
 	Anomaly     *float64                `json:"anomaly,omitempty"` // nil: +Inf
 	Lower       string                  `json:"lower"`
 	Weights     RowWeights              `json:"weights"`
+	Cluster     string                  `json:"clusterColumn,omitempty"`
+	Tail        []byte                  `json:"tail,omitempty"`
+	Repeats     *wireRepeats            `json:"repeats,omitempty"`
+}
+
+// wireRepeats is repeats in JSON: the hashes as little-endian bytes.
+type wireRepeats struct {
+	Off    bool   `json:"off"`
+	Shift  uint   `json:"shift"`
+	Hashes []byte `json:"hashes"`
 }
 
 type binaryMarshaler interface{ MarshalBinary() ([]byte, error) }
@@ -199,11 +225,22 @@ func (w wireAcc) acc(hasBase bool) (*sliceAcc, error) {
 // MarshalJSON encodes the state for a shard result artifact.
 func (s *holdoutState) MarshalJSON() ([]byte, error) {
 	w := wireState{Kind: s.Kind, HasBaseline: s.HasBaseline, Seed: s.Seed, Replicas: s.Replicas, Rows: s.Rows,
-		Examples: s.Examples, Findings: s.Findings, Lower: s.Lower, Weights: s.Weights}
+		Examples: s.Examples, Findings: s.Findings, Lower: s.Lower, Weights: s.Weights, Cluster: s.ClusterColumn}
 	if !math.IsInf(s.Anomaly, 1) {
 		w.Anomaly = &s.Anomaly
 	}
 	var err error
+	if s.Tail != nil {
+		if w.Tail, err = s.Tail.MarshalBinary(); err != nil {
+			return nil, err
+		}
+	}
+	if r := s.Repeats; r != nil {
+		w.Repeats = &wireRepeats{Off: r.Off, Shift: r.Shift, Hashes: make([]byte, 0, 8*len(r.Hashes))}
+		for _, h := range r.Hashes {
+			w.Repeats.Hashes = binary.LittleEndian.AppendUint64(w.Repeats.Hashes, h)
+		}
+	}
 	if w.All, err = s.All.wire(); err != nil {
 		return nil, err
 	}
@@ -234,11 +271,27 @@ func (s *holdoutState) UnmarshalJSON(b []byte) error {
 		return err
 	}
 	*s = holdoutState{Kind: w.Kind, HasBaseline: w.HasBaseline, Seed: w.Seed, Replicas: w.Replicas, Rows: w.Rows,
-		Examples: w.Examples, Findings: w.Findings, Lower: w.Lower, Weights: w.Weights, Anomaly: math.Inf(1), Slices: map[string]*sliceAcc{}}
+		Examples: w.Examples, Findings: w.Findings, Lower: w.Lower, Weights: w.Weights, Anomaly: math.Inf(1), Slices: map[string]*sliceAcc{},
+		ClusterColumn: w.Cluster}
 	if w.Anomaly != nil {
 		s.Anomaly = *w.Anomaly
 	}
 	var err error
+	if w.Tail != nil {
+		s.Tail = &stats.Tail{}
+		if err := s.Tail.UnmarshalBinary(w.Tail); err != nil {
+			return fmt.Errorf("tail: %w", err)
+		}
+	}
+	if r := w.Repeats; r != nil {
+		if len(r.Hashes)%8 != 0 || r.Shift > 63 {
+			return errkind.New(errkind.BadInput, "shard result: malformed repeated-row hashes")
+		}
+		s.Repeats = &repeats{Off: r.Off, Shift: r.Shift, Hashes: make([]uint64, len(r.Hashes)/8)}
+		for i := range s.Repeats.Hashes {
+			s.Repeats.Hashes[i] = binary.LittleEndian.Uint64(r.Hashes[8*i:])
+		}
+	}
 	if s.All, err = w.All.acc(w.HasBaseline); err != nil {
 		return fmt.Errorf("all rows: %w", err)
 	}

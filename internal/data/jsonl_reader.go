@@ -134,6 +134,7 @@ const (
 	seenWeight
 	seenSlice
 	seenRowID
+	seenCluster
 )
 
 // parse decodes one line into j.sc.
@@ -195,6 +196,10 @@ func (j *jsonlReader) parse(line []byte) error {
 			case colRowID:
 				if err = once(seenRowID, colRowID); err == nil {
 					err = j.rowID()
+				}
+			case clusterKey(j.l.cluster):
+				if err = once(seenCluster, j.l.cluster); err == nil {
+					err = j.cluster()
 				}
 			default:
 				if di, ok := j.l.denseIdx[string(key)]; ok {
@@ -419,6 +424,45 @@ func (j *jsonlReader) rowID() error {
 	}
 	sc.hasRowID, sc.rowID = true, n
 	return nil
+}
+
+// clusterKey is the JSON key of the cluster column, or one no JSON key
+// can be (an invalid UTF-8 byte) when there is none.
+func clusterKey(name string) string {
+	if name == "" {
+		return "\xff"
+	}
+	return name
+}
+
+// cluster reads the cluster column's value: a string or an integer.
+func (j *jsonlReader) cluster() error {
+	s, sc := &j.s, &j.sc
+	name := j.l.cluster
+	if j.isNull() {
+		return nil
+	}
+	switch c := s.peek(); {
+	case c == '"':
+		b, err := s.str()
+		if err != nil {
+			return err
+		}
+		sc.hasClust, sc.cluster = true, ClusterKey(b)
+		return nil
+	case isNumberStart(c):
+		tok, integer, err := s.num()
+		if err != nil {
+			return err
+		}
+		n, perr := strconv.ParseInt(string(tok), 10, 64)
+		if !integer || perr != nil {
+			return fmt.Errorf("%s %s is not an int64 integer", name, tok)
+		}
+		sc.hasClust, sc.cluster = true, ClusterKey(strconv.AppendInt(nil, n, 10))
+		return nil
+	}
+	return fmt.Errorf("%s is not a string or an integer", name)
 }
 
 var _ Reader = (*jsonlReader)(nil)

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"io"
 	"math"
+	"strconv"
 
 	"github.com/parquet-go/parquet-go"
 	"github.com/parquet-go/parquet-go/format"
@@ -23,6 +24,7 @@ type parquetReader struct {
 	items, values               *column
 	dense                       []*column // spec order
 	label, weight, slice, rowID *column   // nil when the file has none
+	cluster                     *column   // nil unless a cluster column is named
 	cols                        []*column // all of the above that exist
 
 	rowGroup  int   // index of the next row group to open
@@ -30,6 +32,7 @@ type parquetReader struct {
 	row       int64 // 0-based number of the next row
 	sc        scratch
 	slices    interner
+	num       []byte // scratch for an integer cluster value's text
 	done      bool
 	err       error // sticky
 }
@@ -94,6 +97,11 @@ func openParquet(r io.ReaderAt, size int64, l *layout) (*parquetReader, error) {
 	}
 	if p.rowID, err = find(colRowID, shapeScalar, intKinds, false); err != nil {
 		return nil, err
+	}
+	if l.cluster != "" {
+		if p.cluster, err = find(l.cluster, shapeScalar, intKinds|stringKinds, true); err != nil {
+			return nil, err
+		}
 	}
 	return p, nil
 }
@@ -328,6 +336,20 @@ func (p *parquetReader) next() (bool, error) {
 				s.hasRowID, s.rowID = true, id
 			} else {
 				note("row_id is beyond the int64 range")
+			}
+		}
+	}
+	if c := p.cluster; c != nil {
+		if rowVals, err = c.next(); err != nil {
+			return false, p.corrupt(c, err)
+		}
+		if v, ok := c.scalar(rowVals); ok {
+			if id, isInt := c.int(v); isInt {
+				s.hasClust, s.cluster = true, ClusterKey(strconv.AppendInt(p.num[:0], id, 10))
+			} else if v.Kind() == parquet.ByteArray {
+				s.hasClust, s.cluster = true, ClusterKey(v.ByteArray())
+			} else {
+				note("%s is beyond the int64 range", c.name)
 			}
 		}
 	}

@@ -42,6 +42,9 @@ type Frame struct {
 	Weights []float32 // finite, >= 0; 1 when the file has none
 	Slices  []string  // "" when the file has none
 	RowIDs  []int64   // the file's row_id, or the 0-based row number in the file
+	// Clusters holds each row's ClusterKey when Options.ClusterColumn
+	// names a column; empty otherwise.
+	Clusters []uint64
 	// HasLabels says whether the file has labels.
 	HasLabels bool
 }
@@ -53,6 +56,7 @@ func (f *Frame) Reset() {
 	f.Weights = f.Weights[:0]
 	f.Slices = f.Slices[:0]
 	f.RowIDs = f.RowIDs[:0]
+	f.Clusters = f.Clusters[:0]
 	f.HasLabels = false
 }
 
@@ -69,6 +73,26 @@ type Options struct {
 	// Name is how errors name the file. Open uses the path when it is empty;
 	// OpenReader uses "holdout".
 	Name string
+	// ClusterColumn, when not empty, names a column every row must have: a
+	// string or an integer saying which cluster (for example which
+	// listener) the row belongs to. Frame.Clusters gets its ClusterKey.
+	ClusterColumn string
+}
+
+// ClusterKey is the key of a cluster column's value: the 64-bit FNV-1a
+// hash of its text (an integer's decimal form, so 42 and "42" are one
+// cluster) passed through the SplitMix64 finaliser. Distinct values share
+// a key with probability about n²/2^65 for n clusters (3e-8 for a
+// million), in which case the two clusters count as one.
+func ClusterKey(text []byte) uint64 {
+	h := uint64(14695981039346656037)
+	for _, c := range text {
+		h ^= uint64(c)
+		h *= 1099511628211
+	}
+	h = (h ^ (h >> 30)) * 0xbf58476d1ce4e5b9
+	h = (h ^ (h >> 27)) * 0x94d049bb133111eb
+	return h ^ (h >> 31)
 }
 
 // Reader streams the rows of a holdout file in batches, with memory bounded
@@ -247,6 +271,7 @@ type layout struct {
 	denseWhat     []string // `dense input "name"`, for errors
 	denseIdx      map[string]int
 	requireLabels bool
+	cluster       string // the cluster column, "" for none
 }
 
 func newLayout(opts Options) (*layout, error) {
@@ -269,11 +294,17 @@ func newLayout(opts Options) (*layout, error) {
 		dense:         opts.Spec.Inputs.Dense,
 		denseIdx:      make(map[string]int, len(opts.Spec.Inputs.Dense)),
 		requireLabels: opts.RequireLabels,
+		cluster:       opts.ClusterColumn,
+	}
+	if l.cluster != "" && reservedColumn(l.cluster) {
+		return nil, bad("the cluster column cannot be the holdout column %q", l.cluster)
 	}
 	for i, d := range l.dense {
 		switch {
 		case reservedColumn(d.Name):
 			return nil, bad("dense input %q has the name of a holdout column", d.Name)
+		case d.Name == l.cluster:
+			return nil, bad("dense input %q is also named as the cluster column", d.Name)
 		case d.Size <= 0:
 			return nil, bad("dense input %q has size %d", d.Name, d.Size)
 		}
@@ -313,6 +344,8 @@ type scratch struct {
 	slice     string
 	hasRowID  bool
 	rowID     int64
+	hasClust  bool
+	cluster   uint64
 }
 
 func (s *scratch) reset(nDense int) {
@@ -328,7 +361,7 @@ func (s *scratch) reset(nDense int) {
 		s.dense[i] = s.dense[i][:0]
 		s.denseSet[i] = false
 	}
-	s.hasLabel, s.hasWeight, s.hasRowID = false, false, false
+	s.hasLabel, s.hasWeight, s.hasRowID, s.hasClust = false, false, false, false
 	s.slice = ""
 }
 
@@ -402,6 +435,9 @@ func (l *layout) appendRow(f *Frame, s *scratch, row int64, hasLabels bool) erro
 	if hasLabels && !s.hasLabel {
 		return bad("label missing")
 	}
+	if l.cluster != "" && !s.hasClust {
+		return bad("cluster column %q missing or null", l.cluster)
+	}
 	if !hasLabels && s.hasLabel {
 		return bad("label present, but the file's first row has none")
 	}
@@ -439,6 +475,9 @@ func (l *layout) appendRow(f *Frame, s *scratch, row int64, hasLabels bool) erro
 		id = s.rowID
 	}
 	f.RowIDs = append(f.RowIDs, id)
+	if l.cluster != "" {
+		f.Clusters = append(f.Clusters, s.cluster)
+	}
 	return nil
 }
 

@@ -39,6 +39,7 @@ const (
 	defaultRuns              = 200
 	defaultBlocks            = 5
 	defaultMaxAge            = 72 * time.Hour
+	defaultTailExcess        = 5.0
 )
 
 var quotedNumber = regexp.MustCompile(`value must be "(-?[0-9][0-9.eE+-]*)"`)
@@ -111,7 +112,12 @@ type wireChecks struct {
 		Confidence        *float64 `json:"confidence"`
 		BootstrapReplicas *wint    `json:"bootstrapReplicas"`
 		Seed              *wint    `json:"seed"`
-		Slices            struct {
+		ClusterColumn     *string  `json:"clusterColumn"`
+		Tail              struct {
+			Excess *float64 `json:"excess"`
+			Action *string  `json:"action"`
+		} `json:"tail"`
+		Slices struct {
 			NonzeroQuantiles *[]float64 `json:"nonzeroQuantiles"`
 			AnomalyQuantile  *float64   `json:"anomalyQuantile"`
 			AnomalyWeight    *float64   `json:"anomalyWeight"`
@@ -321,6 +327,7 @@ func buildRule(name, at string, w *wireRule, probs *Problems) Rule {
 		Confidence:        or(h.Confidence, defaultConfidence),
 		BootstrapReplicas: intOr(h.BootstrapReplicas, defaultBootstrapReplicas),
 		Seed:              seedOr(h.Seed),
+		ClusterColumn:     or(h.ClusterColumn, ""),
 	}
 	if scorer {
 		qs := append([]float64(nil), or(h.Slices.NonzeroQuantiles, defaultNonzeroQuantiles)...)
@@ -335,6 +342,7 @@ func buildRule(name, at string, w *wireRule, probs *Problems) Rule {
 		r.Holdout.MaxNormalizedEntropy = orPtr(h.MaxNormalizedEntropy, defaultMaxNE)
 		r.Holdout.MinAUC = orPtr(h.MinAUC, defaultMinAUC)
 		r.Holdout.MaxECE = clonePtr(h.MaxECE)
+		r.Holdout.Tail = Tail{Excess: or(h.Tail.Excess, defaultTailExcess), Action: or(h.Tail.Action, TailFail)}
 		sp := at + "/checks/holdout/slices"
 		for k := 1; k < len(qs); k++ {
 			if qs[k] <= qs[k-1] {

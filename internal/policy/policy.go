@@ -223,6 +223,12 @@ type HoldoutCheck struct {
 	BootstrapReplicas int
 	// Seed seeds the bootstrap. Default 1.
 	Seed uint64
+	// ClusterColumn names the holdout column whose value groups rows that
+	// are not independent (a listener's rows): the test is then
+	// cluster-robust and the bootstrap resamples clusters. "" (the
+	// default) uses the column the holdout declared when it was pushed,
+	// if any.
+	ClusterColumn string
 
 	// Slices (scorers) buckets rows by nonzero count.
 	Slices Slices
@@ -234,6 +240,8 @@ type HoldoutCheck struct {
 	MinAUC *float64
 	// MaxECE (scorers, first release), a probability; nil: not checked.
 	MaxECE *float64
+	// Tail (scorers) is the label-free rule on confident mistakes.
+	Tail Tail
 
 	// Alpha (encoders) weighs the BCE over nonzero targets against the BCE
 	// over all outputs: loss = Alpha·BCEnonzero + (1 − Alpha)·BCEall.
@@ -282,6 +290,26 @@ type Slices struct {
 	// Default false.
 	FailOnSlice bool
 }
+
+// Tail configures the label-free rule on confident mistakes: rows where
+// the candidate's loss, were the label the outcome it bets hardest
+// against, exceeds the baseline's by more than Excess nats are flagged,
+// and when the flagged rows' exposure (their expected extra loss were the
+// baseline right on them, averaged over the holdout) reaches the margin,
+// Action applies.
+type Tail struct {
+	// Excess is the flagging threshold in nats (> 0). Default 5.
+	Excess float64
+	// Action is TailFail, TailWarn or TailOff. Default TailFail.
+	Action string
+}
+
+// Tail actions.
+const (
+	TailFail = "fail"
+	TailWarn = "warn"
+	TailOff  = "off"
+)
 
 // BudgetCheck configures the budget check. A nil limit is measured and
 // reported but not enforced.

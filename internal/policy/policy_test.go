@@ -115,7 +115,7 @@ func TestDefaults(t *testing.T) {
 		Holdout: HoldoutCheck{
 			Enabled: true, Margin: 0.001, Confidence: 0.95, BootstrapReplicas: 200, Seed: 1,
 			Slices:               Slices{NonzeroQuantiles: []float64{0.5, 0.9}, AnomalyQuantile: 0.99, AnomalyWeight: 0.25, PerSliceMargin: 0.001},
-			MaxNormalizedEntropy: f(1), MinAUC: f(0.5),
+			MaxNormalizedEntropy: f(1), MinAUC: f(0.5), Tail: Tail{Excess: 5, Action: TailFail},
 		},
 		Budget:    BudgetCheck{Enabled: true, MaxGrowth: 0.2},
 		Approvals: Approvals{MaxAge: 72 * time.Hour},

@@ -3,6 +3,7 @@ package stats
 import (
 	"encoding/binary"
 	"math"
+	"slices"
 
 	"modelgate/internal/errkind"
 )
@@ -10,7 +11,7 @@ import (
 // Shard accumulators travel between machines as bytes: each accumulator
 // has MarshalBinary and UnmarshalBinary (encoding.BinaryMarshaler and
 // BinaryUnmarshaler). The format is little-endian: the magic "mgstat", a
-// version byte (1), a kind byte ('B' Binary, 'P' Paired, 'R' Recon, 'H'
+// version byte (2), a kind byte ('B' Binary, 'P' Paired, 'R' Recon, 'H'
 // Histogram), then the kind's fields; every compensated sum is its two
 // float64 parts, so a decoded accumulator merges exactly as the original.
 // Binary's AUC histogram is written sparsely: the number of non-empty bins,
@@ -22,7 +23,7 @@ import (
 
 const (
 	magic         = "mgstat"
-	formatVersion = 1
+	formatVersion = 2
 )
 
 type encoder struct{ b []byte }
@@ -213,17 +214,37 @@ func (b *Binary) UnmarshalBinary(data []byte) error {
 }
 
 // MarshalBinary encodes the accumulator (see the format above): seed,
-// replicate count and every replicate's sums.
+// replicate count, rows, the moment sums, every replicate's sums, then a
+// cluster flag (uint32 0 or 1) and, for a clustered accumulator, the
+// number of clusters and per cluster (in increasing key order) its key,
+// Σw·d and Σw.
 func (a *Paired) MarshalBinary() ([]byte, error) {
-	e := newEncoder('P', 8+4+8+16*(4+2*a.reps))
+	e := newEncoder('P', 8+4+8+16*(5+2*a.reps)+12+24*len(a.clusters))
 	e.u64(a.seed)
 	e.u32(uint32(a.reps))
 	e.u64(uint64(a.rows))
-	for _, k := range []ksum{a.w, a.w2, a.wd, a.m2} {
+	for _, k := range []ksum{a.w, a.w2, a.wd, a.m2, a.m3} {
 		e.sum(k)
 	}
 	for _, k := range a.rep {
 		e.sum(k)
+	}
+	if a.clusters == nil {
+		e.u32(0)
+		return e.b, nil
+	}
+	e.u32(1)
+	keys := make([]uint64, 0, len(a.clusters))
+	for k := range a.clusters {
+		keys = append(keys, k)
+	}
+	slices.Sort(keys)
+	e.u64(uint64(len(keys)))
+	for _, k := range keys {
+		c := a.clusters[k]
+		e.u64(k)
+		e.f64(c.wd)
+		e.f64(c.w)
 	}
 	return e.b, nil
 }
@@ -246,12 +267,32 @@ func (a *Paired) UnmarshalBinary(data []byte) error {
 		return err
 	}
 	v.rows = d.count()
-	v.w, v.w2, v.wd, v.m2 = d.weightSum(), d.weightSum(), d.sum(), d.weightSum()
+	v.w, v.w2, v.wd, v.m2, v.m3 = d.weightSum(), d.weightSum(), d.sum(), d.weightSum(), d.sum()
 	for j := range v.rep {
 		if j%2 == 0 {
 			v.rep[j] = d.weightSum() // Σw·k
 		} else {
 			v.rep[j] = d.sum() // Σw·k·d
+		}
+	}
+	switch flag := d.u32(); {
+	case d.err != nil:
+	case flag > 1:
+		d.fail("cluster flag %d", flag)
+	case flag == 1:
+		g := d.u64()
+		if d.err == nil && g > uint64(len(d.b)/24) {
+			d.fail("%d clusters in %d bytes", g, len(d.b))
+		}
+		v.clusters = make(map[uint64]*clusterSum, int(min(g, 1<<20)))
+		var prev uint64
+		for i := uint64(0); i < g && d.err == nil; i++ {
+			k := d.u64()
+			if i > 0 && k <= prev {
+				d.fail("cluster keys out of order")
+			}
+			prev = k
+			v.clusters[k] = &clusterSum{wd: d.f64(), w: d.nonneg()}
 		}
 	}
 	if err := d.end(); err != nil {
