@@ -11,11 +11,13 @@ import (
 )
 
 type pushOptions struct {
-	Kind string
+	Kind          string
+	ClusterColumn string
 }
 
 func (o *pushOptions) AddFlags(cmd *cobra.Command) {
 	cmd.Flags().StringVar(&o.Kind, "kind", "model", "what to push: model (a model directory) or holdout (a Parquet or JSON Lines file)")
+	cmd.Flags().StringVar(&o.ClusterColumn, "cluster-column", "", "holdouts: the column (string or integer) naming the listener a row belongs to, when a listener has several rows; the gate's test is then cluster-robust")
 }
 
 func newPushCmd(g *globals) *cobra.Command {
@@ -27,7 +29,11 @@ func newPushCmd(g *globals) *cobra.Command {
 stats, probes) and stores it as one OCI artifact: blobs first, then the
 manifest, then the tag. Blobs already in the store are not written again.
 With --kind holdout, push checks a holdout file (Parquet or JSON Lines) row
-by row and stores it, digest-pinned, for the gate. Prints the manifest digest.`,
+by row and stores it, digest-pinned, for the gate; a row_id given twice is
+refused. When a listener has several rows (listener × show), name the
+listener column with --cluster-column: the gate then sums a listener's rows
+together for its test, and a row_id may repeat within one listener's rows
+only. Prints the manifest digest.`,
 		Args: exactArgs(2, "DIR NAME:TAG"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runPush(cmd.Context(), g, o, args[0], args[1])
@@ -45,13 +51,16 @@ func runPush(ctx context.Context, g *globals, o *pushOptions, dir, refStr string
 	if o.Kind != "model" && o.Kind != "holdout" {
 		return usageErr("--kind %q: use model or holdout", o.Kind)
 	}
+	if o.ClusterColumn != "" && o.Kind != "holdout" {
+		return usageErr("--cluster-column applies to --kind holdout")
+	}
 	store, err := g.openStore()
 	if err != nil {
 		return err
 	}
 	var res *artifact.PushResult
 	if o.Kind == "holdout" {
-		res, err = artifact.PushHoldout(ctx, store, dir, ref, artifact.Options{Progress: g.progress()})
+		res, err = artifact.PushHoldout(ctx, store, dir, ref, artifact.Options{Progress: g.progress(), ClusterColumn: o.ClusterColumn})
 	} else {
 		res, err = artifact.PushModelDir(ctx, store, dir, ref, artifact.Options{Progress: g.progress()})
 	}

@@ -774,8 +774,8 @@ func finiteTest(t NonInferiority) NonInferiority {
 		}
 		return v
 	}
-	t.T, t.P, t.Upper, t.SkewUpper = clampInf(t.T), clampInf(t.P), clampInf(t.Upper), clampInf(t.SkewUpper)
-	t.Skewness = clampInf(t.Skewness)
+	t.T, t.P, t.Upper = clampInf(t.T), clampInf(t.P), clampInf(t.Upper)
+	t.Skewness, t.MinRows = clampInf(t.Skewness), clampInf(t.MinRows)
 	t.MeanDiff, t.StdErr = clampInf(t.MeanDiff), clampInf(t.StdErr)
 	t.BootstrapLower, t.BootstrapUpper = clampInf(t.BootstrapLower), clampInf(t.BootstrapUpper)
 	return t

@@ -70,10 +70,14 @@ func holdoutRuleFindings(st *holdoutState, ni NonInferiority, cfg HoldoutConfig)
 			Message: fmt.Sprintf("%d rows in %d clusters by column %q: cluster-robust standard error, %g degrees of freedom; the bootstrap resamples clusters",
 				ni.N, ni.Clusters, st.ClusterColumn, ni.DF)})
 	}
-	if ni.Upper < ni.Margin && ni.SkewUpper >= ni.Margin {
-		out = append(out, Finding{Status: StatusFail, Code: "holdout.skew", Value: ptr(ni.SkewUpper), Limit: ptr(ni.Margin),
-			Message: fmt.Sprintf("a few rows dominate the difference (skewness %.1f): the bound corrected for it, %+.5f, is not below the margin %.5f (the t bound %+.5f is)",
-				ni.Skewness, ni.SkewUpper, ni.Margin, ni.Upper)})
+	if n := ni.DF + 1; ni.Upper < ni.Margin && !(n > ni.MinRows) {
+		what := "rows"
+		if ni.Clusters > 0 {
+			what = "clusters"
+		}
+		out = append(out, Finding{Status: StatusFail, Code: "holdout.skew", Value: ptr(n), Limit: ptr(ni.MinRows),
+			Message: fmt.Sprintf("a few rows dominate the difference (skewness %.1f): the t bound %+.5f < margin %.5f cannot be trusted with %.0f %s; Cochran's rule asks for more than 25·skewness² = %.0f",
+				ni.Skewness, ni.Upper, ni.Margin, n, what, ni.MinRows)})
 	}
 	if st.Tail != nil {
 		if f, ok := tailFinding(st.Tail.Summary(), cfg.Margin, cfg.TailAction); ok {

@@ -149,10 +149,11 @@ type NonInferiority struct {
 	P        float64 `json:"p"`     // one-sided p-value of H0
 	Upper    float64 `json:"upper"` // upper one-sided bound (t)
 	// Skewness of the differences (of the cluster totals when clustered)
-	// and the upper bound corrected for it; both bounds must be below the
-	// margin.
-	Skewness  float64 `json:"skewness"`
-	SkewUpper float64 `json:"skewUpper"`
+	// and MinRows = 25·Skewness², the rows (clusters) the t bound
+	// needs to be trusted (Cochran's rule); the test passes when Upper <
+	// Margin and DF + 1 > MinRows.
+	Skewness float64 `json:"skewness"`
+	MinRows  float64 `json:"minRows"`
 	// Poisson-bootstrap percentile interval of mean(d).
 	BootstrapLower    float64 `json:"bootstrapLower"`
 	BootstrapUpper    float64 `json:"bootstrapUpper"`

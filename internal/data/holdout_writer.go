@@ -29,6 +29,8 @@ type HoldoutRow struct {
 	// then a weight of 0, not the default 1.
 	Weight float32
 	Slice  string // written when the layout has Slices
+	// Cluster is written, as a string, to the layout's Cluster column.
+	Cluster string
 }
 
 // HoldoutLayout says which columns a holdout file has (see the package
@@ -45,6 +47,9 @@ type HoldoutLayout struct {
 	// Weights writes the weight column; Slices the slice column.
 	Weights bool
 	Slices  bool
+	// Cluster, when not empty, names a string column written from each
+	// row's Cluster (the listener id of listener × show rows).
+	Cluster string
 	// RowGroupRows bounds the rows of a Parquet row group (default 65536).
 	RowGroupRows int
 }
@@ -95,7 +100,10 @@ func CreateHoldout(path string, layout HoldoutLayout) (HoldoutWriter, error) {
 // NewHoldoutWriter writes a holdout in format ("parquet", "jsonl" or
 // "ndjson") to w. Close finishes the format but does not close w.
 func NewHoldoutWriter(w io.Writer, format string, layout HoldoutLayout) (HoldoutWriter, error) {
-	seen := map[string]bool{}
+	seen := map[string]bool{layout.Cluster: layout.Cluster != ""}
+	if reservedColumn(layout.Cluster) || !utf8.ValidString(layout.Cluster) {
+		return nil, errkind.New(errkind.BadInput, "cluster column name %q is a holdout column's or not UTF-8", layout.Cluster)
+	}
 	for _, d := range layout.Dense {
 		switch {
 		case reservedColumn(d.Name) || d.Name == "":
@@ -185,6 +193,9 @@ func (h *holdoutWriter) check(r *HoldoutRow) error {
 	if h.layout.Slices && !utf8.ValidString(r.Slice) {
 		return fmt.Errorf("slice %q is not valid UTF-8", r.Slice)
 	}
+	if h.layout.Cluster != "" && !utf8.ValidString(r.Cluster) {
+		return fmt.Errorf("cluster %q is not valid UTF-8", r.Cluster)
+	}
 	return nil
 }
 
@@ -233,6 +244,7 @@ type holdoutParquet struct {
 	colLab  int
 	colWt   int
 	colSl   int
+	colCl   int
 }
 
 func newHoldoutParquet(w io.Writer, layout HoldoutLayout) *holdoutParquet {
@@ -260,7 +272,12 @@ func newHoldoutParquet(w io.Writer, layout HoldoutLayout) *holdoutParquet {
 	}
 	if layout.Slices {
 		names, nodes = append(names, colSlice), append(nodes, parquet.String())
-		h.colSl = next
+		h.colSl, next = next, next+1
+	}
+	h.colCl = -1
+	if layout.Cluster != "" {
+		names, nodes = append(names, layout.Cluster), append(nodes, parquet.String())
+		h.colCl = next
 	}
 	schema := parquet.NewSchema("holdout", newOrderedGroup(names, nodes))
 	h.w = parquet.NewWriter(w, schema,
@@ -328,6 +345,11 @@ func (h *holdoutParquet) write(rows []HoldoutRow) error {
 				h.arena = append(h.arena, hr.Slice...)
 				row = append(row, parquet.ByteArrayValue(h.arena[start:len(h.arena):len(h.arena)]).Level(0, 0, h.colSl))
 			}
+			if h.colCl >= 0 {
+				start := len(h.arena)
+				h.arena = append(h.arena, hr.Cluster...)
+				row = append(row, parquet.ByteArrayValue(h.arena[start:len(h.arena):len(h.arena)]).Level(0, 0, h.colCl))
+			}
 			out[r] = row
 		}
 		if _, err := h.w.WriteRows(out); err != nil {
@@ -389,6 +411,12 @@ func (h *holdoutJSONL) write(rows []HoldoutRow) error {
 		if h.layout.Slices {
 			b = append(b, `,"slice":`...)
 			b = appendJSONString(b, hr.Slice)
+		}
+		if h.layout.Cluster != "" {
+			b = append(b, ',')
+			b = appendJSONString(b, h.layout.Cluster)
+			b = append(b, ':')
+			b = appendJSONString(b, hr.Cluster)
 		}
 		b = append(b, '}', '\n')
 		h.line = b
