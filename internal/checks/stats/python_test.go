@@ -20,12 +20,19 @@ const debianPython = "/usr/bin/python3"
 // CI environment variable is set.
 func runPython(t *testing.T, script string, in, out any) {
 	t.Helper()
-	probe := exec.Command(debianPython, "-c", "import numpy, scipy, sklearn, mpmath")
+	runPythonWith(t, "numpy, scipy, sklearn, mpmath", script, in, out)
+}
+
+// runPythonWith is runPython for a script that imports only modules (a
+// comma-separated list).
+func runPythonWith(t *testing.T, modules, script string, in, out any) {
+	t.Helper()
+	probe := exec.Command(debianPython, "-c", "import "+modules)
 	if msg, err := probe.CombinedOutput(); err != nil {
 		if os.Getenv("CI") != "" {
-			t.Fatalf("%s with numpy, scipy, sklearn, mpmath is required in CI: %v\n%s", debianPython, err, msg)
+			t.Fatalf("%s with %s is required in CI: %v\n%s", debianPython, modules, err, msg)
 		}
-		t.Skipf("%s with numpy, scipy, sklearn, mpmath not available: %v", debianPython, err)
+		t.Skipf("%s with %s not available: %v", debianPython, modules, err)
 	}
 	data, err := json.Marshal(in)
 	if err != nil {
