@@ -111,7 +111,7 @@ func NewHoldoutWriter(w io.Writer, format string, layout HoldoutLayout) (Holdout
 		case d.Size <= 0:
 			return nil, errkind.New(errkind.BadInput, "dense input %q has size %d", d.Name, d.Size)
 		case seen[d.Name]:
-			return nil, errkind.New(errkind.BadInput, "dense input %q named twice", d.Name)
+			return nil, errkind.New(errkind.BadInput, "dense input %q named twice, or also as the cluster column", d.Name)
 		}
 		seen[d.Name] = true
 	}
