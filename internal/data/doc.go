@@ -39,6 +39,14 @@
 //	                   reports (default: the row's 0-based position in the
 //	                   file).
 //
+//	<cluster> optional one column, named by the reader's Options.ClusterColumn
+//	                   (declared at holdout push or in the policy): a string
+//	                   or an integer naming the cluster a row belongs to,
+//	                   typically the listener of listener × show rows.
+//	                   Required on every row when named; an integer and
+//	                   its decimal string are one cluster. Frame.Clusters
+//	                   holds each row's ClusterKey.
+//
 // Labels: a file either has labels on every row or on none. In Parquet the
 // label column decides; in JSON Lines the first row does. A reader asked to
 // require labels refuses a file without them. An explicit null label is
