@@ -191,6 +191,8 @@ rules:
 	wideDense := write("wide-dense.jsonl", `{"row_id":1,"items":[],"values":[],"label":1,"listener_tenure":[0.1,0.4],"show_age":[0.2]}`+"\n")
 	notParquet := write("garbage.parquet", "PAR1 this is not a parquet file PAR1")
 	csvHoldout := write("holdout.csv", "row_id,items\n1,show-003\n")
+	dupRowID := write("dup-row-id.jsonl", row(5, `["show-003"]`, `[1]`, "0")+row(6, `["show-003"]`, `[1]`, "1")+row(5, `["show-010"]`, `[2]`, "0"))
+	crossCluster := write("cross-cluster.jsonl", strings.ReplaceAll(row(5, `[]`, `[]`, "0"), "}", `,"listener_id":"a"}`)+strings.ReplaceAll(row(5, `[]`, `[]`, "1"), "}", `,"listener_id":"b"}`))
 
 	longSlice := write("long-slice.jsonl", `{"row_id":1,"items":["show-003"],"values":[1],"label":1,"listener_tenure":[0.1],"show_age":[0.2],"slice":"`+strings.Repeat("s", 1<<20)+`"}`+"\n")
 	// A store holding such a holdout, written past push's checks (as an
@@ -282,6 +284,10 @@ rules:
 		{name: "verify: a stored holdout summary over the readers' limit", store: unreadable, args: []string{"verify"}, code: 5, want: []string{"long-holdout", "over the 1048576 bytes modelgate reads"}, stdoutOK: true},
 		{name: "holdout not Parquet", args: []string{"push", "--kind", "holdout", notParquet, "bad-holdout:v1"}, code: 2, want: []string{"garbage.parquet", "Parquet"}},
 		{name: "holdout in CSV", args: []string{"push", "--kind", "holdout", csvHoldout, "bad-holdout:v1"}, code: 2, want: []string{"holdout.csv", "CSV"}},
+		{name: "holdout row_id given twice", args: []string{"push", "--kind", "holdout", dupRowID, "bad-holdout:v1"}, code: 2, want: []string{"dup-row-id.jsonl", "row_id 5", "--cluster-column"}},
+		{name: "holdout cluster column missing", args: []string{"push", "--kind", "holdout", "--cluster-column", "listener_id", labelTwo, "bad-holdout:v1"}, code: 2, want: []string{"label-two.jsonl", "row 1", "listener_id"}},
+		{name: "holdout row_id in two clusters", args: []string{"push", "--kind", "holdout", "--cluster-column", "listener_id", crossCluster, "bad-holdout:v1"}, code: 2, want: []string{"cross-cluster.jsonl", "row_id 5", "one cluster"}},
+		{name: "cluster column on a model push", args: []string{"push", "--cluster-column", "listener_id", scorerDir, "tiny-scorer:v9"}, code: 2, want: []string{"--cluster-column"}},
 		{name: "score: holdout row with unpaired values", args: []string{"score", "tiny-scorer:v1", "--holdout", unpaired, "--out", filepath.Join(dir, "p.jsonl")}, code: 2, want: []string{"unpaired.jsonl", "row 2"}},
 		{name: "score: dense input of the wrong width", args: []string{"score", "tiny-scorer:v1", "--holdout", wideDense, "--out", filepath.Join(dir, "p.jsonl")}, code: 2, want: []string{"wide-dense.jsonl", "row 1", "listener_tenure"}},
 		{name: "score: holdout reference to a model", args: []string{"score", "tiny-scorer:v1", "--holdout", "tiny-encoder:v1", "--out", filepath.Join(dir, "p.jsonl")}, code: 2, want: []string{"tiny-encoder:v1", "not a holdout"}},

@@ -20,9 +20,7 @@ import (
 func demoRows(t *testing.T, store registry.Store) ([]data.HoldoutRow, data.HoldoutLayout) {
 	t.Helper()
 	ctx := context.Background()
-	m, _, err := LoadAndPrepare(func() (*artifact.Loaded, error) {
-		return artifact.Load(ctx, store, registry.Ref{Repository: "promo-scorer", Tag: "cand-better"})
-	})
+	m, err := loadPrepared(ctx, store, registry.Ref{Repository: "promo-scorer", Tag: "cand-better"})
 	if err != nil {
 		t.Fatal(err)
 	}
