@@ -23,6 +23,15 @@ const (
 	Report = "report.schema.json"
 )
 
+// Output names the schema of a command's --json output on stdout
+// ("output-push.schema.json" for push). Every command that ends prints
+// one document: its result, or on failure {"error": …}
+// (output-error.schema.json) — beside the result when it has one.
+func Output(command string) string { return "output-" + command + ".schema.json" }
+
+// OutputCommands are the commands whose --json output has a schema.
+var OutputCommands = []string{"approve", "copy", "demo", "diff", "freeze", "gate", "keygen", "log", "ls", "promote", "pull", "push", "rollback", "score", "show", "verify"}
+
 var (
 	mu       sync.Mutex
 	compiled = map[string]*jsonschema.Schema{}
@@ -37,15 +46,37 @@ func get(name string) (*jsonschema.Schema, error) {
 	if s, ok := compiled[name]; ok {
 		return s, nil
 	}
-	raw, err := files.ReadFile(name)
-	if err != nil {
+	if _, err := files.ReadFile(name); err != nil {
 		return nil, fmt.Errorf("schema %q: %w", name, err)
 	}
+	// Every schema is a resource under its $id, so that one may refer to
+	// another by a relative reference ("report.schema.json").
 	c := jsonschema.NewCompiler()
 	c.Draft = jsonschema.Draft2020
-	url := "mem:///" + name
-	if err := c.AddResource(url, bytes.NewReader(raw)); err != nil {
-		return nil, fmt.Errorf("schema %q: %w", name, err)
+	all, err := files.ReadDir(".")
+	if err != nil {
+		return nil, err
+	}
+	url := ""
+	for _, f := range all {
+		raw, err := files.ReadFile(f.Name())
+		if err != nil {
+			return nil, err
+		}
+		var head struct {
+			ID string `json:"$id"`
+		}
+		_ = json.Unmarshal(raw, &head)
+		u := head.ID
+		if u == "" {
+			u = "mem:///" + f.Name()
+		}
+		if err := c.AddResource(u, bytes.NewReader(raw)); err != nil {
+			return nil, fmt.Errorf("schema %q: %w", f.Name(), err)
+		}
+		if f.Name() == name {
+			url = u
+		}
 	}
 	s, err := c.Compile(url)
 	if err != nil {

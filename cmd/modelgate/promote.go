@@ -95,11 +95,8 @@ func runPromote(ctx context.Context, g *globals, o *promoteOptions, candStr stri
 	res, err := release.Promote(ctx, store, release.PromoteRequest{Candidate: cand.Digest, Target: target, Policy: pol,
 		Key: key, User: currentUser(), Reason: o.Reason})
 	if g.JSON && res != nil {
-		out := map[string]any{"result": res}
-		if err != nil {
-			out["error"] = err.Error()
-		}
-		if perr := g.printJSON(out); perr != nil {
+		// On a refusal the error is added beside the result (finishJSON).
+		if perr := g.printJSON(map[string]any{"result": res}); perr != nil {
 			return perr
 		}
 		return err

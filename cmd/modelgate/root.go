@@ -16,6 +16,7 @@ import (
 
 	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
+	"modelgate/internal/release"
 	"modelgate/internal/version"
 )
 
@@ -30,6 +31,11 @@ type globals struct {
 
 	CPUProfile  string
 	stopProfile func()
+
+	// With --json, the command's one result document waits here until the
+	// command ends (finishJSON), so that a failure can be added to it.
+	jsonDoc any
+	jsonSet bool
 }
 
 // EnvStore names the environment variable that selects the store.
@@ -78,14 +84,94 @@ func (g *globals) interactive() bool {
 	return ok && term.IsTerminal(int(f.Fd()))
 }
 
+// printJSON sets the command's result document. With --json it is written
+// when the command ends (finishJSON), with the error added when it fails;
+// a command sets at most one.
 func (g *globals) printJSON(v any) error {
-	enc := json.NewEncoder(g.Stdout)
+	if !g.JSON {
+		return writeJSON(g.Stdout, v)
+	}
+	if g.jsonSet {
+		return errkind.New(errkind.Internal, "a second JSON result document (only one is printed)")
+	}
+	g.jsonDoc, g.jsonSet = v, true
+	return nil
+}
+
+func writeJSON(w io.Writer, v any) error {
+	enc := json.NewEncoder(w)
 	enc.SetIndent("", "  ")
 	return enc.Encode(v)
 }
 
+// jsonError is the "error" member of a failed command's --json document.
+type jsonError struct {
+	ExitCode int    `json:"exitCode"`
+	Kind     string `json:"kind"`
+	Message  string `json:"message"`
+	// Problems lists each reason of a refusal (promote, approve,
+	// rollback), when there are several.
+	Problems []string `json:"problems,omitempty"`
+}
+
+// finishJSON writes the --json document on stdout: on success the result;
+// on failure the result (when the command has one) with an "error" member
+// added, else {"error": …}. A result that is not a JSON object is put
+// under "result". Without --json it does nothing.
+func (g *globals) finishJSON(err error, code int) {
+	if !g.JSON {
+		return
+	}
+	if err == nil {
+		if g.jsonSet {
+			_ = writeJSON(g.Stdout, g.jsonDoc)
+		}
+		return
+	}
+	je := jsonError{ExitCode: code, Kind: kindName(code), Message: err.Error()}
+	var ref *release.Refusal
+	if errors.As(err, &ref) && len(ref.Problems) > 1 {
+		je.Problems = ref.Problems
+	}
+	doc := map[string]any{}
+	if g.jsonSet {
+		raw, merr := json.Marshal(g.jsonDoc)
+		if merr != nil || json.Unmarshal(raw, &doc) != nil {
+			doc = map[string]any{"result": json.RawMessage(raw)}
+		}
+	}
+	doc["error"] = je
+	_ = writeJSON(g.Stdout, doc)
+}
+
+// kindName is the machine name of an exit code in --json errors.
+func kindName(code int) string {
+	switch errkind.Kind(code) {
+	case errkind.GateFailed:
+		return "gate-failed"
+	case errkind.BadInput:
+		return "bad-input"
+	case errkind.Conflict:
+		return "conflict"
+	case errkind.Unauthorized:
+		return "unauthorized"
+	case errkind.Integrity:
+		return "integrity"
+	}
+	if code == 130 || code == 143 {
+		return "interrupted"
+	}
+	return "internal"
+}
+
+// logf writes a log line on stderr: plain text, or with --json a JSON Lines
+// event {"event":"log","message":…} so that stderr stays parseable.
 func (g *globals) logf(format string, args ...any) {
 	if g.Quiet {
+		return
+	}
+	if g.JSON {
+		_ = json.NewEncoder(g.Stderr).Encode(map[string]string{"event": "log", "message": fmt.Sprintf(format, args...)})
 		return
 	}
 	fmt.Fprintf(g.Stderr, format+"\n", args...)
@@ -165,24 +251,43 @@ func run(ctx context.Context, args []string, stdin io.Reader, stdout, stderr io.
 	if g.stopProfile != nil {
 		g.stopProfile()
 	}
+	code := exitCode(ctx, err)
+	g.finishJSON(err, code)
 	if err == nil {
 		return 0
+	}
+	switch {
+	case code == 130 || code == 143:
+		if cause := context.Cause(ctx); cause != nil && cause != context.Canceled {
+			// Whatever the command made of its cancelled work, it was stopped.
+			fmt.Fprintf(stderr, "modelgate: %v\n", cause)
+		} else {
+			fmt.Fprintln(stderr, "modelgate: interrupted")
+		}
+	case code == int(errkind.GateFailed):
+	case g.JSON:
+		// The message is in stdout's document; stderr stays JSON Lines.
+		_ = json.NewEncoder(stderr).Encode(map[string]any{"event": "error", "exitCode": code, "message": err.Error()})
+	default:
+		fmt.Fprintf(stderr, "modelgate: %v\n", err)
+	}
+	return code
+}
+
+// exitCode maps a command's error to the process exit code.
+func exitCode(ctx context.Context, err error) int {
+	if err == nil {
+		return 0
+	}
+	if code, ok := interruptCode(ctx); ok {
+		return code
+	}
+	if errors.Is(err, context.Canceled) {
+		return 130
 	}
 	k := errkind.Of(err)
 	if k == errkind.Internal && isUsageError(err) {
 		k = errkind.BadInput
-	}
-	if code, ok := interruptCode(ctx); ok {
-		// Whatever the command made of its cancelled work, it was stopped.
-		fmt.Fprintf(stderr, "modelgate: %v\n", context.Cause(ctx))
-		return code
-	}
-	if errors.Is(err, context.Canceled) {
-		fmt.Fprintln(stderr, "modelgate: interrupted")
-		return 130
-	}
-	if !errkind.Is(err, errkind.GateFailed) {
-		fmt.Fprintf(stderr, "modelgate: %v\n", err)
 	}
 	return int(k)
 }

@@ -1,0 +1,105 @@
+package main
+
+import (
+	"encoding/json"
+	"path/filepath"
+	"strings"
+	"testing"
+
+	"modelgate/schemas"
+)
+
+// checkJSON validates a command's stdout against the command's output
+// schema (schemas/output-CMD.schema.json) and checks the one-document
+// contract: exactly one JSON document; an "error" member exactly when the
+// exit code is not 0, carrying that exit code.
+func checkJSON(t *testing.T, cmd string, r result) map[string]any {
+	t.Helper()
+	dec := json.NewDecoder(strings.NewReader(r.stdout))
+	var doc any
+	if err := dec.Decode(&doc); err != nil {
+		t.Fatalf("%s --json (exit %d): stdout is not JSON: %v\n%s\nstderr: %s", cmd, r.code, err, r.stdout, r.stderr)
+	}
+	if dec.More() {
+		t.Errorf("%s --json: more than one document on stdout", cmd)
+	}
+	vs, err := schemas.Validate(schemas.Output(cmd), []byte(r.stdout))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(vs) > 0 {
+		t.Errorf("%s --json (exit %d) breaks %s:\n%s", cmd, r.code, schemas.Output(cmd), schemas.Join("  ", vs))
+	}
+	obj, _ := doc.(map[string]any)
+	e, hasErr := obj["error"].(map[string]any)
+	switch {
+	case r.code == 0 && hasErr:
+		t.Errorf("%s --json exited 0 with an error member: %v", cmd, e)
+	case r.code != 0 && !hasErr:
+		t.Errorf("%s --json exited %d without an error member:\n%s", cmd, r.code, r.stdout)
+	case r.code != 0 && e["exitCode"] != float64(r.code):
+		t.Errorf("%s --json exited %d but error.exitCode is %v", cmd, r.code, e["exitCode"])
+	}
+	// stderr holds JSON Lines only (progress, log and error events).
+	for _, line := range strings.Split(strings.TrimSpace(r.stderr), "\n") {
+		if line != "" && !json.Valid([]byte(line)) {
+			t.Errorf("%s --json: a stderr line is not JSON: %q", cmd, line)
+		}
+	}
+	return obj
+}
+
+// TestJSONContract runs every command that ends with --json, on success
+// and on failure, and validates each document against its schema.
+func TestJSONContract(t *testing.T) {
+	if testing.Short() {
+		t.Skip("runs the demo")
+	}
+	dir := t.TempDir()
+	store, work := filepath.Join(dir, "store"), filepath.Join(dir, "work")
+	checkJSON(t, "demo", mg(t, store, "demo", "--work", work, "--json"))
+	pol := filepath.Join(work, "policies", "promo-scorer.yaml")
+	key := func(n string) string { return filepath.Join(work, "keys", n+".key.pem") }
+	enc, scorer := fixtures(t)
+	for _, c := range []struct {
+		cmd  string
+		args []string
+		code int
+	}{
+		{"push", []string{"push", enc, "tiny-encoder:v1"}, 0},
+		{"push", []string{"push", scorer, "tiny-scorer:v1"}, 0},
+		{"push", []string{"push", filepath.Join(dir, "absent"), "tiny-encoder:v2"}, 2},
+		{"pull", []string{"pull", "tiny-encoder:v1", filepath.Join(dir, "pulled")}, 0},
+		{"pull", []string{"pull", "tiny-encoder:absent", filepath.Join(dir, "pulled2")}, 2},
+		{"ls", []string{"ls"}, 0},
+		{"ls", []string{"ls", "no-such-repo"}, 2},
+		{"show", []string{"show", "promo-scorer:cand-better"}, 0},
+		{"show", []string{"show", "promo-holdout:v1"}, 0},
+		{"diff", []string{"diff", "promo-scorer:baseline", "promo-scorer:cand-shuffled-vocab"}, 0},
+		{"verify", []string{"verify"}, 0},
+		{"score", []string{"score", "promo-scorer:prod", "--holdout", "promo-holdout:v1", "--out", filepath.Join(dir, "p.csv")}, 0},
+		{"gate", []string{"gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--sign-key", key("ci")}, 1},
+		{"gate", []string{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", pol, "--shard", "1/2"}, 0},
+		{"gate", []string{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", filepath.Join(dir, "absent.yaml")}, 2},
+		{"freeze", []string{"freeze", "tiny-scorer:v1", "--out", "tiny-scorer:frozen"}, 0},
+		{"keygen", []string{"keygen", "--out", filepath.Join(dir, "kay"), "--name", "kay"}, 0},
+		// The demo gated cand-worse before its rollback moved the tag: its
+		// reports are against another baseline (conflict, 3).
+		{"approve", []string{"approve", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--key", key("ana")}, 3},
+		{"promote", []string{"promote", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--key", key("rita")}, 3},
+		{"rollback", []string{"rollback", "promo-scorer:prod", "--reason", "contract test", "--dry-run"}, 2}, // the demo rolled back to the first release
+		{"log", []string{"log", "promo-scorer:prod", "--policy", pol}, 0},
+		{"copy", []string{"copy", "tiny-encoder:v1", "--dest", filepath.Join(dir, "copy")}, 0},
+	} {
+		r := mg(t, store, append(c.args, "--json")...)
+		if r.code != c.code {
+			t.Errorf("%s: exit %d, want %d\nstdout: %s\nstderr: %s", strings.Join(c.args, " "), r.code, c.code, r.stdout, r.stderr)
+		}
+		doc := checkJSON(t, c.cmd, r)
+		if c.cmd == "gate" && c.code == 1 {
+			if rep, _ := doc["report"].(map[string]any); rep["verdict"] != "fail" {
+				t.Errorf("a failed gate's document has no .report.verdict fail: %v", doc)
+			}
+		}
+	}
+}
