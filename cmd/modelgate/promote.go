@@ -4,24 +4,26 @@ import (
 	"context"
 	"fmt"
 	"os"
+	"strings"
 
 	"github.com/spf13/cobra"
 
 	"modelgate/internal/policy"
+	"modelgate/internal/registry"
 	"modelgate/internal/release"
 )
 
 type promoteOptions struct {
-	To     string
-	Policy string
-	Key    string
-	Reason string
+	To       string
+	Policies []string
+	Key      string
+	Reason   string
 }
 
 func (o *promoteOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.To, "to", "", "target tag NAME:TAG (required)")
-	f.StringVar(&o.Policy, "policy", "", "policy file with a rule for the target (required)")
+	f.StringArrayVar(&o.Policies, "policy", nil, "policy file with a rule for the target (required; repeat it to name the scorer policies whose rules tie scorers to an encoder tag)")
 	f.StringVar(&o.Key, "key", "", "private key that signs the release record (without it the record is unsigned and names $USER)")
 	f.StringVar(&o.Reason, "reason", "", "free text stored in the release record")
 }
@@ -45,9 +47,19 @@ It then writes the release record, moves the tag by compare-and-swap on
 the baseline, and advances the release log head (tag release-TAG).
 Promoting the tag's current target changes nothing.
 
+An encoder and the scorers built on its code are coupled. An encoder tag
+whose live target a live scorer consumes (a scorer tag with a release log
+pointing at a scorer whose spec names that encoder, or a scorer rule of a
+--policy file whose freeze.encoderTag is the encoder tag) does not move
+alone: promote refuses with exit 4, naming those scorer tags and the
+command that moves them together. A scorer whose rule names an encoder
+tag must consume the encoder that tag points at (exit 3 otherwise: the
+encoder moved since the gate).
+
 Exit codes: 0 promoted (or already the target); 1 the gate failed; 2 bad
 input; 3 the tag moved since the gate ran, or a concurrent promote won;
-4 missing approvals or signatures; 5 the release log disagrees with the tag.`,
+4 missing approvals or signatures, or an encoder moving without the
+scorers that consume it; 5 the release log disagrees with the tag.`,
 		Args: exactArgs(1, "CANDIDATE"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runPromote(cmd.Context(), g, o, args[0])
@@ -73,14 +85,14 @@ func loadOptionalKey(path string) (*release.Key, error) {
 }
 
 func runPromote(ctx context.Context, g *globals, o *promoteOptions, candStr string) error {
-	if o.To == "" || o.Policy == "" {
+	if o.To == "" || len(o.Policies) == 0 {
 		return usageErr("promote needs --to NAME:TAG and --policy FILE")
 	}
 	key, err := loadOptionalKey(o.Key)
 	if err != nil {
 		return err
 	}
-	pol, err := policy.Load(o.Policy)
+	pols, err := loadPolicies(o.Policies)
 	if err != nil {
 		return err
 	}
@@ -92,8 +104,12 @@ func runPromote(ctx context.Context, g *globals, o *promoteOptions, candStr stri
 	if err != nil {
 		return err
 	}
+	pol, err := policyFor(pols, target)
+	if err != nil {
+		return err
+	}
 	res, err := release.Promote(ctx, store, release.PromoteRequest{Candidate: cand.Digest, Target: target, Policy: pol,
-		Key: key, User: currentUser(), Reason: o.Reason})
+		Policies: pols, CandidateName: candStr, Key: key, User: currentUser(), Reason: o.Reason})
 	if g.JSON && res != nil {
 		// On a refusal the error is added beside the result (finishJSON).
 		if perr := g.printJSON(map[string]any{"result": res}); perr != nil {
@@ -133,4 +149,43 @@ func orAbsent(d string) string {
 		return "(absent)"
 	}
 	return d
+}
+
+// loadPolicies loads every policy file named.
+func loadPolicies(paths []string) ([]*policy.Policy, error) {
+	var out []*policy.Policy
+	for _, p := range paths {
+		pol, err := policy.Load(p)
+		if err != nil {
+			return nil, err
+		}
+		out = append(out, pol)
+	}
+	return out, nil
+}
+
+// policyFor returns the one policy of pols with a rule for target.
+func policyFor(pols []*policy.Policy, target registry.Ref) (*policy.Policy, error) {
+	var found *policy.Policy
+	for _, p := range pols {
+		if _, err := p.Rule(target.String()); err != nil {
+			continue
+		}
+		if found != nil {
+			return nil, usageErr("both %s and %s have a rule for %s: name one policy per target", found.Source, p.Source, target)
+		}
+		found = p
+	}
+	if found == nil {
+		if len(pols) == 1 {
+			_, err := pols[0].Rule(target.String())
+			return nil, err
+		}
+		var names []string
+		for _, p := range pols {
+			names = append(names, p.Source)
+		}
+		return nil, usageErr("none of the policies %s has a rule for %s", strings.Join(names, ", "), target)
+	}
+	return found, nil
 }

@@ -46,6 +46,14 @@ type PromoteRequest struct {
 	Target registry.Ref
 	// Policy is the parsed policy; Target must have a rule in it.
 	Policy *policy.Policy
+	// Policies are further policies consulted for the coupling of encoders
+	// and scorers: their scorer rules whose freeze.encoderTag is Target
+	// name scorer tags that consume Target's encoder (besides those found
+	// by reverse lineage).
+	Policies []*policy.Policy
+	// CandidateName is how the caller named the candidate (NAME:TAG), for
+	// messages; "" names it by digest.
+	CandidateName string
 	// Key signs the release record; nil writes an unsigned record whose
 	// author is User.
 	Key *Key
@@ -195,6 +203,19 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 	return j, nil
 }
 
+// addProblems puts ps before the problems the judge found, raising its
+// kind where one is graver.
+func (j *Judge) addProblems(ps []problem) {
+	var lines []string
+	for _, p := range ps {
+		lines = append(lines, p.text)
+		if j.Kind == 0 || rank(p.kind) > rank(j.Kind) {
+			j.Kind = p.kind
+		}
+	}
+	j.Problems = append(lines, j.Problems...)
+}
+
 // rank orders problem kinds: the most specific cause decides the exit code.
 func rank(k errkind.Kind) int {
 	switch k {
@@ -252,10 +273,19 @@ func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*Pr
 	if req.Key != nil {
 		promoter = req.Key.ID
 	}
+	mv, err := newMove(ctx, store, t, req.Candidate, req.CandidateName, s.current(), req.Policy)
+	if err != nil {
+		return nil, err
+	}
+	coupling, err := couplingProblems(ctx, store, []move{mv}, append([]*policy.Policy{req.Policy}, req.Policies...))
+	if err != nil {
+		return nil, err
+	}
 	j, err := judge(ctx, store, req.Candidate.String(), t, req.Policy, s.current(), promoter, now, judgePromote)
 	if err != nil {
 		return nil, err
 	}
+	j.addProblems(coupling)
 	res.Reports, res.Approvals, res.Required = j.Reports, j.Approvals, j.Required
 	if len(j.Problems) > 0 {
 		return res, refuse(&Refusal{Kind: j.Kind, Action: "promote", Problems: j.Problems, Reports: j.Reports, Approvals: j.Approvals})
