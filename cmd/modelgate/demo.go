@@ -54,7 +54,11 @@ Then it plays the release story on promo-scorer:prod: keys for two
 approvers, a release manager and CI (in the work folder), a copy of
 policies/promo-scorer.yaml that trusts them; the better candidate gated
 (report signed by CI), approved by two keys and promoted; the bad
-candidates refused with their reasons; a rollback; and the verified log.
+candidates refused with their reasons; a rollback; a new encoder version
+(listener-encoder:v2) with the scorer refitted on its code: the encoder
+alone refused because the live scorer reads its code, both released
+together under one record, and rolled back together; and the verified
+logs.
 On a store where the story already ran, it only shows the log.
 Everything is invented data.`,
 		Args: exactArgs(0, "(none)"),
@@ -139,6 +143,7 @@ func runDemo(ctx context.Context, g *globals, o *demoOptions) error {
 	fmt.Fprintln(w, "  "+mg+" score promo-scorer:prod --holdout promo-holdout:v1 --out predictions.csv")
 	fmt.Fprintln(w, "  "+verify)
 	fmt.Fprintln(w, "  "+mg+" log promo-scorer:prod --policy "+shellQuote(filepath.Join(work, "policies", "promo-scorer.yaml")))
+	fmt.Fprintln(w, "  "+mg+" log listener-encoder:prod --policy "+shellQuote(filepath.Join(work, "policies", "listener-encoder.yaml")))
 	return nil
 }
 
@@ -221,7 +226,14 @@ func demoKeys(dir string) (map[string]*release.Key, error) {
 // with the demo's keys: ana, ben and rita approve (two needed), ci signs
 // gate reports.
 func demoPolicy(work string, keys map[string]*release.Key) (string, error) {
-	raw, err := policies.FS.ReadFile("promo-scorer.yaml")
+	return demoPolicyFor(work, keys, "promo-scorer.yaml", "promo-scorer:prod")
+}
+
+// demoPolicyFor writes the embedded policy file with the demo's keys
+// into work/policies and checks its rule for target asks what the demo
+// needs.
+func demoPolicyFor(work string, keys map[string]*release.Key, file, target string) (string, error) {
+	raw, err := policies.FS.ReadFile(file)
 	if err != nil {
 		return "", err
 	}
@@ -234,7 +246,7 @@ func demoPolicy(work string, keys map[string]*release.Key) (string, error) {
 		{"      reportSigners: []\n", "      reportSigners:\n" + entry("ci")},
 	} {
 		if !strings.Contains(text, r.old) {
-			return "", fmt.Errorf("the embedded promo-scorer policy has no line %q to fill in", strings.TrimSpace(r.old))
+			return "", fmt.Errorf("the embedded policy %s has no line %q to fill in", file, strings.TrimSpace(r.old))
 		}
 		text = strings.Replace(text, r.old, r.new, 1)
 	}
@@ -242,7 +254,7 @@ func demoPolicy(work string, keys map[string]*release.Key) (string, error) {
 	if err := os.MkdirAll(dir, 0o755); err != nil {
 		return "", err
 	}
-	p := filepath.Join(dir, "promo-scorer.yaml")
+	p := filepath.Join(dir, file)
 	if err := os.WriteFile(p, []byte(text), 0o644); err != nil {
 		return "", err
 	}
@@ -250,7 +262,7 @@ func demoPolicy(work string, keys map[string]*release.Key) (string, error) {
 	if err != nil {
 		return "", fmt.Errorf("the demo's policy copy: %w", err)
 	}
-	if r, err := pol.Rule("promo-scorer:prod"); err != nil || r.Approvals.Required != 2 || len(r.Approvals.ReportSigners) != 1 {
+	if r, err := pol.Rule(target); err != nil || r.Approvals.Required != 2 || len(r.Approvals.ReportSigners) != 1 {
 		return "", fmt.Errorf("the demo's policy copy does not say what the demo needs (%v)", err)
 	}
 	return p, nil
@@ -310,8 +322,9 @@ func releaseStory(ctx context.Context, g *globals, w io.Writer, work string, sc 
 		switch {
 		case m.Name == demo.ScorerBaseline:
 			baseline = m.Tag
-		case m.Kind == "scorer" && m.Role == "candidate" && m.Fails == "":
+		case m.Name == demo.CandBetter:
 			better = m.Tag
+		case m.Name == demo.CandEncoderV2:
 		case m.Kind == "scorer" && m.Role == "candidate":
 			bad = append(bad, m)
 		}
@@ -387,12 +400,123 @@ func releaseStory(ctx context.Context, g *globals, w io.Writer, work string, sc 
 	}
 	indent(out)
 
-	section("7. The release log, every signature and link verified against the policy's keys.")
+	if err := encoderScene(ctx, g, w, work, sc, keys, polPath); err != nil {
+		return err
+	}
+
+	section("8. The release log, every signature and link verified against the policy's keys.")
 	fmt.Fprintf(w, "   $ modelgate log %s --policy %s\n", target, polPath)
 	out, err = sub(ctx, g, "log", target, "--policy", polPath)
 	indent(out)
 	if err != nil {
 		return fmt.Errorf("the demo's release log does not verify: %w", err)
+	}
+	return nil
+}
+
+// encoderScene plays the release of a new encoder with the scorer
+// refitted on its code: the encoder alone refused (the live scorer reads
+// the old code), then both released together under one record.
+func encoderScene(ctx context.Context, g *globals, w io.Writer, work string, sc *demo.Scenario, keys map[string]*release.Key, scorerPol string) error {
+	const encTarget, scTarget = "listener-encoder:prod", "promo-scorer:prod"
+	keyFile := func(name string) string { return filepath.Join(work, "keys", name+".key.pem") }
+	encPol, err := demoPolicyFor(work, keys, "listener-encoder.yaml", encTarget)
+	if err != nil {
+		return err
+	}
+	var enc, scorer string
+	for _, m := range sc.Models {
+		switch m.Name {
+		case demo.EncoderV2:
+			enc = m.Tag
+		case demo.CandEncoderV2:
+			scorer = m.Tag
+		}
+	}
+	if enc == "" || scorer == "" {
+		return fmt.Errorf("the demo scenario lacks %s or %s", demo.EncoderV2, demo.CandEncoderV2)
+	}
+	indent := func(s string) {
+		for _, l := range strings.Split(strings.TrimRight(s, "\n"), "\n") {
+			fmt.Fprintln(w, "   "+l)
+		}
+	}
+	run := func(args ...string) (string, error) {
+		out, err := sub(ctx, g, args...)
+		if err != nil {
+			return out, fmt.Errorf("%s: %w", strings.Join(args[:2], " "), err)
+		}
+		return out, nil
+	}
+	gateAndApprove := func(cand, target, pol string, with ...string) error {
+		args := []string{"gate", "--json", cand, "--to", target, "--policy", pol, "--sign-key", keyFile("ci")}
+		shown := fmt.Sprintf("   $ modelgate gate %s --to %s --policy … --sign-key %s", cand, target, keyFile("ci"))
+		for _, x := range with {
+			args = append(args, "--with", x)
+			shown += " --with " + x
+		}
+		fmt.Fprintln(w, shown)
+		var gr struct {
+			Report       checks.Report `json:"report"`
+			ReportDigest string        `json:"reportDigest"`
+		}
+		out, err := sub(ctx, g, args...)
+		if jerr := json.Unmarshal([]byte(out), &gr); jerr != nil || err != nil {
+			return fmt.Errorf("gating %s: %v %v", cand, err, jerr)
+		}
+		for _, c := range gr.Report.Checks {
+			fmt.Fprintf(w, "   %-4s  %-9s  %s\n", c.Status, c.Name, c.Summary)
+		}
+		fmt.Fprintf(w, "   verdict: %s; report %s\n", gr.Report.Verdict, gr.ReportDigest)
+		for _, who := range []string{"ana", "ben"} {
+			if _, err := run("approve", cand, "--to", target, "--policy", pol, "--key", keyFile(who), "--comment", "read the report; fine by me"); err != nil {
+				return fmt.Errorf("approving %s as %s: %w", cand, who, err)
+			}
+		}
+		fmt.Fprintln(w, "   approved by ana and ben")
+		return nil
+	}
+
+	fmt.Fprintf(w, "\n7. A new encoder, with the scorer refitted on its code: one release.\n")
+	fmt.Fprintf(w, "   %s serves a scorer trained on the code of %s's live encoder; %s computes another code.\n", scTarget, encTarget, enc)
+	fmt.Fprintf(w, "   policy %s: 2 approvals from ana, ben, rita; gate reports signed by ci\n", encPol)
+	fmt.Fprintln(w, "\n   7a. The encoder is gated and approved under its own policy.")
+	if err := gateAndApprove(enc, encTarget, encPol); err != nil {
+		return err
+	}
+	fmt.Fprintln(w, "\n   7b. Promoting the encoder alone is refused: the live scorer reads its code.")
+	fmt.Fprintf(w, "   $ modelgate promote %s --to %s --policy … --key %s\n", enc, encTarget, keyFile("rita"))
+	if _, err := sub(ctx, g, "promote", enc, "--to", encTarget, "--policy", encPol, "--key", keyFile("rita")); err == nil {
+		return fmt.Errorf("promoting %s alone succeeded under the live %s", enc, scTarget)
+	} else if !strings.Contains(err.Error(), scTarget) {
+		return fmt.Errorf("promoting %s alone was refused without naming %s: %w", enc, scTarget, err)
+	} else {
+		fmt.Fprintf(w, "   refused, exit %d: %s\n", errkind.Of(err), strings.ReplaceAll(err.Error(), "\n", "\n   "))
+	}
+	fmt.Fprintf(w, "\n   7c. The refitted scorer is gated in the world after the release: its freeze check reads %s, the encoder that will be live.\n", enc)
+	if err := gateAndApprove(scorer, scTarget, scorerPol, enc+"="+encTarget); err != nil {
+		return err
+	}
+	fmt.Fprintln(w, "\n   7d. Rita releases both together: one signed record, the scorer moved first, then the encoder.")
+	fmt.Fprintf(w, "   $ modelgate promote %s --to %s --with %s=%s --policy … --policy … --key %s\n", enc, encTarget, scorer, scTarget, keyFile("rita"))
+	out, err := run("promote", enc, "--to", encTarget, "--with", scorer+"="+scTarget, "--policy", encPol, "--policy", scorerPol,
+		"--key", keyFile("rita"), "--reason", "encoder refitted on a later sample; scorer refitted on its code")
+	if err != nil {
+		return err
+	}
+	indent(out)
+	fmt.Fprintln(w, "\n   7e. On-call rolls the encoder back: its scorer goes back with it, in one rollback record.")
+	reason := "drill: the new code, back to the old one"
+	fmt.Fprintf(w, "   $ modelgate rollback %s --reason %q --key %s\n", encTarget, reason, keyFile("rita"))
+	if out, err = run("rollback", encTarget, "--reason", reason, "--key", keyFile("rita")); err != nil {
+		return err
+	}
+	indent(out)
+	fmt.Fprintf(w, "   $ modelgate log %s --policy %s\n", encTarget, encPol)
+	out, err = sub(ctx, g, "log", encTarget, "--policy", encPol)
+	indent(out)
+	if err != nil {
+		return fmt.Errorf("the release log of %s does not verify: %w", encTarget, err)
 	}
 	return nil
 }

@@ -5,6 +5,7 @@ import (
 	"context"
 	"fmt"
 	"os"
+	"strings"
 
 	"github.com/spf13/cobra"
 
@@ -27,6 +28,7 @@ type gateOptions struct {
 	SignKey string
 	Shard   string
 	Merge   bool
+	With    []string
 }
 
 func (o *gateOptions) AddFlags(cmd *cobra.Command) {
@@ -39,6 +41,7 @@ func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 	f.IntVar(&o.Threads, "threads", 0, "runtime threads for the holdout pass (0: all cores)")
 	f.StringVar(&o.Shard, "shard", "", "score only shard I/N of the holdout (1-based) and store its sums for a later --merge; prints the shard result's digest")
 	f.BoolVar(&o.Merge, "merge", false, "run the gate from the stored shard results (of --shard runs with the same inputs) instead of scoring the holdout here")
+	f.StringArrayVar(&o.With, "with", nil, "CANDIDATE=NAME:TAG: gate in the world after a release that also moves this tag (repeatable): a scorer's freeze check then reads the encoder that tag will point at")
 	f.StringVar(&o.SignKey, "sign-key", "", "sign the stored report with this private key (a CI key a policy lists under reportSigners)")
 }
 
@@ -53,6 +56,11 @@ target (the baseline; none on a first release), computing every number
 itself, and prints one line per check and a verdict. The report is stored
 in the store as a referrer of the candidate (unless --no-push) and bound to
 the candidate, baseline, holdout and policy digests and the tool version.
+
+With --with CANDIDATE=NAME:TAG the gate runs in the world after a release
+that also moves that tag (promote --with): a scorer whose policy ties it
+to that encoder tag has its freeze check run against CANDIDATE, the
+encoder that will be live.
 
 Exit codes: 0 pass, 1 fail, 2 bad input.`,
 		Args: exactArgs(1, "CANDIDATE"),
@@ -106,6 +114,23 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 	if et := rule.Freeze.EncoderTag; et != nil {
 		if d, err := store.Resolve(ctx, et.Repository, et.Tag); err == nil {
 			encTagDigest = d.Digest.String()
+		}
+	}
+	for _, w := range o.With {
+		candStr, to, ok := strings.Cut(w, "=")
+		if !ok || candStr == "" || to == "" {
+			return usageErr("--with %q: want CANDIDATE=NAME:TAG", w)
+		}
+		wc, wt, err := releaseTarget(ctx, store, candStr, to)
+		if err != nil {
+			return fmt.Errorf("--with %s: %w", w, err)
+		}
+		if wt.String() == target.String() {
+			return usageErr("--with %s names the gate's own target", w)
+		}
+		if et := rule.Freeze.EncoderTag; et != nil && et.String() == wt.String() {
+			encTagDigest = wc.Digest.String()
+			g.logf("gate: assuming %s → %s (it moves in the same release)", wt, wc.Digest)
 		}
 	}
 	holdRef := rule.HoldoutRef

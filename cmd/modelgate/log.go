@@ -108,6 +108,11 @@ func printLog(w io.Writer, rep *release.LogReport) {
 		}
 		fmt.Fprintf(w, "\n#%d  %s  %-8s  %s → %s\n", len(rep.Entries)-i, r.Time, r.Kind, shortDigest(orAbsent(r.From)), shortDigest(r.To))
 		fmt.Fprintf(w, "    by %s, %s; record %s\n", by, sig, shortDigest(e.Digest))
+		for _, u := range r.Unit {
+			if u.Target != r.Target {
+				fmt.Fprintf(w, "    in one release with %s: %s → %s\n", u.Target, shortDigest(orAbsent(u.From)), shortDigest(u.To))
+			}
+		}
 		if r.Reason != "" {
 			fmt.Fprintf(w, "    reason: %s\n", r.Reason)
 		}

@@ -15,6 +15,7 @@ import (
 
 type promoteOptions struct {
 	To       string
+	With     []string
 	Policies []string
 	Key      string
 	Reason   string
@@ -23,6 +24,7 @@ type promoteOptions struct {
 func (o *promoteOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.To, "to", "", "target tag NAME:TAG (required)")
+	f.StringArrayVar(&o.With, "with", nil, "CANDIDATE=NAME:TAG: move this tag too, in the same release (repeat it; each target needs a rule in one of the --policy files)")
 	f.StringArrayVar(&o.Policies, "policy", nil, "policy file with a rule for the target (required; repeat it to name the scorer policies whose rules tie scorers to an encoder tag)")
 	f.StringVar(&o.Key, "key", "", "private key that signs the release record (without it the record is unsigned and names $USER)")
 	f.StringVar(&o.Reason, "reason", "", "free text stored in the release record")
@@ -31,7 +33,7 @@ func (o *promoteOptions) AddFlags(cmd *cobra.Command) {
 func newPromoteCmd(g *globals) *cobra.Command {
 	o := &promoteOptions{}
 	cmd := &cobra.Command{
-		Use:   "promote CANDIDATE --to NAME:TAG --policy FILE [--key FILE]",
+		Use:   "promote CANDIDATE --to NAME:TAG --policy FILE [--with CANDIDATE=NAME:TAG]... [--key FILE]",
 		Short: "Move a tag to a gated, approved candidate, writing a signed release record",
 		Long: `promote moves the target tag to CANDIDATE only if all of these hold, and
 otherwise says which failed:
@@ -55,6 +57,19 @@ alone: promote refuses with exit 4, naming those scorer tags and the
 command that moves them together. A scorer whose rule names an encoder
 tag must consume the encoder that tag points at (exit 3 otherwise: the
 encoder moved since the gate).
+
+--with CANDIDATE=NAME:TAG (repeatable) moves further tags in the same
+release: for example a new encoder with the scorers refitted on its code,
+each gated with --with naming the encoder's move (gate ... --with
+listener-encoder:v2=listener-encoder:prod) so that its freeze check runs
+against the encoder that will be live. Every member is judged as above
+under its own policy (the --policy file with a rule for it) and against
+the tag's current target; one signed record names every move and is kept
+in each tag's log. The tags move scorers first, the encoder last, each by
+compare-and-swap: first every release log head is claimed, then every
+tag moves. A run that stops part way is completed by the next promote or
+rollback of any tag whose log it claimed, and log shows it as
+"interrupted". Every member must already have a release log.
 
 Exit codes: 0 promoted (or already the target); 1 the gate failed; 2 bad
 input; 3 the tag moved since the gate ran, or a concurrent promote won;
@@ -107,6 +122,9 @@ func runPromote(ctx context.Context, g *globals, o *promoteOptions, candStr stri
 	pol, err := policyFor(pols, target)
 	if err != nil {
 		return err
+	}
+	if len(o.With) > 0 {
+		return runPromoteUnit(ctx, g, o, store, pols, key, release.UnitMember{Candidate: cand.Digest, CandidateName: candStr, Target: target, Policy: pol})
 	}
 	res, err := release.Promote(ctx, store, release.PromoteRequest{Candidate: cand.Digest, Target: target, Policy: pol,
 		Policies: pols, CandidateName: candStr, Key: key, User: currentUser(), Reason: o.Reason})
@@ -188,4 +206,65 @@ func policyFor(pols []*policy.Policy, target registry.Ref) (*policy.Policy, erro
 		return nil, usageErr("none of the policies %s has a rule for %s", strings.Join(names, ", "), target)
 	}
 	return found, nil
+}
+
+// parseWith parses --with CANDIDATE=NAME:TAG values into release unit
+// members, each with its policy from pols.
+func parseWith(ctx context.Context, store registry.Store, with []string, pols []*policy.Policy) ([]release.UnitMember, error) {
+	var out []release.UnitMember
+	for _, w := range with {
+		candStr, to, ok := strings.Cut(w, "=")
+		if !ok || candStr == "" || to == "" {
+			return nil, usageErr("--with %q: want CANDIDATE=NAME:TAG", w)
+		}
+		cand, target, err := releaseTarget(ctx, store, candStr, to)
+		if err != nil {
+			return nil, fmt.Errorf("--with %s: %w", w, err)
+		}
+		pol, err := policyFor(pols, target)
+		if err != nil {
+			return nil, err
+		}
+		out = append(out, release.UnitMember{Candidate: cand.Digest, CandidateName: candStr, Target: target, Policy: pol})
+	}
+	return out, nil
+}
+
+// runPromoteUnit releases first and the --with members as one unit.
+func runPromoteUnit(ctx context.Context, g *globals, o *promoteOptions, store registry.Store, pols []*policy.Policy, key *release.Key, first release.UnitMember) error {
+	with, err := parseWith(ctx, store, o.With, pols)
+	if err != nil {
+		return err
+	}
+	res, err := release.PromoteUnit(ctx, store, release.UnitRequest{Members: append([]release.UnitMember{first}, with...),
+		Policies: pols, Key: key, User: currentUser(), Reason: o.Reason})
+	if g.JSON && res != nil {
+		out := map[string]any{"result": res}
+		if err != nil {
+			out["error"] = err.Error()
+		}
+		if perr := g.printJSON(out); perr != nil {
+			return perr
+		}
+		return err
+	}
+	if err != nil {
+		return err
+	}
+	w := g.Stdout
+	for _, c := range res.Completed {
+		fmt.Fprintf(w, "completed an interrupted release first: record %s\n", c)
+	}
+	fmt.Fprintf(w, "released %d tags together, in this order (one signed record, statement %s):\n", len(res.Members), res.Statement)
+	for _, m := range res.Members {
+		n := 0
+		for _, a := range m.Approvals {
+			if a.Counted {
+				n++
+			}
+		}
+		fmt.Fprintf(w, "promoted %s: %s → %s\n", m.Target, orAbsent(m.From), m.To)
+		fmt.Fprintf(w, "    gate report %s; approvals %d counted, %d required; record %s\n", m.Report, n, m.Required, m.Record)
+	}
+	return nil
 }

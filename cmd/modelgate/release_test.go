@@ -373,18 +373,36 @@ func TestDemoReleaseStory(t *testing.T) {
 		"1. The baseline is released", "verdict: pass", "approved", "promoted promo-scorer:prod",
 		"promo-scorer:cand-worse (built to fail holdout): gate fail", "contract: probes failed",
 		"freeze:", "budget:", "refused, exit 1", "rolled back promo-scorer:prod",
-		"3 record(s)", "every record, signature and link verified",
+		// The encoder scene: alone refused, naming the live scorer and the
+		// command; then both released together, the scorer first.
+		"refused, exit 4: promote refused: listener-encoder:prod's live encoder",
+		"is consumed by promo-scorer:prod (scorer ",
+		"`modelgate promote listener-encoder:v2 --to listener-encoder:prod --with SCORER-CANDIDATE=promo-scorer:prod",
+		"released 2 tags together, in this order",
+		"promoted promo-scorer:prod: ", "promoted listener-encoder:prod: ",
+		"in one release with promo-scorer:prod",
+		"its newest release moved 2 tags together; all of them go back, in one record",
+		"5 record(s)", "every record, signature and link verified",
 	} {
 		if !strings.Contains(r.stdout, s) {
 			t.Errorf("demo story lacks %q", s)
 		}
 	}
+	if a, b := strings.Index(r.stdout, "promoted promo-scorer:prod: "), strings.Index(r.stdout, "promoted listener-encoder:prod: "); a > b {
+		t.Errorf("the encoder moved before its scorer:\n%s", r.stdout)
+	}
 	pol := filepath.Join(work, "policies", "promo-scorer.yaml")
 	lg := mustMG(t, store, "log", "promo-scorer:prod", "--policy", pol)
-	if strings.Count(lg.stdout, "\n#") != 3 {
+	if strings.Count(lg.stdout, "\n#") != 5 || !strings.Contains(lg.stdout, "in one release with listener-encoder:prod") {
 		t.Errorf("log:\n%s", lg.stdout)
 	}
-	mustMG(t, store, "log", "listener-encoder:prod")
+	mustMG(t, store, "log", "listener-encoder:prod", "--policy", filepath.Join(work, "policies", "listener-encoder.yaml"))
+	// The story ends where it began: the encoder's rollback took its
+	// scorer back with it.
+	tags := storeTags(t, store)
+	if tags["promo-scorer:prod"] != tags["promo-scorer:baseline"] || tags["listener-encoder:prod"] != tags["listener-encoder:v1"] {
+		t.Errorf("after the story: %v", tags)
+	}
 	r = mustMG(t, store, "demo", "--work", work)
 	if !strings.Contains(r.stdout, "already ran on this store") {
 		t.Errorf("second demo run:\n%s", r.stdout)

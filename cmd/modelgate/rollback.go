@@ -36,7 +36,9 @@ says undoing it restores: run it again to go back one more release. With
 It reads a constant number of records whatever the length of the log,
 moves the tag by compare-and-swap, and writes a rollback record with who
 and why. If the tag had been moved outside modelgate, rollback restores the
-last released model.
+last released model. When the newest release of the tag moved several tags
+together (promote --with: an encoder and its scorers), rollback moves all
+of them back, as one record; --to is refused then.
 
 Exit codes: 0 done; 2 bad input, nothing earlier, or --to names a digest
 never released on the tag; 3 a concurrent change won; 4 a signature is
@@ -102,6 +104,12 @@ func runRollback(ctx context.Context, g *globals, o *rollbackOptions, tagStr str
 		return nil
 	}
 	fmt.Fprintf(w, "%s %s: %s → %s\n", verb, target, orAbsent(res.From), res.To)
+	if len(res.With) > 0 {
+		fmt.Fprintf(w, "its newest release moved %d tags together; all of them go back, in one record:\n", len(res.With))
+		for _, m := range res.With {
+			fmt.Fprintf(w, "    %s: %s → %s\n", m.Target, m.From, m.To)
+		}
+	}
 	if res.Record != "" {
 		fmt.Fprintf(w, "record: %s\n", res.Record)
 	}

@@ -31,6 +31,10 @@ const (
 	CandShuffledVocab    = "promo-scorer-shuffled-vocab"
 	CandTrainableEncoder = "promo-scorer-trainable-encoder"
 	CandOverBudget       = "promo-scorer-over-budget"
+	// CandEncoderV2 is the better candidate's features refitted on
+	// listener-encoder:v2's code: it goes to production only together
+	// with that encoder.
+	CandEncoderV2 = "promo-scorer-on-encoder-v2"
 )
 
 // Paths of the holdout files under dir, and the scenario file.
@@ -268,8 +272,17 @@ func (b *builder) run(cfg Config) error {
 		return fmt.Errorf("fitting the over-budget candidate: %w", err)
 	}
 
+	v2Codes, err := b.codes(b.models[EncoderV2], d.Train)
+	if err != nil {
+		return err
+	}
+	onV2, err := b.logistic(d.Train, v2Codes, betterDense)
+	if err != nil {
+		return fmt.Errorf("fitting the scorer on encoder v2's code: %w", err)
+	}
+
 	ref := func(enc string) model.EncoderRef {
-		tag := map[string]string{EncoderV1: "listener-encoder:v1", EncoderWide: "listener-encoder:wide"}[enc]
+		tag := map[string]string{EncoderV1: "listener-encoder:v1", EncoderV2: "listener-encoder:v2", EncoderWide: "listener-encoder:wide"}[enc]
 		return model.EncoderRef{Name: tag, Digest: b.digests[enc], Embedded: false, Output: lCode}
 	}
 	lin := func(name, created string, sets ...[]Listener) model.Lineage {
@@ -314,6 +327,9 @@ func (b *builder) run(cfg Config) error {
 		{CandOverBudget, "promo-scorer:cand-over-budget", EncoderWide, "candidate", "budget", fmt.Sprintf("the better candidate's features on the %d-wide code: fitted for real, many times larger", cfg.WideCodeWidth),
 			scorerModel(CandOverBudget, what+fmt.Sprintf("logistic regression on a %d-wide listener code with the better candidate's features.", cfg.WideCodeWidth),
 				b.vocab, betterDense, over.head, over.intercept, ref(EncoderWide), nil, scorerStats(d.Train), lin(CandOverBudget, "2026-03-02T13:00:00Z", d.Train))},
+		{CandEncoderV2, "promo-scorer:cand-encoder-v2", EncoderV2, "candidate", "", "the better candidate's features refitted on listener-encoder:v2's code: released together with that encoder",
+			scorerModel(CandEncoderV2, what+"the better candidate's features, refitted on the code of listener-encoder:v2.",
+				b.vocab, betterDense, onV2.head, onV2.intercept, ref(EncoderV2), nil, scorerStats(d.Train), lin(CandEncoderV2, "2026-03-03T09:00:00Z", d.Train))},
 	}
 	for _, s := range scorers {
 		enc := b.models[s.enc]

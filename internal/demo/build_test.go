@@ -244,8 +244,11 @@ func TestScenarioShape(t *testing.T) {
 		}
 		pushed[m.Name] = m
 	}
-	if len(pushed) != 9 {
-		t.Errorf("%d models, want 9", len(pushed))
+	if len(pushed) != 10 {
+		t.Errorf("%d models, want 10", len(pushed))
+	}
+	if m := sc.model(t, CandEncoderV2); m.Encoder != EncoderV2 || m.Fails != "" {
+		t.Errorf("the scorer refitted on encoder v2: encoder %q, fails %q", m.Encoder, m.Fails)
 	}
 	if sc.Prod["promo-scorer:prod"] != ScorerBaseline || sc.Prod["listener-encoder:prod"] != EncoderV1 {
 		t.Errorf("prod tags %v", sc.Prod)
@@ -276,6 +279,9 @@ func TestCandidateLogLossOrder(t *testing.T) {
 	if !(better.HoldoutLogLoss < base.HoldoutLogLoss-0.005) {
 		t.Errorf("better candidate %.5f not clearly below the baseline %.5f", better.HoldoutLogLoss, base.HoldoutLogLoss)
 	}
+	if v2 := sc.model(t, CandEncoderV2); !(v2.HoldoutLogLoss < base.HoldoutLogLoss-0.005) {
+		t.Errorf("the scorer refitted on encoder v2 %.5f not clearly below the baseline %.5f", v2.HoldoutLogLoss, base.HoldoutLogLoss)
+	}
 	if !(worse.HoldoutLogLoss > base.HoldoutLogLoss+0.005) {
 		t.Errorf("worse candidate %.5f not clearly above the baseline %.5f", worse.HoldoutLogLoss, base.HoldoutLogLoss)
 	}
@@ -290,7 +296,7 @@ func runtimeNet(t *testing.T, dir, name string) (*model.Net, *modeldir.Model) {
 	m := readModel(t, dir, name)
 	var enc *model.Encoder
 	if r := m.Spec.Encoder; r != nil && !r.Embedded {
-		em := readModel(t, dir, map[string]string{"listener-encoder:v1": EncoderV1, "listener-encoder:wide": EncoderWide}[r.Name])
+		em := readModel(t, dir, map[string]string{"listener-encoder:v1": EncoderV1, "listener-encoder:v2": EncoderV2, "listener-encoder:wide": EncoderWide}[r.Name])
 		enc = &model.Encoder{Spec: em.Spec, Weights: em.Tensors}
 	}
 	net, err := model.Compile(m.Spec, m.Tensors, enc)
@@ -305,7 +311,7 @@ func runtimeNet(t *testing.T, dir, name string) (*model.Net, *modeldir.Model) {
 // the figure the training side's float64 forward pass computed.
 func TestHoldoutLogLossWithRuntime(t *testing.T) {
 	dir, sc := defaultScenario(t)
-	for _, name := range []string{ScorerBaseline, CandBetter, CandWorse, CandShuffledVocab, CandTrainableEncoder, CandOverBudget} {
+	for _, name := range []string{ScorerBaseline, CandBetter, CandWorse, CandShuffledVocab, CandTrainableEncoder, CandOverBudget, CandEncoderV2} {
 		net, m := runtimeNet(t, dir, name)
 		in := m.Spec.Inputs.Sparse[0]
 		vocab, err := data.ParseVocabulary(strings.NewReader(strings.Join(m.Vocabulary, "\n")+"\n"), in)

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"sort"
+	"strings"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
@@ -207,7 +208,9 @@ func Log(ctx context.Context, store registry.Store, target registry.Ref, opts Lo
 	// The tag against the head.
 	if len(chain) > 0 && chain[0].Digest == s.headDesc.Digest {
 		head := &chain[0].Record
-		if head.To != s.current() {
+		if len(head.Unit) > 0 && (head.From == s.current() || head.To == s.current()) {
+			unitFindings(ctx, store, target, chain[0], rep)
+		} else if head.To != s.current() {
 			if p := findPendingFor(ctx, store, target, s, chain[0]); p != nil {
 				rep.add(SeverityDamage, tname, "interrupted: record %s (%s by %s) moved %s to %s but the head pointer was not advanced; the next promote or rollback completes it", p.Digest, p.Record.Kind, p.Record.By, target, s.current())
 			} else {
@@ -337,4 +340,46 @@ func sameList(a, b []string) bool {
 		}
 	}
 	return true
+}
+
+// unitFindings reports on the release unit whose record heads target's
+// log: nothing when it finished, a note when only its committed markers
+// are missing, else the documented interrupted state.
+func unitFindings(ctx context.Context, store registry.Store, target registry.Ref, head *loadedRecord, rep *LogReport) {
+	tname := target.String()
+	copies, err := loadUnit(ctx, store, head)
+	if err != nil {
+		rep.add(SeverityDamage, head.Digest.String(), "%v", err)
+		return
+	}
+	var waiting []string
+	marked := true
+	for _, c := range copies {
+		r := &c.rec.Record
+		tag, err1 := resolveOrEmpty(ctx, store, c.target.Repository, c.target.Tag)
+		hd, err2 := resolveOrEmpty(ctx, store, c.target.Repository, c.headTag)
+		if err1 != nil || err2 != nil {
+			rep.add(SeverityDamage, c.target.String(), "cannot read the tags of %s: %v %v", c.target, err1, err2)
+			return
+		}
+		switch {
+		case hd != c.rec.Digest.String() && hd != r.Previous:
+			// The tag's log moved on after the unit: nothing to say here.
+		case hd != c.rec.Digest.String():
+			waiting = append(waiting, fmt.Sprintf("%s not claimed yet", c.target))
+		case tag == r.From && r.From != r.To:
+			waiting = append(waiting, fmt.Sprintf("%s not moved yet (still %s)", c.target, shortHex(tag)))
+		case tag != r.To:
+			rep.add(SeverityDamage, c.target.String(), "%s points at %s, but the release unit of record %s moved it to %s", c.target, orNone(tag), shortHex(head.Digest.String()), r.To)
+			return
+		}
+		marked = marked && committedMarked(ctx, store, c.target.Repository, c.rec.Digest.String())
+	}
+	switch {
+	case len(waiting) > 0:
+		rep.add(SeverityDamage, tname, "interrupted: record %s (release unit of %s, by %s) has not finished: %s; the next promote or rollback of any of its tags completes it",
+			head.Digest, strings.Join(head.Record.UnitTargets(), ", "), head.Record.By, strings.Join(waiting, "; "))
+	case !marked:
+		rep.add(SeverityNote, tname, "the release unit of record %s moved every tag, but the process stopped before marking it committed; the next promote or rollback marks it", shortHex(head.Digest.String()))
+	}
 }

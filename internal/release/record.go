@@ -7,6 +7,7 @@ import (
 	"encoding/pem"
 	"errors"
 	"fmt"
+	"strings"
 	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
@@ -73,6 +74,51 @@ type Record struct {
 	// (From is not the previous record's To) and this record repairs it.
 	External bool   `json:"external,omitempty"`
 	Tool     string `json:"tool"`
+	// Unit, on the record of a release that moved several tags together
+	// (a release unit), lists every tag it moved, in the order it moved
+	// them; nil on a one-tag record. The signed record is one statement
+	// about all of them; each tag's log holds a copy (its own manifest in
+	// that tag's repository), read as the entry of that tag: the fields
+	// above are then that entry's (on the statement itself, Unit[0]'s).
+	Unit []UnitEntry `json:"unit,omitempty"`
+}
+
+// UnitEntry is one tag a release unit moved: the per-tag fields of a
+// Record.
+type UnitEntry struct {
+	Target       string   `json:"target"`
+	From         string   `json:"from,omitempty"`
+	To           string   `json:"to"`
+	Report       string   `json:"gateReport,omitempty"`
+	Approvals    []string `json:"approvals,omitempty"`
+	PolicyDigest string   `json:"policyDigest,omitempty"`
+	Previous     string   `json:"previous,omitempty"`
+	Restore      *Restore `json:"restore,omitempty"`
+	Released     string   `json:"released"`
+}
+
+// entryOf returns the per-tag fields of a one-tag record.
+func (r *Record) entryOf() UnitEntry {
+	return UnitEntry{Target: r.Target, From: r.From, To: r.To, Report: r.Report, Approvals: r.Approvals,
+		PolicyDigest: r.PolicyDigest, Previous: r.Previous, Restore: r.Restore, Released: r.Released}
+}
+
+// project sets the per-tag fields from e.
+func (r *Record) project(e UnitEntry) {
+	r.Target, r.From, r.To, r.Report, r.Approvals = e.Target, e.From, e.To, e.Report, e.Approvals
+	r.PolicyDigest, r.Previous, r.Restore, r.Released = e.PolicyDigest, e.Previous, e.Restore, e.Released
+}
+
+// UnitTargets returns the targets a record moved: its Unit's, or its own.
+func (r *Record) UnitTargets() []string {
+	if len(r.Unit) == 0 {
+		return []string{r.Target}
+	}
+	out := make([]string, len(r.Unit))
+	for i, e := range r.Unit {
+		out[i] = e.Target
+	}
+	return out
 }
 
 // Restore says what undoing a record does: point the tag at Target, after
@@ -98,6 +144,9 @@ type loadedRecord struct {
 	Signed   bool
 	Signer   *PublicKey // the verified signer, nil when unsigned
 	released v1.Descriptor
+	// envelope is the signed statement's layer: the same blob in every
+	// copy of a release unit's record.
+	envelope v1.Descriptor
 	st       *stored
 }
 
@@ -176,6 +225,24 @@ func readRecord(ctx context.Context, store registry.Store, repo string, d v1.Has
 		return nil, bad("malformed predicate: %v", err)
 	}
 	rec := &lr.Record
+	if len(rec.Unit) > 0 {
+		if err := checkUnit(rec); err != nil {
+			return nil, bad("%v", err)
+		}
+		found := false
+		for _, e := range rec.Unit {
+			if e.Target == target {
+				rec.project(e)
+				found = true
+			}
+		}
+		if !found {
+			return nil, bad("it is a record of %s, not %s", strings.Join(rec.UnitTargets(), ", "), target)
+		}
+		if a := s.Art.Manifest.Annotations; a[AnnotationTarget] != target {
+			return nil, bad("its copy for %s is annotated as %s's", target, a[AnnotationTarget])
+		}
+	}
 	if rec.Target != target {
 		return nil, bad("it is a record of %s, not %s", rec.Target, target)
 	}
@@ -208,7 +275,29 @@ func readRecord(ctx context.Context, store registry.Store, repo string, d v1.Has
 		return nil, bad("its released index layer is missing or is not the one it names (%s)", rec.Released)
 	}
 	lr.released = ld
+	lr.envelope, _ = s.layer(MediaTypeEnvelope)
 	return lr, nil
+}
+
+// checkUnit checks a release unit's statement-level rules: two or more
+// distinct targets, the first of which the record's own fields repeat.
+func checkUnit(rec *Record) error {
+	if len(rec.Unit) < 2 {
+		return fmt.Errorf("a release unit of %d tag(s)", len(rec.Unit))
+	}
+	seen := map[string]bool{}
+	for _, e := range rec.Unit {
+		if seen[e.Target] {
+			return fmt.Errorf("its release unit names %s twice", e.Target)
+		}
+		seen[e.Target] = true
+	}
+	first, _ := json.Marshal(rec.Unit[0])
+	own, _ := json.Marshal(rec.entryOf())
+	if string(first) != string(own) {
+		return fmt.Errorf("its own fields are not its release unit's first entry")
+	}
+	return nil
 }
 
 // releasedList reads the record's released index.
@@ -255,6 +344,9 @@ type state struct {
 	// pending is a record that moved the tag but whose head pointer move
 	// did not happen (a crash, or a promote still in flight).
 	pending *loadedRecord
+	// unitOpen: the head record is a release unit's that may still have
+	// steps to take (see advanceUnit).
+	unitOpen bool
 }
 
 // current returns the tag's target digest, "" when absent.
@@ -299,6 +391,10 @@ func readState(ctx context.Context, store registry.Store, target registry.Ref) (
 		return nil, fmt.Errorf("resolving %s: %w", target, err)
 	default:
 		s.tagDesc = &td
+	}
+	if unitOpen(ctx, store, s) {
+		s.unitOpen = true
+		return s, nil
 	}
 	if s.head != nil && s.head.Record.To != s.current() {
 		s.pending = findPending(ctx, store, s)
@@ -355,8 +451,15 @@ func settledState(ctx context.Context, store registry.Store, sw registry.TagSwap
 		if err != nil {
 			return nil, "", err
 		}
-		if s.pending == nil || dryRun {
+		if (s.pending == nil && !s.unitOpen) || dryRun {
 			return s, helped, nil
+		}
+		if s.unitOpen {
+			helped = s.head.Digest.String()
+			if err := completeUnit(ctx, store, sw, s); err != nil {
+				return nil, "", err
+			}
+			continue
 		}
 		helped = s.pending.Digest.String()
 		if err := complete(ctx, store, sw, s); err != nil {

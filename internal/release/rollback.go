@@ -44,6 +44,11 @@ type RollbackResult struct {
 	Pending   string `json:"pending,omitempty"`
 	// Earlier is what a further rollback would restore ("" when nothing).
 	Earlier string `json:"earlier,omitempty"`
+	// With, when the newest release moved several tags together, lists
+	// every tag the rollback moves back (Target among them).
+	With []UnitMove `json:"with,omitempty"`
+	// Statement is the signed record's digest for such a rollback.
+	Statement string `json:"statement,omitempty"`
 }
 
 // Rollback moves req.Target back, with no gate, to the target its newest
@@ -80,6 +85,12 @@ func Rollback(ctx context.Context, store registry.Store, req RollbackRequest) (*
 	if s.pending != nil { // dry run: act as if it were completed
 		res.Pending = s.pending.Digest.String()
 		s.head, h = s.pending, &s.pending.Record
+	}
+	if s.unitOpen { // dry run: act as if it were completed
+		res.Pending = s.head.Digest.String()
+	}
+	if len(h.Unit) > 0 && !s.external {
+		return rollbackUnit(ctx, store, sw, s, req, res)
 	}
 	var restore *Restore
 	switch {
