@@ -255,6 +255,10 @@ func runPromoteUnit(ctx context.Context, g *globals, o *promoteOptions, store re
 	for _, c := range res.Completed {
 		fmt.Fprintf(w, "completed an interrupted release first: record %s\n", c)
 	}
+	if res.NoOp {
+		fmt.Fprintln(w, "every tag already points at its candidate: nothing to do")
+		return nil
+	}
 	fmt.Fprintf(w, "released %d tags together, in this order (one signed record, statement %s):\n", len(res.Members), res.Statement)
 	for _, m := range res.Members {
 		n := 0

@@ -49,6 +49,8 @@ type UnitRequest struct {
 
 // UnitResult is what PromoteUnit did.
 type UnitResult struct {
+	// NoOp is true when every tag already pointed at its candidate.
+	NoOp bool `json:"noOp"`
 	// Members are the tags in the order they moved.
 	Members []*PromoteResult `json:"members"`
 	// Statement is the digest of the one signed record (the DSSE envelope
@@ -157,6 +159,7 @@ func writeUnitRecord(ctx context.Context, store registry.Store, rec *Record, rel
 		if out[i], err = putArtifact(ctx, store, t.Repository, ArtifactTypeRelease, []artifact.Blob{envBlob, idx[i]}, subjects[i], ann); err != nil {
 			return nil, fmt.Errorf("writing the release record's copy for %s: %w", e.Target, err)
 		}
+		crashPoint("record")
 	}
 	return out, nil
 }
@@ -285,6 +288,7 @@ func advanceUnit(ctx context.Context, store registry.Store, sw registry.TagSwapp
 			prev, _ := registry.ParseDigest(hd)
 			err := sw.SwapTag(ctx, c.target.Repository, c.headTag, prev, c.rec.Desc)
 			if err == nil {
+				crashPoint("claim")
 				continue
 			}
 			if !errors.Is(err, registry.ErrConflict) {
@@ -337,6 +341,7 @@ func advanceUnit(ctx context.Context, store registry.Store, sw registry.TagSwapp
 				return broken(fmt.Sprintf("%s was moved by someone else (to %s) before the release could move it", c.target, orNone(now)))
 			}
 		}
+		crashPoint("move")
 	}
 	// 3. Committed markers.
 	for _, c := range copies {
@@ -347,6 +352,7 @@ func advanceUnit(ctx context.Context, store registry.Store, sw registry.TagSwapp
 		if err := markCommitted(ctx, store, s, c.rec.Desc); err != nil {
 			return err
 		}
+		crashPoint("mark")
 	}
 	return nil
 }
@@ -425,13 +431,46 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 		if _, err := subjectOf(ctx, store, t.Repository, m.Candidate); err != nil {
 			return nil, fmt.Errorf("the candidate %s (it must be in repository %s): %w", m.Candidate, t.Repository, err)
 		}
-		s, completed, err := settledState(ctx, store, sw, t, false)
-		if err != nil {
-			return nil, err
+	}
+	// Settle every member (completing interrupted releases) until a pass
+	// completes nothing: completing one tag's release may move another.
+	for pass := 0; ; pass++ {
+		if pass == 4 {
+			return nil, errkind.New(errkind.Conflict, "the release logs of these tags keep changing under us: try again")
 		}
-		if completed != "" {
-			res.Completed = append(res.Completed, completed)
+		again := false
+		for i := range req.Members {
+			t := req.Members[i].Target
+			s, completed, err := settledState(ctx, store, sw, t, false)
+			if err != nil {
+				return nil, err
+			}
+			if completed != "" {
+				res.Completed = appendNew(res.Completed, completed)
+				again = true
+			}
+			states[t.String()] = s
 		}
+		if !again {
+			break
+		}
+	}
+	noop := true
+	for i := range req.Members {
+		noop = noop && states[req.Members[i].Target.String()].current() == req.Members[i].Candidate.String()
+	}
+	if noop {
+		res.NoOp = true
+		for i := range req.Members {
+			m := &req.Members[i]
+			res.Members = append(res.Members, &PromoteResult{NoOp: true, Target: m.Target.String(), From: m.Candidate.String(), To: m.Candidate.String()})
+		}
+		return res, nil
+	}
+	for i := range req.Members {
+		m := &req.Members[i]
+		t := m.Target
+		s := states[t.String()]
 		switch {
 		case s.external:
 			problems = append(problems, problem{errkind.Integrity, fmt.Sprintf("%s points at %s but its newest release record says %s: the tag was moved outside modelgate. Inspect with `modelgate log %s`, then `modelgate rollback %s` restores the last released model", t, orNone(s.current()), s.head.Record.To, t, t)})
@@ -440,7 +479,6 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 		case s.current() == m.Candidate.String():
 			problems = append(problems, problem{errkind.BadInput, fmt.Sprintf("%s already points at %s: leave it out of the release", t, m.Candidate)})
 		}
-		states[t.String()] = s
 		members[t.String()] = m
 		mv, err := newMove(ctx, store, t, m.Candidate, m.CandidateName, s.current(), m.Policy)
 		if err != nil {
