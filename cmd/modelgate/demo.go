@@ -280,6 +280,7 @@ func sub(ctx context.Context, g *globals, args ...string) (string, error) {
 	root := newRoot(g2)
 	root.SetArgs(append([]string{"--store", loc, "--quiet"}, args...))
 	err = root.ExecuteContext(ctx)
+	g2.end()
 	g2.finishJSON(err, exitCode(ctx, err))
 	return out.String(), err
 }

@@ -100,6 +100,21 @@ func TestJSONContract(t *testing.T) {
 			if rep, _ := doc["report"].(map[string]any); rep["verdict"] != "fail" {
 				t.Errorf("a failed gate's document has no .report.verdict fail: %v", doc)
 			}
+			if !strings.Contains(r.stderr, `{"event":"progress","phase":"holdout"`) {
+				t.Errorf("gate --json emits no holdout progress events on stderr:\n%s", r.stderr)
+			}
 		}
+	}
+
+	// Off a terminal without --json (stderr is a pipe here): plain lines.
+	// (A line at each phase; the lines every few seconds are
+	// TestPlainProgress's, with ticks by hand.)
+	r := mg(t, store, "gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol)
+	if r.code != 1 || !strings.Contains(r.stderr, "modelgate: gate load") || !strings.Contains(r.stderr, "modelgate: gate holdout") {
+		t.Errorf("gate off a terminal: exit %d, no progress lines:\n%s", r.code, r.stderr)
+	}
+	r = mustMG(t, store, "push", enc, "tiny-encoder:v3")
+	if !strings.Contains(r.stderr, "modelgate: skip") && !strings.Contains(r.stderr, "modelgate: upload") {
+		t.Errorf("push off a terminal prints no progress lines:\n%s", r.stderr)
 	}
 }

@@ -2,22 +2,41 @@ package main
 
 import (
 	"encoding/json"
+	"fmt"
+	"io"
 	"os"
+	"strings"
+	"sync"
+	"time"
 
 	"github.com/schollz/progressbar/v3"
 	"golang.org/x/term"
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/checks"
+	"modelgate/internal/report"
 )
 
-// progress returns an event sink that draws a byte progress bar per blob
-// on an interactive stderr, and nothing otherwise (piped, --json, --quiet).
+// progress returns an event sink for the long commands, in three modes:
+// a byte progress bar per blob on an interactive stderr; with --json one
+// JSON Lines event per progress event on stderr; otherwise (stderr piped
+// or a file, as in CI) a plain line when a phase starts and then one every
+// progress interval (plainProgress). --quiet silences all three.
 func (g *globals) progress() func(artifact.Event) {
 	if g.JSON && !g.Quiet {
 		return g.jsonProgress()
 	}
 	if !g.interactive() {
+		if p := g.plainProgress(); p != nil {
+			return func(e artifact.Event) {
+				if e.Phase == "verify" {
+					// One manifest after another: a line per phase, not per name.
+					p.event("verify", "", e.Done, e.Total, "manifests")
+					return
+				}
+				p.event(e.Phase, e.Name, e.Done, e.Total, "bytes")
+			}
+		}
 		return nil
 	}
 	var bar *progressbar.ProgressBar
@@ -84,9 +103,18 @@ func (g *globals) colorStdout() bool {
 	return ok && term.IsTerminal(int(f.Fd()))
 }
 
-// gateProgress draws the gate's phases on an interactive stderr.
+// gateProgress reports the gate's phases in the three modes of progress.
 func (g *globals) gateProgress() func(checks.Event) {
+	if g.JSON && !g.Quiet {
+		enc := json.NewEncoder(g.Stderr)
+		return func(e checks.Event) {
+			_ = enc.Encode(progressEvent{Event: "progress", Phase: e.Phase, Done: e.Done, Total: e.Total})
+		}
+	}
 	if !g.interactive() {
+		if p := g.plainProgress(); p != nil {
+			return func(e checks.Event) { p.event("gate "+e.Phase, "", e.Done, e.Total, "rows") }
+		}
 		return nil
 	}
 	var bar *progressbar.ProgressBar
@@ -109,4 +137,101 @@ func (g *globals) gateProgress() func(checks.Event) {
 			_ = bar.Set64(e.Done)
 		}
 	}
+}
+
+// EnvProgressInterval sets how often progress prints a plain line off a
+// terminal (a Go duration such as "5s" or "500ms"; default 5s).
+const EnvProgressInterval = "MODELGATE_PROGRESS_INTERVAL"
+
+const defaultProgressInterval = 5 * time.Second
+
+// plainLines prints progress off a terminal: a line when a phase (or the
+// blob it works on) starts, and on every tick the latest state again, so
+// that a CI job that kills silent steps sees life during long phases.
+type plainLines struct {
+	mu    sync.Mutex
+	w     io.Writer
+	start string // phase+name of the last line
+	line  string // the latest state
+}
+
+// plainProgress returns the plain-line printer of this command, starting
+// its ticker (g.ticks, else every $MODELGATE_PROGRESS_INTERVAL) on first
+// use; nil with --quiet. The ticker stops when the command ends.
+func (g *globals) plainProgress() *plainLines {
+	if g.Quiet {
+		return nil
+	}
+	if g.plain != nil {
+		return g.plain
+	}
+	p := &plainLines{w: g.Stderr}
+	g.plain = p
+	ticks, stop := g.ticks, func() {}
+	if ticks == nil {
+		every := defaultProgressInterval
+		if v := os.Getenv(EnvProgressInterval); v != "" {
+			if d, err := time.ParseDuration(v); err == nil && d > 0 {
+				every = d
+			}
+		}
+		t := time.NewTicker(every)
+		ticks, stop = t.C, t.Stop
+	}
+	done, exited := make(chan struct{}), make(chan struct{})
+	go func() {
+		defer close(exited)
+		for {
+			select {
+			case <-ticks:
+				p.tick()
+			case <-done:
+				return
+			}
+		}
+	}()
+	g.atEnd = append(g.atEnd, func() { stop(); close(done); <-exited })
+	return p
+}
+
+func (p *plainLines) event(phase, name string, done, total int64, unit string) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.line = progressLine(phase, name, done, total, unit)
+	if key := phase + "\x00" + name; key != p.start {
+		p.start = key
+		fmt.Fprintln(p.w, p.line)
+	}
+}
+
+func (p *plainLines) tick() {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	if p.line != "" {
+		fmt.Fprintln(p.w, p.line)
+	}
+}
+
+// progressLine renders one progress state: "modelgate: upload
+// encoder.safetensors 1.2 MiB of 3.0 MiB (40%)".
+func progressLine(phase, name string, done, total int64, unit string) string {
+	var b strings.Builder
+	b.WriteString("modelgate: ")
+	b.WriteString(phase)
+	if name != "" {
+		b.WriteString(" " + name)
+	}
+	amount := func(n int64) string {
+		if unit == "bytes" {
+			return report.HumanBytes(n)
+		}
+		return fmt.Sprintf("%d %s", n, unit)
+	}
+	switch {
+	case total > 0:
+		fmt.Fprintf(&b, " %s of %s (%d%%)", amount(done), amount(total), done*100/total)
+	case done > 0:
+		b.WriteString(" " + amount(done))
+	}
+	return b.String()
 }

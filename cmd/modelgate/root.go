@@ -10,6 +10,7 @@ import (
 	"path/filepath"
 	"runtime/pprof"
 	"strings"
+	"time"
 
 	"github.com/spf13/cobra"
 	"golang.org/x/term"
@@ -36,6 +37,21 @@ type globals struct {
 	// command ends (finishJSON), so that a failure can be added to it.
 	jsonDoc any
 	jsonSet bool
+
+	// Progress off a terminal: the printer, its ticks (nil: a ticker at
+	// the progress interval; tests set their own), and what to stop when
+	// the command ends.
+	plain *plainLines
+	ticks <-chan time.Time
+	atEnd []func()
+}
+
+// end stops what the command started for its progress.
+func (g *globals) end() {
+	for _, f := range g.atEnd {
+		f()
+	}
+	g.atEnd = nil
 }
 
 // EnvStore names the environment variable that selects the store.
@@ -251,6 +267,7 @@ func run(ctx context.Context, args []string, stdin io.Reader, stdout, stderr io.
 	if g.stopProfile != nil {
 		g.stopProfile()
 	}
+	g.end()
 	code := exitCode(ctx, err)
 	g.finishJSON(err, code)
 	if err == nil {

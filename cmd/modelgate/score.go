@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"encoding/json"
 	"fmt"
 	"os"
 	"time"
@@ -112,11 +113,27 @@ func runScore(ctx context.Context, g *globals, o *scoreOptions, refStr string) e
 			progressbar.OptionShowIts(), progressbar.OptionSetItsString("rows"), progressbar.OptionSetPredictTime(true),
 			progressbar.OptionClearOnFinish(), progressbar.OptionThrottle(100*time.Millisecond))
 	}
+	var prog func(done, total int64)
+	switch {
+	case bar != nil:
+	case g.JSON && !g.Quiet:
+		enc := json.NewEncoder(g.Stderr)
+		prog = func(done, total int64) {
+			_ = enc.Encode(progressEvent{Event: "progress", Phase: "score", Name: ref.String(), Done: done, Total: total})
+		}
+	default:
+		if p := g.plainProgress(); p != nil {
+			prog = func(done, total int64) { p.event("score", ref.String(), done, total, "rows") }
+		}
+	}
 	start := time.Now()
 	rows, err := score.Run(ctx, m, r, w, score.Options{Layer: layer, BatchSize: o.BatchSize, Threads: o.Threads,
 		Progress: func(done, total int64) {
-			if bar != nil {
+			switch {
+			case bar != nil:
 				_ = bar.Set64(done)
+			case prog != nil:
+				prog(done, total)
 			}
 		}})
 	if bar != nil {
