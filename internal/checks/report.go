@@ -149,7 +149,7 @@ type NonInferiority struct {
 	P        float64 `json:"p"`     // one-sided p-value of H0
 	Upper    float64 `json:"upper"` // upper one-sided bound (t)
 	// Skewness of the differences (of the cluster totals when clustered)
-	// and MinRows = 25·Skewness², the rows (clusters) the t bound
+	// and MinRows = 25·max(Skewness, 0)², the rows (clusters) the t bound
 	// needs to be trusted (Cochran's rule); the test passes when Upper <
 	// Margin and DF + 1 > MinRows.
 	Skewness float64 `json:"skewness"`

@@ -228,7 +228,7 @@ func TestClusteredShardsMerge(t *testing.T) {
 // TestCochranRule: a sample whose difference is one large value among
 // small ones has skewness near √n, so n > 25·γ² cannot hold and the test
 // fails although its t bound is below the margin; the same values without
-// the large one pass.
+// the large one pass, and so do they with one large gain instead.
 func TestCochranRule(t *testing.T) {
 	const n = 400
 	d := make([]float64, n)
@@ -252,6 +252,17 @@ func TestCochranRule(t *testing.T) {
 	near(t, "skewness of one outlier", h.Skewness, (n-2)/math.Sqrt(n-1), 0.01)
 	if !c.Pass || h.Upper >= 0.001 || h.Pass || h.MinRows != 25*h.Skewness*h.Skewness {
 		t.Errorf("clean pass %v; heavy upper %v, skewness %v, min rows %v, pass %v", c.Pass, h.Upper, h.Skewness, h.MinRows, h.Pass)
+	}
+	// Skewed the other way (a candidate winning big on one row) the t
+	// bound is conservative: the rule does not apply.
+	d[7] = -0.4
+	win := mustPaired(t, 1, 0)
+	if err := win.AddBatch(ids, d, nil); err != nil {
+		t.Fatal(err)
+	}
+	l, _ := win.NonInferiority(0.001, 0.95)
+	if l.Skewness > -10 || l.MinRows != 0 || !l.Pass {
+		t.Errorf("left-skewed: skewness %v, min rows %v, pass %v", l.Skewness, l.MinRows, l.Pass)
 	}
 }
 

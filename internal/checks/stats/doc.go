@@ -1,6 +1,7 @@
 // Package stats computes the holdout check's numbers from float slices:
 // log loss and its companions (normalized entropy, AUC, calibration), the
-// paired non-inferiority test with a Poisson bootstrap, encoder
+// paired non-inferiority test (cluster-robust when rows are clustered)
+// with a Poisson bootstrap, the label-free tail statistics, encoder
 // reconstruction losses, quantiles and histograms.
 //
 // # Shards
@@ -15,7 +16,10 @@
 // worst), and to that times Σ|x| / |Σx| for signed sums such as Σw·d; the
 // AUC histogram's bins are plain sums (exact for integer weights). The
 // Poisson-bootstrap draws of Paired depend only on (seed, row id,
-// replicate), never on shard boundaries or row order. Accumulators travel
+// replicate), never on shard boundaries or row order; a clustered Paired
+// (NewClusteredPaired) keys them by cluster instead of row, and keeps each
+// cluster's sums so that a cluster split across shards merges exactly.
+// Tail (confident mistakes, label-free) merges its counts and worst rows. Accumulators travel
 // between machines through MarshalBinary and UnmarshalBinary.
 //
 // To use several cores on one machine, do the same: one accumulator per
