@@ -261,6 +261,9 @@ func printOther(g *globals, d *artifact.Description) {
 		} else {
 			fmt.Fprintln(w, "labels:      none (usable for encoders only)")
 		}
+		if h.ClusterColumn != "" {
+			fmt.Fprintf(w, "clusters:    %d by column %q (rows of one cluster are tested together)\n", h.Clusters, h.ClusterColumn)
+		}
 		if len(h.Slices) > 0 {
 			names := make([]string, 0, len(h.Slices))
 			for k := range h.Slices {
