@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"os"
 	"path/filepath"
 	"testing"
 
@@ -208,5 +209,31 @@ func TestRepeatedRowsWarn(t *testing.T) {
 	}
 	if f := findingOf(plain, "holdout.tail"); f == nil || f.Status != StatusPass {
 		t.Errorf("demo better candidate: tail finding %+v, want a pass", f)
+	}
+}
+
+// TestNeedUniqueRowIDs: a holdout whose summary does not record the
+// row-id check (pushed before it existed) is read again by the gate and
+// refused as bad input when a row_id repeats; one whose push checked it is
+// not read again; a policy cluster column lets ids repeat within a
+// cluster.
+func TestNeedUniqueRowIDs(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "old.jsonl")
+	line := func(id int, listener string) string {
+		return fmt.Sprintf(`{"row_id":%d,"items":[],"values":[],"label":0,"listener_id":%q}`+"\n", id, listener)
+	}
+	if err := os.WriteFile(path, []byte(line(1, "a")+line(2, "b")+line(1, "a")), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	old := &artifact.Holdout{Path: path}
+	if err := needUniqueRowIDs(old, HoldoutConfig{}); !errkind.Is(err, errkind.BadInput) {
+		t.Errorf("old holdout with a repeated row_id: %v", err)
+	}
+	if err := needUniqueRowIDs(old, HoldoutConfig{ClusterColumn: "listener_id"}); err != nil {
+		t.Errorf("repeated within a cluster named by the policy: %v", err)
+	}
+	checked := &artifact.Holdout{Path: filepath.Join(t.TempDir(), "absent.jsonl"), Info: artifact.HoldoutInfo{RowIDsChecked: true}}
+	if err := needUniqueRowIDs(checked, HoldoutConfig{}); err != nil {
+		t.Errorf("a holdout whose push checked its ids was read again: %v", err)
 	}
 }
