@@ -42,6 +42,9 @@ type HoldoutConfig struct {
 	// failing slice fail the check (else it warns).
 	PerSliceMargin *float64
 	FailOnSlice    bool
+	// MinSliceRows: slices with fewer rows are reported, not judged
+	// (default DefaultMinSliceRows).
+	MinSliceRows int
 	// First-release thresholds for scorers (nil: not enforced).
 	MaxLogLoss, MaxNormalizedEntropy, MinAUC, MaxECE *float64
 	// Encoders: the reconstruction loss per row is
@@ -571,33 +574,70 @@ func finalize(st *holdoutState, cfg HoldoutConfig, res *CheckResult) (*HoldoutDe
 		names = append(names, k)
 	}
 	sort.Strings(names)
-	for _, name := range names {
+	// Every slice is reported; a slice warns (or with FailOnSlice fails)
+	// only on evidence of harm after Holm's correction (slices.go).
+	margin := cfg.Margin
+	if cfg.PerSliceMargin != nil {
+		margin = *cfg.PerSliceMargin
+	}
+	minRows := cfg.MinSliceRows
+	if minRows <= 0 {
+		minRows = DefaultMinSliceRows
+	}
+	tests := make([]*NonInferiority, len(names))
+	rowsOf := make([]int64, len(names))
+	for i, name := range names {
 		a := slices[name]
 		sr := SliceResult{Name: name, Candidate: metricsOf(a, true), Status: StatusPass}
 		sr.Rows = sr.Candidate.Rows
+		rowsOf[i] = sr.Rows
 		if hasBase {
 			m := metricsOf(a, false)
 			sr.Baseline = &m
-			margin := cfg.Margin
-			if cfg.PerSliceMargin != nil {
-				margin = *cfg.PerSliceMargin
-			}
 			if t, err := a.paired.NonInferiority(margin, cfg.Confidence); err == nil {
 				ni := finiteTest(NonInferiority(t))
-				sr.Test = &ni
-				if cfg.PerSliceMargin != nil && !ni.Pass {
-					st := StatusWarn
-					if cfg.FailOnSlice {
-						st = StatusFail
-					}
-					sr.Status = st
-					res.Findings = append(res.Findings, Finding{Status: st, Code: "holdout.slice", Where: name,
-						Message: fmt.Sprintf("slice %q (%d rows): upper bound of the %s difference %+.5f ≥ slice margin %.5f", name, sr.Rows, lossName, ni.Upper, margin),
-						Value:   ptr(ni.Upper), Limit: ptr(margin)})
-				}
+				sr.Test, tests[i] = &ni, &ni
 			}
 		}
 		det.Slices = append(det.Slices, sr)
+	}
+	if hasBase && cfg.PerSliceMargin != nil {
+		harms := judgeSlices(tests, rowsOf, margin, cfg.Confidence, minRows)
+		for i := range det.Slices {
+			sr := &det.Slices[i]
+			sr.Harm = harms[i]
+			switch {
+			case harms[i] == nil:
+				sr.Status = StatusSkip
+				sr.Note = fmt.Sprintf("too few rows to judge (%d; the slice test needs %d)", sr.Rows, minRows)
+				res.Findings = append(res.Findings, Finding{Status: StatusSkip, Code: "holdout.slice-rows", Where: sr.Name,
+					Message: fmt.Sprintf("slice %q: %s", sr.Name, sr.Note), Value: ptr(float64(sr.Rows)), Limit: ptr(float64(minRows))})
+			case harms[i].Harm:
+				st := StatusWarn
+				if cfg.FailOnSlice {
+					st = StatusFail
+				}
+				sr.Status = st
+				res.Findings = append(res.Findings, Finding{Status: st, Code: "holdout.slice", Where: sr.Name,
+					Message: sliceLine(sr.Name, sr.Rows, lossName, sr.Test, harms[i], cfg.Confidence),
+					Value:   ptr(harms[i].Lower), Limit: ptr(margin)})
+			}
+		}
+	}
+	// A failing line names what decided: the harmed slices first, then
+	// the overall numbers.
+	var harmed []string
+	for _, f := range res.Findings {
+		if f.Code == "holdout.slice" && f.Status == StatusFail {
+			harmed = append(harmed, f.Message)
+		}
+	}
+	if len(harmed) > 0 {
+		more := ""
+		if len(harmed) > 1 {
+			more = fmt.Sprintf(" (and %d more slice(s))", len(harmed)-1)
+		}
+		res.Summary = harmed[0] + more + "; overall: " + res.Summary
 	}
 	return det, nil
 }

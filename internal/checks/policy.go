@@ -20,7 +20,7 @@ func FromRule(r *policy.Rule, encoderTagDigest string) Config {
 	h := r.Holdout
 	c.Holdout = HoldoutConfig{Enabled: h.Enabled, Margin: h.Margin, Confidence: h.Confidence, Replicas: h.BootstrapReplicas, Seed: h.Seed,
 		NonzeroQuantiles: h.Slices.NonzeroQuantiles, AnomalyQuantile: h.Slices.AnomalyQuantile, AnomalyWeight: h.Slices.AnomalyWeight,
-		FailOnSlice: h.Slices.FailOnSlice, MaxLogLoss: h.MaxLogLoss, MaxNormalizedEntropy: h.MaxNormalizedEntropy, MinAUC: h.MinAUC,
+		FailOnSlice: h.Slices.FailOnSlice, MinSliceRows: h.Slices.MinRows, MaxLogLoss: h.MaxLogLoss, MaxNormalizedEntropy: h.MaxNormalizedEntropy, MinAUC: h.MinAUC,
 		MaxECE: h.MaxECE, Alpha: h.Alpha, WeightQuantile: h.WeightQuantile, WeightPower: h.WeightPower, MaxReconstruction: h.MaxReconstructionLoss,
 		ClusterColumn: h.ClusterColumn, TailExcess: h.Tail.Excess, TailAction: h.Tail.Action}
 	if h.Slices.PerSliceMargin > 0 {

@@ -82,7 +82,7 @@ type CheckResult struct {
 
 // Finding is one thing a check found, labelled by where it is.
 type Finding struct {
-	Status string `json:"status"` // PASS, FAIL or WARN
+	Status string `json:"status"` // PASS, FAIL, WARN, or SKIP (information: not judged)
 	// Code is a stable identifier, e.g. "freeze.trainable", "contract.probe".
 	Code    string `json:"code"`
 	Where   string `json:"where,omitempty"` // tensor, layer, probe row, slice …
@@ -168,7 +168,13 @@ type SliceResult struct {
 	Candidate Metrics         `json:"candidate"`
 	Baseline  *Metrics        `json:"baseline,omitempty"`
 	Test      *NonInferiority `json:"test,omitempty"`
-	Status    string          `json:"status"`
+	// Harm is the test that decides a slice: evidence that the candidate
+	// is worse than the slice margin, Holm-corrected across slices (nil:
+	// not judged).
+	Harm   *SliceHarm `json:"harm,omitempty"`
+	Status string     `json:"status"`
+	// Note says why a slice was not judged ("too few rows to judge").
+	Note string `json:"note,omitempty"`
 }
 
 // CalibrationBin is one bin of a reliability diagram.

@@ -38,6 +38,7 @@ const (
 	defaultCandidates        = 1000
 	defaultRuns              = 200
 	defaultBlocks            = 5
+	defaultMinSliceRows      = 100
 	defaultMaxAge            = 72 * time.Hour
 	defaultTailExcess        = 5.0
 )
@@ -123,6 +124,7 @@ type wireChecks struct {
 			AnomalyWeight    *float64   `json:"anomalyWeight"`
 			PerSliceMargin   *float64   `json:"perSliceMargin"`
 			FailOnSlice      *bool      `json:"failOnSlice"`
+			MinRows          *wint      `json:"minRows"`
 		} `json:"slices"`
 		MaxLogLoss            *float64 `json:"maxLogLoss"`
 		MaxNormalizedEntropy  *float64 `json:"maxNormalizedEntropy"`
@@ -337,6 +339,7 @@ func buildRule(name, at string, w *wireRule, probs *Problems) Rule {
 			AnomalyWeight:    or(h.Slices.AnomalyWeight, defaultAnomalyWeight),
 			PerSliceMargin:   or(h.Slices.PerSliceMargin, r.Holdout.Margin),
 			FailOnSlice:      or(h.Slices.FailOnSlice, false),
+			MinRows:          intOr(h.Slices.MinRows, defaultMinSliceRows),
 		}
 		r.Holdout.MaxLogLoss = clonePtr(h.MaxLogLoss)
 		r.Holdout.MaxNormalizedEntropy = orPtr(h.MaxNormalizedEntropy, defaultMaxNE)

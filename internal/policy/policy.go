@@ -286,7 +286,10 @@ type Slices struct {
 	AnomalyWeight float64
 	// PerSliceMargin is each slice's margin, in nats. Default: Margin.
 	PerSliceMargin float64
-	// FailOnSlice: a failing slice fails the check instead of warning.
+	// MinRows: a slice with fewer rows is reported as "too few rows to
+	// judge", not tested. Default 100.
+	MinRows int
+	// FailOnSlice: a harmed slice fails the check instead of warning.
 	// Default false.
 	FailOnSlice bool
 }

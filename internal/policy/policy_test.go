@@ -114,7 +114,7 @@ func TestDefaults(t *testing.T) {
 		},
 		Holdout: HoldoutCheck{
 			Enabled: true, Margin: 0.001, Confidence: 0.95, BootstrapReplicas: 200, Seed: 1,
-			Slices:               Slices{NonzeroQuantiles: []float64{0.5, 0.9}, AnomalyQuantile: 0.99, AnomalyWeight: 0.25, PerSliceMargin: 0.001},
+			Slices:               Slices{NonzeroQuantiles: []float64{0.5, 0.9}, AnomalyQuantile: 0.99, AnomalyWeight: 0.25, PerSliceMargin: 0.001, MinRows: 100},
 			MaxNormalizedEntropy: f(1), MinAUC: f(0.5), Tail: Tail{Excess: 5, Action: TailFail},
 		},
 		Budget:    BudgetCheck{Enabled: true, MaxGrowth: 0.2},
@@ -223,6 +223,7 @@ func TestSchemaDefaultsMatch(t *testing.T) {
 		{[]string{d, "scorerHoldout", p, "slices", p, "anomalyQuantile"}, r.Holdout.Slices.AnomalyQuantile},
 		{[]string{d, "scorerHoldout", p, "slices", p, "anomalyWeight"}, r.Holdout.Slices.AnomalyWeight},
 		{[]string{d, "scorerHoldout", p, "slices", p, "failOnSlice"}, r.Holdout.Slices.FailOnSlice},
+		{[]string{d, "scorerHoldout", p, "slices", p, "minRows"}, float64(r.Holdout.Slices.MinRows)},
 		{[]string{d, "scorerHoldout", p, "maxNormalizedEntropy"}, *r.Holdout.MaxNormalizedEntropy},
 		{[]string{d, "scorerHoldout", p, "minAUC"}, *r.Holdout.MinAUC},
 		{[]string{d, "encoderHoldout", p, "alpha"}, e.Holdout.Alpha},

@@ -105,6 +105,7 @@ type metricRow struct {
 
 type sliceView struct {
 	Name, Status, Rows, Candidate, Baseline, MeanDiff, Upper string
+	Lower, PAdjusted, Note                                   string
 }
 
 type calRow struct {
@@ -323,6 +324,10 @@ func holdoutSection(h *checks.HoldoutDetail) *holdoutView {
 		if s.Test != nil {
 			sv.MeanDiff, sv.Upper = signed(s.Test.MeanDiff), signed(s.Test.Upper)
 		}
+		if s.Harm != nil {
+			sv.Lower, sv.PAdjusted = signed(s.Harm.Lower), num(s.Harm.PAdjusted)
+		}
+		sv.Note = clean(s.Note)
 		hv.Slices = append(hv.Slices, sv)
 	}
 	cal := func(bins []checks.CalibrationBin) []calRow {

@@ -142,10 +142,10 @@ a{color:#1f4f8f}
 {{end}}
 {{if .Slices}}{{$hb := .HasBaseline}}
 <table>
-<caption>Slices: rows bucketed by nonzero count, and by the holdout's slice column ({{.SliceMetric}})</caption>
-<thead><tr><th scope="col">Slice</th><th scope="col">Status</th><th scope="col">Rows</th><th scope="col">Candidate</th>{{if $hb}}<th scope="col">Baseline</th><th scope="col">Mean difference</th><th scope="col">Upper bound</th>{{end}}</tr></thead>
+<caption>Slices: rows bucketed by nonzero count, and by the holdout's slice column ({{.SliceMetric}}). A slice warns only on evidence of harm: the lower bound of its mean difference above its margin after Holm's correction across the slices tested; a slice with too few rows is shown, not judged.</caption>
+<thead><tr><th scope="col">Slice</th><th scope="col">Status</th><th scope="col">Rows</th><th scope="col">Candidate</th>{{if $hb}}<th scope="col">Baseline</th><th scope="col">Mean difference</th><th scope="col">Upper bound</th><th scope="col">Lower bound (harm test)</th><th scope="col">Holm-adjusted p of harm</th><th scope="col">Note</th>{{end}}</tr></thead>
 <tbody>
-{{range .Slices}}<tr><th scope="row" class="wrap">{{.Name}}</th><td>{{template "badge" .Status}}</td><td class="num">{{.Rows}}</td><td class="num">{{.Candidate}}</td>{{if $hb}}<td class="num">{{.Baseline}}</td><td class="num">{{.MeanDiff}}</td><td class="num">{{.Upper}}</td>{{end}}</tr>
+{{range .Slices}}<tr><th scope="row" class="wrap">{{.Name}}</th><td>{{template "badge" .Status}}</td><td class="num">{{.Rows}}</td><td class="num">{{.Candidate}}</td>{{if $hb}}<td class="num">{{.Baseline}}</td><td class="num">{{.MeanDiff}}</td><td class="num">{{.Upper}}</td><td class="num">{{.Lower}}</td><td class="num">{{.PAdjusted}}</td><td class="wrap">{{.Note}}</td>{{end}}</tr>
 {{end}}</tbody>
 </table>
 {{end}}
