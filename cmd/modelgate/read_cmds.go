@@ -367,7 +367,30 @@ func runDiff(ctx context.Context, g *globals, a, b string) error {
 	}
 	tw.Flush()
 	fmt.Fprintf(w, "\nvocabulary: %d vs %d ids, %d row(s) hold a different id\n", d.Vocabulary.LenA, d.Vocabulary.LenB, d.Vocabulary.RowsDiffer)
+	fmt.Fprintf(w, "\nstats: %d difference(s)\n", len(d.Stats))
+	for _, c := range d.Stats {
+		fmt.Fprintf(w, "  %s: %s -> %s\n", c.Pointer, orNone(c.A), orNone(c.B))
+	}
+	probes := "same bytes"
+	if d.Probes.Changed {
+		probes = "different bytes"
+	}
+	fmt.Fprintf(w, "\nprobes: %d vs %d rows, %s\n", d.Probes.CountA, d.Probes.CountB, probes)
+	fmt.Fprintln(w, "\nfiles:")
+	fw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+	fmt.Fprintln(fw, "  FILE\tCHANGE\tSIZE A\tSIZE B")
+	for _, f := range d.Files {
+		fmt.Fprintf(fw, "  %s\t%s\t%s\t%s\n", f.Name, f.Change, sizeOrNone(f.SizeA, f.DigestA), sizeOrNone(f.SizeB, f.DigestB))
+	}
+	fw.Flush()
 	return nil
+}
+
+func sizeOrNone(n int64, digest string) string {
+	if digest == "" {
+		return "(none)"
+	}
+	return report.HumanBytes(n)
 }
 
 func orNone(b []byte) string {

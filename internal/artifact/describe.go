@@ -12,6 +12,7 @@ import (
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
 	"modelgate/internal/model"
+	"modelgate/internal/model/modeldir"
 	"modelgate/internal/registry"
 )
 
@@ -257,9 +258,36 @@ type Difference struct {
 	Spec        []SpecChange   `json:"spec"`
 	Tensors     []TensorChange `json:"tensors"`
 	Vocabulary  VocabChange    `json:"vocabulary"`
-	SizeA       int64          `json:"sizeA"`
+	// Files lists every file of the two models (spec.json and each layer,
+	// by its file name) and whether its bytes differ.
+	Files []FileChange `json:"files"`
+	// Stats lists the differing values of the training statistics
+	// (stats.json) by JSON pointer.
+	Stats []SpecChange `json:"stats"`
+	// Probes compares the probe rows.
+	Probes      ProbeChange `json:"probes"`
+	SizeA       int64       `json:"sizeA"`
 	SizeB       int64          `json:"sizeB"`
 	SharedBlobs int            `json:"sharedBlobs"`
+}
+
+// FileChange is how one file of a model differs: "same", "changed",
+// "added" (only in B) or "removed" (only in A).
+type FileChange struct {
+	Name    string `json:"name"`
+	Change  string `json:"change"`
+	DigestA string `json:"digestA,omitempty"`
+	DigestB string `json:"digestB,omitempty"`
+	SizeA   int64  `json:"sizeA,omitempty"`
+	SizeB   int64  `json:"sizeB,omitempty"`
+}
+
+// ProbeChange compares the probe rows of two models.
+type ProbeChange struct {
+	CountA int `json:"countA"`
+	CountB int `json:"countB"`
+	// Changed: the probe files' bytes differ.
+	Changed bool `json:"changed"`
 }
 
 // VocabChange compares two vocabularies row by row.
@@ -298,6 +326,23 @@ func Diff(ctx context.Context, store registry.Store, ra, rb registry.Ref) (*Diff
 		d.Spec = diffJSON(la.Spec, lb.Spec)
 	}
 	d.Tensors = diffTensors(la, lb)
+	d.Files = diffFiles(la.Artifact, lb.Artifact)
+	sa, sb := la.Stats, lb.Stats
+	if sa == nil {
+		sa = map[string]any{}
+	}
+	if sb == nil {
+		sb = map[string]any{}
+	}
+	d.Stats = diffJSON(sa, sb)
+	d.Probes = ProbeChange{CountA: len(la.Probes), CountB: len(lb.Probes)}
+	if la.Spec != nil && lb.Spec != nil {
+		for _, f := range d.Files {
+			if f.Name == la.Spec.Files.Probes && f.Change != "same" {
+				d.Probes.Changed = true
+			}
+		}
+	}
 	d.Vocabulary = VocabChange{LenA: len(la.Vocab), LenB: len(lb.Vocab)}
 	for i := 0; i < len(la.Vocab) && i < len(lb.Vocab); i++ {
 		if la.Vocab[i] != lb.Vocab[i] {
@@ -305,6 +350,53 @@ func Diff(ctx context.Context, store registry.Store, ra, rb registry.Ref) (*Diff
 		}
 	}
 	return d, nil
+}
+
+// diffFiles compares the files of two model artifacts by digest: the
+// config (spec.json) and every layer, named by its file title.
+func diffFiles(a, b *Artifact) []FileChange {
+	files := func(x *Artifact) map[string]v1.Descriptor {
+		m := map[string]v1.Descriptor{modeldir.SpecFile: x.Manifest.Config}
+		for _, l := range x.Manifest.Layers {
+			m[l.Annotations[AnnotationTitle]] = l
+		}
+		return m
+	}
+	fa, fb := files(a), files(b)
+	names := map[string]bool{}
+	for n := range fa {
+		names[n] = true
+	}
+	for n := range fb {
+		names[n] = true
+	}
+	sorted := make([]string, 0, len(names))
+	for n := range names {
+		sorted = append(sorted, n)
+	}
+	sort.Strings(sorted)
+	var out []FileChange
+	for _, n := range sorted {
+		da, inA := fa[n]
+		db, inB := fb[n]
+		c := FileChange{Name: n, Change: "same"}
+		if inA {
+			c.DigestA, c.SizeA = da.Digest.String(), da.Size
+		}
+		if inB {
+			c.DigestB, c.SizeB = db.Digest.String(), db.Size
+		}
+		switch {
+		case !inA:
+			c.Change = "added"
+		case !inB:
+			c.Change = "removed"
+		case da.Digest != db.Digest:
+			c.Change = "changed"
+		}
+		out = append(out, c)
+	}
+	return out
 }
 
 func diffTensors(la, lb *Loaded) []TensorChange {

@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"fmt"
 	"io"
 	"math"
 	"os"
@@ -212,5 +213,43 @@ func runSklearn(t *testing.T, script string, in, out any) {
 	}
 	if err := json.Unmarshal(stdout, out); err != nil {
 		t.Fatalf("decoding %q: %v", stdout, err)
+	}
+}
+
+// TestDiffShowsStats: diff names every file of two models and the
+// differing values of their training statistics: the edited copy of the
+// better candidate differs in stats.json alone, at the three quantiles
+// that were edited.
+func TestDiffShowsStats(t *testing.T) {
+	store := demoScenario(t)
+	edited := editedStatsCandidate(t, store)
+	a, _ := registry.ParseRef("promo-scorer:cand-better", false)
+	b, _ := registry.ParseRef(edited, false)
+	d, err := artifact.Diff(context.Background(), store, a, b)
+	if err != nil {
+		t.Fatal(err)
+	}
+	changed := map[string]string{}
+	for _, f := range d.Files {
+		changed[f.Name] = f.Change
+	}
+	for _, name := range []string{"spec.json", "stats.json", "head.safetensors", "vocabulary.txt", "probes.jsonl"} {
+		want := "same"
+		if name == "stats.json" {
+			want = "changed"
+		}
+		if changed[name] != want {
+			t.Errorf("file %s: %q, want %q (files %v)", name, changed[name], want, changed)
+		}
+	}
+	var ptrs []string
+	for _, c := range d.Stats {
+		ptrs = append(ptrs, c.Pointer)
+	}
+	if fmt.Sprint(ptrs) != "[/nonzerosPerRow/q50 /nonzerosPerRow/q90 /nonzerosPerRow/q99]" {
+		t.Errorf("stats differences %v, want the three edited quantiles", ptrs)
+	}
+	if d.Probes.Changed || d.Probes.CountA == 0 || d.Probes.CountA != d.Probes.CountB {
+		t.Errorf("probes %+v: the copy's probe rows are the same", d.Probes)
 	}
 }
