@@ -251,13 +251,13 @@ type SpecChange struct {
 
 // Difference is what `diff` prints.
 type Difference struct {
-	A, B        string         `json:"-"`
-	DigestA     string         `json:"digestA"`
-	DigestB     string         `json:"digestB"`
-	Identical   bool           `json:"identical"`
-	Spec        []SpecChange   `json:"spec"`
-	Tensors     []TensorChange `json:"tensors"`
-	Vocabulary  VocabChange    `json:"vocabulary"`
+	A, B       string         `json:"-"`
+	DigestA    string         `json:"digestA"`
+	DigestB    string         `json:"digestB"`
+	Identical  bool           `json:"identical"`
+	Spec       []SpecChange   `json:"spec"`
+	Tensors    []TensorChange `json:"tensors"`
+	Vocabulary VocabChange    `json:"vocabulary"`
 	// Files lists every file of the two models (spec.json and each layer,
 	// by its file name) and whether its bytes differ.
 	Files []FileChange `json:"files"`
@@ -267,8 +267,8 @@ type Difference struct {
 	// Probes compares the probe rows.
 	Probes      ProbeChange `json:"probes"`
 	SizeA       int64       `json:"sizeA"`
-	SizeB       int64          `json:"sizeB"`
-	SharedBlobs int            `json:"sharedBlobs"`
+	SizeB       int64       `json:"sizeB"`
+	SharedBlobs int         `json:"sharedBlobs"`
 }
 
 // FileChange is how one file of a model differs: "same", "changed",
