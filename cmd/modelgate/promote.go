@@ -239,11 +239,8 @@ func runPromoteUnit(ctx context.Context, g *globals, o *promoteOptions, store re
 	res, err := release.PromoteUnit(ctx, store, release.UnitRequest{Members: append([]release.UnitMember{first}, with...),
 		Policies: pols, Key: key, User: currentUser(), Reason: o.Reason})
 	if g.JSON && res != nil {
-		out := map[string]any{"result": res}
-		if err != nil {
-			out["error"] = err.Error()
-		}
-		if perr := g.printJSON(out); perr != nil {
+		// On a refusal the error is added beside the result (finishJSON).
+		if perr := g.printJSON(map[string]any{"result": res}); perr != nil {
 			return perr
 		}
 		return err

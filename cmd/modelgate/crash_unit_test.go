@@ -1,0 +1,433 @@
+package main
+
+import (
+	"bytes"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"strings"
+	"sync"
+	"syscall"
+	"testing"
+
+	"modelgate/internal/fixture"
+	"modelgate/internal/model/modeldir"
+)
+
+// The release of several tags at once (promote --with) is killed with
+// SIGKILL after each of its steps — each record copy written, each release
+// log head claimed, each tag moved, each copy marked committed — on the
+// local store and on the GCS emulator. The kills are exact, not timed: a
+// build of modelgate with -tags crashpoints sends itself SIGKILL after the
+// step MODELGATE_TEST_CRASH_AT names (release.EnvCrashAt; the release
+// binary has no such hook). After each kill: verify passes, each tag points
+// at its old or its new model, each log verifies or shows the documented
+// interrupted state, a mismatched encoder/scorer pair is always explained
+// by such an interrupted record, and the next promote or rollback completes
+// the release.
+
+// unitSteps are the crash points of a release of two tags, in order.
+var unitSteps = []string{"record:1", "record:2", "claim:1", "claim:2", "move:1", "move:2", "mark:1", "mark:2"}
+
+var crashBuild struct {
+	once sync.Once
+	path string
+	err  error
+}
+
+// crashpointBinary builds modelgate with -tags crashpoints, once.
+func crashpointBinary(t *testing.T) string {
+	t.Helper()
+	crashBuild.once.Do(func() {
+		crashBuild.path = filepath.Join(filepath.Dir(mgBinary), "modelgate-crashpoints")
+		if out, err := exec.Command("go", "build", "-tags", "crashpoints", "-o", crashBuild.path, ".").CombinedOutput(); err != nil {
+			crashBuild.err = fmt.Errorf("building modelgate -tags crashpoints: %v\n%s", err, out)
+		}
+	})
+	if crashBuild.err != nil {
+		t.Fatal(crashBuild.err)
+	}
+	return crashBuild.path
+}
+
+// runCrashAt runs the crashpoints build with args, killing itself after
+// step at.
+func runCrashAt(t *testing.T, store, at string, args ...string) killed {
+	t.Helper()
+	cmd := exec.Command(crashpointBinary(t), args...)
+	cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store, "MODELGATE_TEST_CRASH_AT="+at)
+	var so, se bytes.Buffer
+	cmd.Stdout, cmd.Stderr = &so, &se
+	err := cmd.Run()
+	var ee *exec.ExitError
+	switch {
+	case err == nil:
+		return killed{finished: true, res: result{0, so.String(), se.String()}}
+	case errors.As(err, &ee):
+		if ws, ok := ee.Sys().(syscall.WaitStatus); ok && ws.Signaled() {
+			return killed{}
+		}
+		return killed{finished: true, res: result{ee.ExitCode(), so.String(), se.String()}}
+	}
+	t.Fatalf("running modelgate %v: %v", args, err)
+	return killed{}
+}
+
+const (
+	unitEnc    = "tiny-encoder:prod"
+	unitScorer = "tiny-scorer:prod"
+)
+
+// unitWorld is a releaseWorld with a scorer tag tied to tiny-encoder:prod,
+// both with a release log.
+type unitWorld struct {
+	*releaseWorld
+	spolicy string
+	n       int
+}
+
+func newUnitWorld(t *testing.T, store string) *unitWorld {
+	t.Helper()
+	u := &unitWorld{releaseWorld: newReleaseWorldAt(t, 0, store)}
+	u.spolicy = filepath.Join(u.dir, "scorer.yaml")
+	text := `schemaVersion: 1
+name: tiny-scorer-release
+rules:
+  - target: tiny-scorer:prod
+    kind: scorer
+    checks:
+      holdout: {enabled: false}
+      budget: {enabled: false}
+      freeze: {encoderTag: "tiny-encoder:prod"}
+    approvals:
+      required: 0
+      approvers:
+        - {name: rita, keyFile: rita.pub.pem}
+      reportSigners:
+        - {name: ci, keyFile: ci.pub.pem}
+`
+	if err := os.WriteFile(u.spolicy, []byte(text), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	// First releases: the encoder, then a scorer of it.
+	enc := u.push(0, "")
+	u.gate("tiny-encoder:v0")
+	mustMG(t, store, "promote", "tiny-encoder:v0", "--to", unitEnc, "--policy", u.policy, "--key", u.key("rita"))
+	u.pushScorer(0, enc)
+	mustMG(t, store, "gate", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.key("ci"))
+	mustMG(t, store, "promote", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--key", u.key("rita"))
+	return u
+}
+
+// pushScorer pushes a tiny scorer of encoder digest enc as tiny-scorer:s<i>.
+func (u *unitWorld) pushScorer(i int, enc string) string {
+	u.t.Helper()
+	m := fixture.ScorerModel(fixture.EncoderModel(), enc)
+	m.Spec.Name = fmt.Sprintf("tiny-promo-scorer-%02d", i)
+	m.Spec.Encoder.Name = fmt.Sprintf("tiny-encoder:v%d", i)
+	dir := filepath.Join(u.dir, m.Spec.Name)
+	if err := modeldir.Write(dir, m); err != nil {
+		u.t.Fatal(err)
+	}
+	return strings.TrimSpace(mustMG(u.t, u.store, "push", dir, fmt.Sprintf("tiny-scorer:s%d", i)).stdout)
+}
+
+// candidates pushes and gates a new encoder and a scorer of it, each
+// against what its tag points at now (the scorer in the world after the
+// release), and returns their digests and the promote that releases both.
+func (u *unitWorld) candidates() (enc, sc string, promote []string) {
+	u.t.Helper()
+	u.n++
+	n := u.n
+	enc = u.push(n, "")
+	sc = u.pushScorer(n, enc)
+	ev, sv := fmt.Sprintf("tiny-encoder:v%d", n), fmt.Sprintf("tiny-scorer:s%d", n)
+	u.gate(ev)
+	mustMG(u.t, u.store, "gate", sv, "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.key("ci"), "--with", ev+"="+unitEnc)
+	return enc, sc, []string{"promote", ev, "--to", unitEnc, "--with", sv + "=" + unitScorer, "--policy", u.policy, "--policy", u.spolicy,
+		"--key", u.key("rita"), "--reason", fmt.Sprintf("unit %d", n)}
+}
+
+// logOf runs log --json on target: its exit code and, for exit 5, whether
+// the one damage finding is the documented interrupted state.
+func (u *unitWorld) logOf(target string) (code int, interrupted bool, rep logReport) {
+	u.t.Helper()
+	r := mg(u.t, u.store, "log", "--json", target)
+	if err := json.Unmarshal([]byte(r.stdout), &rep); err != nil {
+		u.t.Fatalf("log --json %s: exit %d, %v\n%s%s", target, r.code, err, r.stdout, r.stderr)
+	}
+	var damage []string
+	for _, f := range rep.Findings {
+		if f.Severity == "damage" {
+			damage = append(damage, f.Message)
+		}
+	}
+	if r.code == 5 && len(damage) == 1 && strings.HasPrefix(damage[0], "interrupted: record ") {
+		interrupted = true
+	}
+	return r.code, interrupted, rep
+}
+
+// checkCrash checks the store after a kill (or a finished run) of a
+// release that moves the encoder from oldE to newE and the scorer from
+// oldS to newS; it returns whether a log shows the interrupted state.
+func (u *unitWorld) checkCrash(what string, before map[string]string, oldE, newE, oldS, newS string) bool {
+	t := u.t
+	t.Helper()
+	mustVerify(t, u.store, what)
+	after := storeTags(t, u.store)
+	for k, v := range before {
+		switch k {
+		case unitEnc, unitScorer, "tiny-encoder:release-prod", "tiny-scorer:release-prod":
+		default:
+			if after[k] != v {
+				t.Fatalf("%s: %s moved from %s to %q", what, k, v, after[k])
+			}
+		}
+	}
+	e, s := after[unitEnc], after[unitScorer]
+	if (e != oldE && e != newE) || (s != oldS && s != newS) {
+		t.Fatalf("%s: encoder %s (old %s, new %s), scorer %s (old %s, new %s)", what, e, oldE, newE, s, oldS, newS)
+	}
+	interrupted := false
+	for _, target := range []string{unitEnc, unitScorer} {
+		code, in, rep := u.logOf(target)
+		switch {
+		case code == 0:
+		case in:
+			interrupted = true
+		default:
+			t.Fatalf("%s: log %s exit %d: %+v", what, target, code, rep.Findings)
+		}
+	}
+	matched := (e == oldE && s == oldS) || (e == newE && s == newS)
+	if !matched && !interrupted {
+		t.Fatalf("%s: encoder %s with scorer %s, a pair no record explains (no log shows an interrupted release)", what, e, s)
+	}
+	return interrupted
+}
+
+// logsVerify requires both logs to verify against their policies.
+func (u *unitWorld) logsVerify(what string) {
+	u.t.Helper()
+	for _, a := range [][]string{{unitEnc, u.policy}, {unitScorer, u.spolicy}} {
+		if r := mg(u.t, u.store, "log", a[0], "--policy", a[1]); r.code != 0 {
+			u.t.Fatalf("%s: log %s exit %d\n%s%s", what, a[0], r.code, r.stdout, r.stderr)
+		}
+	}
+}
+
+func (u *unitWorld) tags() (string, string) {
+	u.t.Helper()
+	tags := storeTags(u.t, u.store)
+	return tags[unitEnc], tags[unitScorer]
+}
+
+// crashUnitRelease runs the crash suite of a release of two tags on store.
+func crashUnitRelease(t *testing.T, store string) {
+	u := newUnitWorld(t, store)
+	completedBy := map[string]int{}
+	for i, step := range unitSteps {
+		// promote --with, killed after step.
+		oldE, oldS := u.tags()
+		newE, newS, promote := u.candidates()
+		before := storeTags(t, store)
+		what := fmt.Sprintf("promote killed after %s", step)
+		k := runCrashAt(t, store, step, promote...)
+		if k.finished {
+			t.Fatalf("%s: the run was not killed (exit %d): %s%s", what, k.res.code, k.res.stdout, k.res.stderr)
+		}
+		pending := u.checkCrash(what, before, oldE, newE, oldS, newS)
+		// The next promote (every other step: the same command again) or
+		// rollback (the others) completes the release first.
+		e, s := u.tags()
+		tookEffect := pending || (e == newE && s == newS)
+		var r result
+		want := [2]string{newE, newS}
+		if i%2 == 0 {
+			r = mustMG(t, store, promote...)
+			completedBy["promote"]++
+		} else {
+			if tookEffect {
+				// Undoing this release restores the pair before it.
+				want = [2]string{oldE, oldS}
+			} else {
+				// It changed nothing visible: the rollback undoes the
+				// release before it, as its dry run says.
+				var dry struct{ With []struct{ Target, To string } }
+				if err := json.Unmarshal([]byte(mustMG(t, store, "rollback", unitScorer, "--reason", "dry", "--dry-run", "--json").stdout), &dry); err != nil || len(dry.With) != 2 {
+					t.Fatalf("%s: rollback --dry-run --json: %v %+v", what, err, dry)
+				}
+				for _, m := range dry.With {
+					if m.Target == unitEnc {
+						want[0] = m.To
+					} else {
+						want[1] = m.To
+					}
+				}
+			}
+			r = mustMG(t, store, "rollback", unitScorer, "--reason", "after "+what, "--key", u.key("rita"))
+			completedBy["rollback"]++
+		}
+		if pending && !strings.Contains(r.stdout, "completed an interrupted release first") {
+			t.Fatalf("%s: the next command did not complete the interrupted release:\n%s", what, r.stdout)
+		}
+		if e, s := u.tags(); e != want[0] || s != want[1] {
+			t.Fatalf("%s: after completing, encoder %s scorer %s, want %s %s", what, e, s, want[0], want[1])
+		}
+		mustVerify(t, store, what+", completed")
+		u.logsVerify(what + ", completed")
+	}
+	// A rollback of the unit, killed after each step: the next promote
+	// (of the pair it restores) or the rollback run again completes it.
+	for _, step := range unitSteps {
+		_, _, promote := u.candidates()
+		mustMG(t, store, promote...)
+		newE, newS := u.tags()
+		oldE, oldS := "", ""
+		var dry struct{ With []struct{ Target, From, To string } }
+		if err := json.Unmarshal([]byte(mustMG(t, store, "rollback", unitEnc, "--reason", "dry", "--dry-run", "--json").stdout), &dry); err != nil || len(dry.With) != 2 {
+			t.Fatalf("rollback --dry-run --json: %v %+v", err, dry)
+		}
+		for _, m := range dry.With {
+			if m.Target == unitEnc {
+				oldE = m.To
+			} else {
+				oldS = m.To
+			}
+		}
+		before := storeTags(t, store)
+		what := fmt.Sprintf("rollback killed after %s", step)
+		k := runCrashAt(t, store, step, "rollback", unitEnc, "--reason", what, "--key", u.key("rita"))
+		if k.finished {
+			t.Fatalf("%s: the run was not killed (exit %d): %s%s", what, k.res.code, k.res.stdout, k.res.stderr)
+		}
+		// The rollback moves the encoder from new to old: the same check
+		// with the roles of old and new swapped.
+		pending := u.checkCrash(what, before, newE, oldE, newS, oldS)
+		if pending {
+			r := mustMG(t, store, "promote", "tiny-encoder@"+oldE, "--to", unitEnc, "--with", "tiny-scorer@"+oldS+"="+unitScorer,
+				"--policy", u.policy, "--policy", u.spolicy, "--key", u.key("rita"))
+			if !strings.Contains(r.stdout, "completed an interrupted release first") || !strings.Contains(r.stdout, "nothing to do") {
+				t.Fatalf("%s: the next promote did not complete the interrupted rollback:\n%s", what, r.stdout)
+			}
+			completedBy["promote"]++
+		} else if e, _ := u.tags(); e == newE {
+			mustMG(t, store, "rollback", unitEnc, "--reason", "again after "+what, "--key", u.key("rita"))
+		}
+		if e, s := u.tags(); e != oldE || s != oldS {
+			t.Fatalf("%s: after completing, encoder %s scorer %s, want %s %s", what, e, s, oldE, oldS)
+		}
+		mustVerify(t, store, what+", completed")
+		u.logsVerify(what + ", completed")
+	}
+	t.Logf("%d kill points for promote --with and %d for its rollback; completed by: %v", len(unitSteps), len(unitSteps), completedBy)
+}
+
+// TestCrashDuringUnitRelease: the local store and the GCS emulator.
+func TestCrashDuringUnitRelease(t *testing.T) {
+	if testing.Short() {
+		t.Skip("crash suite skipped with -short")
+	}
+	for _, k := range everyStore(t, "unitcrash") {
+		if k.name != "local" && k.name != "gcs" {
+			continue
+		}
+		t.Run(k.name, func(t *testing.T) { crashUnitRelease(t, k.loc) })
+	}
+}
+
+// TestUnitReleaseRace: 8 processes release different encoder/scorer pairs
+// of the same two tags at once, each gated against the same state; on
+// the local store and the GCS emulator exactly one wins, the others exit
+// 3 with nothing of theirs visible, the tags hold the winner's pair and
+// both logs verify.
+func TestUnitReleaseRace(t *testing.T) {
+	if testing.Short() {
+		t.Skip("8 release processes per store kind")
+	}
+	for _, k := range everyStore(t, "unitrace") {
+		if k.name != "local" && k.name != "gcs" {
+			continue
+		}
+		t.Run(k.name, func(t *testing.T) {
+			u := newUnitWorld(t, k.loc)
+			type racer struct {
+				enc, sc string
+				args    []string
+				res     result
+			}
+			racers := make([]*racer, 8)
+			for i := range racers {
+				e, s, args := u.candidates()
+				racers[i] = &racer{enc: e, sc: s, args: args}
+			}
+			var wg sync.WaitGroup
+			for _, r := range racers {
+				wg.Add(1)
+				go func() { defer wg.Done(); r.res = mg(t, k.loc, r.args...) }()
+			}
+			wg.Wait()
+			var winners []*racer
+			for _, r := range racers {
+				switch r.res.code {
+				case 0:
+					winners = append(winners, r)
+				case 3:
+				default:
+					t.Fatalf("a racer exited %d: %s%s", r.res.code, r.res.stdout, r.res.stderr)
+				}
+			}
+			if len(winners) != 1 {
+				t.Fatalf("%d of %d racing releases won", len(winners), len(racers))
+			}
+			if e, s := u.tags(); e != winners[0].enc || s != winners[0].sc {
+				t.Fatalf("tags %s %s, the winner released %s %s", e, s, winners[0].enc, winners[0].sc)
+			}
+			mustVerify(t, k.loc, "after the race")
+			u.logsVerify("after the race")
+		})
+	}
+}
+
+// TestUnitReleaseCLI: from the command line, the encoder alone is refused
+// (exit 4, naming the scorer tag that reads its code and the command that
+// moves both) with nothing changed; with --with both move, and the --json
+// document of each matches the promote output schema.
+func TestUnitReleaseCLI(t *testing.T) {
+	u := newUnitWorld(t, filepath.Join(t.TempDir(), "store"))
+	oldE, oldS := u.tags()
+	_, _, promote := u.candidates()
+	alone := append([]string(nil), promote[:4]...) // promote tiny-encoder:vN --to tiny-encoder:prod
+	before := storeTags(t, u.store)
+	r := mg(t, u.store, append(alone, "--policy", u.policy, "--key", u.key("rita"))...)
+	wantExit(t, r, 4, "is consumed by tiny-scorer:prod (scorer ", "--with SCORER-CANDIDATE=tiny-scorer:prod")
+	if after := storeTags(t, u.store); fmt.Sprint(after) != fmt.Sprint(before) {
+		t.Fatalf("the refused promote changed tags:\n%v\n%v", before, after)
+	}
+	r = mg(t, u.store, append(append([]string{"--json"}, alone...), "--policy", u.policy, "--key", u.key("rita"))...)
+	checkJSON(t, "promote", r)
+	if r.code != 4 || !strings.Contains(r.stdout, "tiny-scorer:prod") {
+		t.Fatalf("promote --json of the encoder alone: exit %d\n%s", r.code, r.stdout)
+	}
+	r = mustMG(t, u.store, append([]string{"--json"}, promote...)...)
+	checkJSON(t, "promote", r)
+	var out struct {
+		Result struct {
+			Members []struct{ Target, From, To string }
+		}
+	}
+	if err := json.Unmarshal([]byte(r.stdout), &out); err != nil || len(out.Result.Members) != 2 ||
+		out.Result.Members[0].Target != unitScorer || out.Result.Members[0].From != oldS || out.Result.Members[1].From != oldE {
+		t.Fatalf("promote --with --json: %v\n%s", err, r.stdout)
+	}
+	r = mustMG(t, u.store, "rollback", "--json", unitEnc, "--reason", "drill", "--key", u.key("rita"))
+	checkJSON(t, "rollback", r)
+	if e, s := u.tags(); e != oldE || s != oldS {
+		t.Fatalf("after the rollback of the encoder: %s %s, want %s %s", e, s, oldE, oldS)
+	}
+	u.logsVerify("after the CLI release and rollback")
+}
