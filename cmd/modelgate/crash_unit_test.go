@@ -288,7 +288,9 @@ func crashUnitRelease(t *testing.T, store string) {
 		mustMG(t, store, promote...)
 		newE, newS := u.tags()
 		oldE, oldS := "", ""
-		var dry struct{ With []struct{ Target, From, To string } }
+		var dry struct {
+			With []struct{ Target, From, To string }
+		}
 		if err := json.Unmarshal([]byte(mustMG(t, store, "rollback", unitEnc, "--reason", "dry", "--dry-run", "--json").stdout), &dry); err != nil || len(dry.With) != 2 {
 			t.Fatalf("rollback --dry-run --json: %v %+v", err, dry)
 		}
