@@ -62,6 +62,38 @@
 // of distinct models released on the tag (about 72 bytes each), not with
 // the number of records; a rollback shares the blob without reading it.
 //
+// # Encoders, scorers and releases of several tags
+//
+// A scorer's spec pins the encoder whose code it reads. An encoder tag
+// whose live target a live scorer consumes (Dependents: by reverse
+// lineage over the tags with a release log, and through scorer rules whose
+// freeze.encoderTag names the encoder tag) moves only together with those
+// scorers, each to a scorer of the new encoder; a scorer tied to an
+// encoder tag must consume what that tag points at after the release.
+//
+// PromoteUnit moves several tags as one release. One signed statement
+// (subjects: every new model) carries a Record whose Unit lists every
+// move; each tag's log holds its own copy (a manifest in that tag's
+// repository with the same envelope and that tag's released index),
+// chained to that tag's previous record and read as that tag's entry. A
+// unit is applied in steps, each a compare-and-swap from the state the
+// record names, so any process can take it further (advanceUnit):
+//
+//  1. the copies are written (nothing visible);
+//  2. each tag's head pointer is claimed, in move order, from its previous
+//     record to its copy; a head found moved by another release before
+//     any tag moved gives the claimed heads back (exit 3, nothing changed);
+//  3. each tag moves, scorers first and the encoder last: a scorer pins
+//     its encoder by digest, so whoever loads a scorer whole stays right at
+//     every step, and the shared encoder moves once its scorers are there;
+//  4. each copy gets its committed marker.
+//
+// A tag whose head is a copy whose tag has not moved (or whose marker is
+// missing) is "open": promote, rollback and Initial complete it first, and
+// Log reports "interrupted" naming the tags still to move. Rolling back
+// any tag whose newest record is a unit's rolls the whole unit back, as a
+// unit record again.
+//
 // # Who
 //
 // A record or approval made with a key names the key's holder (the name
