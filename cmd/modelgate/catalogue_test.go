@@ -124,6 +124,20 @@ rules:
 		setFile(d, "probes.jsonl", []byte(strings.Join(lines, "")))
 	})
 	statsNotObject := badModel(encDir, func(d string) { setFile(d, "stats.json", []byte(`[1, 2, 3]`)) })
+	vocabLines := func(edit map[int]string) string {
+		return badModel(encDir, func(d string) {
+			b, _ := os.ReadFile(filepath.Join(d, "vocabulary.txt"))
+			lines := strings.Split(strings.TrimSuffix(string(b), "\n"), "\n")
+			for i, l := range edit {
+				lines[i] = l
+			}
+			setFile(d, "vocabulary.txt", []byte(strings.Join(lines, "\n")+"\n"))
+		})
+	}
+	vocabNUL := vocabLines(map[int]string{0: "show\x00-000"})
+	vocabNFD := vocabLines(map[int]string{0: "caf\u00e9", 1: "cafe\u0301"}) // NFC, then NFD
+	vocabSpace := vocabLines(map[int]string{0: "x", 1: "x "})
+	vocabZero := vocabLines(map[int]string{0: "7", 1: "07"})
 	dupKind := badModel(encDir, func(d string) {
 		b, _ := os.ReadFile(filepath.Join(d, "spec.json"))
 		setFile(d, "spec.json", []byte(strings.Replace(string(b), "{", `{"kind": "scorer",`, 1)))
@@ -189,6 +203,9 @@ rules:
 	mustMG(t, store, "push", "--kind", "holdout", noLabel, "unlabelled-holdout:v1") // valid: a holdout may lack labels
 	dupField := write("dup-field.jsonl", `{"row_id":1,"items":[],"values":[],"label":1,"label":0,"listener_tenure":[0.1],"show_age":[0.2]}`+"\n")
 	wideDense := write("wide-dense.jsonl", `{"row_id":1,"items":[],"values":[],"label":1,"listener_tenure":[0.1,0.4],"show_age":[0.2]}`+"\n")
+	zeroID := write("zero-id.jsonl", row(1, `["07"]`, `[1]`, "1"))
+	spaceID := write("space-id.jsonl", row(1, `["show-003"]`, `[1]`, "1")+row(2, `["show-003 "]`, `[1]`, "0"))
+	nfdID := write("nfd-id.jsonl", row(1, `["cafe\u0301"]`, `[1]`, "1"))
 	notParquet := write("garbage.parquet", "PAR1 this is not a parquet file PAR1")
 	csvHoldout := write("holdout.csv", "row_id,items\n1,show-003\n")
 	dupRowID := write("dup-row-id.jsonl", row(5, `["show-003"]`, `[1]`, "0")+row(6, `["show-003"]`, `[1]`, "1")+row(5, `["show-010"]`, `[2]`, "0"))
@@ -262,6 +279,14 @@ rules:
 		{name: "stats not an object", args: []string{"push", statsNotObject, "bad:v1"}, code: 2, want: []string{"stats.json"}},
 		{name: "probe value negative", args: []string{"push", probeNaN, "bad:v1"}, code: 2, want: []string{"probes.jsonl:1", "negative"}},
 
+		{name: "vocabulary id with a NUL byte", args: []string{"push", vocabNUL, "bad:v1"}, code: 2, want: []string{"vocabulary.txt:1", "U+0000"}},
+		{name: "vocabulary ids café in NFC and NFD", args: []string{"push", vocabNFD, "bad:v1"}, code: 2, want: []string{"vocabulary.txt:2", "NFC"}},
+		{name: "vocabulary ids x and x-space", args: []string{"push", vocabSpace, "bad:v1"}, code: 2, want: []string{"vocabulary.txt:2", "white space"}},
+		{name: "vocabulary ids 7 and 07", args: []string{"push", vocabZero, "bad:v1"}, code: 2, want: []string{"vocabulary.txt:2", `"07"`, "integer"}},
+		{name: "holdout id 07", args: []string{"push", "--kind", "holdout", zeroID, "bad-holdout:v1"}, code: 2, want: []string{"zero-id.jsonl", "row 1", `"07"`}},
+		{name: "holdout id with a trailing space", args: []string{"push", "--kind", "holdout", spaceID, "bad-holdout:v1"}, code: 2, want: []string{"space-id.jsonl", "row 2", "white space"}},
+		{name: "holdout id not in NFC", args: []string{"push", "--kind", "holdout", nfdID, "bad-holdout:v1"}, code: 2, want: []string{"nfd-id.jsonl", "row 1", "NFC"}},
+		{name: "score: holdout id 07", args: []string{"score", "tiny-scorer:v1", "--holdout", zeroID, "--out", filepath.Join(dir, "p.jsonl")}, code: 2, want: []string{"zero-id.jsonl", "row 1", `"07"`}},
 		{name: "spec with the key kind given twice", args: []string{"push", dupKind, "bad:v1"}, code: 2, want: []string{"spec.json", "/kind", "given twice"}},
 
 		// Named pipes and links out of the model directory (push).

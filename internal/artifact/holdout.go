@@ -107,7 +107,7 @@ func countQuantiles(hist map[int]int64, rows int64) map[string]float64 {
 func structuralSpec() (*model.Spec, *data.Vocabulary, error) {
 	in := model.SparseInput{Name: "items", VocabularySize: 1, Unknown: model.UnknownBucket,
 		Transform: model.TransformIdentity, Duplicates: model.DuplicatesSum, Vocabulary: "v"}
-	v, err := data.ParseVocabulary(strings.NewReader("\x00structural\n"), in)
+	v, err := data.ParseVocabulary(strings.NewReader("modelgate-structural-check\n"), in)
 	if err != nil {
 		return nil, nil, err
 	}

@@ -437,7 +437,17 @@ func unknownIDs(runner *model.Runner, m *score.Model, dense []model.DenseInput) 
 	in := m.Loaded.Spec.Inputs.Sparse[0]
 	out := m.Net.Output()
 	it := ContractItem{Name: "unknown-ids", Status: StatusPass, Note: "rule " + in.Unknown}
-	a, b := "\x00not-in-vocabulary-a", "\x00not-in-vocabulary-b"
+	// Two well-formed ids (model.ItemIDProblem) the vocabulary lacks.
+	unknown := func(base string) string {
+		id := base
+		for i := 1; ; i++ {
+			if _, ok := m.Vocab.Lookup(id); !ok {
+				return id
+			}
+			id = fmt.Sprintf("%s-%d", base, i)
+		}
+	}
+	a, b := unknown("modelgate-not-in-vocabulary-a"), unknown("modelgate-not-in-vocabulary-b")
 	known := m.Vocab.ID(0)
 	mk := func(ids []string, vals []float32) (probeRow, error) {
 		return mapProbe(m, modeldir.Probe{Items: ids, Values: vals}, "unknown-id row")

@@ -16,7 +16,11 @@
 //	                   integer id is looked up by its decimal form, so 42
 //	                   and "42" are the same id. An empty string, null, a
 //	                   number with a fraction or exponent (1.5, 1e3) and an
-//	                   integer beyond int64 are refused. Ids the vocabulary
+//	                   integer beyond int64 are refused, as is a string id
+//	                   the vocabulary lacks that breaks the item id rule
+//	                   (model.ItemIDProblem: a control character, white
+//	                   space at either end, not NFC, or digits that are not
+//	                   an int64's canonical form such as "07"). Ids the vocabulary
 //	                   does not know follow the spec's unknown rule: bucket
 //	                   (weight row vocabularySize), drop (the pair is left
 //	                   out) or refuse (the row is refused).

@@ -159,6 +159,9 @@ func (v *Vocabulary) Map(id string) (idx int32, keep bool, err error) {
 	if i, ok := v.index[id]; ok {
 		return i, true, nil
 	}
+	if p := model.ItemIDProblem(id); p != "" {
+		return 0, false, errkind.New(errkind.BadInput, "item id %q: %s", id, p)
+	}
 	if v.in.Unknown == model.UnknownRefuse {
 		return 0, false, v.refuse(id)
 	}
@@ -169,6 +172,12 @@ func (v *Vocabulary) Map(id string) (idx int32, keep bool, err error) {
 func (v *Vocabulary) mapBytes(id []byte) (int32, bool, error) {
 	if i, ok := v.index[string(id)]; ok {
 		return i, true, nil
+	}
+	// A known id passed this check when its model was pushed; an unknown
+	// one must be spelled so that it cannot be a known id written
+	// another way.
+	if p := model.ItemIDProblemBytes(id); p != "" {
+		return 0, false, errkind.New(errkind.BadInput, "item id %q: %s", id, p)
 	}
 	if v.in.Unknown == model.UnknownRefuse {
 		return 0, false, v.refuse(string(id))

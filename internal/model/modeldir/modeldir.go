@@ -20,7 +20,6 @@ import (
 	"bytes"
 	"crypto/sha256"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"hash/maphash"
 	"math"
@@ -95,8 +94,8 @@ func ParseItemID(raw json.RawMessage) (string, error) {
 		if err := json.Unmarshal(raw, &s); err != nil {
 			return "", err
 		}
-		if s == "" {
-			return "", errors.New("empty item id")
+		if p := model.ItemIDProblem(s); p != "" {
+			return "", fmt.Errorf("item id %q: %s", s, p)
 		}
 		return s, nil
 	}
@@ -606,7 +605,9 @@ func (d *Dir) readVocabulary(probs *Problems) {
 }
 
 // ParseVocabulary splits a vocabulary file into ids and checks it: valid
-// UTF-8, no CR, no empty or duplicate ids, exactly size lines.
+// UTF-8, every id well formed (model.ItemIDProblem: so no CR, control
+// character, white space at either end, non-NFC spelling or non-canonical
+// integer), no duplicate ids, exactly size lines.
 func ParseVocabulary(file string, b []byte, size int) ([]string, []string) {
 	var problems []string
 	if !utf8.Valid(b) {
@@ -622,7 +623,6 @@ func ParseVocabulary(file string, b []byte, size int) ([]string, []string) {
 	if text != "" {
 		ids = strings.Split(text, "\n")
 	}
-	ctl := strings.ContainsAny(text, "\r\t") // one pass; lines are searched only when true
 	// A map of every id costs more than the rest of the check together; a
 	// sorted list of 64-bit hashes finds that no id repeats, and only when
 	// two hashes are equal does the map walk name the lines.
@@ -631,11 +631,9 @@ func ParseVocabulary(file string, b []byte, size int) ([]string, []string) {
 		seen = make(map[string]int, len(ids))
 	}
 	for i, id := range ids {
-		switch {
-		case id == "":
-			problems = append(problems, fmt.Sprintf("%s:%d: empty item id", file, i+1))
-		case ctl && strings.ContainsAny(id, "\r\t"):
-			problems = append(problems, fmt.Sprintf("%s:%d: item id contains a CR or tab", file, i+1))
+		switch p := model.ItemIDProblem(id); {
+		case p != "":
+			problems = append(problems, fmt.Sprintf("%s:%d: item id %q: %s", file, i+1, id, p))
 		case seen != nil:
 			if j, dup := seen[id]; dup {
 				problems = append(problems, fmt.Sprintf("%s:%d: item id %q repeats line %d", file, i+1, id, j+1))
