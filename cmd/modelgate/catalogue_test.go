@@ -231,6 +231,31 @@ rules:
 		}
 	}
 
+	// Holdouts of one class: all labels 1, and a slice the policy tests
+	// whose labels are all 1.
+	var ones, sliced strings.Builder
+	for i := 1; i <= 8; i++ {
+		ones.WriteString(row(i, `["show-003"]`, `[1]`, "1"))
+		label, slice := "1", "loyal"
+		if i <= 4 {
+			label, slice = fmt.Sprint(i%2), "new"
+		}
+		sliced.WriteString(strings.Replace(row(i, `["show-003"]`, `[1]`, label), `{"row_id"`, `{"slice":"`+slice+`","row_id"`, 1))
+	}
+	mustMG(t, store, "push", "--kind", "holdout", write("ones.jsonl", ones.String()), "ones-holdout:v1")
+	mustMG(t, store, "push", "--kind", "holdout", write("sliced.jsonl", sliced.String()), "sliced-holdout:v1")
+	slicePolicy := write("slice-policy.yaml", `schemaVersion: 1
+name: tiny-scorer
+rules:
+  - target: tiny-scorer:prod
+    kind: scorer
+    holdout: sliced-holdout:v1
+    checks:
+      budget: {enabled: false}
+      holdout:
+        slices: {perSliceMargin: 0.01, failOnSlice: true}
+`)
+
 	// Policies, each wrong in one way.
 	policySyntax := write("syntax.yaml", "schemaVersion: 1\nname: x\nrules:\n  - target: tiny-scorer:prod\n    kind: scorer\n   holdout: [\n")
 	policySchema := write("schema.yaml", "schemaVersion: 1\nname: x\nrules:\n  - target: tiny-scorer:prod\n    kind: scorer\n    holdout: tiny-holdout:v1\n    checks:\n      holdout: {margin: -1, colour: red}\n")
@@ -322,6 +347,10 @@ rules:
 		{name: "gate: holdout tag missing", args: gateArgs("--holdout", "tiny-holdout:nope", "--no-push"), code: 2, want: []string{"tiny-holdout:nope", "not found"}},
 		{name: "gate: holdout given as a file path", args: gateArgs("--holdout", noLabel, "--no-push"), code: 2, want: []string{"no-label.jsonl", "reference"}},
 		{name: "gate: scorer against a holdout without labels", args: gateArgs("--holdout", "unlabelled-holdout:v1", "--no-push"), code: 2, want: []string{"unlabelled-holdout:v1", "no label column"}},
+		{name: "gate: scorer against a holdout whose labels are all 1", args: gateArgs("--holdout", "ones-holdout:v1", "--no-push"), code: 2, want: []string{"ones-holdout:v1", "one class", "labelled 1"}},
+		{name: "gate shard: scorer against a holdout whose labels are all 1", args: gateArgs("--holdout", "ones-holdout:v1", "--shard", "1/2"), code: 2, want: []string{"ones-holdout:v1", "one class"}},
+		{name: "gate: a slice the policy tests has one class", args: []string{"gate", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", slicePolicy, "--no-push"}, code: 1,
+			want: []string{"loyal", "one class only"}, stdoutOK: true},
 		{name: "gate shard: scorer against a holdout without labels", args: gateArgs("--holdout", "unlabelled-holdout:v1", "--shard", "1/2"), code: 2, want: []string{"unlabelled-holdout:v1", "no label column"}},
 
 		// Policies: gate, approve, promote, log, serve.

@@ -196,11 +196,22 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 }
 
 // needLabels refuses, as bad input (exit 2) rather than a failing check,
-// a holdout without labels for a scorer: its log loss needs a label on
-// every row, and the operator chose the holdout, not the candidate.
+// a holdout without labels for a scorer, or with labels of one class: its
+// log loss needs a label on every row, its AUC both classes, and the
+// operator chose the holdout, not the candidate.
 func needLabels(cand *score.Model, hold *artifact.Holdout, ref registry.Ref) error {
-	if cand.Loaded.Spec.Kind == model.KindScorer && !hold.Info.HasLabels {
+	if cand.Loaded.Spec.Kind != model.KindScorer {
+		return nil
+	}
+	if !hold.Info.HasLabels {
 		return errkind.New(errkind.BadInput, "holdout %s has no label column: the holdout check of a scorer needs a label (0 or 1) on every row; push a labelled holdout or disable the check in the policy", ref)
+	}
+	if p, n := hold.Info.Positives, hold.Info.Rows; p == 0 || p == n {
+		label := 0
+		if p == n {
+			label = 1
+		}
+		return errkind.New(errkind.BadInput, "holdout %s has one class only (all %d rows are labelled %d): ROC AUC is undefined there and log loss cannot show whether a scorer ranks listeners; push a holdout with both labels", ref, n, label)
 	}
 	return nil
 }

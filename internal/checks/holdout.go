@@ -591,6 +591,18 @@ func finalize(st *holdoutState, cfg HoldoutConfig, res *CheckResult) (*HoldoutDe
 		sr := SliceResult{Name: name, Candidate: metricsOf(a, true), Status: StatusPass}
 		sr.Rows = sr.Candidate.Rows
 		rowsOf[i] = sr.Rows
+		if !encoder && cfg.PerSliceMargin != nil && a.cand != nil && a.cand.Rows() > 0 {
+			// A slice the policy tests must be able to show ranking.
+			if auc, _ := a.cand.AUC(); math.IsNaN(auc) {
+				st := StatusWarn
+				if cfg.FailOnSlice {
+					st = StatusFail
+				}
+				sr.Status = st
+				res.Findings = append(res.Findings, Finding{Status: st, Code: "holdout.slice-one-class", Where: name,
+					Message: fmt.Sprintf("slice %q (%d rows) has labels of one class only: its AUC is undefined and it cannot show whether the candidate ranks; the holdout needs both labels in every tested slice", name, sr.Rows)})
+			}
+		}
 		if hasBase {
 			m := metricsOf(a, false)
 			sr.Baseline = &m
