@@ -620,7 +620,9 @@ func finalize(st *holdoutState, cfg HoldoutConfig, res *CheckResult) (*HoldoutDe
 			sr.Harm = harms[i]
 			switch {
 			case harms[i] == nil:
-				sr.Status = StatusSkip
+				if sr.Status == StatusPass { // keep a one-class slice's warning or failure
+					sr.Status = StatusSkip
+				}
 				sr.Note = fmt.Sprintf("too few rows to judge (%d; the slice test needs %d)", sr.Rows, minRows)
 				res.Findings = append(res.Findings, Finding{Status: StatusSkip, Code: "holdout.slice-rows", Where: sr.Name,
 					Message: fmt.Sprintf("slice %q: %s", sr.Name, sr.Note), Value: ptr(float64(sr.Rows)), Limit: ptr(float64(minRows))})
