@@ -487,7 +487,7 @@ func encoderScene(ctx context.Context, g *globals, w io.Writer, work string, sc 
 	}
 	fmt.Fprintln(w, "\n   7b. Promoting the encoder alone is refused: the live scorer reads its code.")
 	fmt.Fprintf(w, "   $ modelgate promote %s --to %s --policy … --key %s\n", enc, encTarget, keyFile("rita"))
-	if _, err := sub(ctx, g, "promote", enc, "--to", encTarget, "--policy", encPol, "--key", keyFile("rita")); err == nil {
+	if _, err := sub(ctx, g, "promote", enc, "--to", encTarget, "--policy", encPol, "--policy", scorerPol, "--key", keyFile("rita")); err == nil {
 		return fmt.Errorf("promoting %s alone succeeded under the live %s", enc, scTarget)
 	} else if !strings.Contains(err.Error(), scTarget) {
 		return fmt.Errorf("promoting %s alone was refused without naming %s: %w", enc, scTarget, err)

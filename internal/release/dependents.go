@@ -73,7 +73,9 @@ func readModelInfo(ctx context.Context, store registry.Store, repo string, d v1.
 // count when they point at a scorer of enc). Sorted by target.
 //
 // It costs one Repositories call, one Tags call per repository and a few
-// reads per released tag.
+// reads per released tag. On a store that cannot list its repositories
+// (registry.ErrNoCatalog) the reverse lineage covers only the repositories
+// that encTag and pols name.
 func Dependents(ctx context.Context, store registry.Store, encTag registry.Ref, enc string, pols []*policy.Policy) ([]Dependent, error) {
 	found := map[string]Dependent{}
 	consider := func(target registry.Ref, how string) error {
@@ -97,11 +99,22 @@ func Dependents(ctx context.Context, store registry.Store, encTag registry.Ref, 
 		return nil
 	}
 	repos, err := store.Repositories(ctx)
-	if err != nil {
+	if errors.Is(err, registry.ErrNoCatalog) {
+		// A registry that does not list its repositories: search the
+		// repositories the encoder tag and the policies name, and refuse
+		// to guess when no policy names a scorer tag.
+		if !namesScorers(pols) {
+			return nil, errkind.New(errkind.BadInput, "%v, so the scorers that read the code of %s cannot be searched for: pass the policies of the scorer tags too (--policy FILE, repeatable)", err, encTag)
+		}
+		repos = knownRepositories(encTag, pols)
+	} else if err != nil {
 		return nil, fmt.Errorf("listing repositories to find the scorers of %s: %w", encTag, err)
 	}
 	for _, repo := range repos {
 		tags, err := store.Tags(ctx, repo)
+		if errors.Is(err, registry.ErrNotFound) {
+			continue
+		}
 		if err != nil {
 			return nil, fmt.Errorf("listing the tags of %s to find the scorers of %s: %w", repo, encTag, err)
 		}
@@ -280,4 +293,39 @@ func newMove(ctx context.Context, store registry.Store, target registry.Ref, can
 		}
 	}
 	return m, nil
+}
+
+// knownRepositories lists the repositories encTag and the rules of pols
+// name, sorted.
+func knownRepositories(encTag registry.Ref, pols []*policy.Policy) []string {
+	seen := map[string]bool{encTag.Repository: true}
+	for _, p := range pols {
+		if p == nil {
+			continue
+		}
+		for i := range p.Rules {
+			seen[p.Rules[i].Target.Repository] = true
+		}
+	}
+	out := make([]string, 0, len(seen))
+	for r := range seen {
+		out = append(out, r)
+	}
+	sort.Strings(out)
+	return out
+}
+
+// namesScorers reports whether a rule of pols governs a scorer tag.
+func namesScorers(pols []*policy.Policy) bool {
+	for _, p := range pols {
+		if p == nil {
+			continue
+		}
+		for i := range p.Rules {
+			if p.Rules[i].Kind == policy.KindScorer {
+				return true
+			}
+		}
+	}
+	return false
 }
