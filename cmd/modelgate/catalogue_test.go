@@ -138,6 +138,20 @@ rules:
 	vocabNFD := vocabLines(map[int]string{0: "caf\u00e9", 1: "cafe\u0301"}) // NFC, then NFD
 	vocabSpace := vocabLines(map[int]string{0: "x", 1: "x "})
 	vocabZero := vocabLines(map[int]string{0: "7", 1: "07"})
+	i64 := badModel(encDir, func(d string) {
+		h := `{"dec.b":{"dtype":"I64","shape":[13],"data_offsets":[0,104]}}`
+		setFile(d, "decoder.safetensors", rawSafetensors(h, make([]byte, 104)))
+	})
+	cycle := badModel(encDir, func(d string) {
+		editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+			m["layers"].([]any)[0].(map[string]any)["input"] = "reconstruction" // code ← reconstruction ← code
+		})
+	})
+	tiedToDecoder := badModel(encDir, func(d string) {
+		editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+			m["layers"].([]any)[1].(map[string]any)["tiedTo"] = "dec.b"
+		})
+	})
 	dupKind := badModel(encDir, func(d string) {
 		b, _ := os.ReadFile(filepath.Join(d, "spec.json"))
 		setFile(d, "spec.json", []byte(strings.Replace(string(b), "{", `{"kind": "scorer",`, 1)))
@@ -312,6 +326,9 @@ rules:
 		{name: "holdout id with a trailing space", args: []string{"push", "--kind", "holdout", spaceID, "bad-holdout:v1"}, code: 2, want: []string{"space-id.jsonl", "row 2", "white space"}},
 		{name: "holdout id not in NFC", args: []string{"push", "--kind", "holdout", nfdID, "bad-holdout:v1"}, code: 2, want: []string{"nfd-id.jsonl", "row 1", "NFC"}},
 		{name: "score: holdout id 07", args: []string{"score", "tiny-scorer:v1", "--holdout", zeroID, "--out", filepath.Join(dir, "p.jsonl")}, code: 2, want: []string{"zero-id.jsonl", "row 1", `"07"`}},
+		{name: "safetensors dtype I64", args: []string{"push", i64, "bad:v1"}, code: 2, want: []string{"decoder.safetensors", "I64"}},
+		{name: "layer graph with a cycle", args: []string{"push", cycle, "bad:v1"}, code: 2, want: []string{"spec.json", "reconstruction"}},
+		{name: "tied decoder tied to a decoder weight", args: []string{"push", tiedToDecoder, "bad:v1"}, code: 2, want: []string{"spec.json", "dec.b"}},
 		{name: "spec with the key kind given twice", args: []string{"push", dupKind, "bad:v1"}, code: 2, want: []string{"spec.json", "/kind", "given twice"}},
 
 		// Named pipes and links out of the model directory (push).
