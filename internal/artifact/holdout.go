@@ -274,6 +274,9 @@ func PushHoldout(ctx context.Context, store registry.Store, path string, ref reg
 	if ref.Tag == "" || ref.HasDigest() {
 		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
 	}
+	if err := registry.CheckTagWrite(ctx, store, ref.Repository, ref.Tag); err != nil {
+		return nil, err
+	}
 	format, err := data.FormatOf(path)
 	if err != nil {
 		return nil, err

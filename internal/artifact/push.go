@@ -109,6 +109,9 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 	if ref.Tag == "" || ref.HasDigest() {
 		return nil, errkind.New(errkind.BadInput, "push needs NAME:TAG, got %q", ref.String())
 	}
+	if err := registry.CheckTagWrite(ctx, store, ref.Repository, ref.Tag); err != nil {
+		return nil, err
+	}
 	if stager, ok := store.(registry.BlobStager); ok {
 		return pushStaged(ctx, store, stager, dir, ref, opts)
 	}
@@ -370,8 +373,15 @@ func appendUnique(s []string, v string) []string {
 // PushArtifact uploads config and layers (skipping blobs already present),
 // writes the manifest (reusing an identical one already in the
 // repository), then tags it — in that order, so the tag never points at
-// missing content. ann gets the creation time unless already set.
+// missing content. ann gets the creation time unless already set. A tag
+// the store would refuse (reserved, or with a release log: see
+// registry.CheckTagWrite) is refused before anything is written.
 func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, artifactType string, config Blob, layers []Blob, subject *v1.Descriptor, ann map[string]string, opts Options) (*PushResult, error) {
+	if ref.Tag != "" {
+		if err := registry.CheckTagWrite(ctx, store, ref.Repository, ref.Tag); err != nil {
+			return nil, err
+		}
+	}
 	res := &PushResult{Ref: ref.String(), Kind: strings.TrimSuffix(strings.TrimPrefix(artifactType, "application/vnd.modelgate."), ".v1")}
 	var mu sync.Mutex // guards res and serialises progress events
 	emit := func(e Event) {

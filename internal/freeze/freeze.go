@@ -223,6 +223,9 @@ func Scorer(ctx context.Context, store registry.Store, ref registry.Ref, opts Op
 	if opts.Out.Tag == "" || opts.Out.HasDigest() {
 		return nil, badInput("freeze needs --out NAME:TAG, got %q", opts.Out.String())
 	}
+	if err := registry.CheckTagWrite(ctx, store, opts.Out.Repository, opts.Out.Tag); err != nil {
+		return nil, err
+	}
 	storage, err := normStorage(opts.Storage)
 	if err != nil {
 		return nil, err

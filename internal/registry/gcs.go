@@ -574,7 +574,14 @@ func (g *GCS) tagTarget(ctx context.Context, repo, tag string, desc v1.Descripto
 }
 
 // Tag points repo:tag at a manifest present in repo (one object write).
+// It refuses reserved tags and tags with a release log (CheckTagWrite).
 func (g *GCS) Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) error {
+	if err := ValidateRepository(repo); err != nil {
+		return err
+	}
+	if err := CheckTagWrite(ctx, g, repo, tag); err != nil {
+		return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
+	}
 	d, err := g.tagTarget(ctx, repo, tag, desc)
 	if err != nil {
 		return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
@@ -591,6 +598,9 @@ func (g *GCS) Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) err
 // compare-and-swap between any number of writers. A lost race wraps
 // ErrConflict (errkind.Conflict).
 func (g *GCS) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, desc v1.Descriptor) error {
+	if err := checkSwapName(tag); err != nil {
+		return fmt.Errorf("swapping %s:%s: %w%w", repo, tag, err, errSwapUntried)
+	}
 	if old != (v1.Hash{}) {
 		if err := checkDigest(old); err != nil {
 			return err

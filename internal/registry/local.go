@@ -957,7 +957,14 @@ func (l *Local) Resolve(ctx context.Context, repo, tag string) (v1.Descriptor, e
 // Tag points repo:tag at the manifest desc.Digest, which must already be
 // in repo (else ErrNotFound). A non-zero desc.Size must match the
 // manifest's. The change is one atomic replace of index.json.
+//
+// It refuses reserved tags and tags with a release log (see
+// CheckTagWrite); the release-log check runs under the store's lock, so
+// no release can start between it and the write.
 func (l *Local) Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) error {
+	if err := CheckTagName(tag); err != nil {
+		return err
+	}
 	return l.setTag(ctx, repo, tag, nil, desc)
 }
 
@@ -966,6 +973,9 @@ func (l *Local) Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) e
 // update happen under the store's lock; a lost race wraps ErrConflict
 // (errkind.Conflict) and changes nothing.
 func (l *Local) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, desc v1.Descriptor) error {
+	if err := checkSwapName(tag); err != nil {
+		return err
+	}
 	if old != (v1.Hash{}) {
 		if err := checkDigest(old); err != nil {
 			return err
@@ -987,6 +997,9 @@ func (l *Local) setTag(ctx context.Context, repo, tag string, old *v1.Hash, desc
 	ref := refName(repo, tag)
 	err := l.updateIndex(ctx, func(idx *v1.IndexManifest) (bool, error) {
 		cur := findTag(idx, repo, tag)
+		if old == nil && ValidateTag(HeadTag(tag)) == nil && findTag(idx, repo, HeadTag(tag)) >= 0 {
+			return false, guardedError(repo, tag)
+		}
 		if old != nil {
 			switch {
 			case *old == (v1.Hash{}) && cur >= 0:

@@ -143,10 +143,10 @@ func TestHelperKilledWriter(t *testing.T) {
 		subj.ArtifactType = ""
 		rec := storetest.NewArtifact(uint64(1000*run+i), "application/vnd.modelgate.release.v1", &subj, nil)
 		d := storetest.Push(t, l, killedRepo, "", rec)
-		if err := l.Tag(ctx, killedRepo, "prod", m); err != nil {
+		if err := storetest.ForceTag(ctx, l, killedRepo, "prod", m); err != nil {
 			t.Fatal(err)
 		}
-		if err := l.Tag(ctx, killedRepo, "release-prod", d); err != nil {
+		if err := storetest.ForceTag(ctx, l, killedRepo, "release-prod", d); err != nil {
 			t.Fatal(err)
 		}
 	}

@@ -13,6 +13,7 @@ import (
 	"path/filepath"
 	"regexp"
 	"runtime"
+	"strings"
 	"sync"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
@@ -28,7 +29,8 @@ var hexPattern = regexp.MustCompile(`^[a-f0-9]{64}$`)
 // blob is missing or of another size; a referrer side file with no
 // manifest side file or that differs from it; an
 // index.json entry whose blob is missing or of another size (for a tag
-// entry: a dangling tag); an unreadable index.json or oci-layout. Hints:
+// entry: a dangling tag); two or more index.json entries for one tag; an
+// unreadable index.json or oci-layout. Hints:
 // leftover temporary files in .modelgate/tmp (an interrupted write, or one
 // in progress now); a manifest side file whose referrer side file is
 // missing (an interrupted put: putting the manifest again completes it);
@@ -139,6 +141,39 @@ func (l *Local) Scrub(ctx context.Context, referenced map[v1.Hash]bool) ([]Findi
 	mark := func(hex string) { isManifest[hex] = true }
 	if err := l.scrubSideFiles(ctx, hint, damage, checkBlob, mark); err != nil {
 		return out, err
+	}
+
+	// One entry per tag: modelgate replaces a tag's entry, but another
+	// tool (or a hand edit) can add a second one, which readers then take
+	// instead of the first.
+	entries := map[string][]v1.Descriptor{}
+	var refOrder []string
+	for _, d := range idx.Manifests {
+		if ref := d.Annotations[annotationRefName]; ref != "" {
+			if len(entries[ref]) == 0 {
+				refOrder = append(refOrder, ref)
+			}
+			entries[ref] = append(entries[ref], d)
+		}
+	}
+	for _, ref := range refOrder {
+		es := entries[ref]
+		if len(es) < 2 {
+			continue
+		}
+		distinct := map[v1.Hash]bool{}
+		var list []string
+		for _, e := range es {
+			if !distinct[e.Digest] {
+				list = append(list, e.Digest.String())
+			}
+			distinct[e.Digest] = true
+		}
+		if len(distinct) == 1 {
+			damage(ref, "index.json has %d entries for this tag, all pointing at %s: delete all but one of them from index.json (modelgate writes one entry per tag)", len(es), list[0])
+			continue
+		}
+		damage(ref, "index.json has %d entries for this tag pointing at different manifests (%s; readers take the last): keep only the right entry in index.json — for a tag with a release log, the one `modelgate log %s` says its newest record released — and delete the others", len(es), strings.Join(list, ", "), ref)
 	}
 
 	for _, d := range idx.Manifests {

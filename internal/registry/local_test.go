@@ -712,7 +712,7 @@ func TestLocalIndexHoldsOnlyTags(t *testing.T) {
 		want[at] = append(want[at], d.Digest.String())
 		all = append(all, d.Digest.String())
 		if at == types[2] { // a release record moves the head pointer
-			if err := l.Tag(ctx, repo, "release-prod", d); err != nil {
+			if err := storetest.ForceTag(ctx, l, repo, "release-prod", d); err != nil {
 				t.Fatal(err)
 			}
 		}

@@ -672,7 +672,15 @@ func (r *Remote) head(ctx context.Context, full, ref string) (v1.Descriptor, err
 
 // Tag points repo:tag at a manifest of repo (read and verified first: a
 // registry tags by receiving the manifest's bytes again).
+//
+// It refuses reserved tags and tags with a release log (CheckTagWrite).
 func (r *Remote) Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) error {
+	if err := r.checkTagArgs(repo, tag); err != nil {
+		return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
+	}
+	if err := CheckTagWrite(ctx, r, repo, tag); err != nil {
+		return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
+	}
 	raw, md, err := r.tagTarget(ctx, repo, tag, desc)
 	if err != nil {
 		return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
@@ -709,6 +717,9 @@ func (r *Remote) tagTarget(ctx context.Context, repo, tag string, desc v1.Descri
 // between goroutines of this process; between processes see the Remote
 // doc comment for the case it cannot see.
 func (r *Remote) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, desc v1.Descriptor) error {
+	if err := checkSwapName(tag); err != nil {
+		return fmt.Errorf("swapping %s:%s: %w%w", repo, tag, err, errSwapUntried)
+	}
 	if old != (v1.Hash{}) {
 		if err := checkDigest(old); err != nil {
 			return err

@@ -36,7 +36,7 @@ const MediaTypeReleased types.MediaType = "application/vnd.modelgate.released.v1
 // HeadTagPrefix starts the tag that points at a tag's newest release
 // record: the head pointer of "prod" is "release-prod", in the same
 // repository. Tags with this prefix cannot be promoted to.
-const HeadTagPrefix = "release-"
+const HeadTagPrefix = registry.ReleaseHeadPrefix
 
 // Record is the predicate of a release record statement; the statement's
 // subject is the model the record released (To).
@@ -327,8 +327,8 @@ func checkTarget(t registry.Ref) error {
 	if t.Tag == "" || t.HasDigest() {
 		return errkind.New(errkind.BadInput, "target %q: want NAME:TAG", t.String())
 	}
-	if len(t.Tag) >= len(HeadTagPrefix) && t.Tag[:len(HeadTagPrefix)] == HeadTagPrefix {
-		return errkind.New(errkind.BadInput, "tag %q is reserved: tags starting with %q point at release logs", t.Tag, HeadTagPrefix)
+	if registry.IsReservedTag(t.Tag) {
+		return registry.CheckTagName(t.Tag)
 	}
 	_, err := headTag(t.Tag)
 	return err

@@ -11,6 +11,7 @@ import (
 	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
+	"modelgate/internal/registry/storetest"
 )
 
 func (e *env) rollback(to *v1.Hash, dry bool) (*RollbackResult, error) {
@@ -156,8 +157,8 @@ func TestLogDetectsDamage(t *testing.T) {
 			t.Fatal(err)
 		}
 		_, to, _ := e.store.Manifest(e.ctx, testRepo, e.models[3])
-		e.store.Tag(e.ctx, testRepo, "prod", to)
-		e.store.Tag(e.ctx, testRepo, "release-prod", d)
+		storetest.ForceTag(e.ctx, e.store, testRepo, "prod", to)
+		storetest.ForceTag(e.ctx, e.store, testRepo, "release-prod", d)
 		lg = e.log("rita")
 		// Her key is untrusted, and the record she replaced had been
 		// released (its committed marker), so dropping it from
@@ -187,8 +188,8 @@ func TestLogDetectsDamage(t *testing.T) {
 			t.Fatal(err)
 		}
 		_, to, _ := e.store.Manifest(e.ctx, testRepo, e.models[3])
-		e.store.Tag(e.ctx, testRepo, "prod", to)
-		e.store.Tag(e.ctx, testRepo, "release-prod", dB)
+		storetest.ForceTag(e.ctx, e.store, testRepo, "prod", to)
+		storetest.ForceTag(e.ctx, e.store, testRepo, "release-prod", dB)
 		if err := markCommitted(e.ctx, e.store, &state{target: prodRef}, dB); err != nil {
 			t.Fatal(err)
 		}
@@ -232,7 +233,7 @@ func TestLogDetectsDamage(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		e.store.Tag(e.ctx, testRepo, "release-prod", d)
+		storetest.ForceTag(e.ctx, e.store, testRepo, "release-prod", d)
 		lg = e.log()
 		if lg.Worst() != errkind.Integrity || !strings.Contains(findings(lg, SeverityDamage), "does not verify") {
 			t.Errorf("altered signature: %+v", lg.Findings)
@@ -241,7 +242,7 @@ func TestLogDetectsDamage(t *testing.T) {
 	t.Run("tag moved outside modelgate", func(t *testing.T) {
 		e, _ := setup(t)
 		_, d, _ := e.store.Manifest(e.ctx, testRepo, e.models[3])
-		e.store.Tag(e.ctx, testRepo, "prod", d)
+		storetest.ForceTag(e.ctx, e.store, testRepo, "prod", d)
 		lg := e.log()
 		if lg.Worst() != errkind.Integrity || !strings.Contains(findings(lg, SeverityDamage), "moved outside modelgate") {
 			t.Errorf("external move: %+v", lg.Findings)

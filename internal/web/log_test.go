@@ -10,6 +10,7 @@ import (
 	"modelgate/internal/artifact"
 	"modelgate/internal/fixture"
 	"modelgate/internal/registry"
+	"modelgate/internal/registry/storetest"
 	"modelgate/internal/release"
 )
 
@@ -61,7 +62,7 @@ func TestServeBrokenLog(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if err := store.Tag(ctx, "tiny", "prod", sd); err != nil {
+	if err := storetest.ForceTag(ctx, store, "tiny", "prod", sd); err != nil {
 		t.Fatal(err)
 	}
 	tag, home = page()

@@ -72,6 +72,7 @@ func run(t *testing.T, open func(t *testing.T) registry.Store, noCatalog bool) {
 	t.Run("Referrers", func(t *testing.T) { testReferrers(t, open(t)) })
 	t.Run("TaggedReferrersListedOnce", func(t *testing.T) { testTaggedReferrers(t, open(t)) })
 	t.Run("SwapTag", func(t *testing.T) { testSwapTag(t, open(t)) })
+	t.Run("GuardedTags", func(t *testing.T) { testGuardedTags(t, open(t)) })
 	t.Run("Manifests", func(t *testing.T) { testManifests(t, open(t)) })
 	t.Run("InvalidNamesRefused", func(t *testing.T) { testInvalidNames(t, open(t)) })
 	t.Run("ConcurrentWriters", func(t *testing.T) { testConcurrent(t, open(t)) })
@@ -586,6 +587,80 @@ func testTaggedReferrers(t *testing.T, s registry.Store) {
 		if got := descDigests(ds); err != nil || !slices.Equal(got, want) {
 			t.Errorf("Manifests = %q, %v; want %q", got, err, want)
 		}
+	}
+}
+
+// ForceTag points repo:tag at desc whatever it points at now, bypassing
+// the guard on plain tag writes (registry.CheckTagWrite) the way anyone
+// who can write the store's bytes could: tests use it to make the damage
+// the release log must detect. The store must be a TagSwapper.
+func ForceTag(ctx context.Context, s registry.Store, repo, tag string, desc v1.Descriptor) error {
+	sw, ok := s.(registry.TagSwapper)
+	if !ok {
+		return fmt.Errorf("%s cannot swap tags", s)
+	}
+	var old v1.Hash
+	if cur, err := s.Resolve(ctx, repo, tag); err == nil {
+		old = cur.Digest
+	} else if !errors.Is(err, registry.ErrNotFound) {
+		return err
+	}
+	return sw.SwapTag(ctx, repo, tag, old, desc)
+}
+
+// testGuardedTags: a plain Tag refuses the reserved prefixes (bad input)
+// and a tag whose release head pointer exists (not authorised, the tag
+// unchanged); SwapTag, the release path, still moves both.
+func testGuardedTags(t *testing.T, s registry.Store) {
+	ctx := context.Background()
+	const repo = "podcast/promo-scorer"
+	d1 := Push(t, s, repo, "prod", NewArtifact(70, encoderType, nil, nil))
+	d2 := Push(t, s, repo, "", NewArtifact(71, encoderType, nil, nil))
+	rec := Push(t, s, repo, "", NewArtifact(72, "application/vnd.modelgate.release.v1", &d1, nil))
+	for _, tag := range []string{"release-prod", "release-candidate", "sha256-" + d2.Digest.Hex, "sha256-x"} {
+		err := s.Tag(ctx, repo, tag, d2)
+		if errkind.Of(err) != errkind.BadInput || !strings.Contains(fmt.Sprint(err), "reserved") {
+			t.Errorf("Tag %s: %v, want a bad-input refusal naming the tag reserved", tag, err)
+		}
+		if _, err := s.Resolve(ctx, repo, tag); !errors.Is(err, registry.ErrNotFound) {
+			t.Errorf("after the refused Tag, %s resolves: %v", tag, err)
+		}
+	}
+	// Before its release log starts, prod is a plain tag.
+	if err := s.Tag(ctx, repo, "prod", d2); err != nil {
+		t.Fatalf("Tag of a tag without a release log: %v", err)
+	}
+	sw, ok := s.(registry.TagSwapper)
+	if !ok {
+		t.Skipf("%s does not implement TagSwapper", s)
+	}
+	if err := sw.SwapTag(ctx, repo, "release-prod", v1.Hash{}, rec); err != nil {
+		t.Fatalf("SwapTag of a head pointer: %v", err)
+	}
+	for _, tc := range []struct {
+		tag  string
+		desc v1.Descriptor
+	}{{"prod", d1}, {"prod", d2}} { // a move, and a rewrite of the same target
+		err := s.Tag(ctx, repo, tc.tag, tc.desc)
+		if !errors.Is(err, registry.ErrGuarded) || errkind.Of(err) != errkind.Unauthorized ||
+			!strings.Contains(err.Error(), "promote") || !strings.Contains(err.Error(), "rollback") {
+			t.Errorf("Tag of a guarded tag to %s: %v, want ErrGuarded (not authorised) naming promote and rollback", tc.desc.Digest, err)
+		}
+	}
+	if got, err := s.Resolve(ctx, repo, "prod"); err != nil || got.Digest != d2.Digest {
+		t.Errorf("after refused Tags prod = %v, %v; want %s unchanged", got.Digest, err, d2.Digest)
+	}
+	if err := registry.CheckTagWrite(ctx, s, repo, "prod"); !errors.Is(err, registry.ErrGuarded) {
+		t.Errorf("CheckTagWrite of the guarded tag: %v", err)
+	}
+	if err := registry.CheckTagWrite(ctx, s, repo, "canary"); err != nil {
+		t.Errorf("CheckTagWrite of a plain tag: %v", err)
+	}
+	if err := sw.SwapTag(ctx, repo, "prod", d2.Digest, d1); err != nil {
+		t.Errorf("SwapTag of the guarded tag (the release path): %v", err)
+	}
+	if err := sw.SwapTag(ctx, repo, "sha256-x", v1.Hash{}, d1); errkind.Of(err) != errkind.BadInput {
+		t.Errorf("SwapTag of a sha256- tag: %v, want bad input", err)
 	}
 }
 
