@@ -12,6 +12,7 @@ import (
 	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
+	"modelgate/internal/release"
 	"modelgate/internal/report"
 )
 
@@ -92,9 +93,14 @@ func newCopyCmd(g *globals) *cobra.Command {
 		Short: "Copy artifacts with their referrers between stores, keeping digests",
 		Long: `copy copies an artifact from --store to --dest: its blobs, its manifest (the
 same bytes, so the same digest), every report, approval and release record
-that refers to it (recursively), then its tag. Blobs and manifests the
-destination already has are skipped, so an interrupted copy can be run
-again. With --all, every repository, manifest and tag is copied.
+that refers to it (recursively), what it needs (a scorer's encoder, from
+its own repository), then its tag. A tag with a release log comes with its
+log: its head record, every earlier record and the models they released;
+at the destination the tag and its head move by compare-and-swap, and only
+forward along the source's log: a destination tag with releases of its own
+is refused (exit 4: move it there with promote or rollback). Blobs and
+manifests the destination already has are skipped, so an interrupted copy
+can be run again. With --all, every repository, manifest and tag is copied.
 
 Stores: a local directory, oci://HOST/PREFIX or HOST/PREFIX (an OCI
 registry), gs://BUCKET/PREFIX (Google Cloud Storage).`,
@@ -137,7 +143,7 @@ func runCopy(ctx context.Context, g *globals, o *copyOptions, args []string) err
 	if src.String() == dst.String() {
 		return usageErr("--store and --dest are the same store (%s)", src)
 	}
-	opts := registry.CopyOptions{Progress: copyProgress(g)}
+	opts := registry.CopyOptions{Progress: copyProgress(g), Needs: release.CopyNeeds}
 	var res *registry.CopyResult
 	if o.All {
 		res, err = registry.CopyAll(ctx, src, dst, opts)

@@ -184,8 +184,11 @@ func TestCopyRoundTripThroughRegistry(t *testing.T) {
 	if code != 0 {
 		t.Fatalf("copy one: exit %d: %s", code, errOut)
 	}
-	if n := strings.Count(out, "\n"); n != 4 { // 3 manifests + 1 tag
-		t.Errorf("copy of one reference printed %d lines, want 4:\n%s", n, out)
+	if n := strings.Count(out, "\n"); n != 5 { // 3 manifests, the scorer's encoder, 1 tag
+		t.Errorf("copy of one reference printed %d lines, want 5:\n%s", n, out)
+	}
+	if !strings.Contains(out, "podcast/listener-encoder@"+want["podcast/listener-encoder:v1"]) {
+		t.Errorf("copy of the scorer does not bring its encoder:\n%s", out)
 	}
 	if !strings.Contains(out, "refers to "+want["podcast/promo-scorer:candidate"]) {
 		t.Errorf("copy output does not show the report referring to the scorer:\n%s", out)

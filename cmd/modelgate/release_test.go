@@ -224,9 +224,11 @@ func TestReleaseCommands(t *testing.T) {
 	wantExit(t, mg(t, w.store, "log", "tiny-encoder:prod", "--policy", w.policy), 4, "unsigned")
 	mustMG(t, w.store, "log", "tiny-encoder:prod")
 
-	// The tag moved outside modelgate: log exits 5, promote refuses 5,
-	// rollback restores the last released target.
-	w.push(4, "tiny-encoder:prod")
+	// push cannot move the guarded tag; someone who writes the store's
+	// bytes can: log exits 5, promote refuses 5, rollback restores the
+	// last released target.
+	wantExit(t, mg(t, w.store, "push", nameVariant(t, w.dir, 4), "tiny-encoder:prod"), 4, "release log", "promote", "rollback")
+	forceTag(t, w.store, "tiny-encoder", "prod", cands[3])
 	wantExit(t, mg(t, w.store, "log", "tiny-encoder:prod"), 5, "moved outside modelgate")
 	wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 5, "moved outside modelgate")
 	wantExit(t, mg(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "undo a manual push"), 0, "moved outside modelgate")
