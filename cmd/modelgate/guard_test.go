@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"encoding/json"
+	"fmt"
 	"os"
 	"path/filepath"
 	"strings"
@@ -262,5 +263,74 @@ rules:
 			// Put the source back for the next store kind.
 			mustMG(t, src, "rollback", "tiny-scorer:prod", "--reason", "restore", "--to", v2)
 		})
+	}
+}
+
+// TestOnCallLog: log numbers the releases and names each record's models
+// by the tags pointing at them (full digests in --json); rollback --to
+// takes a release number, a unique 12-hex-digit prefix (as log prints
+// it) or a tag; a tag that was only pushed has no release log, which log
+// says plainly with exit 0.
+func TestOnCallLog(t *testing.T) {
+	w := newReleaseWorld(t, 0)
+	var ds []string
+	for i := 1; i <= 3; i++ {
+		ds = append(ds, w.push(i, ""))
+		c := fmt.Sprintf("tiny-encoder:v%d", i)
+		w.gate(c)
+		wantExit(t, w.promote(c, "--key", w.key("rita")), 0, "promoted")
+	}
+	lg := mustMG(t, w.store, "log", "tiny-encoder:prod").stdout
+	for _, s := range []string{"#1 ", "#2 ", "#3 ", "tiny-encoder:v1 (", "tiny-encoder:v2 (", "tiny-encoder:prod, tiny-encoder:v3 ("} {
+		if !strings.Contains(lg, s) {
+			t.Errorf("log lacks %q:\n%s", s, lg)
+		}
+	}
+	var rep struct {
+		Entries []struct {
+			Number int
+			Record struct{ To string }
+		}
+		Names map[string][]string
+	}
+	if err := json.Unmarshal([]byte(mustMG(t, w.store, "log", "--json", "tiny-encoder:prod").stdout), &rep); err != nil || len(rep.Entries) != 3 {
+		t.Fatalf("log --json: %v, %+v", err, rep)
+	}
+	for i, e := range rep.Entries {
+		if e.Number != 3-i || e.Record.To != ds[2-i] || !strings.Contains(strings.Join(rep.Names[e.Record.To], " "), fmt.Sprintf("tiny-encoder:v%d", 3-i)) {
+			t.Errorf("entry %d: number %d, to %s, names %v; want %d, %s", i, e.Number, e.Record.To, rep.Names[e.Record.To], 3-i, ds[2-i])
+		}
+	}
+	rb := func(to string) result {
+		return mg(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "canary", "--to", to)
+	}
+	wantExit(t, rb("1"), 0, "rolled back")
+	if w.prod() != ds[0] {
+		t.Errorf("--to 1 went to %s, want %s", w.prod(), ds[0])
+	}
+	wantExit(t, rb(ds[1][:19]), 0) // sha256: and 12 hex digits, as log prints it
+	if w.prod() != ds[1] {
+		t.Errorf("--to a 12-digit prefix went to %s, want %s", w.prod(), ds[1])
+	}
+	wantExit(t, rb("#3"), 0)
+	wantExit(t, rb("v1"), 0)
+	if w.prod() != ds[0] {
+		t.Errorf("--to v1 went to %s, want %s", w.prod(), ds[0])
+	}
+	wantExit(t, rb(strings.TrimPrefix(ds[2], "sha256:")[:14]), 0)
+	if w.prod() != ds[2] {
+		t.Errorf("--to a bare 14-digit prefix went to %s, want %s", w.prod(), ds[2])
+	}
+	wantExit(t, rb(ds[1][:17]), 2, "12 hex digits")       // too short
+	wantExit(t, rb("99"), 2, "numbers its releases 1 to") // no such release
+	other := w.push(9, "tiny-encoder:v9")
+	wantExit(t, rb(other[:19]), 2, "no digest released")
+	mustMG(t, w.store, "log", "tiny-encoder:prod")
+
+	// Only pushed: no release log, exit 0, said plainly.
+	r := mg(t, w.store, "log", "tiny-encoder:v9")
+	wantExit(t, r, 0, "has no release log", "never promoted")
+	if strings.Contains(r.stdout+r.stderr, "DAMAGE") {
+		t.Errorf("log of a pushed tag reports damage:\n%s", r.stdout)
 	}
 }

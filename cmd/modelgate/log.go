@@ -94,19 +94,39 @@ func runLog(ctx context.Context, g *globals, o *logOptions, tagStr string) error
 	return nil
 }
 
+// modelName names a model of a record for people: the tags pointing at it
+// now, else repository@short digest.
+func modelName(rep *release.LogReport, d string) string {
+	if d == "" {
+		return "(absent)"
+	}
+	if names := rep.Names[d]; len(names) > 0 {
+		if len(names) > 3 {
+			names = append(names[:3:3], fmt.Sprintf("+%d", len(names)-3))
+		}
+		return strings.Join(names, ", ") + " (" + shortDigest(d) + ")"
+	}
+	repo, _, _ := strings.Cut(rep.Target, ":")
+	return repo + "@" + shortDigest(d)
+}
+
 func printLog(w io.Writer, rep *release.LogReport) {
+	if rep.NoLog {
+		fmt.Fprintf(w, "%s has no release log: it points at %s (%s), was pushed and never promoted or rolled back.\n`modelgate promote` starts its log.\n", rep.Target, orAbsent(rep.Current), modelName(rep, rep.Current))
+		return
+	}
 	fmt.Fprintf(w, "release log of %s: %d record(s), newest first; the tag points at %s\n", rep.Target, len(rep.Entries), orAbsent(rep.Current))
 	byWhere := map[string][]release.Finding{}
 	for _, f := range rep.Findings {
 		byWhere[f.Where] = append(byWhere[f.Where], f)
 	}
-	for i, e := range rep.Entries {
+	for _, e := range rep.Entries {
 		r := e.Record
 		by, sig := r.By.Name, "unsigned"
 		if e.Verified {
 			by, sig = r.By.String(), "signature ok"
 		}
-		fmt.Fprintf(w, "\n#%d  %s  %-8s  %s → %s\n", len(rep.Entries)-i, r.Time, r.Kind, shortDigest(orAbsent(r.From)), shortDigest(r.To))
+		fmt.Fprintf(w, "\n#%d  %s  %-8s  %s → %s\n", e.Number, r.Time, r.Kind, modelName(rep, r.From), modelName(rep, r.To))
 		fmt.Fprintf(w, "    by %s, %s; record %s\n", by, sig, shortDigest(e.Digest))
 		for _, u := range r.Unit {
 			if u.Target != r.Target {

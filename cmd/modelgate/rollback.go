@@ -19,7 +19,7 @@ type rollbackOptions struct {
 
 func (o *rollbackOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
-	f.StringVar(&o.To, "to", "", "digest to go to (it must have been released on the tag before); default: undo the newest release")
+	f.StringVar(&o.To, "to", "", "what to go to: a release number from log (#3 or 3), a digest or a unique prefix of at least 12 hex digits, or a tag; it must have been released on the tag before (default: undo the newest release)")
 	f.StringVar(&o.Reason, "reason", "", "why (required; stored in the rollback record)")
 	f.StringVar(&o.Key, "key", "", "private key that signs the rollback record (without it the record is unsigned and names $USER)")
 	f.BoolVar(&o.DryRun, "dry-run", false, "say what would happen, change nothing")
@@ -28,11 +28,13 @@ func (o *rollbackOptions) AddFlags(cmd *cobra.Command) {
 func newRollbackCmd(g *globals) *cobra.Command {
 	o := &rollbackOptions{}
 	cmd := &cobra.Command{
-		Use:   "rollback NAME:TAG --reason TEXT [--to DIGEST] [--dry-run]",
+		Use:   "rollback NAME:TAG --reason TEXT [--to N|DIGEST|PREFIX|TAG] [--dry-run]",
 		Short: "Move a tag back to an earlier release, with no gate (the emergency path)",
 		Long: `rollback moves the tag back, without a gate, to what its newest release record
 says undoing it restores: run it again to go back one more release. With
---to it goes to any digest released on that tag before, and nothing else.
+--to it goes to any digest released on that tag before, and nothing else:
+name it by its release number in log, by its digest or a unique prefix of
+at least 12 hex digits (as log prints them), or by a tag pointing at it.
 It reads a constant number of records whatever the length of the log,
 moves the tag by compare-and-swap, and writes a rollback record with who
 and why. If the tag had been moved outside modelgate, rollback restores the
@@ -64,19 +66,19 @@ func runRollback(ctx context.Context, g *globals, o *rollbackOptions, tagStr str
 		return usageErr("rollback takes NAME:TAG, got %q", tagStr)
 	}
 	req := release.RollbackRequest{Target: target, Reason: o.Reason, User: currentUser(), DryRun: o.DryRun}
-	if o.To != "" {
-		d, err := registry.ParseDigest(o.To)
-		if err != nil {
-			return err
-		}
-		req.To = &d
-	}
 	if req.Key, err = loadOptionalKey(o.Key); err != nil {
 		return err
 	}
 	store, err := g.openStore()
 	if err != nil {
 		return err
+	}
+	if o.To != "" {
+		d, err := release.ResolveRelease(ctx, store, target, o.To)
+		if err != nil {
+			return err
+		}
+		req.To = &d
 	}
 	res, err := release.Rollback(ctx, store, req)
 	if err != nil {

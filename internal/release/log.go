@@ -41,6 +41,9 @@ type LogEntry struct {
 	// Verified is true when the record is signed and its signature
 	// verifies with the key it names.
 	Verified bool `json:"verified"`
+	// Number is the release's number in the log, 1 for the oldest (what
+	// `rollback --to N` takes).
+	Number int `json:"number"`
 }
 
 // LogReport is a tag's release log, newest record first, with what
@@ -53,6 +56,13 @@ type LogReport struct {
 	Head     string     `json:"head,omitempty"`
 	Entries  []LogEntry `json:"entries"`
 	Findings []Finding  `json:"findings"`
+	// Names maps the digests the records moved the tag from and to onto
+	// the tags (NAME:TAG) that point at them now; a digest no tag names
+	// is absent.
+	Names map[string][]string `json:"names,omitempty"`
+	// NoLog is true when the tag exists but was only ever pushed: it has
+	// no release log, and nothing is wrong with that.
+	NoLog bool `json:"noLog,omitempty"`
 }
 
 // Worst returns the kind of the gravest finding: errkind.Integrity for
@@ -102,8 +112,15 @@ func Log(ctx context.Context, store registry.Store, target registry.Ref, opts Lo
 		if s.tagDesc == nil {
 			return nil, errkind.New(errkind.BadInput, "%s does not exist and has no release log", target)
 		}
-		rep.add(SeverityDamage, tname, "%s points at %s but has no release log: it was set outside modelgate (or its head pointer %s was deleted)", target, s.current(), s.headTag)
+		n := len(rep.Findings)
 		orphans(ctx, store, target, rep, nil)
+		if len(rep.Findings) > n {
+			rep.add(SeverityDamage, tname, "%s points at %s and has release records, but no release log head %s: the head pointer was deleted or the tag was set outside modelgate", target, s.current(), s.headTag)
+		} else {
+			rep.NoLog = true
+			rep.add(SeverityNote, tname, "%s has no release log: it was pushed (it points at %s) and never promoted or rolled back; `modelgate promote` starts its log", target, s.current())
+		}
+		rep.Names = tagNames(ctx, store, repo, []string{s.current()})
 		return rep, nil
 	}
 	rep.Head = s.headDesc.Digest.String()
@@ -219,6 +236,13 @@ func Log(ctx context.Context, store registry.Store, target registry.Ref, opts Lo
 		}
 	}
 	orphans(ctx, store, target, rep, inChain)
+	var ds []string
+	for i := range rep.Entries {
+		e := &rep.Entries[i]
+		e.Number = len(rep.Entries) - i
+		ds = append(ds, e.Record.From, e.Record.To)
+	}
+	rep.Names = tagNames(ctx, store, repo, ds)
 	return rep, nil
 }
 
