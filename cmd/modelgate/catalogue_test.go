@@ -370,7 +370,7 @@ rules:
 			want: []string{"loyal", "one class only"}, stdoutOK: true},
 		{name: "gate shard: scorer against a holdout without labels", args: gateArgs("--holdout", "unlabelled-holdout:v1", "--shard", "1/2"), code: 2, want: []string{"unlabelled-holdout:v1", "no label column"}},
 
-		// Policies: gate, approve, promote, log, serve.
+		// Policies: gate, approve, promote, log, view.
 		{name: "gate: policy file missing", args: []string{"gate", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", filepath.Join(dir, "nope.yaml")}, code: 2, want: []string{"nope.yaml"}},
 		{name: "gate: policy not YAML", args: []string{"gate", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", policySyntax}, code: 2, want: []string{"syntax.yaml", "line 5"}},
 		{name: "gate: policy against its schema", args: []string{"gate", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", policySchema}, code: 2, want: []string{"schema.yaml", "/rules/0/checks/holdout/margin", "colour"}},
@@ -379,7 +379,7 @@ rules:
 		{name: "approve: policy over 1 MiB", args: []string{"approve", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", policyBig, "--key", key("ana")}, code: 2, want: []string{"big.yaml", "larger than"}},
 		{name: "promote: approver key file missing", args: []string{"promote", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", policyGhost}, code: 2, want: []string{"ghost.yaml", "/rules/0/approvals/approvers/0/keyFile", "ghost.pub.pem"}},
 		{name: "log: approver key file missing", args: []string{"log", "tiny-scorer:prod", "--policy", policyGhost}, code: 2, want: []string{"ghost.yaml", "ghost.pub.pem"}},
-		{name: "serve: policy against its schema", args: []string{"serve", "--policy", policySchema}, code: 2, want: []string{"schema.yaml", "colour"}},
+		{name: "view: policy against its schema", args: []string{"view", "--policy", policySchema}, code: 2, want: []string{"schema.yaml", "colour"}},
 
 		// Keys: approve, promote, gate --sign-key, rollback, keygen.
 		{name: "approve: key file missing", args: []string{"approve", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", policy, "--key", filepath.Join(dir, "nokey.pem")}, code: 2, want: []string{"nokey.pem"}},
@@ -431,8 +431,8 @@ rules:
 		{name: "gate: --sign-key with --no-push", args: gateArgs("--sign-key", key("ci"), "--no-push"), code: 2, want: []string{"--sign-key", "--no-push"}},
 		{name: "freeze: --storage f8", args: []string{"freeze", "tiny-scorer:v1", "--out", "tiny-scorer:frozen", "--storage", "f8"}, code: 2, want: []string{"--storage", "f8"}},
 		{name: "freeze: --max-error -1", args: []string{"freeze", "tiny-scorer:v1", "--out", "tiny-scorer:frozen", "--max-error", "-1"}, code: 2, want: []string{"--max-error"}},
-		{name: "serve: non-loopback address without --public", args: []string{"serve", "--addr", "0.0.0.0:1"}, code: 2, want: []string{"0.0.0.0:1", "--public"}},
-		{name: "serve: address not HOST:PORT", args: []string{"serve", "--addr", "nonsense"}, code: 2, want: []string{"nonsense"}},
+		{name: "view: non-loopback address without --public", args: []string{"view", "--addr", "0.0.0.0:1"}, code: 2, want: []string{"0.0.0.0:1", "--public"}},
+		{name: "view: address not HOST:PORT", args: []string{"view", "--addr", "nonsense"}, code: 2, want: []string{"nonsense"}},
 		{name: "push: --kind dataset", args: []string{"push", "--kind", "dataset", hold, "bad-holdout:v1"}, code: 2, want: []string{"--kind", "dataset"}},
 		{name: "copy: --dest missing", args: []string{"copy", "tiny-encoder:v1"}, code: 2, want: []string{"--dest"}},
 		{name: "copy: --dest is the store itself", args: []string{"copy", "tiny-encoder:v1", "--dest", store}, code: 2, want: []string{"--dest", "same store"}},

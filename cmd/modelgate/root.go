@@ -250,7 +250,8 @@ bug or an environment failure); 130 / 143 stopped by SIGINT / SIGTERM.`,
 		newRollbackCmd(g),
 		newLogCmd(g),
 		newFreezeCmd(g),
-		newServeCmd(g),
+		newViewCmd(g),
+		newServeAliasCmd(g),
 	)
 	root.SetFlagErrorFunc(func(c *cobra.Command, err error) error {
 		return errkind.Wrap(errkind.BadInput, err)

@@ -219,7 +219,7 @@ func TestServeChromium(t *testing.T) {
 	if fc.Text != "Skip to main content" || fc.Top < 0 || fc.Outline == "none" || fc.Width == "0px" {
 		t.Errorf("first Tab: focus %+v, want the visible skip link with an outline", fc)
 	}
-	screenshot(t, ctx, dir, "serve-tags.png")
+	screenshot(t, ctx, dir, "view-tags.png")
 	checkContrast(t, ctx, "tag list")
 
 	// A tag and its release log.
@@ -234,7 +234,7 @@ func TestServeChromium(t *testing.T) {
 	if n := eval[int](t, ctx, `document.querySelectorAll("table.log tbody tr").length`); n != 1 {
 		t.Errorf("release log has %d rows, want 1 (the first release)", n)
 	}
-	screenshot(t, ctx, dir, "serve-tag.png")
+	screenshot(t, ctx, dir, "view-tag.png")
 	checkContrast(t, ctx, "tag page")
 
 	// The candidate that passes: verdict and approvals.
@@ -247,7 +247,7 @@ func TestServeChromium(t *testing.T) {
 	if !strings.Contains(approvals, "1 of 2") {
 		t.Errorf("approvals %q, want 1 of 2", approvals)
 	}
-	screenshot(t, ctx, dir, "serve-candidate.png")
+	screenshot(t, ctx, dir, "view-candidate.png")
 	checkContrast(t, ctx, "candidate page")
 
 	// Its full gate report: every plot is drawn with a size, and its
@@ -276,18 +276,18 @@ func TestServeChromium(t *testing.T) {
 	if !strings.Contains(p.Verdict, "PASS") {
 		t.Errorf("report verdict %q", p.Verdict)
 	}
-	screenshot(t, ctx, dir, "serve-report.png")
+	screenshot(t, ctx, dir, "view-report.png")
 
 	// An artifact page, for a look at the lineage and layer table.
 	if err := chromedp.Do(ctx, chromedp.Navigate(srv.URL+"/artifacts/promo-scorer@"+f.better)); err != nil {
 		t.Fatal(err)
 	}
-	screenshot(t, ctx, dir, "serve-artifact.png")
+	screenshot(t, ctx, dir, "view-artifact.png")
 	checkContrast(t, ctx, "artifact page")
 	if err := chromedp.Do(ctx, chromedp.Navigate(srv.URL+"/tags/listener-encoder:prod")); err != nil {
 		t.Fatal(err)
 	}
-	screenshot(t, ctx, dir, "serve-encoder-log.png")
+	screenshot(t, ctx, dir, "view-encoder-log.png")
 
 	for _, l := range console.all() {
 		if strings.Contains(l, "Content Security Policy") || strings.HasPrefix(l, "error") {

@@ -12,9 +12,9 @@ import (
 	"time"
 )
 
-// startServe runs `modelgate serve` in this process until the test ends
+// startView runs `modelgate view` in this process until the test ends
 // and returns its base URL and its stderr.
-func startServe(t *testing.T, store string, o *serveOptions) (string, *syncBuffer) {
+func startView(t *testing.T, store string, o *viewOptions) (string, *syncBuffer) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	addrs := make(chan net.Addr, 1)
@@ -22,38 +22,38 @@ func startServe(t *testing.T, store string, o *serveOptions) (string, *syncBuffe
 	stderr := &syncBuffer{}
 	g := &globals{Store: store, Stdout: io.Discard, Stderr: stderr, Stdin: strings.NewReader("")}
 	done := make(chan error, 1)
-	go func() { done <- runServe(ctx, g, o) }()
+	go func() { done <- runView(ctx, g, o) }()
 	t.Cleanup(func() {
 		cancel()
 		select {
 		case err := <-done:
 			if err != nil {
-				t.Errorf("serve ended with %v", err)
+				t.Errorf("view ended with %v", err)
 			}
 		case <-time.After(30 * time.Second):
-			t.Error("serve did not stop")
+			t.Error("view did not stop")
 		}
 	})
 	select {
 	case a := <-addrs:
 		return "http://" + a.String(), stderr
 	case err := <-done:
-		t.Fatalf("serve ended before listening: %v\n%s", err, stderr.String())
+		t.Fatalf("view ended before listening: %v\n%s", err, stderr.String())
 	case <-time.After(30 * time.Second):
-		t.Fatal("serve did not listen")
+		t.Fatal("view did not listen")
 	}
 	return "", nil
 }
 
-// TestServeCommand serves a fixture store on loopback: pages answer, other
+// TestViewCommand serves a fixture store on loopback: pages answer, other
 // methods get 405, a foreign Host header 421, and the server stops cleanly.
-func TestServeCommand(t *testing.T) {
+func TestViewCommand(t *testing.T) {
 	dir, s := copyFixtureStore(t)
 	scorer, err := s.Resolve(context.Background(), "podcast/promo-scorer", "candidate")
 	if err != nil {
 		t.Fatal(err)
 	}
-	base, stderr := startServe(t, dir, &serveOptions{Addr: "127.0.0.1:0"})
+	base, stderr := startView(t, dir, &viewOptions{Addr: "127.0.0.1:0"})
 	if !strings.Contains(stderr.String(), "read-only view") {
 		t.Errorf("no start line on stderr: %q", stderr.String())
 	}
@@ -107,25 +107,47 @@ func TestServeCommand(t *testing.T) {
 	}
 }
 
-// TestServeRefusesNetwork: a non-loopback address needs --public; with it
+// TestViewRefusesNetwork: a non-loopback address needs --public; with it
 // the server warns on stderr that it has no authentication.
-func TestServeRefusesNetwork(t *testing.T) {
+func TestViewRefusesNetwork(t *testing.T) {
 	dir := t.TempDir()
 	for _, addr := range []string{"0.0.0.0:0", ":0", "[::]:0", "192.0.2.1:8080", "example.invalid:80"} {
-		code, _, stderr := runMG(t, "serve", "--store", dir, "--addr", addr)
+		code, _, stderr := runMG(t, "view", "--store", dir, "--addr", addr)
 		if code != 2 || !strings.Contains(stderr, "--public") {
-			t.Errorf("serve --addr %s: exit %d, stderr %q; want 2 naming --public", addr, code, stderr)
+			t.Errorf("view --addr %s: exit %d, stderr %q; want 2 naming --public", addr, code, stderr)
 		}
 	}
 	for _, args := range [][]string{{"--addr", "nonsense"}, {"--addr", "127.0.0.1:0", "--policy", dir + "/missing.yaml"}} {
-		code, _, stderr := runMG(t, append([]string{"serve", "--store", dir}, args...)...)
+		code, _, stderr := runMG(t, append([]string{"view", "--store", dir}, args...)...)
 		if code != 2 {
-			t.Errorf("serve %v: exit %d, want 2 (%s)", args, code, stderr)
+			t.Errorf("view %v: exit %d, want 2 (%s)", args, code, stderr)
 		}
 	}
-	_, stderr := startServe(t, dir, &serveOptions{Addr: "0.0.0.0:0", Public: true})
+	_, stderr := startView(t, dir, &viewOptions{Addr: "0.0.0.0:0", Public: true})
 	if !strings.Contains(stderr.String(), "WITHOUT AUTHENTICATION") {
 		t.Errorf("--public gives no warning: %q", stderr.String())
+	}
+}
+
+// TestServeAlias: the web view's former name still runs it for one
+// release, hidden from the help, and says the new name on stderr.
+func TestServeAlias(t *testing.T) {
+	dir := t.TempDir()
+	code, _, stderr := runMG(t, "serve", "--store", dir, "--addr", "0.0.0.0:0")
+	if code != 2 || !strings.Contains(stderr, "modelgate view") || !strings.Contains(stderr, "--public") {
+		t.Errorf("serve --addr 0.0.0.0:0: exit %d, stderr %q; want 2, the new name and the view's own refusal", code, stderr)
+	}
+	code, _, stderr = runMG(t, "serve", "--quiet", "--store", dir, "--addr", "nonsense")
+	if code != 2 || !strings.Contains(stderr, "modelgate view") {
+		t.Errorf("serve --quiet: exit %d, stderr %q; want the new name even so", code, stderr)
+	}
+	code, stdout, _ := runMG(t, "--help")
+	if code != 0 || !strings.Contains(stdout, "  view ") || strings.Contains(stdout, "  serve ") {
+		t.Errorf("help lists view and not serve? exit %d\n%s", code, stdout)
+	}
+	code, _, stderr = runMG(t, "view", "--store", dir, "--addr", "nonsense")
+	if code != 2 || strings.Contains(stderr, "serve") {
+		t.Errorf("view: exit %d, stderr %q; want 2 without the rename notice", code, stderr)
 	}
 }
 

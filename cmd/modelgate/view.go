@@ -17,7 +17,7 @@ import (
 	"modelgate/internal/web"
 )
 
-type serveOptions struct {
+type viewOptions struct {
 	Addr     string
 	Policies []string
 	Public   bool
@@ -26,25 +26,26 @@ type serveOptions struct {
 	onListen func(net.Addr)
 }
 
-func (o *serveOptions) AddFlags(cmd *cobra.Command) {
+func (o *viewOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.Addr, "addr", "127.0.0.1:8080", "address to listen on, HOST:PORT (loopback unless --public)")
 	f.StringArrayVar(&o.Policies, "policy", nil, "policy file whose approval requirements the pages show (repeatable; a target no policy covers shows \"policy unknown\")")
 	f.BoolVar(&o.Public, "public", false, "allow a non-loopback address: anyone who reaches it reads the store, without authentication")
 }
 
-func newServeCmd(g *globals) *cobra.Command {
-	o := &serveOptions{}
+func newViewCmd(g *globals) *cobra.Command {
+	o := &viewOptions{}
 	cmd := &cobra.Command{
-		Use:   "serve [--addr 127.0.0.1:8080] [--policy FILE ...]",
-		Short: "Serve a read-only web view of the store for release managers",
-		Long: `serve answers web requests with a read-only view of the store: every tag
+		Use:   "view [--addr 127.0.0.1:8080] [--policy FILE ...]",
+		Short: "Open a read-only web view of the store for release managers",
+		Long: `view answers web requests with a read-only view of the store: every tag
 with what it points at, when it moved, by whom, and its release log (the
 chain verified, a broken one shown as such); the candidates that have a
 gate report for a tag and are not promoted yet, with their verdict, their
 approvals so far against the policy's requirement (give the policies with
 --policy) and the full gate report with its plots; and a page for any
-artifact: spec, layers, lineage and referrers.
+artifact: spec, layers, lineage and referrers. It runs no model and
+answers no prediction requests.
 
 Nothing it answers changes the store: where an action is needed, a page
 shows the command to run (approvals are signed on the approver's own
@@ -57,10 +58,26 @@ address. Stop it with Ctrl-C.
 Exit codes: 0 stopped; 2 bad input (address, policy file).`,
 		Args: exactArgs(0, "(none)"),
 		RunE: func(cmd *cobra.Command, args []string) error {
-			return runServe(cmd.Context(), g, o)
+			return runView(cmd.Context(), g, o)
 		},
 	}
 	o.AddFlags(cmd)
+	return cmd
+}
+
+// newServeAliasCmd keeps the web view's earlier name working for one
+// release: hidden from help, it says the new name on stderr (even with
+// --quiet, so scripts get to hear of it) and runs view.
+func newServeAliasCmd(g *globals) *cobra.Command {
+	cmd := newViewCmd(g)
+	cmd.Use = "serve [--addr 127.0.0.1:8080] [--policy FILE ...]"
+	cmd.Short = "Former name of view (kept for one release)"
+	cmd.Hidden = true
+	run := cmd.RunE
+	cmd.RunE = func(c *cobra.Command, args []string) error {
+		fmt.Fprintln(g.Stderr, "modelgate: `serve` is now `modelgate view` (the read-only web view); the old name goes away in the next release")
+		return run(c, args)
+	}
 	return cmd
 }
 
@@ -73,7 +90,7 @@ func loopbackHost(host string) bool {
 	return ip != nil && ip.IsLoopback()
 }
 
-func runServe(ctx context.Context, g *globals, o *serveOptions) error {
+func runView(ctx context.Context, g *globals, o *viewOptions) error {
 	host, _, err := net.SplitHostPort(o.Addr)
 	if err != nil {
 		return usageErr("--addr %q: want HOST:PORT, e.g. 127.0.0.1:8080", o.Addr)
@@ -83,7 +100,7 @@ func runServe(ctx context.Context, g *globals, o *serveOptions) error {
 		return usageErr("--addr %s is not a loopback address and the view has no authentication: add --public to serve it on the network anyway", o.Addr)
 	}
 	opts := web.Options{Logf: func(format string, args ...any) {
-		fmt.Fprintf(g.Stderr, "modelgate serve: "+format+"\n", args...)
+		fmt.Fprintf(g.Stderr, "modelgate view: "+format+"\n", args...)
 	}}
 	for _, p := range o.Policies {
 		pol, err := policy.Load(p)
@@ -120,7 +137,7 @@ func runServe(ctx context.Context, g *globals, o *serveOptions) error {
 		WriteTimeout:      5 * time.Minute,
 		IdleTimeout:       2 * time.Minute,
 		MaxHeaderBytes:    64 << 10,
-		ErrorLog:          log.New(g.Stderr, "modelgate serve: ", 0),
+		ErrorLog:          log.New(g.Stderr, "modelgate view: ", 0),
 	}
 	if o.Public {
 		// A warning that --quiet does not silence.
