@@ -164,7 +164,7 @@ func TestDemoVerdicts(t *testing.T) {
 }
 
 // TestEncoderGate: the refitted encoder passes against the production one;
-// the 256-wide encoder fails its budget.
+// the 192-wide encoder fails its budget.
 func TestEncoderGate(t *testing.T) {
 	store := demoScenario(t)
 	rep := gate(t, store, "listener-encoder:v2", "listener-encoder:prod", "listener-encoder.yaml")

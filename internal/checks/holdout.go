@@ -48,10 +48,13 @@ type HoldoutConfig struct {
 	// First-release thresholds for scorers (nil: not enforced).
 	MaxLogLoss, MaxNormalizedEntropy, MinAUC, MaxECE *float64
 	// Encoders: the reconstruction loss per row is
-	// Alpha·BCE(nonzero targets) + (1−Alpha)·BCE(all outputs); rows whose
-	// nonzero count n exceeds the WeightQuantile training quantile q are
-	// weighted (q/n)^WeightPower. MaxReconstruction is the first-release
-	// threshold.
+	// Alpha·BCE(nonzero targets) + (1−Alpha)·BCE(all outputs), observed
+	// entries weighted up against unobserved ones (Hu, Koren, Volinsky,
+	// ICDM 2008; Alpha = 1 is AutoRec's observed-entry loss, Sedhain et al.,
+	// WWW 2015); rows whose nonzero count n exceeds the WeightQuantile
+	// training quantile q are weighted (q/n)^WeightPower (Huber-type weights
+	// with a quantile threshold; see policy.HoldoutCheck.RowWeight).
+	// MaxReconstruction is the first-release threshold.
 	Alpha             float64
 	WeightQuantile    float64
 	WeightPower       float64

@@ -7,6 +7,7 @@ import (
 	"slices"
 	"sort"
 
+	"modelgate/internal/demo/listening"
 	"modelgate/internal/errkind"
 )
 
@@ -25,16 +26,11 @@ type Config struct {
 	// set, the holdout, and a later sample of the same network used only to
 	// refit the second encoder version.
 	Train, Holdout, Extra int
-	// MeanNonzeros is the mean number of shows a regular listener played
-	// (geometric, at least 1, capped at MaxNonzeros).
-	MeanNonzeros float64
-	MaxNonzeros  int
+	// Listening is the listening model: shows followed, popularity, episodes
+	// played, anomalous listeners (package listening; invented for the demo).
+	Listening listening.Model
 	// EmptyRate is the fraction of listeners with no listening history yet.
 	EmptyRate float64
-	// AnomalyRate is the fraction of anomalous listeners (crawlers, shared
-	// devices) who touch AnomalyMin..AnomalyMax shows.
-	AnomalyRate            float64
-	AnomalyMin, AnomalyMax int
 	// VocabularyMinListeners is how many regular training listeners (at
 	// most RegularMaxNonzeros shows) must have played a show for it to
 	// enter the encoders' vocabulary; rarer shows fall into the unknown
@@ -46,16 +42,18 @@ type Config struct {
 	CodeWidth, WideCodeWidth int
 }
 
-// DefaultConfig is the demo's network: 3,000 shows, 20,000 training
-// listeners, 5,000 holdout listeners, 10,000 more for the refit.
+// DefaultConfig is the demo's network, every figure invented for the demo:
+// 3,000 shows, 24,000 training listeners, 5,000 holdout listeners, 10,000
+// more for the refit, one listener in 25 with no history yet, the default
+// listening model (listening.Default), and encoders with a 16-wide code
+// (192-wide for the over-budget candidate).
 func DefaultConfig() Config {
 	return Config{
 		Seed: 20260201, Shows: 3000, LatentDim: 8, Promoted: 40,
-		Train: 20000, Holdout: 5000, Extra: 10000,
-		MeanNonzeros: 4.6, MaxNonzeros: 40, EmptyRate: 0.03,
-		AnomalyRate: 0.002, AnomalyMin: 1000, AnomalyMax: 2500,
+		Train: 24000, Holdout: 5000, Extra: 10000,
+		Listening: listening.Default(), EmptyRate: 0.04,
 		VocabularyMinListeners: 12,
-		CodeWidth:              16, WideCodeWidth: 256,
+		CodeWidth:              16, WideCodeWidth: 192,
 	}
 }
 
@@ -65,12 +63,13 @@ func (c Config) Validate() error {
 	switch {
 	case c.Shows < 1 || c.LatentDim < 1 || c.Promoted < 1 || c.Train < 1 || c.Holdout < 16 || c.Extra < 0:
 		return errkind.New(errkind.BadInput, "demo config: sizes must be positive (holdout at least 16): %+v", c)
-	case c.MeanNonzeros < 1 || c.MaxNonzeros < 1:
-		return errkind.New(errkind.BadInput, "demo config: mean nonzeros %v and cap %d must be at least 1", c.MeanNonzeros, c.MaxNonzeros)
-	case !(c.EmptyRate >= 0 && c.EmptyRate < 1) || !(c.AnomalyRate >= 0 && c.AnomalyRate < 1):
+	case !(c.Listening.FollowsPerSession >= 0) || c.Listening.MaxFollowed < 1 || !(c.Listening.PopularityExponent > 1) ||
+		c.Listening.MaxPlays < 1 || c.Listening.AnomalyMaxPlays < 1 || !(c.Listening.PlaysLogSpread >= 0):
+		return errkind.New(errkind.BadInput, "demo config: listening model %+v: want follows per session ≥ 0, popularity exponent > 1, caps ≥ 1", c.Listening)
+	case !(c.EmptyRate >= 0 && c.EmptyRate < 1) || !(c.Listening.AnomalyRate >= 0 && c.Listening.AnomalyRate < 1):
 		return errkind.New(errkind.BadInput, "demo config: rates must lie in [0,1)")
-	case c.AnomalyMin < 1 || c.AnomalyMax < c.AnomalyMin || c.AnomalyMax > c.Shows:
-		return errkind.New(errkind.BadInput, "demo config: anomalous listeners touch %d..%d shows, want 1 ≤ min ≤ max ≤ shows", c.AnomalyMin, c.AnomalyMax)
+	case c.Listening.AnomalyMin < 1 || c.Listening.AnomalyMax < c.Listening.AnomalyMin || c.Listening.AnomalyMax > c.Shows:
+		return errkind.New(errkind.BadInput, "demo config: anomalous listeners touch %d..%d shows, want 1 ≤ min ≤ max ≤ shows", c.Listening.AnomalyMin, c.Listening.AnomalyMax)
 	case c.CodeWidth < 1 || c.WideCodeWidth < c.CodeWidth:
 		return errkind.New(errkind.BadInput, "demo config: code widths %d and %d, want 1 ≤ code ≤ wide", c.CodeWidth, c.WideCodeWidth)
 	}
@@ -82,8 +81,10 @@ func (c Config) Validate() error {
 var Categories = []string{"news", "comedy", "true-crime", "sports", "science", "business"}
 
 // RegularMaxNonzeros bounds the history of a listener counted as regular
-// when choosing the vocabulary.
-const RegularMaxNonzeros = 200
+// when choosing the vocabulary: above the most shows a regular listener
+// follows (listening.Model.MaxFollowed), below the fewest an anomalous one
+// touches.
+const RegularMaxNonzeros = 120
 
 // Show is one show of the catalogue.
 type Show struct {
@@ -100,7 +101,7 @@ type Show struct {
 type Listener struct {
 	ID string
 	// Items and Counts are the shows played (indices into Data.Shows,
-	// distinct) and episodes played of each (1..200).
+	// distinct) and episodes played of each (1..listening.Model.MaxPlays).
 	Items  []int
 	Counts []float64
 	Latent []float64
@@ -147,10 +148,10 @@ type generator struct {
 // Generate draws a network from cfg. Listeners have a latent interest
 // vector near the centroid of a favourite category; they pick a category
 // by softmax of interest·centroid, then the best (by interest·show latent)
-// of three shows drawn by popularity within it. Popularity is Zipf-like
-// (rank^-1.1 over the catalogue). The number of shows played is geometric
-// with mean MeanNonzeros; a few listeners are anomalous and touch
-// thousands of shows. The label — subscribed to the promoted show — is
+// of three shows drawn by popularity within it. Popularity, the number of
+// shows a listener follows (it grows with their sessions per week), the
+// episodes played and the anomalous listeners, who touch hundreds of shows,
+// come from cfg.Listening. The label — subscribed to the promoted show — is
 // drawn from a logistic model of interest·promoted-show latent, a general
 // subscription propensity, and the dense features of listener and show.
 // It panics if cfg.Validate fails.
@@ -183,7 +184,7 @@ func Generate(cfg Config) *Data {
 		age := 0.1 + 7.9*r.Float64()
 		g.shows[j] = Show{
 			ID: fmt.Sprintf("show-%05d", j), Category: cat, Latent: lat,
-			Popularity: math.Pow(float64(rank[j]+1), -1.1),
+			Popularity: cfg.Listening.Popularity(rank[j] + 1),
 			AgeYears:   age,
 			Episodes:   max(1, int(age*52*(0.1+0.9*r.Float64()))),
 		}
@@ -273,27 +274,17 @@ func (g *generator) listener(r *rand.Rand, id string, promoted []int) Listener {
 	l := Listener{
 		ID: id, Latent: u,
 		TenureDays:      1 + r.ExpFloat64()*500,
-		SessionsPerWeek: gamma2(r) * 2,
+		SessionsPerWeek: listening.SessionsPerWeek(r),
 	}
 	heavyFactor := 0.6 + l.SessionsPerWeek/5
 	switch {
-	case r.Float64() < cfg.AnomalyRate:
+	case cfg.Listening.Anomalous(r):
 		l.Anomalous = true
-		k := cfg.AnomalyMin + r.IntN(cfg.AnomalyMax-cfg.AnomalyMin+1)
-		perm := r.Perm(cfg.Shows)[:k]
-		slices.Sort(perm)
-		l.Items = perm
-		l.Counts = make([]float64, k)
-		for i := range l.Counts {
-			l.Counts[i] = float64(1 + r.IntN(3))
-		}
+		l.Items, l.Counts = cfg.Listening.AnomalousRow(r, cfg.Shows)
 	case r.Float64() < cfg.EmptyRate:
 		l.TenureDays = 1 + 20*r.Float64()
 	default:
-		nnz := 1
-		for nnz < cfg.MaxNonzeros && r.Float64() > 1/cfg.MeanNonzeros {
-			nnz++
-		}
+		nnz := cfg.Listening.Followed(r, l.SessionsPerWeek)
 		logits := make([]float64, nc)
 		for k := range logits {
 			logits[k] = dot(u, g.centroids[k]) + math.Log(g.catShare[k])
@@ -314,9 +305,8 @@ func (g *generator) listener(r *rand.Rand, id string, promoted []int) Listener {
 			}
 			seen[j] = true
 			aff := dot(u, g.shows[j].Latent)
-			c := math.Round(math.Exp(0.6+1.1*r.NormFloat64()+0.15*aff) * heavyFactor)
 			l.Items = append(l.Items, j)
-			l.Counts = append(l.Counts, math.Min(200, math.Max(1, c)))
+			l.Counts = append(l.Counts, cfg.Listening.Plays(r, math.Exp(0.15*aff)*heavyFactor, g.shows[j].Episodes))
 		}
 	}
 	switch {
@@ -366,9 +356,6 @@ func (g *generator) bestOfThree(r *rand.Rand, k int, u []float64) int {
 	}
 	return best
 }
-
-// gamma2 draws from a Gamma(2, 1) distribution.
-func gamma2(r *rand.Rand) float64 { return r.ExpFloat64() + r.ExpFloat64() }
 
 func pick(r *rand.Rand, probs []float64) int {
 	x := r.Float64()

@@ -19,9 +19,9 @@ const unknownID = "show-99999"
 // probeRows makes the demo's 16 probe inputs, shared by every model: an
 // empty row; one show; duplicate ids; an id outside the catalogue; a
 // catalogue show outside the vocabulary; two unknown ids together (both
-// in the unknown bucket); a 60-show row; extreme counts; seven holdout
-// listeners with at least two distinct values; and an anomalous listener
-// touching more than a thousand shows.
+// in the unknown bucket); a row of 60 shows (the most a regular listener
+// follows); extreme counts; seven holdout listeners with at least two
+// distinct values; and an anomalous listener touching hundreds of shows.
 func probeRows(d *Data, vocab []string, vocabIdx map[int]int) []probeRow {
 	var oov []string
 	for j := range d.Shows {
@@ -38,7 +38,7 @@ func probeRows(d *Data, vocab []string, vocabIdx map[int]int) []probeRow {
 		{items: []string{v(4), unknownID}, values: []float32{4, 9}, l: &h[3]},
 		{items: []string{oov[len(oov)/2], v(5)}, values: []float32{6, 1}, l: &h[4]},
 		{items: []string{unknownID, v(6), oov[0]}, values: []float32{2, 3, 11}, l: &h[5]},
-		{items: []string{v(7), v(8)}, values: []float32{200, 1}, l: &h[6]},
+		{items: []string{v(7), v(8)}, values: []float32{300, 1}, l: &h[6]},
 	}
 	big := probeRow{l: &h[7]}
 	for i := 0; i < 60; i++ {

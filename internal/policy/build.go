@@ -35,7 +35,7 @@ const (
 	defaultPermutationRel    = 0
 	defaultExtraRows         = 256
 	defaultMaxGrowth         = 0.2
-	defaultCandidates        = 1000
+	defaultCandidates        = 200
 	defaultRuns              = 200
 	defaultBlocks            = 5
 	defaultMinSliceRows      = 100

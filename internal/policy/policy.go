@@ -243,9 +243,13 @@ type HoldoutCheck struct {
 	// Tail (scorers) is the label-free rule on confident mistakes.
 	Tail Tail
 
-	// Alpha (encoders) weighs the BCE over nonzero targets against the BCE
-	// over all outputs: loss = Alpha·BCEnonzero + (1 − Alpha)·BCEall.
-	// Default 0.5.
+	// Alpha (encoders) weighs the BCE over nonzero targets (the observed
+	// entries) against the BCE over all outputs: loss = Alpha·BCEnonzero +
+	// (1 − Alpha)·BCEall, a confidence weighting of observed against
+	// unobserved entries (Hu, Koren, Volinsky, "Collaborative Filtering for
+	// Implicit Feedback Datasets", ICDM 2008); Alpha = 1 is the loss over
+	// observed entries only (Sedhain, Menon, Sanner, Xie, "AutoRec:
+	// Autoencoders Meet Collaborative Filtering", WWW 2015). Default 0.5.
 	Alpha float64
 	// WeightQuantile (encoders) is the training quantile of nonzeros per
 	// row above which rows are down-weighted (see RowWeight). Default 0.99.
@@ -261,7 +265,10 @@ type HoldoutCheck struct {
 // RowWeight is the encoder down-weighting rule: a row with n nonzeros
 // weighs 1 when n ≤ t and (t/n)^WeightPower when n > t, where t is the
 // model's training quantile WeightQuantile of nonzeros per row (t below 1
-// counts as 1). The result is in (0, 1].
+// counts as 1). The result is in (0, 1]. With WeightPower 1 it is Huber's
+// weight min(1, t/n) (Huber, "Robust Estimation of a Location Parameter",
+// Ann. Math. Statist. 35(1), 1964) with the threshold at a quantile, as in
+// winsorising; as WeightPower grows it approaches trimming the rows above t.
 func (h HoldoutCheck) RowWeight(n int, t float64) float64 {
 	if t < 1 || math.IsNaN(t) {
 		t = 1
@@ -335,7 +342,8 @@ type BudgetCheck struct {
 
 // LatencyBudget configures the single-thread latency measurement.
 type LatencyBudget struct {
-	// Candidates is the number of rows per request. Default 1000.
+	// Candidates is the number of rows per request. Default 200 (the demo
+	// network's candidate shows per request, a figure of our scenario).
 	Candidates int
 	// Runs is the number of timed requests per model (candidate and
 	// baseline each), split evenly into Blocks. Default 200.

@@ -98,13 +98,23 @@ type WeightFunc func(nonzeros int) float64
 
 // Recon accumulates an encoder's reconstruction losses over rows. For a row
 // with all = mean BCE over every output, nz = mean BCE over its nonzero
-// targets and weight w = weight(number of nonzero targets):
+// targets (the observed entries) and weight w = weight(number of nonzero
+// targets):
 //
 //   - BCEAll is Σw·all / Σw over every row;
 //   - BCENonzero is Σw·nz / Σw over the rows with a nonzero target;
 //   - Reconstruction is Σw·c / Σw over every row, with the row's combined
 //     loss c = alpha·nz + (1−alpha)·all, or c = all for a row without a
 //     nonzero target (nz is undefined there).
+//
+// The combined loss weighs observed entries against unobserved ones as
+// confidence weighting does in implicit feedback (Hu, Koren, Volinsky,
+// "Collaborative Filtering for Implicit Feedback Datasets", ICDM 2008): in a
+// row of n outputs with m observed, an observed entry weighs alpha/m +
+// (1−alpha)/n and an unobserved one (1−alpha)/n. alpha = 1 is the loss over
+// observed entries only (Sedhain, Menon, Sanner, Xie, "AutoRec: Autoencoders
+// Meet Collaborative Filtering", WWW 2015); alpha = 0 the plain mean over
+// every output.
 //
 // Use NewRecon. A Recon is not safe for concurrent use.
 type Recon struct {
