@@ -32,7 +32,7 @@ def main(d, repeats):
     def load(name, dtype):
         return np.fromfile(os.path.join(d, name), dtype=dtype).reshape(files[name])
 
-    n, vocab = meta["rows"], meta["vocab"]
+    n, vocab = meta["rows"], meta["weightRows"]
     indptr = load("indptr.i32", "<i4")
     indices = load("indices.i32", "<i4")
     values = load("values.f32", "<f4")

@@ -3,19 +3,20 @@
 //
 //	go run ./bench/genholdout -model DIR -rows 2000000 -out holdout.parquet
 //
-// Items are drawn Zipf-like from the model's vocabulary (plus ids it does
-// not know), nonzeros per row geometric with mean ~4.5 (capped at 40),
-// values 1..200, dense features uniform in [0, 1), labels Bernoulli(0.12).
+// Items and episodes played come from the demo's listening model (package
+// listening: shows followed, popularity, plays 1..300, a few anomalous
+// listeners) over the model's vocabulary plus a tenth more ids it does not
+// know; dense features are uniform in [0, 1), labels Bernoulli(0.12).
 package main
 
 import (
 	"flag"
 	"fmt"
-	"math"
 	"math/rand/v2"
 	"os"
 
 	"modelgate/internal/data"
+	"modelgate/internal/demo/listening"
 	"modelgate/internal/model/modeldir"
 )
 
@@ -47,19 +48,26 @@ func run(dir string, rows int, out string, seed uint64) error {
 		return err
 	}
 	r := rand.New(rand.NewPCG(seed, 2))
-	zipf := rand.NewZipf(rand.New(rand.NewPCG(seed, 3)), 1.1, 1, uint64(len(vocab)+len(vocab)/10-1))
-	batch := make([]data.HoldoutRow, 0, 4096)
+	lr := rand.New(rand.NewPCG(seed, 3))
+	lm := listening.Default()
+	ids := len(vocab) + len(vocab)/10
+	const chunk = 4096
+	var indptr, indices []int32
+	var plays []float32
+	batch := make([]data.HoldoutRow, 0, chunk)
 	for i := 0; i < rows; i++ {
-		n := int(math.Min(40, math.Floor(math.Log(1-r.Float64())/math.Log(1-1/4.5))))
+		if i%chunk == 0 {
+			indptr, indices, plays = lm.Rows(lr, min(chunk, rows-i), ids)
+		}
 		row := data.HoldoutRow{RowID: int64(i), Dense: map[string][]float32{}, Weight: 1}
-		for j := 0; j < n; j++ {
-			k := int(zipf.Uint64())
+		for p := indptr[i%chunk]; p < indptr[i%chunk+1]; p++ {
+			k := int(indices[p])
 			id := fmt.Sprintf("unknown-%d", k)
 			if k < len(vocab) {
 				id = vocab[k]
 			}
 			row.Items = append(row.Items, id)
-			row.Values = append(row.Values, float32(1+r.IntN(200)))
+			row.Values = append(row.Values, plays[p])
 		}
 		for _, in := range spec.Inputs.Dense {
 			v := make([]float32, in.Size)

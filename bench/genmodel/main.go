@@ -6,7 +6,7 @@
 //	go run ./bench/genmodel -mib 200 -out DIR
 //
 // The encoder maps a vocabulary of shows through one sparse × dense layer
-// of width 256 (random normal weights, fixed seed).
+// 768 wide (internal/fixture/bigmodel: random normal weights, fixed seed).
 package main
 
 import (

@@ -360,7 +360,7 @@ func TestCrashDuringPush(t *testing.T) {
 	const runs = 24
 	dirs := make([]string, 3)
 	for i := range dirs {
-		dirs[i] = bigEncoder(t, root, fmt.Sprintf("crash-encoder-%d", i), uint64(i+1), 20000)
+		dirs[i] = bigEncoder(t, root, fmt.Sprintf("crash-encoder-%d", i), uint64(i+1), 24000)
 	}
 	old := strings.TrimSpace(mustMG(t, store, "push", dirs[0], "crash-encoder:prod").stdout)
 	// Measure one full push to spread the kill points over it (the timing

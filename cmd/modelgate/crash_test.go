@@ -157,7 +157,7 @@ func TestCrashDuringCopy(t *testing.T) {
 	root := t.TempDir()
 	dst := filepath.Join(root, "dst")
 	encDir, _ := fixtures(t)
-	mustMG(t, dst, "push", bigEncoder(t, root, "copy-encoder-old", 30, 20000), "crash-encoder:prod")
+	mustMG(t, dst, "push", bigEncoder(t, root, "copy-encoder-old", 30, 24000), "crash-encoder:prod")
 	mustMG(t, dst, "push", encDir, "tiny-encoder:v1")
 	// One source store per run, each with a model the destination lacks,
 	// so that every run has several MB to copy; two more to time a copy.
@@ -165,7 +165,7 @@ func TestCrashDuringCopy(t *testing.T) {
 	srcs := make([]source, runs+2)
 	for i := range srcs {
 		store := filepath.Join(root, fmt.Sprintf("src-%d", i))
-		dir := bigEncoder(t, root, fmt.Sprintf("copy-encoder-%d", i), uint64(40+i), 20000)
+		dir := bigEncoder(t, root, fmt.Sprintf("copy-encoder-%d", i), uint64(40+i), 24000)
 		srcs[i] = source{store, strings.TrimSpace(mustMG(t, store, "push", dir, "crash-encoder:prod").stdout)}
 	}
 	var full time.Duration

@@ -12,9 +12,9 @@ import (
 // benchmarkRead reads a generated holdout of rows rows (up to 30 items
 // each, one dense input of size 4) in batches of 1024 and reports rows/s.
 func benchmarkRead(b *testing.B, ext string, rows int) {
-	v := testVocab(b, model.UnknownBucket, episodeIDs(20000)...)
+	v := testVocab(b, model.UnknownBucket, episodeIDs(32768)...)
 	path := filepath.Join(b.TempDir(), "holdout"+ext)
-	writeBig(b, path, rows, 20000, 30, denseAffinity)
+	writeBig(b, path, rows, 32768, 30, denseAffinity)
 	opts := Options{Spec: testSpec(v, denseAffinity), Vocab: v}
 	var f Frame
 	b.ReportAllocs()

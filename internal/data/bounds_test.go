@@ -256,7 +256,7 @@ func TestParquetBoundsAcceptRealFiles(t *testing.T) {
 	v := testVocab(t, model.UnknownBucket, episodeIDs(500)...)
 	opts := Options{Spec: testSpec(v, denseAge, denseAffinity), Vocab: v, Name: "big.parquet"}
 	path := filepath.Join(t.TempDir(), "big.parquet")
-	writeBig(t, path, 20000, 500, 300, denseAge, denseAffinity)
+	writeBig(t, path, 24000, 500, 300, denseAge, denseAffinity)
 	b, err := os.ReadFile(path)
 	if err != nil {
 		t.Fatal(err)

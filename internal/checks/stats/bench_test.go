@@ -74,10 +74,10 @@ func BenchmarkPairedAddBatch(b *testing.B) {
 	}
 }
 
-// BenchmarkRecon: 10,000 rows of 6,000 outputs with about 5 nonzero
+// BenchmarkRecon: 10,000 rows of 8,192 outputs with about 5 nonzero
 // targets each (a sparse activity row).
 func BenchmarkRecon(b *testing.B) {
-	const rows, width = 10_000, 6_000
+	const rows, width = 10_000, 8_192
 	rng := newTestRand(4)
 	q, tg := make([]float32, rows*width), make([]float32, rows*width)
 	for i := range q {

@@ -21,7 +21,7 @@ func TestVocabularyRefusesBOM(t *testing.T) {
 // TestMayRepeat: a repeated id is always seen, wherever it is; distinct
 // ids are told apart (a false alarm has odds of about n²/2⁶⁴).
 func TestMayRepeat(t *testing.T) {
-	ids := make([]string, 20000)
+	ids := make([]string, 24000)
 	for i := range ids {
 		ids[i] = fmt.Sprintf("show-%07d", i)
 	}

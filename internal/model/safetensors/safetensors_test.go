@@ -416,9 +416,9 @@ func TestParseAllocationBound(t *testing.T) {
 	dims := strings.TrimSuffix(strings.Repeat("0,", 200000), ",")
 	for name, header := range map[string]string{
 		"many dims":    `{"w":{"dtype":"F32","shape":[` + dims + `],"data_offsets":[0,0]}}`,
-		"many tensors": manyTensorsHeader(20000),
+		"many tensors": manyTensorsHeader(24000),
 		"long name":    `{"` + strings.Repeat("n", 400000) + `":{"dtype":"F32","shape":[0],"data_offsets":[0,0]}}`,
-		"metadata":     `{"__metadata__":{` + manyMetadata(20000) + `}}`,
+		"metadata":     `{"__metadata__":{` + manyMetadata(24000) + `}}`,
 	} {
 		t.Run(name, func(t *testing.T) {
 			data := build(header, nil)

@@ -89,7 +89,7 @@ func Scorer() *checks.Report {
 			Name: checks.CheckBudget, Status: checks.StatusPass, Seconds: 4.1,
 			Summary: "latency p99 6.8 ms ≤ 10 ms; 3.4 MiB ≤ 8 MiB",
 			Findings: []checks.Finding{
-				{Status: checks.StatusPass, Code: "budget.latency-p99", Where: "1000 candidates, 1 thread", Message: "p99 within budget", Value: f(6.8), Limit: f(10)},
+				{Status: checks.StatusPass, Code: "budget.latency-p99", Where: "200 candidates, 1 thread", Message: "p99 within budget", Value: f(6.8), Limit: f(10)},
 			},
 			Budget: &checks.BudgetDetail{Items: []checks.BudgetItem{
 				{Name: "bytes", Unit: "bytes", Value: 3565158, Limit: f(8388608), Baseline: f(3411000), Status: checks.StatusPass},
@@ -160,7 +160,7 @@ func calibration(rng *rand.Rand, skew float64) []checks.CalibrationBin {
 // spread; deterministic for a given rng.
 func lossHistogram(rng *rand.Rand, mean, spread float64, n int) *checks.Histogram {
 	h := &checks.Histogram{Min: mean - 3*spread, Max: mean + 3*spread, Counts: make([]float64, n)}
-	for range 20000 {
+	for range 25000 {
 		v := mean + spread*rng.NormFloat64()
 		k := int((v - h.Min) / (h.Max - h.Min) * float64(n))
 		if k >= 0 && k < n {
