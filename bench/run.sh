@@ -102,7 +102,8 @@ for key, name in (("go", "Go runtime"),
                   ("SkylakeX", "numpy+scipy+OpenBLAS, OPENBLAS_CORETYPE=SkylakeX")):
     print("%-52s %12.0f %12.0f" % (name, med(rows[(key, 1)]), med(rows[(key, 2)])))
 print("%-52s %11.2fx %11.2fx" % ("Go runtime / best numpy (median of round ratios)", med(ratio[1]), med(ratio[2])))
-print("%-52s %12s %12s" % ("  per round", " ".join("%.2f" % x for x in ratio[1]), " ".join("%.2f" % x for x in ratio[2])))
+for t in (1, 2):
+    print("  ratio in each round, %d thread(s): %s" % (t, " ".join("%.2f" % x for x in ratio[t])))
 print()
 print("dense layers (BenchmarkDenseLayers, all rows) against the FMA peak (BenchmarkFMAPeak just before and after), GFLOP/s, medians")
 print("%-52s %12s %12s" % ("", "1 thread", "2 threads"))

@@ -438,7 +438,7 @@ func TestInterruptedPush(t *testing.T) {
 	if err := syscall.Flock(int(lock.Fd()), syscall.LOCK_EX); err != nil {
 		t.Fatal(err)
 	}
-	dir := bigEncoder(t, t.TempDir(), "interrupted-encoder", 5, 20000)
+	dir := bigEncoder(t, t.TempDir(), "interrupted-encoder", 5, 24000)
 	for _, c := range []struct {
 		sig  syscall.Signal
 		code int
