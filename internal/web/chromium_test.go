@@ -231,8 +231,8 @@ func TestServeChromium(t *testing.T) {
 	if !strings.Contains(logText, "chain verified") || !strings.Contains(logText, "initial") {
 		t.Errorf("release log section: %q", logText)
 	}
-	if n := eval[int](t, ctx, `document.querySelectorAll("table.log tbody tr").length`); n != 1 {
-		t.Errorf("release log has %d rows, want 1 (the first release)", n)
+	if n := eval[int](t, ctx, `document.querySelectorAll("table.log tbody tr").length`); n != 3 {
+		t.Errorf("release log has %d rows, want 3 (the first release, the release with encoder v2, its rollback)", n)
 	}
 	screenshot(t, ctx, dir, "view-tag.png")
 	checkContrast(t, ctx, "tag page")

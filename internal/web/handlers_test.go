@@ -20,7 +20,7 @@ func TestServePages(t *testing.T) {
 	for _, want := range []string{
 		`href="/tags/promo-scorer:prod"`, `href="/tags/listener-encoder:prod"`,
 		`href="/artifacts/promo-scorer@` + f.baseline + `"`,
-		"<strong>3</strong> candidates with a gate report are waiting",
+		"<strong>4</strong> candidates with a gate report are waiting",
 		"target's creation time; no release log",
 	} {
 		if !strings.Contains(home, want) {
@@ -46,8 +46,8 @@ func TestServePages(t *testing.T) {
 	}
 
 	list := mustGet(t, s, "/candidates")
-	if n := strings.Count(list, `<span class="muted">policy unknown</span>`); n != 3 {
-		t.Errorf("candidate list shows %d candidates with an unknown policy, want 3", n)
+	if n := strings.Count(list, `<span class="muted">policy unknown</span>`); n != 4 {
+		t.Errorf("candidate list shows %d candidates with an unknown policy, want 4", n)
 	}
 
 	// The candidate that passes: verdict, report link, the next commands.

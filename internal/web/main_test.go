@@ -77,7 +77,7 @@ func buildDemo() (*demoFixture, error) {
 	if err := os.MkdirAll(filepath.Join(dir, "keys"), 0o700); err != nil {
 		return nil, err
 	}
-	for _, name := range []string{"rita", "sam"} {
+	for _, name := range []string{"rita", "sam", "ops"} {
 		k, err := release.GenerateKey(name)
 		if err != nil {
 			return nil, err
@@ -145,12 +145,31 @@ func buildDemo() (*demoFixture, error) {
 	}
 	v2, _ := registry.ParseDigest(rep.Candidate.Digest)
 	encProd := registry.Ref{Repository: "listener-encoder", Tag: "prod"}
-	if _, err := release.Promote(ctx, store, release.PromoteRequest{Candidate: v2, Target: encProd, Policy: encPol,
-		Key: f.keys["sam"], Reason: "lower reconstruction loss"}); err != nil {
+	// The live scorer reads v1's code, so v2 goes out with the scorer
+	// refitted on its code, gated against v2 and approved by rita and sam.
+	srep, err := runGateWith(ctx, store, f.policy, "promo-scorer:cand-encoder-v2", "promo-scorer:prod", f.policy.Source, v2.String())
+	if err != nil {
+		return nil, err
+	}
+	sd, err := pushReport(ctx, store, srep)
+	if err != nil {
+		return nil, err
+	}
+	scand, _ := registry.ParseDigest(srep.Candidate.Digest)
+	srd, _ := registry.ParseDigest(sd)
+	for _, who := range []string{"rita", "sam"} {
+		if _, err := release.Approve(ctx, store, release.ApproveRequest{Candidate: scand, Target: prod, PolicyDigest: f.policy.Digest(),
+			Report: srd, Key: f.keys[who], Comment: "refitted on v2's code"}); err != nil {
+			return nil, err
+		}
+	}
+	if _, err := release.PromoteUnit(ctx, store, release.UnitRequest{Members: []release.UnitMember{
+		{Candidate: v2, Target: encProd, Policy: encPol}, {Candidate: scand, Target: prod, Policy: f.policy}},
+		Key: f.keys["ops"], Reason: "lower reconstruction loss; scorer refitted on its code"}); err != nil {
 		return nil, err
 	}
 	if _, err := release.Rollback(ctx, store, release.RollbackRequest{Target: encProd, Key: f.keys["rita"],
-		Reason: "scorers trained on v1 codes; roll back until they are retrained"}); err != nil {
+		Reason: "canary: fewer subscriptions; back to v1 and its scorer"}); err != nil {
 		return nil, err
 	}
 	return f, nil
@@ -170,7 +189,7 @@ func approvalPolicy(dir string, keys map[string]*release.Key) (*policy.Policy, e
 	if !strings.Contains(string(raw), old) {
 		return nil, fmt.Errorf("policies/promo-scorer.yaml has no %q to fill in", old)
 	}
-	text := strings.Replace(string(raw), old, "      required: 2\n      approvers:\n"+entry("rita")+entry("sam"), 1)
+	text := strings.Replace(string(raw), old, "      required: 2\n      approvers:\n"+entry("rita")+entry("sam")+entry("ops"), 1)
 	p := filepath.Join(dir, "policies", "promo-scorer.yaml")
 	if err := os.MkdirAll(filepath.Dir(p), 0o755); err != nil {
 		return nil, err
@@ -185,12 +204,18 @@ func approvalPolicy(dir string, keys map[string]*release.Key) (*policy.Policy, e
 // internal/checks/gate_test.go), with the latency budget left out: timings
 // are never pass/fail in tests.
 func runGate(ctx context.Context, store registry.Store, pol *policy.Policy, cand, target, source string) (*checks.Report, error) {
+	return runGateWith(ctx, store, pol, cand, target, source, "")
+}
+
+// runGateWith is runGate with the rule's encoder tag taken to point at
+// encoder (when not ""): the world after a release that moves it too.
+func runGateWith(ctx context.Context, store registry.Store, pol *policy.Policy, cand, target, source, encoder string) (*checks.Report, error) {
 	rule, err := pol.Rule(target)
 	if err != nil {
 		return nil, err
 	}
-	encTag := ""
-	if et := rule.Freeze.EncoderTag; et != nil {
+	encTag := encoder
+	if et := rule.Freeze.EncoderTag; et != nil && encTag == "" {
 		if d, err := store.Resolve(ctx, et.Repository, et.Tag); err == nil {
 			encTag = d.Digest.String()
 		}
