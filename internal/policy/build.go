@@ -84,6 +84,10 @@ type wireRule struct {
 	Holdout   *string       `json:"holdout"`
 	Checks    wireChecks    `json:"checks"`
 	Approvals wireApprovals `json:"approvals"`
+	Releasers struct {
+		Promote  []wireKey `json:"promote"`
+		Rollback []wireKey `json:"rollback"`
+	} `json:"releasers"`
 }
 
 type wireChecks struct {
@@ -396,6 +400,10 @@ func buildRule(name, at string, w *wireRule, probs *Problems) Rule {
 	}
 
 	r.Approvals = buildApprovals(name, at+"/approvals", &w.Approvals, probs)
+	r.Releasers = Releasers{
+		Promote:  buildKeys(name, at+"/releasers/promote", "promoter", w.Releasers.Promote, probs),
+		Rollback: buildKeys(name, at+"/releasers/rollback", "rollback signer", w.Releasers.Rollback, probs),
+	}
 	return r
 }
 
