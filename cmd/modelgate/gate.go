@@ -12,7 +12,6 @@ import (
 	"modelgate/internal/artifact"
 	"modelgate/internal/checks"
 	"modelgate/internal/errkind"
-	"modelgate/internal/policy"
 	"modelgate/internal/registry"
 	"modelgate/internal/release"
 	"modelgate/internal/report"
@@ -34,7 +33,7 @@ type gateOptions struct {
 func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.To, "to", "", "target tag NAME:TAG the candidate asks to go to (required)")
-	f.StringVar(&o.Policy, "policy", "", "policy file (YAML or JSON) with a rule for the target (required)")
+	f.StringVar(&o.Policy, "policy", "", "policy file (YAML or JSON) with a rule for the target; default: the policy bound to the target (a different file is refused)")
 	f.StringVar(&o.Holdout, "holdout", "", "override the policy's holdout: NAME:TAG or NAME@DIGEST of a holdout artifact")
 	f.StringVar(&o.HTML, "html", "", "also write the HTML report to this file")
 	f.BoolVar(&o.NoPush, "no-push", false, "do not store the report in the store (it is stored by default, as a referrer of the candidate)")
@@ -48,7 +47,7 @@ func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 func newGateCmd(g *globals) *cobra.Command {
 	o := &gateOptions{}
 	cmd := &cobra.Command{
-		Use:   "gate CANDIDATE --to NAME:TAG --policy FILE",
+		Use:   "gate CANDIDATE --to NAME:TAG [--policy FILE]",
 		Short: "Decide whether a candidate may replace what a tag points at now",
 		Long: `gate runs the policy's checks for the target tag — integrity, freeze,
 contract, holdout, budget — on the candidate against the tag's current
@@ -62,7 +61,13 @@ that also moves that tag (promote --with): a scorer whose policy ties it
 to that encoder tag has its freeze check run against CANDIDATE, the
 encoder that will be live.
 
-Exit codes: 0 pass, 1 fail, 2 bad input.`,
+The policy is the one bound to the target tag by its release log; --policy
+may name the same policy (then it is checked to be the same) and is
+required only for a tag with no release log yet (its first promote binds
+it). A --policy that differs from the bound policy is refused, listing what
+it changes (see modelgate policy).
+
+Exit codes: 0 pass, 1 fail, 2 bad input, 4 --policy is not the bound policy.`,
 		Args: exactArgs(1, "CANDIDATE"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runGate(cmd.Context(), g, o, args[0])
@@ -73,8 +78,8 @@ Exit codes: 0 pass, 1 fail, 2 bad input.`,
 }
 
 func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) error {
-	if o.To == "" || o.Policy == "" {
-		return usageErr("gate needs --to NAME:TAG and --policy FILE")
+	if o.To == "" {
+		return usageErr("gate needs --to NAME:TAG")
 	}
 	cand, err := parseRef(candStr)
 	if err != nil {
@@ -98,15 +103,19 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 		}
 		signer = release.ReportSigner(k)
 	}
-	pol, err := policy.Load(o.Policy)
-	if err != nil {
-		return err
-	}
-	rule, err := pol.Rule(target.String())
+	given, err := loadOptionalPolicy(o.Policy)
 	if err != nil {
 		return err
 	}
 	store, err := g.openStore()
+	if err != nil {
+		return err
+	}
+	pol, _, err := release.PolicyFor(ctx, store, target, given, "gate")
+	if err != nil {
+		return err
+	}
+	rule, err := pol.Rule(target.String())
 	if err != nil {
 		return err
 	}
@@ -144,7 +153,7 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 	cfg := checks.FromRule(rule, encTagDigest)
 	cfg.Holdout.Threads = o.Threads
 	gate := checks.Gate{Store: store, Candidate: cand, Target: target, Holdout: holdRef, Config: cfg,
-		Policy:   checks.Policy{Name: pol.Name, Source: o.Policy, Digest: pol.Digest()},
+		Policy:   checks.Policy{Name: pol.Name, Source: policySource(o.Policy, target), Digest: pol.Digest()},
 		Progress: g.gateProgress()}
 	if o.Shard != "" {
 		return runGateShard(ctx, g, o, gate)

@@ -249,6 +249,7 @@ bug or an environment failure); 130 / 143 stopped by SIGINT / SIGTERM.`,
 		newPromoteCmd(g),
 		newRollbackCmd(g),
 		newLogCmd(g),
+		newPolicyCmd(g),
 		newFreezeCmd(g),
 		newServeCmd(g),
 	)
