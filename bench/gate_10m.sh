@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
-# Gate over a 10,000,000-row Parquet holdout on the demo scorer (issue 8:
-# gate memory is bounded by the batch size, not by the holdout size; peak
+# Gate over a 10,000,000-row Parquet holdout on the demo scorer (the
+# gate's memory is bounded by the batch size, not by the holdout size; peak
 # RSS must stay under 500 MB). Prints the wall time and peak RSS of one
 # `gate` run (/usr/bin/time -v) and the holdout check's phases (read,
 # forward, statistics) from the JSON report, and exits 1 if the peak RSS is
