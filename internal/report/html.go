@@ -2,7 +2,6 @@ package report
 
 import (
 	"bytes"
-	"encoding/base64"
 	"fmt"
 	"html/template"
 	"io"
@@ -11,16 +10,16 @@ import (
 	"strconv"
 	"strings"
 
-	"gonum.org/v1/plot/font"
-
 	"modelgate/internal/checks"
 )
 
 // HTML writes r as one self-contained page for a release manager: the
 // verdict first, then what was gated, then a section per check with its
 // findings and, where the report carries the data, plots drawn as inline
-// SVG. The page makes no request and needs no script; it embeds the one
-// font its plots use (Liberation Sans Regular) once. Every string from the
+// SVG. The page makes no request, needs no script and embeds no font: the
+// plots are laid out with Liberation Sans metrics and drawn in the first
+// of Liberation Sans, Arimo, Arial or Helvetica the reader's system has
+// (the four share those metrics), else its sans-serif. Every string from the
 // report is HTML-escaped. A plot that cannot be drawn is replaced by a
 // note; the error is returned only when writing fails.
 func HTML(w io.Writer, r *checks.Report) error {
@@ -47,7 +46,6 @@ type page struct {
 	Headline  string
 	Reasons   []string
 	Counts    string
-	FontFace  template.CSS
 	Identity  []identityRow
 	Checks    []checkView
 	Generated string
@@ -131,11 +129,6 @@ func buildPage(r *checks.Report) (*page, error) {
 	}
 	pg.Counts = fmt.Sprintf("%d checks: %d passed, %d failed, %d with warnings, %d skipped",
 		len(r.Checks), counts[checks.StatusPass], counts[checks.StatusFail], counts[checks.StatusWarn], counts[checks.StatusSkip])
-	ff, err := fontFace()
-	if err != nil {
-		return nil, err
-	}
-	pg.FontFace = ff
 
 	pg.Identity = []identityRow{
 		{Label: "Target tag", Ref: clean(r.Target)},
@@ -394,20 +387,6 @@ func si(v float64) string {
 		return num(v/1e3) + " k"
 	}
 	return num(v)
-}
-
-// fontFace is the CSS rule that embeds the plots' font once for the page.
-func fontFace() (template.CSS, error) {
-	face := font.DefaultCache.Lookup(plotFont, 10)
-	if face.Face == nil {
-		return "", fmt.Errorf("rendering report page: plot font %s %s missing", plotFont.Typeface, plotFont.Variant)
-	}
-	var raw bytes.Buffer
-	if _, err := face.Face.WriteSourceTo(nil, &raw); err != nil {
-		return "", fmt.Errorf("rendering report page: reading plot font: %w", err)
-	}
-	return template.CSS("@font-face{font-family:mgplot;font-weight:400;font-style:normal;src:url(data:font/ttf;base64," +
-		base64.StdEncoding.EncodeToString(raw.Bytes()) + ") format(\"truetype\");}"), nil
 }
 
 // statusClass gives each status a class (checks.StatusMark its symbol, so

@@ -44,8 +44,8 @@ func checkPage(t *testing.T, html string, wantSVGs int) {
 	for _, ext := range []string{"http://", "https://", "src=", "<link", "@import"} {
 		for _, m := range regexp.MustCompile(regexp.QuoteMeta(ext)).FindAllStringIndex(low, -1) {
 			ctx := low[max(0, m[0]-40):min(len(low), m[1]+60)]
-			// The SVG namespaces are names, not requests; the font is a data URL.
-			if strings.Contains(ctx, "xmlns") || strings.Contains(ctx, "src:url(data:") {
+			// The SVG namespaces are names, not requests.
+			if strings.Contains(ctx, "xmlns") {
 				continue
 			}
 			t.Errorf("outside reference %q near %q", ext, ctx)
@@ -76,6 +76,27 @@ func checkPage(t *testing.T, html string, wantSVGs int) {
 		}
 		if !titled || !strings.Contains(s, `role="img"`) {
 			t.Errorf("svg %d has no title or role", i)
+		}
+	}
+}
+
+// TestHTMLSize keeps report pages small enough to attach to a CI run or a
+// ticket: no embedded font (the page names system fonts), under 150 KB
+// for every sample report.
+func TestHTMLSize(t *testing.T) {
+	for name, r := range map[string]*checks.Report{
+		"scorer": reporttest.Scorer(), "failing": reporttest.Failing(),
+		"first release": reporttest.FirstRelease(), "encoder": reporttest.Encoder(3),
+	} {
+		html := renderHTML(t, r)
+		t.Logf("%s: %d bytes", name, len(html))
+		if len(html) >= 150_000 {
+			t.Errorf("%s page is %d bytes, want under 150,000", name, len(html))
+		}
+		for _, bad := range []string{"@font-face", "data:font", "base64,"} {
+			if strings.Contains(html, bad) {
+				t.Errorf("%s page embeds a font (%q)", name, bad)
+			}
 		}
 	}
 }

@@ -11,10 +11,9 @@ const pageHTML = `{{define "badge"}}<span class="badge {{statusClass .}}"><span 
 <meta name="generator" content="modelgate">
 <title>{{.Title}}</title>
 <style>
-{{.FontFace}}
 :root{color-scheme:light}
 *{box-sizing:border-box}
-body{margin:0;background:#fff;color:#1a1a1a;font:16px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,"Liberation Sans",Arial,mgplot,sans-serif}
+body{margin:0;background:#fff;color:#1a1a1a;font:16px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,"Liberation Sans",Arial,sans-serif}
 main{max-width:1040px;margin:0 auto;padding:24px 24px 48px}
 h1{font-size:1.75rem;line-height:1.25;margin:.25rem 0 .5rem}
 h2{font-size:1.35rem;margin:2.5rem 0 .5rem;padding-bottom:.25rem;border-bottom:2px solid #d0d0d0}
@@ -51,7 +50,7 @@ tr.row-warn td,tr.row-warn th{background:#fffaeb}
 figure{margin:1rem 0 1.5rem;padding:12px;border:1px solid #d8d8d8;border-radius:6px;background:#fff}
 figcaption{margin-top:.5rem;color:#444;font-size:.9rem}
 svg.plot{display:block;width:100%;height:auto}
-svg.plot text{font-family:mgplot,"Liberation Sans",Arial,sans-serif!important}
+svg.plot text{font-family:"Liberation Sans",Arimo,Arial,Helvetica,sans-serif!important}
 .plot-error{padding:1rem;border:1px dashed #b3261e;color:#7f1d1d}
 details{margin:.25rem 0 1rem}
 summary{cursor:pointer;color:#1f4f8f}

@@ -32,7 +32,8 @@ var (
 	colHistFill  = color.RGBA{R: 0x9d, G: 0xb9, B: 0xde, A: 0xff}
 )
 
-// plotFont is the one face every plot uses; the page embeds it once.
+// plotFont is the one face every plot is laid out with; the page draws it
+// in a metric-compatible system font (see HTML).
 var plotFont = font.Font{Typeface: "Liberation", Variant: "Sans"}
 
 // Plot sizes, in points (1 pt = 4/3 CSS px).
