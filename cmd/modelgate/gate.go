@@ -62,7 +62,13 @@ that also moves that tag (promote --with): a scorer whose policy ties it
 to that encoder tag has its freeze check run against CANDIDATE, the
 encoder that will be live.
 
-Exit codes: 0 pass, 1 fail, 2 bad input.`,
+With --shard I/N it scores only shard I of N of the holdout and stores that
+shard's sums (a shard reads no key files the policy names: only the policy
+file need be there); --merge then runs the gate from the N stored shard
+results.
+
+Exit codes: 0 pass, 1 fail, 2 bad input (with --merge: shard results
+missing, or made for other inputs).`,
 		Args: exactArgs(1, "CANDIDATE"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runGate(cmd.Context(), g, o, args[0])
@@ -98,7 +104,13 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 		}
 		signer = release.ReportSigner(k)
 	}
-	pol, err := policy.Load(o.Policy)
+	var polOpts []policy.LoadOption
+	if o.Shard != "" {
+		// A shard judges no signature: it runs where only the policy file
+		// may be mounted (a ConfigMap), without the approvers' key files.
+		polOpts = append(polOpts, policy.SkipKeyFiles())
+	}
+	pol, err := policy.Load(o.Policy, polOpts...)
 	if err != nil {
 		return err
 	}

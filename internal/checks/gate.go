@@ -150,6 +150,19 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 			}
 		}
 	}
+	var merged *holdoutState
+	if len(g.Shards) > 0 && hold != nil && g.Config.Holdout.Enabled {
+		// An incomplete or mismatched set of shard results is missing
+		// input (exit 2), not a failed gate: refuse before any check runs
+		// or any report exists.
+		base := ""
+		if rep.Baseline != nil {
+			base = rep.Baseline.Digest
+		}
+		if merged, err = mergeShards(g.Shards, rep.Candidate.Digest, base, hold.Artifact.Desc.Digest.String(), rep.Policy.Digest, hold.Info.Rows); err != nil {
+			return nil, fmt.Errorf("--merge: %w", err)
+		}
+	}
 	finish(&integ)
 	integ.Seconds = time.Since(start).Seconds()
 	if integ.Status == StatusPass {
@@ -186,8 +199,8 @@ func Run(ctx context.Context, g Gate) (*Report, error) {
 			return CheckResult{Name: CheckHoldout, Status: StatusFail, Summary: "no usable holdout",
 				Findings: []Finding{{Status: StatusFail, Code: "holdout.missing", Message: "the policy enables the holdout check but names no usable holdout"}}}
 		}
-		if len(g.Shards) > 0 {
-			return mergedHoldout(g.Shards, rep, hold, g.Config.Holdout)
+		if merged != nil {
+			return mergedHoldout(merged, len(g.Shards), g.Config.Holdout)
 		}
 		return Holdout(ctx, cand, base, hold, g.Config.Holdout, func(done, total int64) { emit(Event{Phase: CheckHoldout, Done: done, Total: total}) })
 	})
@@ -237,23 +250,18 @@ func conclude(rep *Report) *Report {
 	return rep
 }
 
-// mergedHoldout is the holdout check computed from shard results.
-func mergedHoldout(shards []*ShardResult, rep *Report, hold *artifact.Holdout, cfg HoldoutConfig) CheckResult {
+// mergedHoldout is the holdout check computed from the merged state of n
+// shard results.
+func mergedHoldout(st *holdoutState, n int, cfg HoldoutConfig) CheckResult {
 	res := CheckResult{Name: CheckHoldout}
-	base := ""
-	if rep.Baseline != nil {
-		base = rep.Baseline.Digest
-	}
-	st, err := mergeShards(shards, rep.Candidate.Digest, base, hold.Artifact.Desc.Digest.String(), rep.Policy.Digest, hold.Info.Rows)
-	if err == nil {
-		res.Holdout, err = finalize(st, cfg, &res)
-	}
+	var err error
+	res.Holdout, err = finalize(st, cfg, &res)
 	if err != nil {
 		res.Findings = append(res.Findings, Finding{Status: StatusFail, Code: "holdout.error", Message: err.Error()})
 		res.Status, res.Summary = StatusFail, err.Error()
 		return res
 	}
-	res.Summary += fmt.Sprintf(" (merged from %d shards)", len(shards))
+	res.Summary += fmt.Sprintf(" (merged from %d shards)", n)
 	finish(&res)
 	return res
 }

@@ -14,6 +14,7 @@ import (
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/demo"
+	"modelgate/internal/errkind"
 	"modelgate/internal/freeze"
 	"modelgate/internal/model"
 	"modelgate/internal/policy"
@@ -382,10 +383,17 @@ func TestShardsMergeToOneRun(t *testing.T) {
 		if len(h1.Slices) != len(h4.Slices) {
 			t.Errorf("%s: %d slices vs %d", tc.cand, len(h1.Slices), len(h4.Slices))
 		}
-		// Shards for other inputs or an incomplete set are refused.
+		// An incomplete set, or a shard made for other inputs, is missing
+		// input (exit 2) and no report: not a failed gate (exit 1).
 		g.Shards = shards[:3]
-		if rep, _ := Run(ctx, g); holdoutStatus(rep) != StatusFail {
-			t.Errorf("%s: merging 3 of 4 shards did not fail", tc.cand)
+		if rep, err := Run(ctx, g); rep != nil || !errkind.Is(err, errkind.BadInput) || !strings.Contains(fmt.Sprint(err), "missing shard results: [4/4]") {
+			t.Errorf("%s: merging 3 of 4 shards: report %v, error %v; want no report and a bad-input error naming 4/4", tc.cand, rep != nil, err)
+		}
+		other := *shards[3]
+		other.Policy = "sha256:" + strings.Repeat("0", 64)
+		g.Shards = append(append([]*ShardResult{}, shards[:3]...), &other)
+		if rep, err := Run(ctx, g); rep != nil || !errkind.Is(err, errkind.BadInput) || !strings.Contains(fmt.Sprint(err), "made for other inputs") {
+			t.Errorf("%s: a shard of another policy: report %v, error %v; want a bad-input error", tc.cand, rep != nil, err)
 		}
 	}
 }

@@ -229,7 +229,7 @@ func clonePtr[T any](p *T) *T {
 
 // build decodes a schema-valid document, applies the defaults and the
 // cross-field rules, adding problems to probs.
-func build(name string, doc []byte, probs *Problems) *Policy {
+func build(name string, doc []byte, probs *Problems, o loadOptions) *Policy {
 	var w wirePolicy
 	dec := json.NewDecoder(bytes.NewReader(doc))
 	dec.DisallowUnknownFields()
@@ -242,7 +242,7 @@ func build(name string, doc []byte, probs *Problems) *Policy {
 	seen := map[string]int{}
 	for i := range w.Rules {
 		at := fmt.Sprintf("/rules/%d", i)
-		r := buildRule(name, at, &w.Rules[i], probs)
+		r := buildRule(name, at, &w.Rules[i], probs, o)
 		if t := r.Target.String(); r.Target.Repository != "" {
 			if j, dup := seen[t]; dup {
 				probs.add(at+"/target", "target %q is already covered by /rules/%d: a target may appear in one rule only", t, j)
@@ -279,7 +279,7 @@ func tagRef(s string) (registry.Ref, error) {
 	return ref, nil
 }
 
-func buildRule(name, at string, w *wireRule, probs *Problems) Rule {
+func buildRule(name, at string, w *wireRule, probs *Problems, o loadOptions) Rule {
 	var r Rule
 	if ref, err := tagRef(w.Target); err != nil {
 		probs.add(at+"/target", "%v", err)
@@ -398,11 +398,11 @@ func buildRule(name, at string, w *wireRule, probs *Problems) Rule {
 		}
 	}
 
-	r.Approvals = buildApprovals(name, at+"/approvals", &w.Approvals, probs)
+	r.Approvals = buildApprovals(name, at+"/approvals", &w.Approvals, probs, o)
 	return r
 }
 
-func buildApprovals(name, at string, w *wireApprovals, probs *Problems) Approvals {
+func buildApprovals(name, at string, w *wireApprovals, probs *Problems, o loadOptions) Approvals {
 	a := Approvals{
 		Required:          intOr(w.Required, 0),
 		AllowSelfApproval: or(w.AllowSelfApproval, false),
@@ -419,8 +419,8 @@ func buildApprovals(name, at string, w *wireApprovals, probs *Problems) Approval
 			a.MaxAge = d
 		}
 	}
-	a.Approvers = buildKeys(name, at+"/approvers", "approver", w.Approvers, probs)
-	a.ReportSigners = buildKeys(name, at+"/reportSigners", "report signer", w.ReportSigners, probs)
+	a.Approvers = buildKeys(name, at+"/approvers", "approver", w.Approvers, probs, o)
+	a.ReportSigners = buildKeys(name, at+"/reportSigners", "report signer", w.ReportSigners, probs, o)
 	if a.Required > len(w.Approvers) {
 		probs.add(at+"/required", "%d approvals required but only %d approver(s) listed", a.Required, len(w.Approvers))
 	}

@@ -137,3 +137,46 @@ func TestParsePublicKeyErrors(t *testing.T) {
 		}
 	}
 }
+
+// TestSkipKeyFiles: a gate shard loads the policy where only the policy
+// file is mounted. With SkipKeyFiles a missing key file is no error and
+// its key stays unread; inline keys are still parsed and checked; the
+// digest is the same as a full load's.
+func TestSkipKeyFiles(t *testing.T) {
+	dir := t.TempDir()
+	_, inline := testKey(t, 3)
+	doc := minimalScorer + `    approvals:
+      required: 2
+      approvers:
+        - {name: ana, keyFile: keys/ana.pem}
+        - name: ben
+          publicKey: |
+            ` + indent(inline, 12) + `
+`
+	path := writeFile(t, dir, "p.yaml", doc)
+	if _, err := Load(path); err == nil || !strings.Contains(err.Error(), `approver "ana"`) {
+		t.Fatalf("full load without the key file: %v, want an error naming ana", err)
+	}
+	p, err := Load(path, SkipKeyFiles())
+	if err != nil {
+		t.Fatal(err)
+	}
+	a := p.Rules[0].Approvals.Approvers
+	if len(a) != 2 || a[0].PublicKey != nil || a[0].KeyFile != "keys/ana.pem" || a[1].PublicKey == nil {
+		t.Fatalf("approvers %+v", a)
+	}
+	_, anaPEM := testKey(t, 4)
+	writeFile(t, dir, "keys/ana.pem", anaPEM)
+	full, err := Load(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if full.Digest() != p.Digest() {
+		t.Errorf("digest %s with key files, %s without", full.Digest(), p.Digest())
+	}
+	// A bad inline key is still refused.
+	bad := strings.Replace(doc, "MCow", "MCox", 1)
+	if _, err := Parse(filepath.Join(dir, "bad.yaml"), []byte(bad), SkipKeyFiles()); err == nil {
+		t.Error("a broken inline key passed with SkipKeyFiles")
+	}
+}

@@ -430,7 +430,7 @@ func (p *Problems) err() error {
 
 // Load reads and parses the policy file at path (see Parse). A file that
 // cannot be read, or is larger than MaxFileBytes, is errkind.BadInput.
-func Load(path string) (*Policy, error) {
+func Load(path string, opts ...LoadOption) (*Policy, error) {
 	if err := regularFile(path); err != nil {
 		return nil, errkind.Wrap(errkind.BadInput, fmt.Errorf("reading policy: %w", err))
 	}
@@ -443,8 +443,19 @@ func Load(path string) (*Policy, error) {
 	if err != nil {
 		return nil, errkind.Wrap(errkind.BadInput, fmt.Errorf("reading policy %s: %w", path, err))
 	}
-	return Parse(path, raw)
+	return Parse(path, raw, opts...)
 }
+
+// A LoadOption changes how Load and Parse read a policy.
+type LoadOption func(*loadOptions)
+
+type loadOptions struct{ skipKeyFiles bool }
+
+// SkipKeyFiles leaves the keys a policy names by keyFile unread: their
+// Key.PublicKey is nil and a missing file is no error. For callers that
+// judge no signature — a gate shard, which runs where only the policy
+// file may be mounted. Inline keys are still parsed and checked.
+func SkipKeyFiles() LoadOption { return func(o *loadOptions) { o.skipKeyFiles = true } }
 
 // Parse parses a policy from raw, the bytes of the file called name. name
 // appears in messages and locates key files: a keyFile is resolved
@@ -457,7 +468,11 @@ func Load(path string) (*Policy, error) {
 // violations are reported first and alone; the cross-field rules (valid
 // references, distinct targets and keys, m ≤ n, readable ed25519 keys)
 // run on a document that passes the schema.
-func Parse(name string, raw []byte) (*Policy, error) {
+func Parse(name string, raw []byte, opts ...LoadOption) (*Policy, error) {
+	var o loadOptions
+	for _, opt := range opts {
+		opt(&o)
+	}
 	probs := &Problems{File: name}
 	if len(raw) > MaxFileBytes {
 		probs.add("", "file is larger than %d bytes", MaxFileBytes)
@@ -473,7 +488,7 @@ func Parse(name string, raw []byte) (*Policy, error) {
 	if len(probs.List) > 0 {
 		return nil, probs.err()
 	}
-	p := build(name, doc, probs)
+	p := build(name, doc, probs, o)
 	if err := probs.err(); err != nil {
 		return nil, err
 	}
