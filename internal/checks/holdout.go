@@ -2,9 +2,7 @@ package checks
 
 import (
 	"context"
-	"errors"
 	"fmt"
-	"io"
 	"math"
 	"sort"
 	"strconv"
@@ -297,58 +295,41 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		d, l    []float64
 	}
 	var (
-		fc, fb         data.Frame
 		pc, pb, qc, qb []float32
 		tc, tb         []float32
 		lc, lb, d      []float64
 		w              []float32
-		rows, pos      int64
+		rows           int64
 	)
+	// Reading runs in its own goroutine, a few batches ahead of the
+	// forward pass and the statistics, which take the batches in file
+	// order: the numbers are those of a sequential run, bit for bit.
+	batches, stopReading := readAhead(ctx, rc, rb, cfg.BatchSize, lo, hi)
+	defer stopReading()
 	for {
 		if err := ctx.Err(); err != nil {
 			return nil, err
 		}
-		want := cfg.BatchSize
-		if pos < lo {
-			want = int(min(int64(want), lo-pos))
-		} else if hi >= 0 {
-			want = int(min(int64(want), hi-pos))
+		fp, ok := <-batches
+		if !ok {
+			if err := ctx.Err(); err != nil {
+				return nil, err
+			}
+			return nil, errkind.New(errkind.Internal, "holdout reader stopped without a reason")
 		}
-		if want <= 0 {
+		if fp.err != nil {
+			return nil, fp.err
+		}
+		if fp.end {
+			st.Read += fp.readSeconds
 			break
 		}
-		tRead := time.Now()
-		n, err := rc.Read(&fc, want)
-		if errors.Is(err, io.EOF) {
-			if rb != nil {
-				if m, err := rb.Read(&fb, 1); hi < 0 && (!errors.Is(err, io.EOF) || m != 0) {
-					return nil, errkind.New(errkind.Internal, "holdout readers disagree on the row count")
-				}
-			}
-			break
-		}
-		if err != nil {
-			return nil, err
-		}
-		if rb != nil {
-			m, err := rb.Read(&fb, want)
-			if err != nil {
-				return nil, fmt.Errorf("baseline's reading of the holdout: %w", err)
-			}
-			if m != n {
-				return nil, errkind.New(errkind.Internal, "holdout readers disagree: %d and %d rows", n, m)
-			}
-		}
-		st.Read += time.Since(tRead).Seconds()
+		n := fp.n
+		fc, fb := &fp.fc, &fp.fb
 		if shared {
 			fb = fc
 		}
-		if pos < lo {
-			pos += int64(n)
-			continue
-		}
-		pos += int64(n)
-		if err := st.Repeats.add(&fc, n); err != nil {
+		if err := st.Repeats.add(fc, n); err != nil {
 			return nil, err
 		}
 		tStats := time.Now()
@@ -420,7 +401,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 					}
 				}
 				if len(st.Examples) < 4 && nnz[i] >= 2 {
-					st.Examples = append(st.Examples, example(cand, base, &fc, &fb, i, qc[i*wc:(i+1)*wc], tc[i*wc:(i+1)*wc], qb, wb))
+					st.Examples = append(st.Examples, example(cand, base, fc, fb, i, qc[i*wc:(i+1)*wc], tc[i*wc:(i+1)*wc], qb, wb))
 				}
 			}
 		} else {
@@ -502,6 +483,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		if progress != nil {
 			progress(rows, hold.Info.Rows)
 		}
+		fp.release()
 	}
 	st.Rows = rows
 	st.Anomaly, st.Lower = anomaly, lower
