@@ -1,7 +1,11 @@
 package checks
 
 import (
+	"encoding/binary"
+	"hash/fnv"
+	"math"
 	"math/rand/v2"
+	"slices"
 	"testing"
 
 	"modelgate/internal/data"
@@ -72,5 +76,39 @@ func TestRepeatsIgnoreShortRows(t *testing.T) {
 	}
 	if f, ok := r.finding(); !ok || *f.Value != 1 {
 		t.Errorf("two items and a dense value, one exact repeat: %+v (found %v), want 1", f, ok)
+	}
+}
+
+// TestRepeatsHashIsFNV1a: the row hash is FNV-1a 64 (Fowler, Noll, Vo;
+// the reference is Go's hash/fnv) over each value's 8 little-endian bytes:
+// the count of items, each (item, value bits) pair, then the dense values
+// in name order. Shard results keep these hashes, so they must not change.
+func TestRepeatsHashIsFNV1a(t *testing.T) {
+	rows := [][][2]float32{{{5, 1.5}, {9, 2}, {11, 0.25}}, {{1, 1}, {2, 3}}}
+	dense := [][]float32{{0.5}, {-2}}
+	f := frameOf(rows, dense)
+	r := newRepeats(2, false)
+	if err := r.add(f, 2); err != nil {
+		t.Fatal(err)
+	}
+	var want []uint64
+	for i, row := range rows {
+		h := fnv.New64a()
+		put := func(v uint64) {
+			var b [8]byte
+			binary.LittleEndian.PutUint64(b[:], v)
+			h.Write(b[:])
+		}
+		put(uint64(len(row)))
+		for _, p := range row {
+			put(uint64(uint32(int32(p[0])))<<32 | uint64(math.Float32bits(p[1])))
+		}
+		for _, v := range dense[i] {
+			put(uint64(math.Float32bits(v)))
+		}
+		want = append(want, h.Sum64())
+	}
+	if !slices.Equal(r.Hashes, want) {
+		t.Errorf("row hashes %x, want hash/fnv's %x", r.Hashes, want)
 	}
 }
