@@ -30,7 +30,10 @@ stats, probes) and stores it as one OCI artifact: blobs first, then the
 manifest, then the tag. Blobs already in the store are not written again.
 With --kind holdout, push checks a holdout file (Parquet or JSON Lines) row
 by row and stores it, digest-pinned, for the gate; a row_id given twice is
-refused. When a listener has several rows (listener × show), name the
+refused. A scorer whose spec.json names its encoder as NAME:TAG without a
+digest (encoder.name only) has the tag resolved here: the stored spec names
+the digest the tag pointed at, and the output says which (encoderPinned).
+When a listener has several rows (listener × show), name the
 listener column with --cluster-column: the gate then sums a listener's rows
 together for its test, and a row_id may repeat within one listener's rows
 only. Prints the manifest digest.`,
@@ -73,6 +76,9 @@ func runPush(ctx context.Context, g *globals, o *pushOptions, dir, refStr string
 func printPush(g *globals, res *artifact.PushResult) error {
 	if g.JSON {
 		return g.printJSON(res)
+	}
+	if p := res.EncoderPinned; p != nil {
+		g.logf("encoder %s pinned: the stored spec names %s", p.Name, p.Digest)
 	}
 	g.logf("pushed %s %s: %d blob(s) written (%s), %d already present%s", res.Kind, res.Ref,
 		res.BlobsWritten, report.HumanBytes(res.BytesWritten), res.BlobsSkipped, map[bool]string{true: ", identical manifest reused", false: ""}[res.ManifestReused])

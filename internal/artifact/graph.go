@@ -28,7 +28,7 @@ func checkGraph(ctx context.Context, store registry.Store, d *modeldir.Dir) erro
 		if err != nil {
 			return err
 		}
-		es, vs, err := modeldir.ParseSpec(raw)
+		es, vs, err := modeldir.ParseStoredSpec(raw)
 		if err != nil {
 			return err
 		}

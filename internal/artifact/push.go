@@ -96,6 +96,16 @@ type PushResult struct {
 	// ManifestReused is true when an identical artifact was already in the
 	// repository and only the tag moved.
 	ManifestReused bool `json:"manifestReused"`
+	// EncoderPinned is set when the scorer's directory named its encoder
+	// by NAME:TAG only: the digest the tag pointed at, which the stored
+	// spec names.
+	EncoderPinned *EncoderPin `json:"encoderPinned,omitempty"`
+}
+
+// EncoderPin is the encoder a push resolved a scorer's NAME:TAG to.
+type EncoderPin struct {
+	Name   string `json:"name"`
+	Digest string `json:"digest"`
 }
 
 // PushModelDir validates the model directory at dir and pushes it to
@@ -120,6 +130,10 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 		return nil, err
 	}
 	defer d.Close()
+	pin, err := pinEncoder(ctx, store, d)
+	if err != nil {
+		return nil, err
+	}
 	if err := checkModelRefs(ctx, store, d); err != nil {
 		return nil, err
 	}
@@ -127,7 +141,75 @@ func PushModelDir(ctx context.Context, store registry.Store, dir string, ref reg
 	if err != nil {
 		return nil, err
 	}
-	return PushArtifact(ctx, store, ref, ArtifactType(d.Model.Spec.Kind), config, layers, nil, ann, opts)
+	res, err := PushArtifact(ctx, store, ref, ArtifactType(d.Model.Spec.Kind), config, layers, nil, ann, opts)
+	if res != nil {
+		res.EncoderPinned = pin
+	}
+	return res, err
+}
+
+// pinEncoder resolves the encoder of a scorer whose directory names it by
+// NAME:TAG (or NAME@DIGEST) without a digest: the digest goes into the
+// spec, and the spec bytes stored become the directory's spec.json with
+// encoder.digest set (keys sorted, numbers as written). A spec that names
+// a digest is stored as it is.
+func pinEncoder(ctx context.Context, store registry.Store, d *modeldir.Dir) (*EncoderPin, error) {
+	e := d.Model.Spec.Encoder
+	if e == nil || e.Digest != "" {
+		return nil, nil
+	}
+	ref, err := registry.ParseRef(e.Name, false)
+	if err != nil || (ref.Tag == "" && !ref.HasDigest()) {
+		return nil, errkind.New(errkind.BadInput, "model directory %s: %s /encoder/name %q: without encoder.digest, name the encoder as NAME:TAG", d.Path, modeldir.SpecFile, e.Name)
+	}
+	dg := ref.Digest
+	if !ref.HasDigest() {
+		desc, err := store.Resolve(ctx, ref.Repository, ref.Tag)
+		if errors.Is(err, registry.ErrNotFound) {
+			return nil, errkind.New(errkind.BadInput, "model directory %s: %s /encoder/name: the encoder tag %s does not exist in the store: push the encoder first", d.Path, modeldir.SpecFile, e.Name)
+		}
+		if err != nil {
+			return nil, err
+		}
+		dg = desc.Digest
+	}
+	raw, err := setEncoderDigest(d.SpecBytes, dg.String())
+	if err != nil {
+		return nil, errkind.New(errkind.BadInput, "model directory %s: %s: %v", d.Path, modeldir.SpecFile, err)
+	}
+	spec, vs, err := modeldir.ParseStoredSpec(raw)
+	if err != nil {
+		return nil, err
+	}
+	if spec == nil || len(vs) > 0 {
+		return nil, errkind.New(errkind.BadInput, "model directory %s: %s with the encoder pinned: %s", d.Path, modeldir.SpecFile, strings.Join(vs, "; "))
+	}
+	d.SpecBytes, d.Model.Spec = raw, spec
+	return &EncoderPin{Name: e.Name, Digest: dg.String()}, nil
+}
+
+// setEncoderDigest returns the spec JSON with encoder.digest set, indented
+// and with a final newline; numbers keep their written form.
+func setEncoderDigest(raw []byte, digest string) ([]byte, error) {
+	dec := json.NewDecoder(bytes.NewReader(raw))
+	dec.UseNumber()
+	var doc map[string]any
+	if err := dec.Decode(&doc); err != nil {
+		return nil, err
+	}
+	enc, ok := doc["encoder"].(map[string]any)
+	if !ok {
+		return nil, fmt.Errorf("/encoder is not an object")
+	}
+	enc["digest"] = digest
+	var out bytes.Buffer
+	w := json.NewEncoder(&out)
+	w.SetEscapeHTML(false)
+	w.SetIndent("", "  ")
+	if err := w.Encode(doc); err != nil {
+		return nil, err
+	}
+	return out.Bytes(), nil
 }
 
 // checkModelRefs checks what a model directory needs from the store: a
@@ -153,10 +235,19 @@ func pushStaged(ctx context.Context, store registry.Store, stager registry.BlobS
 		err error
 	}
 	done := make(chan checked, 1)
+	// pin is the encoder resolved from NAME:TAG; origSpec the directory's
+	// spec.json as checked (the stored spec differs when pin is set).
+	var pin *EncoderPin
+	var origSpec []byte
 	go func() {
 		d, err := modeldir.CheckHeaders(dir)
 		if err == nil {
-			if err = checkModelRefs(ctx, store, d); err != nil {
+			origSpec = d.SpecBytes
+			pin, err = pinEncoder(ctx, store, d)
+			if err == nil {
+				err = checkModelRefs(ctx, store, d)
+			}
+			if err != nil {
 				d.Close()
 			}
 		}
@@ -189,7 +280,7 @@ func pushStaged(ctx context.Context, store registry.Store, stager registry.BlobS
 	if serr != nil {
 		return nil, serr
 	}
-	if !bytes.Equal(specBytes, d.SpecBytes) || len(d.TensorFiles) != len(files) {
+	if !bytes.Equal(specBytes, origSpec) || len(d.TensorFiles) != len(files) {
 		return nil, errkind.New(errkind.BadInput, "model directory %s: %s changed while it was pushed; push again once it is written", dir, modeldir.SpecFile)
 	}
 	for i, f := range d.TensorFiles {
@@ -204,7 +295,11 @@ func pushStaged(ctx context.Context, store registry.Store, stager registry.BlobS
 	if err != nil {
 		return nil, err
 	}
-	return PushArtifact(ctx, store, ref, ArtifactType(d.Model.Spec.Kind), config, layers, nil, ann, opts)
+	res, err := PushArtifact(ctx, store, ref, ArtifactType(d.Model.Spec.Kind), config, layers, nil, ann, opts)
+	if res != nil {
+		res.EncoderPinned = pin
+	}
+	return res, err
 }
 
 type tensorFile struct {

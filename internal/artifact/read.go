@@ -346,7 +346,7 @@ func Load(ctx context.Context, store registry.Store, ref registry.Ref) (*Loaded,
 		return nil, err
 	}
 	l := &Loaded{Artifact: a, Tensors: map[string][]float32{}}
-	spec, vs, err := modeldir.ParseSpec(files[0].Bytes)
+	spec, vs, err := modeldir.ParseStoredSpec(files[0].Bytes)
 	if err != nil {
 		return nil, err
 	}
@@ -453,7 +453,7 @@ func checkModel(ctx context.Context, store registry.Store, a *Artifact, deep boo
 		return nil, err
 	}
 	l := &Loaded{Artifact: a}
-	spec, vs, err := modeldir.ParseSpec(raw)
+	spec, vs, err := modeldir.ParseStoredSpec(raw)
 	if err != nil {
 		return nil, err
 	}

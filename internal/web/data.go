@@ -311,7 +311,7 @@ func (s *Server) specOf(ctx context.Context, a *artifact.Artifact) (*model.Spec,
 	if err != nil {
 		return nil, nil, err
 	}
-	return modeldir.ParseSpec(raw)
+	return modeldir.ParseStoredSpec(raw)
 }
 
 // locate finds the repository holding manifest d: repo first, then every

@@ -214,6 +214,17 @@ func ParseSpec(raw []byte) (*model.Spec, []string, error) {
 	return &s, CheckSpec(&s), nil
 }
 
+// ParseStoredSpec is ParseSpec for a spec read from the store: there a
+// scorer names its encoder by digest (a model directory may name it by
+// NAME:TAG only; push pins the digest).
+func ParseStoredSpec(raw []byte) (*model.Spec, []string, error) {
+	s, vs, err := ParseSpec(raw)
+	if s != nil && s.Encoder != nil && s.Encoder.Digest == "" {
+		vs = append(vs, "/encoder/digest: a stored spec names its encoder by digest")
+	}
+	return s, vs, err
+}
+
 // CheckSpec applies the rules a JSON Schema cannot express: unique names,
 // tensors referenced by layers and training state exist, the named output,
 // code and reconstruction layers exist.
