@@ -253,6 +253,7 @@ bug or an environment failure); 130 / 143 stopped by SIGINT / SIGTERM.`,
 		newViewCmd(g),
 		newServeAliasCmd(g),
 	)
+	addPolicyScaffold(root, g)
 	root.SetFlagErrorFunc(func(c *cobra.Command, err error) error {
 		return errkind.Wrap(errkind.BadInput, err)
 	})
