@@ -52,13 +52,13 @@ type DraftResult struct {
 	Kind   string `json:"kind"`
 	// Measured is the model the budgets come from and whether it is the
 	// target's baseline or the From model of a first release.
-	Measured    string `json:"measured"`
+	Measured     string `json:"measured"`
 	FirstRelease bool   `json:"firstRelease"`
-	Bytes       int64  `json:"bytes"`
-	Params      int64  `json:"params"`
-	MaxBytes    int64  `json:"maxBytes"`
-	MaxParams   int64  `json:"maxParams"`
-	Holdout     string `json:"holdout"`
+	Bytes        int64  `json:"bytes"`
+	Params       int64  `json:"params"`
+	MaxBytes     int64  `json:"maxBytes"`
+	MaxParams    int64  `json:"maxParams"`
+	Holdout      string `json:"holdout"`
 	// HoldoutCandidates are the other holdouts the search found.
 	HoldoutCandidates []string `json:"holdoutCandidates,omitempty"`
 	EncoderTag        string   `json:"encoderTag,omitempty"`
