@@ -11,6 +11,8 @@ import (
 	"syscall"
 	"testing"
 
+	"github.com/parquet-go/parquet-go"
+
 	"modelgate/internal/artifact"
 	"modelgate/internal/registry"
 )
@@ -152,6 +154,14 @@ rules:
 			m["layers"].([]any)[1].(map[string]any)["tiedTo"] = "dec.b"
 		})
 	})
+	concatWide := badModel(scorerDir, func(d string) {
+		editJSON(t, filepath.Join(d, "spec.json"), func(m map[string]any) {
+			// code (4) + listener_tenure (1) + show_age (1) + listener_tenure
+			// again: 7 wide, where head.w1 takes 6.
+			l := m["layers"].([]any)[0].(map[string]any)
+			l["inputs"] = append(l["inputs"].([]any), "listener_tenure")
+		})
+	})
 	dupKind := badModel(encDir, func(d string) {
 		b, _ := os.ReadFile(filepath.Join(d, "spec.json"))
 		setFile(d, "spec.json", []byte(strings.Replace(string(b), "{", `{"kind": "scorer",`, 1)))
@@ -221,6 +231,57 @@ rules:
 	spaceID := write("space-id.jsonl", row(1, `["show-003"]`, `[1]`, "1")+row(2, `["show-003 "]`, `[1]`, "0"))
 	nfdID := write("nfd-id.jsonl", row(1, `["cafe\u0301"]`, `[1]`, "1"))
 	notParquet := write("garbage.parquet", "PAR1 this is not a parquet file PAR1")
+	// Parquet holdouts with a nested type: items as a list of structs,
+	// values as a map, a dense input as a list of lists, an extra column a
+	// struct (written with parquet-go's struct encoding). No model can read
+	// such a column; push refuses it, naming the column.
+	type itemStruct struct {
+		ID    string `parquet:"id"`
+		Count int32  `parquet:"count"`
+	}
+	listOfStruct := filepath.Join(dir, "list-of-struct.parquet")
+	if err := parquet.WriteFile(listOfStruct, []struct {
+		RowID  int64        `parquet:"row_id"`
+		Items  []itemStruct `parquet:"items,list"`
+		Values []float32    `parquet:"values,list"`
+		Label  float32      `parquet:"label"`
+		Tenure []float32    `parquet:"listener_tenure,list"`
+		Age    []float32    `parquet:"show_age,list"`
+	}{{1, []itemStruct{{"show-003", 1}}, []float32{1}, 1, []float32{0.1}, []float32{0.2}}}); err != nil {
+		t.Fatal(err)
+	}
+	mapValues := filepath.Join(dir, "map-values.parquet")
+	if err := parquet.WriteFile(mapValues, []struct {
+		RowID  int64              `parquet:"row_id"`
+		Items  []string           `parquet:"items,list"`
+		Values map[string]float32 `parquet:"values"`
+		Label  float32            `parquet:"label"`
+		Tenure []float32          `parquet:"listener_tenure,list"`
+		Age    []float32          `parquet:"show_age,list"`
+	}{{1, []string{"show-003"}, map[string]float32{"show-003": 1}, 1, []float32{0.1}, []float32{0.2}}}); err != nil {
+		t.Fatal(err)
+	}
+	extraStruct := filepath.Join(dir, "extra-struct.parquet")
+	if err := parquet.WriteFile(extraStruct, []struct {
+		RowID    int64      `parquet:"row_id"`
+		Items    []string   `parquet:"items,list"`
+		Values   []float32  `parquet:"values,list"`
+		Label    float32    `parquet:"label"`
+		Listener itemStruct `parquet:"listener"`
+	}{{1, []string{"show-003"}, []float32{1}, 1, itemStruct{"l-1", 3}}}); err != nil {
+		t.Fatal(err)
+	}
+	nestedList := filepath.Join(dir, "nested-list.parquet")
+	if err := parquet.WriteFile(nestedList, []struct {
+		RowID  int64       `parquet:"row_id"`
+		Items  []string    `parquet:"items,list"`
+		Values []float32   `parquet:"values,list"`
+		Label  float32     `parquet:"label"`
+		Tenure [][]float32 `parquet:"listener_tenure,list"`
+		Age    []float32   `parquet:"show_age,list"`
+	}{{1, []string{"show-003"}, []float32{1}, 1, [][]float32{{0.1}}, []float32{0.2}}}); err != nil {
+		t.Fatal(err)
+	}
 	csvHoldout := write("holdout.csv", "row_id,items\n1,show-003\n")
 	dupRowID := write("dup-row-id.jsonl", row(5, `["show-003"]`, `[1]`, "0")+row(6, `["show-003"]`, `[1]`, "1")+row(5, `["show-010"]`, `[2]`, "0"))
 	crossCluster := write("cross-cluster.jsonl", strings.ReplaceAll(row(5, `[]`, `[]`, "0"), "}", `,"listener_id":"a"}`)+strings.ReplaceAll(row(5, `[]`, `[]`, "1"), "}", `,"listener_id":"b"}`))
@@ -329,6 +390,7 @@ rules:
 		{name: "safetensors dtype I64", args: []string{"push", i64, "bad:v1"}, code: 2, want: []string{"decoder.safetensors", "I64"}},
 		{name: "layer graph with a cycle", args: []string{"push", cycle, "bad:v1"}, code: 2, want: []string{"spec.json", "reconstruction"}},
 		{name: "tied decoder tied to a decoder weight", args: []string{"push", tiedToDecoder, "bad:v1"}, code: 2, want: []string{"spec.json", "dec.b"}},
+		{name: "concat wider than the next layer's weight", args: []string{"push", concatWide, "bad:v1"}, code: 2, want: []string{"spec.json", `layer "hidden"`, "head.w1", `input "features" has width 7`}},
 		{name: "spec with the key kind given twice", args: []string{"push", dupKind, "bad:v1"}, code: 2, want: []string{"spec.json", "/kind", "given twice"}},
 
 		// Named pipes and links out of the model directory (push).
@@ -350,6 +412,11 @@ rules:
 		{name: "holdout slice name of 1 MiB", args: []string{"push", "--kind", "holdout", longSlice, "bad-holdout:v1"}, code: 2, want: []string{"long-slice.jsonl", "summary", "slice"}},
 		{name: "verify: a stored holdout summary over the readers' limit", store: unreadable, args: []string{"verify"}, code: 5, want: []string{"long-holdout", "over the 1048576 bytes modelgate reads"}, stdoutOK: true},
 		{name: "holdout not Parquet", args: []string{"push", "--kind", "holdout", notParquet, "bad-holdout:v1"}, code: 2, want: []string{"garbage.parquet", "Parquet"}},
+		{name: "holdout Parquet items a list of structs", args: []string{"push", "--kind", "holdout", listOfStruct, "bad-holdout:v1"}, code: 2, want: []string{"list-of-struct.parquet", `column "items"`, "list of structs"}},
+		{name: "holdout Parquet values a map", args: []string{"push", "--kind", "holdout", mapValues, "bad-holdout:v1"}, code: 2, want: []string{"map-values.parquet", `column "values"`, "a map"}},
+		{name: "holdout Parquet dense input a nested list", args: []string{"push", "--kind", "holdout", nestedList, "bad-holdout:v1"}, code: 2, want: []string{"nested-list.parquet", `column "listener_tenure"`, "nested list"}},
+		{name: "score: holdout Parquet values a map", args: []string{"score", "tiny-scorer:v1", "--holdout", mapValues, "--out", filepath.Join(dir, "p.jsonl")}, code: 2, want: []string{"map-values.parquet", `column "values"`}},
+		{name: "holdout Parquet an extra column a struct", args: []string{"push", "--kind", "holdout", extraStruct, "bad-holdout:v1"}, code: 2, want: []string{"extra-struct.parquet", `column "listener"`, "a struct"}},
 		{name: "holdout in CSV", args: []string{"push", "--kind", "holdout", csvHoldout, "bad-holdout:v1"}, code: 2, want: []string{"holdout.csv", "CSV"}},
 		{name: "holdout row_id given twice", args: []string{"push", "--kind", "holdout", dupRowID, "bad-holdout:v1"}, code: 2, want: []string{"dup-row-id.jsonl", "row_id 5", "--cluster-column"}},
 		{name: "holdout cluster column missing", args: []string{"push", "--kind", "holdout", "--cluster-column", "listener_id", labelTwo, "bad-holdout:v1"}, code: 2, want: []string{"label-two.jsonl", "row 1", "listener_id"}},

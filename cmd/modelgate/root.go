@@ -10,6 +10,7 @@ import (
 	"path/filepath"
 	"runtime/pprof"
 	"strings"
+	"syscall"
 	"time"
 
 	"github.com/spf13/cobra"
@@ -289,6 +290,9 @@ func run(ctx context.Context, args []string, stdin io.Reader, stdout, stderr io.
 		_ = json.NewEncoder(stderr).Encode(map[string]any{"event": "error", "exitCode": code, "message": err.Error()})
 	default:
 		fmt.Fprintf(stderr, "modelgate: %v\n", err)
+		if errors.Is(err, syscall.ENOSPC) || errors.Is(err, syscall.EFBIG) {
+			fmt.Fprintln(stderr, "modelgate: the store's file system is out of room (disk full or over a file-size limit): free space and run the command again; `modelgate verify` checks the store")
+		}
 	}
 	return code
 }

@@ -141,7 +141,7 @@ func scanHoldoutAt(ra io.ReaderAt, size int64, path, format, cluster string, pro
 	if err != nil {
 		return nil, err
 	}
-	r, err := data.OpenReader(ra, size, format, data.Options{Spec: spec, Vocab: vocab, Name: path, ClusterColumn: cluster})
+	r, err := data.OpenReader(ra, size, format, data.Options{Spec: spec, Vocab: vocab, Name: path, ClusterColumn: cluster, EveryColumn: true})
 	if err != nil {
 		return nil, err
 	}

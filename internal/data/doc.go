@@ -66,7 +66,10 @@
 // annotation (an unsigned 64-bit value beyond int64 is refused); numbers
 // with other logical types (decimal, date, time, timestamp) are refused;
 // strings are BYTE_ARRAY with the STRING or ENUM annotation or none. Other
-// columns (for example a pandas index) are ignored and never read. The file
+// columns (for example a pandas index) are ignored and never read, except
+// that with Options.EveryColumn (push) every column must have one of those
+// two shapes, whatever its type: a struct, a map, a list of structs or a
+// list of lists is refused, naming the column. The file
 // is read one page per column at a time; the row number of a Parquet row
 // counts from 1 across row groups.
 //

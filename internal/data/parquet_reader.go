@@ -51,6 +51,13 @@ func openParquet(r io.ReaderAt, size int64, l *layout) (*parquetReader, error) {
 	}
 	p := &parquetReader{l: l, file: file, r: r, size: size}
 	root := file.Root()
+	if l.everyColumn {
+		for _, c := range root.Columns() {
+			if err := checkNesting(c); err != nil {
+				return nil, l.fileError("%v", err)
+			}
+		}
+	}
 	find := func(name string, want shape, kinds kindSet, required bool) (*column, error) {
 		c := root.Column(name)
 		if c == nil {
@@ -365,6 +372,35 @@ func (p *parquetReader) corrupt(c *column, err error) error {
 		err = errors.New("ends before the row group does")
 	}
 	return p.l.fileError("row %d: column %q: %v", p.row+1, c.name, err)
+}
+
+// checkNesting refuses a top-level column that is neither a single value
+// nor a list of values (newColumn's shapes, whatever the value type): a
+// group of several fields (a struct, a map's key and value, a list of
+// structs) or a list of lists.
+func checkNesting(c *parquet.Column) error {
+	name, repeats := c.Name(), 0
+	for {
+		if c.Repeated() {
+			repeats++
+		}
+		if c.Leaf() {
+			break
+		}
+		children := c.Columns()
+		if len(children) != 1 {
+			what := "a struct"
+			if repeats > 0 {
+				what = "a map or a list of structs"
+			}
+			return fmt.Errorf("column %q is %s (a group of %d fields); a holdout column is a single value or a list of values", name, what, len(children))
+		}
+		c = children[0]
+	}
+	if repeats > 1 {
+		return fmt.Errorf("column %q is a nested list; a holdout column is a single value or a list of values", name)
+	}
+	return nil
 }
 
 // shape is how a column's values are nested.

@@ -77,6 +77,12 @@ type Options struct {
 	// string or an integer saying which cluster (for example which
 	// listener) the row belongs to. Frame.Clusters gets its ClusterKey.
 	ClusterColumn string
+	// EveryColumn also checks, in a Parquet file, the columns no model
+	// reads yet (a dense input is any other column): each must be a single
+	// value or a list of values, as a dense input is. A list of structs, a
+	// map or a nested list can feed no model and is refused, naming the
+	// column. A push of a holdout sets it.
+	EveryColumn bool
 }
 
 // ClusterKey is the key of a cluster column's value: the 64-bit FNV-1a
@@ -272,6 +278,7 @@ type layout struct {
 	denseIdx      map[string]int
 	requireLabels bool
 	cluster       string // the cluster column, "" for none
+	everyColumn   bool
 }
 
 func newLayout(opts Options) (*layout, error) {
@@ -295,6 +302,7 @@ func newLayout(opts Options) (*layout, error) {
 		denseIdx:      make(map[string]int, len(opts.Spec.Inputs.Dense)),
 		requireLabels: opts.RequireLabels,
 		cluster:       opts.ClusterColumn,
+		everyColumn:   opts.EveryColumn,
 	}
 	if l.cluster != "" && reservedColumn(l.cluster) {
 		return nil, bad("the cluster column cannot be the holdout column %q", l.cluster)
