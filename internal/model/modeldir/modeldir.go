@@ -328,8 +328,13 @@ func Read(dir string) (*Dir, error) { return read(dir, readOptions{decode: true}
 func Check(dir string) (*Dir, error) { return read(dir, readOptions{mmap: true}) }
 
 // CheckForPush is Check that also hashes the tensor files (File.Sha256)
-// in the background while they are checked.
-func CheckForPush(dir string) (*Dir, error) { return read(dir, readOptions{mmap: true, hash: true}) }
+// in the background while they are checked. It reads the tensor files into
+// memory rather than mapping them: the bytes it hashes, checks and hands
+// to the upload must stay what was read even if the file is rewritten or
+// truncated meanwhile (a mapped file truncated under the process kills it
+// with SIGBUS; one rewritten in place would upload other bytes than were
+// hashed). The local store does not come here: it streams each file once.
+func CheckForPush(dir string) (*Dir, error) { return read(dir, readOptions{hash: true}) }
 
 // CheckHeaders is Check reading only the header of each tensor file
 // (names, dtypes and shapes against the spec; values are not looked at).
