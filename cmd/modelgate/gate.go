@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"os"
 	"strings"
+	"time"
 
 	"github.com/spf13/cobra"
 
@@ -27,7 +28,9 @@ type gateOptions struct {
 	Threads int
 	SignKey string
 	Shard   string
+	ShardIx string
 	Merge   bool
+	Wait    time.Duration
 	With    []string
 }
 
@@ -40,6 +43,8 @@ func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 	f.BoolVar(&o.NoPush, "no-push", false, "do not store the report in the store (it is stored by default, as a referrer of the candidate)")
 	f.IntVar(&o.Threads, "threads", 0, "runtime threads for the holdout pass (0: all cores)")
 	f.StringVar(&o.Shard, "shard", "", "score only shard I/N of the holdout (1-based) and store its sums for a later --merge; prints the shard result's digest")
+	f.StringVar(&o.ShardIx, "shard-index", "", "like --shard, counted from 0: K/N is shard K+1 of N (for a Kubernetes Indexed Job: --shard-index $(JOB_COMPLETION_INDEX)/N)")
+	f.DurationVar(&o.Wait, "wait", 0, "with --merge: wait up to this long (e.g. 2h) for every shard result to be stored, checking every 10 s; still missing then: exit 2")
 	f.BoolVar(&o.Merge, "merge", false, "run the gate from the stored shard results (of --shard runs with the same inputs) instead of scoring the holdout here")
 	f.StringArrayVar(&o.With, "with", nil, "CANDIDATE=NAME:TAG: gate in the world after a release that also moves this tag (repeatable): a scorer's freeze check then reads the encoder that tag will point at")
 	f.StringVar(&o.SignKey, "sign-key", "", "sign the stored report with this private key (a CI key a policy lists under reportSigners)")
@@ -62,10 +67,11 @@ that also moves that tag (promote --with): a scorer whose policy ties it
 to that encoder tag has its freeze check run against CANDIDATE, the
 encoder that will be live.
 
-With --shard I/N it scores only shard I of N of the holdout and stores that
-shard's sums (a shard reads no key files the policy names: only the policy
-file need be there); --merge then runs the gate from the N stored shard
-results.
+With --shard I/N (or --shard-index I-1/N) it scores only shard I of N of
+the holdout and stores that shard's sums (a shard reads no key files the
+policy names: only the policy file need be there); --merge then runs the
+gate from the N stored shard results, and --wait DURATION makes it wait
+for them (the merge can start with the shards).
 
 Exit codes: 0 pass, 1 fail, 2 bad input (with --merge: shard results
 missing, or made for other inputs).`,
@@ -105,6 +111,22 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 		signer = release.ReportSigner(k)
 	}
 	var polOpts []policy.LoadOption
+	if o.ShardIx != "" {
+		if o.Shard != "" {
+			return usageErr("--shard and --shard-index: give one")
+		}
+		var k, n int
+		if _, err := fmt.Sscanf(o.ShardIx, "%d/%d", &k, &n); err != nil || n < 1 || k < 0 || k >= n || fmt.Sprintf("%d/%d", k, n) != o.ShardIx {
+			return usageErr("--shard-index %q: want K/N with 0 ≤ K < N", o.ShardIx)
+		}
+		o.Shard = fmt.Sprintf("%d/%d", k+1, n)
+	}
+	if o.Wait != 0 && !o.Merge {
+		return usageErr("--wait goes with --merge")
+	}
+	if o.Wait < 0 {
+		return usageErr("--wait %s: want a positive duration", o.Wait)
+	}
 	if o.Shard != "" {
 		// A shard judges no signature: it runs where only the policy file
 		// may be mounted (a ConfigMap), without the approvers' key files.
@@ -162,7 +184,7 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 		return runGateShard(ctx, g, o, gate)
 	}
 	if o.Merge {
-		if gate.Shards, err = findShards(ctx, store, gate); err != nil {
+		if gate.Shards, err = findShards(ctx, g, store, gate, o.Wait); err != nil {
 			return err
 		}
 	}
@@ -230,7 +252,8 @@ func runGateShard(ctx context.Context, g *globals, o *gateOptions, gate checks.G
 }
 
 // findShards collects the stored shard results made for this gate's inputs.
-func findShards(ctx context.Context, store registry.Store, gate checks.Gate) ([]*checks.ShardResult, error) {
+// With wait > 0 it first waits up to that long for a complete set.
+func findShards(ctx context.Context, g *globals, store registry.Store, gate checks.Gate, wait time.Duration) ([]*checks.ShardResult, error) {
 	cd, err := artifact.Resolve(ctx, store, gate.Candidate)
 	if err != nil {
 		return nil, err
@@ -245,6 +268,23 @@ func findShards(ctx context.Context, store registry.Store, gate checks.Gate) ([]
 	hd, err := artifact.Resolve(ctx, store, *gate.Holdout)
 	if err != nil {
 		return nil, err
+	}
+	if wait > 0 {
+		last := ""
+		err := checks.WaitShards(ctx, store, gate.Target.Repository, cd.Digest, gate.Target.String(), base, hd.Digest.String(), gate.Policy.Digest,
+			checks.ShardWait{Timeout: wait, Progress: func(have, of int) {
+				msg := fmt.Sprintf("--merge: %d of %d shard results stored", have, of)
+				if of == 0 {
+					msg = "--merge: no shard result stored yet"
+				}
+				if msg != last {
+					g.logf("%s; waiting up to %s", msg, wait)
+					last = msg
+				}
+			}})
+		if err != nil {
+			return nil, err
+		}
 	}
 	shards, err := checks.FindShards(ctx, store, gate.Target.Repository, cd.Digest, gate.Target.String(), base, hd.Digest.String(), gate.Policy.Digest)
 	if err != nil {

@@ -11,6 +11,7 @@ import (
 	"strings"
 	"sync"
 	"testing"
+	"time"
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/demo"
@@ -501,5 +502,55 @@ func TestHoldoutSliceColumn(t *testing.T) {
 			t.Errorf("%s: %d rows, weight %.9g, weighted loss %.9g; all rows: %d, %.9g, %.9g",
 				g.name, g.rows, g.w, g.wl, all.Rows, all.WeightSum, all.WeightSum*all.WeightedLogLoss)
 		}
+	}
+}
+
+// TestWaitShards: a merge started with its shards waits until every shard
+// result is stored, and says which are missing when its time runs out.
+func TestWaitShards(t *testing.T) {
+	store := demoScenario(t)
+	ctx := context.Background()
+	g := gateConfig(t, store, "promo-scorer:cand-worse", "promo-scorer:prod", "promo-scorer.yaml")
+	g.Policy.Digest = "sha256:" + strings.Repeat("7", 64) // this test's own shard set
+	var results []*ShardResult
+	for i := 0; i < 3; i++ {
+		r, err := RunShard(ctx, g, i, 3)
+		if err != nil {
+			t.Fatal(err)
+		}
+		results = append(results, r)
+	}
+	for _, r := range results[:2] {
+		if _, err := PushShard(ctx, store, "promo-scorer", r); err != nil {
+			t.Fatal(err)
+		}
+	}
+	r0 := results[0]
+	cd, err := registry.ParseDigest(r0.Candidate)
+	if err != nil {
+		t.Fatal(err)
+	}
+	wait := func(w ShardWait) error {
+		return WaitShards(ctx, store, "promo-scorer", cd, r0.Target, r0.Baseline, r0.Holdout, r0.Policy, w)
+	}
+	err = wait(ShardWait{Timeout: 30 * time.Millisecond, Poll: 5 * time.Millisecond})
+	if !errkind.Is(err, errkind.BadInput) || !strings.Contains(fmt.Sprint(err), "[3/3]") {
+		t.Fatalf("2 of 3 stored, time out: %v; want a bad-input error naming 3/3", err)
+	}
+	var seen []string
+	err = wait(ShardWait{Timeout: time.Hour, Poll: time.Millisecond, Progress: func(have, of int) {
+		seen = append(seen, fmt.Sprintf("%d/%d", have, of))
+		if len(seen) == 1 { // the last shard lands while the merge waits
+			if _, err := PushShard(ctx, store, "promo-scorer", results[2]); err != nil {
+				t.Error(err)
+			}
+		}
+	}})
+	if err != nil || strings.Join(seen, " ") != "2/3 3/3" {
+		t.Fatalf("waiting while the last shard lands: %v, progress %v; want nil after 2/3 3/3", err, seen)
+	}
+	err = WaitShards(ctx, store, "promo-scorer", cd, r0.Target, r0.Baseline, r0.Holdout, "sha256:"+strings.Repeat("8", 64), ShardWait{Timeout: 10 * time.Millisecond, Poll: time.Millisecond})
+	if !errkind.Is(err, errkind.BadInput) || !strings.Contains(fmt.Sprint(err), "no shard result") {
+		t.Fatalf("no shards for these inputs: %v", err)
 	}
 }

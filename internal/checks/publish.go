@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
@@ -187,4 +188,77 @@ func FindShards(ctx context.Context, store registry.Store, repo string, candidat
 		out = append(out, &r)
 	}
 	return out, nil
+}
+
+// ShardWait says how WaitShards waits.
+type ShardWait struct {
+	// Timeout is how long to wait for a complete set in all.
+	Timeout time.Duration
+	// Poll is the pause between two listings (default 10 s).
+	Poll time.Duration
+	// Progress, when set, hears each listing's count: have of n shards
+	// (n 0 while none is stored).
+	Progress func(have, of int)
+}
+
+// WaitShards waits until the shard results stored for these inputs (as
+// FindShards matches them) make a complete set — every shard 1..N of one
+// N — listing the candidate's referrers every w.Poll, and reading no
+// shard's content. It returns nil once the set is complete, and an
+// errkind.BadInput error naming the missing shards when w.Timeout passes
+// first (missing input, not a failed gate).
+func WaitShards(ctx context.Context, store registry.Store, repo string, candidate v1.Hash, target, baseline, holdout, pol string, w ShardWait) error {
+	poll := w.Poll
+	if poll <= 0 {
+		poll = 10 * time.Second
+	}
+	deadline := time.NewTimer(w.Timeout)
+	defer deadline.Stop()
+	for {
+		refs, err := store.Referrers(ctx, repo, candidate, artifact.ArtifactType("report"))
+		if err != nil {
+			return err
+		}
+		have := map[int]bool{}
+		of := 0
+		for _, d := range refs {
+			a := d.Annotations
+			if a[AnnotationReportType] != "gate-shard" || a[AnnotationTarget] != target || a[AnnotationPolicy] != pol ||
+				a[AnnotationHoldout] != holdout || a[AnnotationBaseline] != baseline {
+				continue
+			}
+			var i, n int
+			if _, err := fmt.Sscanf(a[AnnotationShard], "%d/%d", &i, &n); err != nil || i < 1 || i > n {
+				continue
+			}
+			if of == 0 {
+				of = n
+			}
+			if n == of {
+				have[i] = true
+			}
+		}
+		if w.Progress != nil {
+			w.Progress(len(have), of)
+		}
+		if of > 0 && len(have) == of {
+			return nil
+		}
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-deadline.C:
+			var missing []string
+			for i := 1; i <= of; i++ {
+				if !have[i] {
+					missing = append(missing, fmt.Sprintf("%d/%d", i, of))
+				}
+			}
+			if of == 0 {
+				return errkind.New(errkind.BadInput, "no shard result was stored within %s", w.Timeout)
+			}
+			return errkind.New(errkind.BadInput, "shard results still missing after %s: %v", w.Timeout, missing)
+		case <-time.After(poll):
+		}
+	}
 }
