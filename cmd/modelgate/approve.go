@@ -23,7 +23,7 @@ func (o *approveOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.To, "to", "", "target tag NAME:TAG (required)")
 	f.StringVar(&o.Policy, "policy", "", "policy file with a rule for the target (required)")
-	f.StringVar(&o.Key, "key", "", "your private key file, from keygen (required)")
+	f.StringVar(&o.Key, "key", "", "your private key, from keygen (required): env:VAR (PEM text in $VAR), file:PATH, PATH, or - (standard input)")
 	f.StringVar(&o.Comment, "comment", "", "free text stored in the approval")
 }
 
@@ -79,10 +79,11 @@ func runApprove(ctx context.Context, g *globals, o *approveOptions, candStr stri
 	if o.To == "" || o.Policy == "" || o.Key == "" {
 		return usageErr("approve needs --to NAME:TAG, --policy FILE and --key FILE")
 	}
-	key, err := release.LoadKey(o.Key)
+	key, err := release.LoadKeyFrom(o.Key, g.Stdin)
 	if err != nil {
 		return err
 	}
+	warnKeyForm(g, o.Key, key)
 	pol, err := policy.Load(o.Policy)
 	if err != nil {
 		return err
@@ -109,6 +110,7 @@ func runApprove(ctx context.Context, g *globals, o *approveOptions, candStr stri
 			listed = true
 		}
 	}
+	key.NameFrom(trusted) // the approver's name is the policy's for that key
 	rep, err := release.ApproveCheck(ctx, store, cand.Digest, target, pol)
 	if err != nil {
 		return err

@@ -454,6 +454,8 @@ rules:
 		{name: "approve: key not PEM", args: []string{"approve", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", policy, "--key", garbageKey}, code: 2, want: []string{"garbage.key.pem", "PEM"}},
 		{name: "promote: public key instead of private", args: []string{"promote", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", policy, "--key", pub("ci")}, code: 2, want: []string{"ci.pub.pem", "public key"}},
 		{name: "gate: sign key is a public key", args: gateArgs("--sign-key", pub("ci")), code: 2, want: []string{"ci.pub.pem", "public key"}},
+		{name: "approve: key variable unset", args: []string{"approve", "tiny-scorer:v1", "--to", "tiny-scorer:prod", "--policy", policy, "--key", "env:MODELGATE_TEST_NO_SUCH_KEY"}, code: 2, want: []string{"MODELGATE_TEST_NO_SUCH_KEY", "not set"}},
+		{name: "gate: sign key on empty standard input", args: gateArgs("--sign-key", "-"), code: 2, want: []string{"standard input"}},
 		{name: "rollback: key file missing", args: []string{"rollback", "tiny-scorer:prod", "--reason", "x", "--key", filepath.Join(dir, "nokey.pem")}, code: 2, want: []string{"nokey.pem"}},
 		{name: "keygen over an existing key", args: []string{"keygen", "--out", filepath.Join(dir, "ana")}, code: 2, want: []string{"ana.key.pem", "exists"}, files: []string{key("ana"), pub("ana")}},
 		{name: "keygen over an existing public key only", args: []string{"keygen", "--out", filepath.Join(dir, "solo")}, code: 2, want: []string{"solo.pub.pem", "exists"}, files: []string{filepath.Join(dir, "solo.pub.pem"), filepath.Join(dir, "solo.key.pem")}},

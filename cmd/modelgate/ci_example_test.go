@@ -29,6 +29,13 @@ func TestCIExample(t *testing.T) {
 	store, work := filepath.Join(dir, "store"), filepath.Join(dir, "work")
 	mustMG(t, store, "demo", "--work", work)
 	models := filepath.Join(work, "models")
+	// CI's signing key goes to the script as the PEM text in an environment
+	// variable (MODELGATE_CI_KEY), as a CI secret store exposes it: the
+	// script writes no key file, modelgate reads it with --sign-key env:….
+	ciKey, err := os.ReadFile(filepath.Join(work, "keys", "ci.key.pem"))
+	if err != nil {
+		t.Fatal(err)
+	}
 	for _, c := range []struct {
 		name, model, policy string
 		code                int
@@ -46,7 +53,7 @@ func TestCIExample(t *testing.T) {
 			cmd := exec.Command(bash, filepath.Join("..", "..", "examples", "ci", "gate.sh"))
 			cmd.Env = append(os.Environ(), "MODELGATE="+mgBinary, "MODELGATE_STORE="+store, "CANDIDATE_DIR="+src,
 				"CANDIDATE=promo-scorer:ci-"+c.name, "TARGET=promo-scorer:prod", "POLICY="+c.policy,
-				"SIGN_KEY_FILE="+filepath.Join(work, "keys", "ci.key.pem"), "OUT="+out)
+				"MODELGATE_CI_KEY="+string(ciKey), "OUT="+out)
 			var so, se bytes.Buffer
 			cmd.Stdout, cmd.Stderr = &so, &se
 			err := cmd.Run()
@@ -89,6 +96,27 @@ func TestCIExample(t *testing.T) {
 				}
 				if page, err := os.ReadFile(filepath.Join(out, "report.html")); err != nil || !bytes.Contains(page, []byte("<svg")) {
 					t.Errorf("the HTML report was not kept (%v)", err)
+				}
+				if c.code == 0 {
+					// The report was signed with the key from the environment: an
+					// approver's approve checks it against the policy's report
+					// signer "ci". The approver's key comes on standard input.
+					ana, err := os.ReadFile(filepath.Join(work, "keys", "ana.key.pem"))
+					if err != nil {
+						t.Fatal(err)
+					}
+					cmd := exec.Command(mgBinary, "--store", store, "approve", "--json", "promo-scorer@"+push["digest"].(string),
+						"--to", "promo-scorer:prod", "--policy", c.policy, "--key", "-")
+					cmd.Stdin = bytes.NewReader(ana)
+					var ao, ae bytes.Buffer
+					cmd.Stdout, cmd.Stderr = &ao, &ae
+					if err := cmd.Run(); err != nil {
+						t.Fatalf("approve of the CI-signed report, key on stdin: %v\n%s%s", err, ao.String(), ae.String())
+					}
+					var ap map[string]any
+					if err := json.Unmarshal(ao.Bytes(), &ap); err != nil || ap["approver"] != "ana" || ap["trusted"] != true || ap["gateReport"] != gate["reportDigest"] {
+						t.Errorf("approve --json: %v %v; want ana, trusted, the report %v", ap, err, gate["reportDigest"])
+					}
 				}
 			default:
 				e, _ := gate["error"].(map[string]any)

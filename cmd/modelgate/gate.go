@@ -47,7 +47,7 @@ func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 	f.DurationVar(&o.Wait, "wait", 0, "with --merge: wait up to this long (e.g. 2h) for every shard result to be stored, checking every 10 s; still missing then: exit 2")
 	f.BoolVar(&o.Merge, "merge", false, "run the gate from the stored shard results (of --shard runs with the same inputs) instead of scoring the holdout here")
 	f.StringArrayVar(&o.With, "with", nil, "CANDIDATE=NAME:TAG: gate in the world after a release that also moves this tag (repeatable): a scorer's freeze check then reads the encoder that tag will point at")
-	f.StringVar(&o.SignKey, "sign-key", "", "sign the stored report with this private key (a CI key a policy lists under reportSigners)")
+	f.StringVar(&o.SignKey, "sign-key", "", "sign the stored report with this private key (a CI key a policy lists under reportSigners): env:VAR (PEM text in $VAR), file:PATH, PATH, or - (standard input)")
 }
 
 func newGateCmd(g *globals) *cobra.Command {
@@ -100,15 +100,16 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 		return usageErr("--to %q: want NAME:TAG", o.To)
 	}
 	var signer checks.ReportSigner
+	var signKey *release.Key
 	if o.SignKey != "" {
 		if o.NoPush {
 			return usageErr("--sign-key signs the stored report: it cannot go with --no-push")
 		}
-		k, err := release.LoadKey(o.SignKey)
-		if err != nil {
+		if signKey, err = release.LoadKeyFrom(o.SignKey, g.Stdin); err != nil {
 			return err
 		}
-		signer = release.ReportSigner(k)
+		warnKeyForm(g, o.SignKey, signKey)
+		signer = release.ReportSigner(signKey)
 	}
 	var polOpts []policy.LoadOption
 	if o.ShardIx != "" {
@@ -139,6 +140,12 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 	rule, err := pol.Rule(target.String())
 	if err != nil {
 		return err
+	}
+	if signKey != nil {
+		// The signer's name is the policy's for that key.
+		if ts, err := release.TrustedKeys(rule.Approvals.ReportSigners); err == nil {
+			signKey.NameFrom(ts)
+		}
 	}
 	store, err := g.openStore()
 	if err != nil {

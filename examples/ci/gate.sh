@@ -11,7 +11,11 @@
 #   CANDIDATE        NAME:TAG to push it as (e.g. promo-scorer:build-1234)
 #   TARGET           the tag it asks to go to (e.g. promo-scorer:prod)
 #   POLICY           the policy file
-#   SIGN_KEY_FILE    CI's report-signing private key (a file the CI secret store mounts)
+#   MODELGATE_CI_KEY CI's report-signing private key, the PEM text itself (a
+#                    CI secret exposed as an environment variable: nothing is
+#                    written to disk)
+#   SIGN_KEY         where that key is instead (default env:MODELGATE_CI_KEY):
+#                    env:VAR, file:PATH (a file the secret store mounts)
 #   OUT              where to keep push.json, gate.json, report.html (default: ./modelgate-out)
 #
 # Exit: 0 gate passed; 1 gate failed (report kept); the gate's own code
@@ -20,12 +24,20 @@
 set -u
 mg=${MODELGATE:-modelgate}
 out=${OUT:-modelgate-out}
-for v in MODELGATE_STORE CANDIDATE_DIR CANDIDATE TARGET POLICY SIGN_KEY_FILE; do
+sign_key=${SIGN_KEY:-env:MODELGATE_CI_KEY}
+for v in MODELGATE_STORE CANDIDATE_DIR CANDIDATE TARGET POLICY; do
   if [[ -z "${!v:-}" ]]; then
     echo "ci: $v is not set" >&2
     exit 2
   fi
 done
+if [[ $sign_key == env:* ]]; then
+  var=${sign_key#env:}
+  if [[ -z "${!var:-}" ]]; then
+    echo "ci: $var is not set (CI's signing key, or set SIGN_KEY=file:PATH)" >&2
+    exit 2
+  fi
+fi
 mkdir -p "$out"
 
 # 1. Push. The digest pins the candidate: the gate, the report and any later
@@ -45,9 +57,10 @@ fi
 name=${CANDIDATE%%:*}
 echo "ci: pushed $CANDIDATE as $name@$digest"
 
-# 2. Gate, signing the report with CI's key, keeping the HTML page.
+# 2. Gate, signing the report with CI's key (read from the environment by
+# modelgate itself), keeping the HTML page.
 "$mg" gate --json "$name@$digest" --to "$TARGET" --policy "$POLICY" \
-  --sign-key "$SIGN_KEY_FILE" --html "$out/report.html" >"$out/gate.json" 2>"$out/gate.log"
+  --sign-key "$sign_key" --html "$out/report.html" >"$out/gate.json" 2>"$out/gate.log"
 code=$?
 
 # 3. Act on the exit code.

@@ -73,12 +73,26 @@ func buildKeys(policyName, at, role string, ws []wireKey, probs *Problems, o loa
 	return out
 }
 
-// readKeyFile reads a key file named relative to the policy file's
-// directory.
+// readKeyFile reads the key a keyFile names: env:VAR (the PEM text in
+// environment variable VAR), file:PATH or PATH (a file, relative to the
+// policy file's directory).
 func readKeyFile(policyName, keyFile string) ([]byte, error) {
-	p := keyFile
+	if name, ok := strings.CutPrefix(keyFile, "env:"); ok {
+		v := os.Getenv(name)
+		if name == "" || strings.TrimSpace(v) == "" {
+			return nil, fmt.Errorf("reading key: environment variable %q is not set or empty", name)
+		}
+		if len(v) > maxKeyFileBytes {
+			return nil, fmt.Errorf("reading key: environment variable %s holds more than %d bytes", name, maxKeyFileBytes)
+		}
+		return []byte(v), nil
+	}
+	if keyFile == "-" {
+		return nil, errors.New("a policy cannot read a key from standard input: put the key inline (publicKey), in a file or in env:VAR")
+	}
+	p := strings.TrimPrefix(keyFile, "file:")
 	if !filepath.IsAbs(p) {
-		p = filepath.Join(filepath.Dir(policyName), filepath.FromSlash(keyFile))
+		p = filepath.Join(filepath.Dir(policyName), filepath.FromSlash(p))
 	}
 	if err := regularFile(p); err != nil {
 		return nil, fmt.Errorf("reading key file: %w", err)

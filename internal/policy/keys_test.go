@@ -180,3 +180,32 @@ func TestSkipKeyFiles(t *testing.T) {
 		t.Error("a broken inline key passed with SkipKeyFiles")
 	}
 }
+
+// TestKeyFileSources: keyFile takes env:VAR and file:PATH too; "-" is
+// refused with a message saying what to do instead.
+func TestKeyFileSources(t *testing.T) {
+	dir := t.TempDir()
+	want, pemText := testKey(t, 5)
+	writeFile(t, dir, "keys/ana.pem", pemText)
+	t.Setenv("MODELGATE_TEST_ANA_PUB", pemText)
+	for _, kf := range []string{"env:MODELGATE_TEST_ANA_PUB", "file:keys/ana.pem", "keys/ana.pem"} {
+		doc := minimalScorer + "    approvals:\n      required: 1\n      approvers: [{name: ana, keyFile: \"" + kf + "\"}]\n"
+		p, err := Parse(filepath.Join(dir, "p.yaml"), []byte(doc))
+		if err != nil {
+			t.Errorf("keyFile %s: %v", kf, err)
+			continue
+		}
+		if got := p.Rules[0].Approvals.Approvers[0].PublicKey; !got.Equal(want) {
+			t.Errorf("keyFile %s: wrong key", kf)
+		}
+	}
+	for kf, msg := range map[string]string{
+		"env:MODELGATE_TEST_UNSET_PUB": "not set or empty",
+		"-":                            "cannot read a key from standard input",
+	} {
+		doc := minimalScorer + "    approvals:\n      required: 1\n      approvers: [{name: ana, keyFile: \"" + kf + "\"}]\n"
+		if _, err := Parse(filepath.Join(dir, "p.yaml"), []byte(doc)); err == nil || !strings.Contains(err.Error(), msg) {
+			t.Errorf("keyFile %s: %v, want %q", kf, err, msg)
+		}
+	}
+}

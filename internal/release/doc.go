@@ -5,8 +5,11 @@
 // # Keys
 //
 // Keys are ed25519. A private key is stored as a PKCS#8 PEM file (mode
-// 0600), a public key as a PKIX PEM file; both may carry the holder's name
-// on a "modelgate-key-name:" line before the PEM block. A key's id is the
+// 0600), a public key as a PKIX (SPKI) PEM file: standard PEM, nothing
+// before or after the block. The holder's name is the policy's; files of
+// the deprecated form with a "modelgate-key-name:" line before the block
+// are still read. A key is read from env:VAR, file:PATH, a path or "-"
+// (standard input): ReadKeySource. A key's id is the
 // first 16 hex digits of the sha256 of its public key's PKIX DER encoding
 // (KeyID); trust decisions always use the public key itself, the id only
 // names it.
