@@ -72,6 +72,10 @@ func TestCIWorkflowFile(t *testing.T) {
 					t.Errorf("the gate.sh step does not set %s (gate.sh exits 2 without it)", v)
 				}
 			}
+			// The signing key: gate.sh reads SIGN_KEY, by default env:MODELGATE_CI_KEY.
+			if _, ok := s.Env["MODELGATE_CI_KEY"]; !ok && s.Env["SIGN_KEY"] == "" && job.Env["SIGN_KEY"] == "" {
+				t.Errorf("the gate.sh step passes no signing key (MODELGATE_CI_KEY or SIGN_KEY)")
+			}
 		case strings.Contains(s.Run, "modelgate push out/encoder"):
 			at["encoder"] = i
 		case strings.Contains(s.Run, "modelgate policy check"):
