@@ -166,6 +166,10 @@ func runShow(ctx context.Context, g *globals, refStr string) error {
 	} else {
 		printDescription(g, d)
 	}
+	if d.EncoderMissing != nil && len(d.Problems) == 1 {
+		// Nothing is damaged: the encoder the scorer needs is not there.
+		return errkind.Wrap(errkind.BadInput, fmt.Errorf("%s: %w", ref, d.EncoderMissing))
+	}
 	if len(d.Problems) > 0 {
 		return errkind.New(errkind.Integrity, "%s has %d problem(s); run `modelgate verify`", ref, len(d.Problems))
 	}

@@ -52,6 +52,9 @@ type Description struct {
 	Tags         []string             `json:"tags"`
 	Probes       int                  `json:"probes"`
 	Problems     []string             `json:"problems,omitempty"`
+	// EncoderMissing is why a scorer's encoder is not in the store, when
+	// it is not (also one of Problems).
+	EncoderMissing error `json:"-"`
 	// Subject is the digest of the artifact this one is about (reports,
 	// approvals and records name the model or record they concern).
 	Subject string `json:"subject,omitempty"`
@@ -141,7 +144,7 @@ func Describe(ctx context.Context, store registry.Store, ref registry.Ref) (*Des
 	}
 	d := &Description{
 		Ref: ref.String(), Digest: a.Desc.Digest.String(), Kind: a.Kind(), ArtifactType: a.Manifest.ArtifactType,
-		Annotations: a.Manifest.Annotations, Problems: l.Problems, Probes: len(l.Probes),
+		Annotations: a.Manifest.Annotations, Problems: l.Problems, Probes: len(l.Probes), EncoderMissing: l.EncoderMissing,
 	}
 	d.Blobs = append(d.Blobs, BlobRow{Title: "(config) spec.json", MediaType: string(a.Manifest.Config.MediaType), Digest: a.Manifest.Config.Digest.String(), Size: a.Manifest.Config.Size})
 	d.TotalSize = a.Desc.Size + a.Manifest.Config.Size

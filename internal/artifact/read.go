@@ -330,6 +330,16 @@ type Loaded struct {
 	Encoder *Loaded
 	// Problems lists what does not match the spec (empty when sound).
 	Problems []string
+	// EncoderMissing, when set, is why the encoder a scorer references is
+	// not in the store (also one of Problems): missing input, not damage
+	// of the scorer's own bytes.
+	EncoderMissing error
+}
+
+// OnlyEncoderMissing reports whether the encoder's absence is l's only
+// problem.
+func (l *Loaded) OnlyEncoderMissing() bool {
+	return l.EncoderMissing != nil && len(l.Problems) == 1
 }
 
 // Load reads a model artifact and decodes every blob, checking tensors
@@ -384,6 +394,7 @@ func Load(ctx context.Context, store registry.Store, ref registry.Ref) (*Loaded,
 		}
 		if err != nil {
 			l.Problems = append(l.Problems, err.Error())
+			l.EncoderMissing = err
 		} else {
 			enc, err := Load(ctx, store, registry.Ref{Repository: loc.Repository, Digest: loc.Digest})
 			if err != nil {
@@ -516,6 +527,7 @@ func checkModel(ctx context.Context, store registry.Store, a *Artifact, deep boo
 			return nil, err
 		case err != nil:
 			l.Problems = append(l.Problems, err.Error())
+			l.EncoderMissing = err
 		case deep:
 			ea, err := ReadArtifact(ctx, store, registry.Ref{Repository: loc.Repository, Digest: loc.Digest})
 			if err != nil {

@@ -25,6 +25,10 @@ type Model struct {
 // Prepare compiles a loaded model (and the encoder a scorer references)
 // and parses its vocabulary. A model with content problems is refused.
 func Prepare(l *artifact.Loaded) (*Model, error) {
+	if l.OnlyEncoderMissing() {
+		// Nothing is damaged: an input the scorer needs is not there.
+		return nil, errkind.Wrap(errkind.BadInput, fmt.Errorf("%s@%s: %w", l.Artifact.Repository, l.Artifact.Desc.Digest, l.EncoderMissing))
+	}
 	if len(l.Problems) > 0 {
 		return nil, errkind.New(errkind.Integrity, "%s@%s is damaged:\n  %s", l.Artifact.Repository, l.Artifact.Desc.Digest,
 			strings.Join(l.Problems, "\n  "))
