@@ -3,10 +3,12 @@ package main
 import (
 	"context"
 	"fmt"
+	"strings"
 
 	"github.com/spf13/cobra"
 
 	"modelgate/internal/artifact"
+	"modelgate/internal/checks"
 	"modelgate/internal/policy"
 	"modelgate/internal/registry"
 	"modelgate/internal/release"
@@ -38,6 +40,9 @@ one bound to the tag's current target, the policy's holdout, the policy and
 this modelgate version). It refuses when there is no such report. The
 approval is a DSSE envelope around an in-toto statement, stored as an
 artifact whose subject is the candidate.
+
+It prints the verdict of the report it signs and every warning in it (the
+approval says you saw them).
 
 Exit codes: 0 stored; 1 the gate failed; 2 bad input; 3 the gate report is
 for another baseline (the tag moved: gate again); 4 no gate report.`,
@@ -119,6 +124,12 @@ func runApprove(ctx context.Context, g *globals, o *approveOptions, candStr stri
 	if err != nil {
 		return err
 	}
+	// What is being signed: the report's verdict and every warning in it.
+	full, err := checks.ReadReport(ctx, store, target.Repository, rd)
+	if err != nil {
+		return fmt.Errorf("reading the gate report %s: %w", rd, err)
+	}
+	warnings := reportWarnings(full)
 	desc, err := release.Approve(ctx, store, release.ApproveRequest{Candidate: cand.Digest, Target: target,
 		PolicyDigest: pol.Digest(), Report: rd, Key: key, Comment: o.Comment})
 	if err != nil {
@@ -129,8 +140,31 @@ func runApprove(ctx context.Context, g *globals, o *approveOptions, candStr stri
 	}
 	if g.JSON {
 		return g.printJSON(map[string]any{"approval": desc.Digest.String(), "candidate": cand.Digest.String(), "target": target.String(),
-			"gateReport": rep.Digest, "approver": key.Name, "keyId": key.ID, "trusted": listed})
+			"gateReport": rep.Digest, "approver": key.Name, "keyId": key.ID, "trusted": listed,
+			"verdict": full.Verdict, "warnings": warnings})
 	}
-	fmt.Fprintf(g.Stdout, "approved %s for %s by %s\napproval:    %s\ngate report: %s (%s)\n", shortDigest(cand.Digest.String()), target, key, desc.Digest, rep.Digest, rep.Created)
+	fmt.Fprintf(g.Stdout, "approved %s for %s by %s\napproval:    %s\ngate report: %s (%s)\nverdict:     %s, %d warning(s)\n",
+		shortDigest(cand.Digest.String()), target, key, desc.Digest, rep.Digest, rep.Created, strings.ToUpper(full.Verdict), len(warnings))
+	for _, w := range warnings {
+		fmt.Fprintf(g.Stdout, "  WARN %s\n", w)
+	}
 	return nil
+}
+
+// reportWarnings lists every WARN finding of rep as "CHECK (WHERE): MESSAGE".
+func reportWarnings(rep *checks.Report) []string {
+	warnings := []string{}
+	for _, c := range rep.Checks {
+		for _, f := range c.Findings {
+			if f.Status != checks.StatusWarn {
+				continue
+			}
+			if f.Where != "" {
+				warnings = append(warnings, c.Name+" ("+f.Where+"): "+f.Message)
+			} else {
+				warnings = append(warnings, c.Name+": "+f.Message)
+			}
+		}
+	}
+	return warnings
 }

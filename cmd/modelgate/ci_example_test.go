@@ -117,6 +117,26 @@ func TestCIExample(t *testing.T) {
 					if err := json.Unmarshal(ao.Bytes(), &ap); err != nil || ap["approver"] != "ana" || ap["trusted"] != true || ap["gateReport"] != gate["reportDigest"] {
 						t.Errorf("approve --json: %v %v; want ana, trusted, the report %v", ap, err, gate["reportDigest"])
 					}
+					if vs, err := schemas.Validate(schemas.Output("approve"), ao.Bytes()); err != nil || len(vs) > 0 {
+						t.Errorf("approve --json breaks its schema: %v %s", err, schemas.Join("  ", vs))
+					}
+					// approve shows what it signs: the report's verdict and each
+					// of its warnings, as the gate's own JSON lists them.
+					nWarn := 0
+					checksList, _ := rep["checks"].([]any)
+					for _, c := range checksList {
+						fs, _ := c.(map[string]any)["findings"].([]any)
+						for _, f := range fs {
+							if f.(map[string]any)["status"] == "WARN" {
+								nWarn++
+							}
+						}
+					}
+					ws, _ := ap["warnings"].([]any)
+					if ap["verdict"] != "pass" || len(ws) != nWarn {
+						t.Errorf("approve --json: verdict %v, %d warnings; the report says pass with %d", ap["verdict"], len(ws), nWarn)
+					}
+					t.Logf("approve: verdict %v, %d warning(s)", ap["verdict"], len(ws))
 				}
 			default:
 				e, _ := gate["error"].(map[string]any)
