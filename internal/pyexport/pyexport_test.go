@@ -186,6 +186,7 @@ type reference struct {
 	Ops             []string    `json:"ops"`
 	GatherBagMaxAbs *float64    `json:"gatherBagMaxAbs"`
 	StateDictMaxAbs *float64    `json:"stateDictMaxAbs"`
+	TorchRefusals   []*string   `json:"torchRefusals"`
 }
 
 // policy is a first-release policy for promo-scorer-FW:prod: the holdout
@@ -342,6 +343,11 @@ func TestJourney(t *testing.T) {
 				// The same modules read as state_dicts give the same model.
 				if ref.StateDictMaxAbs == nil || *ref.StateDictMaxAbs != 0 {
 					t.Fatalf("the scorer from state_dicts differs from the one from modules by %v", ref.StateDictMaxAbs)
+				}
+				// An EmbeddingBag that averages and a LayerNorm are refused by name.
+				if len(ref.TorchRefusals) != 2 || ref.TorchRefusals[0] == nil || !strings.Contains(*ref.TorchRefusals[0], `mode="sum"`) ||
+					ref.TorchRefusals[1] == nil || !strings.Contains(*ref.TorchRefusals[1], "LayerNorm") {
+					t.Fatalf("torch modules the runtime cannot compute: refusals %v", ref.TorchRefusals)
 				}
 			case "onnx":
 				if ref.Refused == nil || !strings.Contains(*ref.Refused, "promo_softmax") || !strings.Contains(*ref.Refused, "Softmax") {

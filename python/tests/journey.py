@@ -115,8 +115,17 @@ def run_torch(train, y, hold):
     sc_sd = mx.torch.scorer(head.state_dict(), enc_sd, "promo-scorer", activations=["relu", "sigmoid"],
                             encoder_name="listener-encoder-torch:v1", dense_inputs=dense)
     sd_diff = float(np.max(np.abs(sc_sd.reference(hold, "p") - sc.reference(hold, "p"))))
+    # What the runtime cannot compute is refused, naming the module.
+    refusals = []
+    for bad in (nn.Sequential(nn.EmbeddingBag(len(SHOWS), 4, mode="mean")),
+                nn.Sequential(nn.EmbeddingBag(len(SHOWS), 4, mode="sum"), nn.LayerNorm(4))):
+        try:
+            mx.torch.encoder(bad, SHOWS, "listener-encoder")
+            refusals.append(None)
+        except ValueError as e:
+            refusals.append(str(e))
     ref = {"code": code.double().numpy(), "p": p.double().numpy()}
-    return enc, sc, sc_state, ref, "PyTorch %s: the modules' forward pass (float32)" % torch.__version__, {"stateDictMaxAbs": sd_diff}
+    return enc, sc, sc_state, ref, "PyTorch %s: the modules' forward pass (float32)" % torch.__version__, {"stateDictMaxAbs": sd_diff, "torchRefusals": refusals}
 
 
 def run_sklearn(train, y, hold):
