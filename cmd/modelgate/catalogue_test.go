@@ -10,11 +10,14 @@ import (
 	"strings"
 	"syscall"
 	"testing"
+	"time"
 
 	"github.com/parquet-go/parquet-go"
 
 	"modelgate/internal/artifact"
+	mgpolicy "modelgate/internal/policy"
 	"modelgate/internal/registry"
+	"modelgate/internal/release"
 )
 
 // catCase is one malformed input of the bad-input catalogue: a command
@@ -367,6 +370,43 @@ rules:
 		t.Fatal(err)
 	}
 	promoteV2 := []string{"promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita")}
+	// A candidate approved by ben, and by ana with an approval dated two
+	// hours ahead (a clock set wrong, or a signed statement made by
+	// another tool): approve itself dates with the local clock, so it is
+	// made here through the library with that date.
+	w.push(3, "")
+	w.gate("tiny-encoder:v3")
+	w.approve("tiny-encoder:v3", "ben")
+	{
+		ctx := context.Background()
+		ls, err := registry.OpenLocal(w.store)
+		if err != nil {
+			t.Fatal(err)
+		}
+		key, err := release.LoadKey(w.key("ana"))
+		if err != nil {
+			t.Fatal(err)
+		}
+		pol, err := mgpolicy.Load(w.policy)
+		if err != nil {
+			t.Fatal(err)
+		}
+		target, _ := registry.ParseRef("tiny-encoder:prod", false)
+		cand, err := ls.Resolve(ctx, "tiny-encoder", "v3")
+		if err != nil {
+			t.Fatal(err)
+		}
+		rep, err := release.ApproveCheck(ctx, ls, cand.Digest, target, pol)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rd, _ := registry.ParseDigest(rep.Digest)
+		if _, err := release.Approve(ctx, ls, release.ApproveRequest{Candidate: cand.Digest, Target: target, PolicyDigest: pol.Digest(),
+			Report: rd, Key: key, Now: time.Now().Add(2 * time.Hour)}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	promoteV3 := []string{"promote", "tiny-encoder:v3", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita")}
 
 	cases := []catCase{
 		// Model directories (push): schemas, tensors, small files.
@@ -469,6 +509,8 @@ rules:
 			damage: editEnvelope(w.store, "tiny-encoder", approval.Approval), want: []string{strings.TrimPrefix(approval.Approval, "sha256:")[:12]}},
 		{name: "promote: gate report envelope edited", store: w.store, args: promoteV2, code: 5,
 			damage: editEnvelope(w.store, "tiny-encoder", gated.ReportDigest), want: []string{strings.TrimPrefix(gated.ReportDigest, "sha256:")[:12]}},
+
+		{name: "promote: an approval dated two hours ahead does not count", store: w.store, args: promoteV3, code: 4, want: []string{"by ana", "in the future", "1 of the 2 approvals"}},
 
 		// References on every command that takes one.
 		{name: "show: invalid repository name", args: []string{"show", "Tiny_Encoder:v1"}, code: 2, want: []string{"Tiny_Encoder"}},
