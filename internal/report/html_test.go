@@ -254,3 +254,42 @@ func TestHTMLFindingsFailuresFirst(t *testing.T) {
 		t.Errorf("findings not ordered FAIL, WARN, PASS: %d %d %d", fail, warn, pass)
 	}
 }
+
+// TestCalibrationCounts: the calibration plot says how many rows each bin
+// holds, one "n=" label per non-empty candidate bin.
+func TestCalibrationCounts(t *testing.T) {
+	rep := reporttest.Scorer()
+	html := renderHTML(t, rep)
+	var svg string
+	for _, s := range svgRE.FindAllString(html, -1) {
+		if strings.Contains(s, "Calibration") {
+			svg = s
+		}
+	}
+	if svg == "" {
+		t.Fatal("no calibration plot")
+	}
+	var h *checks.HoldoutDetail
+	for _, c := range rep.Checks {
+		if c.Holdout != nil {
+			h = c.Holdout
+		}
+	}
+	want := 0
+	for _, b := range h.CalibrationCandidate {
+		if b.Count > 0 {
+			want++
+			if l := ">n=" + countLabel(b.Count) + "<"; !strings.Contains(svg, l) {
+				t.Errorf("no label %q for the bin [%v, %v)", l, b.Lower, b.Upper)
+			}
+		}
+	}
+	if got := strings.Count(svg, ">n="); want == 0 || got != want {
+		t.Errorf("%d count labels, want %d (one per non-empty bin)", got, want)
+	}
+	for v, want := range map[float64]string{0: "0", 7.4: "7", 950: "950", 1234: "1.2k", 12345: "12k", 4.5e6: "4.5M"} {
+		if got := countLabel(v); got != want {
+			t.Errorf("countLabel(%v) = %q, want %q", v, got, want)
+		}
+	}
+}

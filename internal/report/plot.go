@@ -7,6 +7,7 @@ import (
 	"html/template"
 	"image/color"
 	"math"
+	"strconv"
 	"strings"
 
 	"gonum.org/v1/plot"
@@ -84,7 +85,10 @@ func render(p *plot.Plot, id, title, desc string, w, h vg.Length) (fig figure) {
 		}
 	}()
 	c := vgsvg.New(w, h)
-	p.Draw(draw.New(c))
+	// A right margin: the last x tick label is centred on the axis end, and
+	// a rotated slice name ends just right of its bar; without it they are
+	// cut off at the canvas edge.
+	p.Draw(draw.Crop(draw.New(c), 0, -vg.Points(24), 0, 0))
 	var buf bytes.Buffer
 	if _, err := c.WriteTo(&buf); err != nil {
 		fig.Err = err.Error()
@@ -153,7 +157,83 @@ func calibrationFigure(id string, h *checks.HoldoutDetail) (figure, bool) {
 		}
 		desc += " Solid line with circles: candidate."
 	}
+	// How many rows each bin holds, beside its point: a bin of a few rows
+	// says little. The candidate's bins, else the baseline's.
+	bins, whose := h.CalibrationCandidate, "candidate"
+	if len(cand) == 0 {
+		bins, whose = h.CalibrationBaseline, "baseline"
+	}
+	right, left := splitBins(bins, 0.75*top)
+	if labels := calibrationCounts(right, top); labels != nil {
+		labels.Offset = vg.Point{X: vg.Points(6), Y: -vg.Points(9)}
+		p.Add(labels)
+	}
+	if labels := calibrationCounts(left, top); labels != nil {
+		labels.Offset = vg.Point{X: -vg.Points(6), Y: vg.Points(9)}
+		for i := range labels.TextStyle {
+			labels.TextStyle[i].XAlign = draw.XRight
+		}
+		p.Add(labels)
+	}
+	if len(right)+len(left) > 0 {
+		desc += " Beside each " + whose + " point: the rows (weight) its bin holds."
+	}
 	return render(p, id, "Calibration (reliability diagram)", desc, plotW*0.8, plotW*0.66), true
+}
+
+// splitBins parts the bins whose mean prediction is below x from the
+// others (the last ones, near the plot's right edge).
+func splitBins(bins []checks.CalibrationBin, x float64) (below, above []checks.CalibrationBin) {
+	for _, b := range bins {
+		if b.Predicted < x {
+			below = append(below, b)
+		} else {
+			above = append(above, b)
+		}
+	}
+	return below, above
+}
+
+// calibrationCounts labels each non-empty bin's point with its row count
+// ("n=1.2k").
+func calibrationCounts(bins []checks.CalibrationBin, top float64) *plotter.Labels {
+	var xyl plotter.XYLabels
+	for _, b := range bins {
+		if b.Count > 0 && finite(b.Predicted, b.Observed, b.Count) {
+			xyl.XYs = append(xyl.XYs, plotter.XY{X: b.Predicted, Y: b.Observed})
+			xyl.Labels = append(xyl.Labels, "n="+countLabel(b.Count))
+		}
+	}
+	if len(xyl.XYs) == 0 {
+		return nil
+	}
+	l, err := plotter.NewLabels(xyl)
+	if err != nil {
+		return nil
+	}
+	for i := range l.TextStyle {
+		l.TextStyle[i].Font = font.From(plotFont, 7)
+		l.TextStyle[i].Color = colGuide
+		l.TextStyle[i].YAlign = draw.YCenter
+	}
+	// The curve climbs from bottom left to top right: text below and right
+	// of a point, or above and left of it near the right edge, stays off
+	// the line. One offset per plotter, so two groups.
+	_ = top
+	return l
+}
+
+// countLabel writes a row count short: 950, 12.3k, 4.5M.
+func countLabel(v float64) string {
+	switch {
+	case v >= 1e6:
+		return strconv.FormatFloat(v/1e6, 'f', 1, 64) + "M"
+	case v >= 1e4:
+		return strconv.FormatFloat(v/1e3, 'f', 0, 64) + "k"
+	case v >= 1e3:
+		return strconv.FormatFloat(v/1e3, 'f', 1, 64) + "k"
+	}
+	return strconv.FormatFloat(math.Round(v), 'f', 0, 64)
 }
 
 func calibrationPoints(bins []checks.CalibrationBin) plotter.XYs {
@@ -212,6 +292,7 @@ func lossDiffFigure(id string, h *checks.HoldoutDetail) (figure, bool) {
 	p.Legend.Left = false
 	p.Add(hp)
 	p.Legend.Add("rows per bin", hp)
+	legendLines := 1
 	p.Y.Min = 0
 	desc := "Histogram of the per-row " + what + " difference, candidate minus baseline; rows left of zero are scored better by the candidate."
 	vline := func(name string, x float64, c color.Color, dashes []vg.Length, width vg.Length) error {
@@ -222,6 +303,7 @@ func lossDiffFigure(id string, h *checks.HoldoutDetail) (figure, bool) {
 		l.Color, l.Dashes, l.Width = c, dashes, width
 		p.Add(l)
 		p.Legend.Add(name, l)
+		legendLines++
 		return nil
 	}
 	if err := vline("zero", 0, colGuide, []vg.Length{vg.Points(1), vg.Points(2)}, vg.Points(1)); err != nil {
@@ -236,6 +318,10 @@ func lossDiffFigure(id string, h *checks.HoldoutDetail) (figure, bool) {
 		}
 		desc += fmt.Sprintf(" Solid line: the mean difference %s; dashed line: the margin %s the candidate must stay below.", num(t.MeanDiff), num(t.Margin))
 	}
+	// Headroom above the tallest bar for the legend (top right), so it
+	// never sits on the bars: one legend line is about 12 of the plot's
+	// ~250 points of height.
+	p.Y.Max = top * (1.15 + 0.07*float64(legendLines))
 	return render(p, id, "Per-row "+what+" difference", desc, plotW, plotH), true
 }
 
