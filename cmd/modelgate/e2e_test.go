@@ -16,6 +16,7 @@ import (
 	"github.com/google/go-containerregistry/pkg/v1/validate"
 
 	"modelgate/internal/fixture"
+	"modelgate/internal/registry"
 )
 
 // mgBinary is the modelgate executable built once for the end-to-end tests.
@@ -28,6 +29,9 @@ func TestMain(m *testing.M) {
 		os.Exit(1)
 	}
 	mgBinary = filepath.Join(dir, "modelgate")
+	// The blob cache of every test run lives with the binary, never in
+	// the user's cache directory.
+	os.Setenv(registry.EnvCache, filepath.Join(dir, "cache"))
 	if runtime.GOOS == "windows" {
 		mgBinary += ".exe"
 	}

@@ -73,6 +73,13 @@ policy names: only the policy file need be there); --merge then runs the
 gate from the N stored shard results, and --wait DURATION makes it wait
 for them (the merge can start with the shards).
 
+On a registry or GCS store the holdout is read once per machine: blobs
+are kept, verified, in a local cache ($MODELGATE_CACHE, default
+$XDG_CACHE_HOME/modelgate; "off" disables it; bounded by
+$MODELGATE_CACHE_SIZE, default 4G). A shard fetches only the blocks of
+the holdout its rows are in, each checked against the holdout's block
+digests; the merge reads none of the holdout's data.
+
 Exit codes: 0 pass, 1 fail, 2 bad input (with --merge: shard results
 missing, or made for other inputs).`,
 		Args: exactArgs(1, "CANDIDATE"),

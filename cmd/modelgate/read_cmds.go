@@ -421,7 +421,7 @@ verified. Exits 5 when anything is damaged.`,
 }
 
 func runVerify(ctx context.Context, g *globals, names []string) error {
-	store, err := g.openStore()
+	store, err := g.openStoreDirect() // the store's own bytes, not the cache's
 	if err != nil {
 		return err
 	}

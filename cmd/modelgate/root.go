@@ -84,12 +84,43 @@ func (g *globals) storeLocation() (string, error) {
 	return defaultStoreDir()
 }
 
+// openStore opens the store; a registry or GCS store reads its blobs
+// through the local blob cache (registry.CacheFromEnv: MODELGATE_CACHE,
+// MODELGATE_CACHE_SIZE), a local directory needs none.
 func (g *globals) openStore() (registry.Store, error) {
 	loc, err := g.storeLocation()
 	if err != nil {
 		return nil, err
 	}
-	return openLocation(loc) // copy.go: local directory, registry or GCS
+	s, err := openLocation(loc) // copy.go: local directory, registry or GCS
+	if err != nil || isLocalLocation(loc) {
+		return s, err
+	}
+	return withCache(s)
+}
+
+// openStoreDirect opens the store without the blob cache: verify must
+// read the store's own bytes.
+func (g *globals) openStoreDirect() (registry.Store, error) {
+	loc, err := g.storeLocation()
+	if err != nil {
+		return nil, err
+	}
+	return openLocation(loc)
+}
+
+// withCache wraps a remote store with the local blob cache, unless it is
+// switched off; a cache directory that cannot be made leaves the store
+// uncached (the cache saves bytes, it is never needed).
+func withCache(s registry.Store) (registry.Store, error) {
+	c, err := registry.CacheFromEnv()
+	if errkind.Is(err, errkind.BadInput) {
+		return nil, err
+	}
+	if err != nil || c == nil {
+		return s, nil
+	}
+	return registry.NewCached(s, c), nil
 }
 
 // interactive reports whether progress may be drawn on stderr.

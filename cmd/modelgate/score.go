@@ -85,12 +85,12 @@ func runScore(ctx context.Context, g *globals, o *scoreOptions, refStr string) e
 	if err != nil {
 		return err
 	}
-	path, name, cleanup, err := holdoutPath(ctx, store, o.Holdout)
+	open, name, cleanup, err := holdoutSource(ctx, store, o.Holdout)
 	if err != nil {
 		return err
 	}
 	defer cleanup()
-	r, err := data.Open(path, m.ReadOptions(name, false))
+	r, err := open(m.ReadOptions(name, false))
 	if err != nil {
 		return err
 	}
@@ -152,19 +152,20 @@ func runScore(ctx context.Context, g *globals, o *scoreOptions, refStr string) e
 	return err
 }
 
-// holdoutPath resolves --holdout: an existing file is used as it is;
-// otherwise it must name a holdout artifact, fetched to a temporary file.
-func holdoutPath(ctx context.Context, store registry.Store, s string) (path, name string, cleanup func(), err error) {
+// holdoutSource resolves --holdout: an existing file is read as it is;
+// otherwise it must name a holdout artifact, read through the store (and
+// the local blob cache).
+func holdoutSource(ctx context.Context, store registry.Store, s string) (open func(data.Options) (data.Reader, error), name string, cleanup func(), err error) {
 	if st, err := os.Stat(s); err == nil && !st.IsDir() {
-		return s, s, func() {}, nil
+		return func(o data.Options) (data.Reader, error) { return data.Open(s, o) }, s, func() {}, nil
 	}
 	ref, err := registry.ParseRef(s, false)
 	if err != nil {
-		return "", "", nil, usageErr("--holdout %q is neither a file nor a holdout reference: %v", s, err)
+		return nil, "", nil, usageErr("--holdout %q is neither a file nor a holdout reference: %v", s, err)
 	}
 	h, err := artifact.FetchHoldout(ctx, store, ref)
 	if err != nil {
-		return "", "", nil, err
+		return nil, "", nil, err
 	}
-	return h.Path, ref.String(), h.Close, nil
+	return h.Open, ref.String(), h.Close, nil
 }

@@ -63,6 +63,11 @@ type HoldoutInfo struct {
 	// column: no row_id in two clusters). Holdouts pushed before the check
 	// existed lack it; the gate checks those itself.
 	RowIDsChecked bool `json:"rowIdsChecked,omitempty"`
+	// Blocks holds the sha256 of each block of the data blob, so that a
+	// reader of some row groups (a gate shard) fetches and verifies only
+	// those blocks. Absent in summaries written before it existed: those
+	// holdouts are read whole.
+	Blocks *registry.BlockDigests `json:"blocks,omitempty"`
 }
 
 // HoldoutQuantiles are the quantiles a holdout summary records of the
@@ -331,7 +336,8 @@ func stageHoldout(ctx context.Context, stager registry.BlobStager, repo, path, f
 	defer f.Close()
 	name := filepath.Base(path)
 	opts.emit(Event{Phase: "upload", Name: name, Total: st.Size()})
-	sb, err := stager.StageBlob(ctx, repo, st.Size(), &progressReader{r: f, opts: opts, name: name, total: st.Size()})
+	bh := registry.NewBlockHasher(st.Size())
+	sb, err := stager.StageBlob(ctx, repo, st.Size(), io.TeeReader(&progressReader{r: f, opts: opts, name: name, total: st.Size()}, bh))
 	if errors.Is(err, registry.ErrDigestMismatch) {
 		return nil, Blob{}, errkind.New(errkind.BadInput, "holdout %s changed while it was pushed (%v); push again once it is written", path, err)
 	}
@@ -347,6 +353,12 @@ func stageHoldout(ctx context.Context, stager registry.BlobStager, repo, path, f
 		sb.Discard()
 		return nil, Blob{}, err
 	}
+	// The stager wrote exactly the bytes the hasher saw (it refuses more
+	// or fewer than the size).
+	if info.Blocks = bh.Digests(); info.Blocks.Check(sb.Size()) != nil {
+		sb.Discard()
+		return nil, Blob{}, errkind.New(errkind.BadInput, "holdout %s changed while it was pushed; push again once it is written", path)
+	}
 	return info, Blob{Desc: v1.Descriptor{Size: sb.Size(), Digest: sb.Digest()}, Staged: sb}, nil
 }
 
@@ -361,10 +373,17 @@ func hashHoldout(ctx context.Context, store registry.Store, repo, path string, o
 		return nil, Blob{}, err
 	}
 	defer f.Close()
-	h := sha256.New()
-	size, err := io.Copy(h, f)
+	st, err := f.Stat()
+	if err != nil {
+		return nil, Blob{}, err
+	}
+	h, bh := sha256.New(), registry.NewBlockHasher(st.Size())
+	size, err := io.Copy(io.MultiWriter(h, bh), f)
 	if err != nil {
 		return nil, Blob{}, fmt.Errorf("hashing %s: %w", path, err)
+	}
+	if info.Blocks = bh.Digests(); info.Blocks.Check(size) != nil {
+		return nil, Blob{}, errkind.New(errkind.BadInput, "holdout %s changed while it was pushed; push again once it is written", path)
 	}
 	b := Blob{Desc: v1.Descriptor{Size: size, Digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(h.Sum(nil))}}}
 	if _, err := store.StatBlob(ctx, repo, b.Desc.Digest); err == nil {
@@ -382,24 +401,121 @@ func hashHoldout(ctx context.Context, store registry.Store, repo, path string, o
 	return info, b, nil
 }
 
-// Holdout is a holdout artifact fetched into a local file for reading.
+// Holdout is a holdout artifact: its summary, read and verified, and its
+// data blob, opened for reading when first needed (Open, Scan).
 type Holdout struct {
 	Artifact *Artifact
 	Info     HoldoutInfo
-	// Path is a verified local copy of the data blob.
-	Path    string
-	cleanup func()
+	// Format is the data's format (data.FormatParquet or data.FormatJSONL).
+	Format string
+	// Layer is the data blob's descriptor.
+	Layer v1.Descriptor
+
+	ctx   context.Context
+	store registry.Store
+	name  string
+	blob  *registry.BlobAt
+	file  *os.File // OpenHoldoutFile
+	size  int64
 }
 
-// Close removes the local copy.
+// Close releases the data blob's reader (and its temporary copy).
 func (h *Holdout) Close() {
-	if h.cleanup != nil {
-		h.cleanup()
+	if h.blob != nil {
+		h.blob.Close()
+		h.blob = nil
+	}
+	if h.file != nil {
+		h.file.Close()
+		h.file = nil
 	}
 }
 
-// FetchHoldout copies a holdout artifact's data blob into a temporary file
-// (verifying its digest while copying) so readers can seek in it.
+// Fetched counts the data blob's bytes read from the store so far (0 when
+// the local blob cache held it).
+func (h *Holdout) Fetched() int64 {
+	if h.blob == nil {
+		return 0
+	}
+	return h.blob.Fetched()
+}
+
+// Data opens the data for random access, once. A holdout artifact's blob
+// is opened with registry.OpenBlobAt: from the local blob cache, by
+// verified ranges when the summary records block digests and the store
+// serves ranges, else whole and verified.
+func (h *Holdout) Data() (io.ReaderAt, int64, error) {
+	if h.file != nil {
+		return h.file, h.size, nil
+	}
+	if h.blob != nil {
+		return h.blob, h.blob.Size(), nil
+	}
+	if h.store == nil {
+		return nil, 0, errkind.New(errkind.Internal, "holdout %s: closed", h.name)
+	}
+	b, err := registry.OpenBlobAt(h.ctx, h.store, h.Artifact.Repository, h.Layer.Digest, h.Layer.Size, h.Info.Blocks)
+	if err != nil {
+		return nil, 0, fmt.Errorf("fetching holdout %s: %w", h.name, err)
+	}
+	h.blob = b
+	return b, b.Size(), nil
+}
+
+// Fetch reads the whole data blob now (verified against its digest), for
+// a reader of every row that should learn of damage before it starts.
+func (h *Holdout) Fetch() error {
+	if _, _, err := h.Data(); err != nil {
+		return err
+	}
+	if h.blob != nil {
+		if err := h.blob.Whole(); err != nil {
+			return fmt.Errorf("fetching holdout %s: %w", h.name, err)
+		}
+	}
+	return nil
+}
+
+// Open reads the holdout's rows (data.OpenReader over Data).
+func (h *Holdout) Open(opts data.Options) (data.Reader, error) {
+	ra, size, err := h.Data()
+	if err != nil {
+		return nil, err
+	}
+	if opts.Name == "" {
+		opts.Name = h.name
+	}
+	return data.OpenReader(ra, size, h.Format, opts)
+}
+
+// Scan reads every row as ScanHoldout does (cluster names the cluster
+// column, "" for none).
+func (h *Holdout) Scan(cluster string) (*HoldoutInfo, error) {
+	ra, size, err := h.Data()
+	if err != nil {
+		return nil, err
+	}
+	return scanHoldoutAt(ra, size, h.name, h.Format, cluster, nil)
+}
+
+// OpenHoldoutFile is a Holdout read from a local file, with the summary
+// info (not checked against the file).
+func OpenHoldoutFile(path string, info HoldoutInfo) (*Holdout, error) {
+	format, err := data.FormatOf(path)
+	if err != nil {
+		return nil, err
+	}
+	f, st, err := openHoldout(path)
+	if err != nil {
+		return nil, err
+	}
+	return &Holdout{Info: info, Format: format, name: path, file: f, size: st.Size()}, nil
+}
+
+// FetchHoldout reads a holdout artifact's manifest and summary (both
+// verified by digest). The data blob is read only when Open or Scan need
+// it, and then only the parts they read when it can be (see Data); a
+// sharded gate's merge step reads none of it.
 func FetchHoldout(ctx context.Context, store registry.Store, ref registry.Ref) (*Holdout, error) {
 	a, err := ReadArtifact(ctx, store, ref)
 	if err != nil {
@@ -408,7 +524,7 @@ func FetchHoldout(ctx context.Context, store registry.Store, ref registry.Ref) (
 	if a.Kind() != "holdout" || len(a.Manifest.Layers) != 1 {
 		return nil, errkind.New(errkind.BadInput, "%s is a %q artifact, not a holdout", ref, a.Manifest.ArtifactType)
 	}
-	h := &Holdout{Artifact: a}
+	h := &Holdout{Artifact: a, ctx: ctx, store: store, name: ref.String()}
 	raw, err := ReadBlob(ctx, store, a.Repository, a.Manifest.Config, MaxHoldoutInfoSize)
 	if err != nil {
 		return nil, err
@@ -416,38 +532,15 @@ func FetchHoldout(ctx context.Context, store registry.Store, ref registry.Ref) (
 	if err := json.Unmarshal(raw, &h.Info); err != nil {
 		return nil, errkind.New(errkind.Integrity, "holdout %s: config is not valid: %v", ref, err)
 	}
-	layer := a.Manifest.Layers[0]
-	dir, err := os.MkdirTemp("", "modelgate-holdout-")
-	if err != nil {
-		return nil, err
+	h.Layer = a.Manifest.Layers[0]
+	h.Format = map[types.MediaType]string{MediaTypeHoldoutParquet: data.FormatParquet, MediaTypeHoldoutJSONL: data.FormatJSONL}[h.Layer.MediaType]
+	if h.Format == "" {
+		return nil, errkind.New(errkind.Integrity, "holdout %s: unknown data media type %q", ref, h.Layer.MediaType)
 	}
-	forget := fileio.RemoveOnExit(dir)
-	h.cleanup = func() { os.RemoveAll(dir); forget() }
-	ext := map[types.MediaType]string{MediaTypeHoldoutParquet: ".parquet", MediaTypeHoldoutJSONL: ".jsonl"}[layer.MediaType]
-	if ext == "" {
-		h.Close()
-		return nil, errkind.New(errkind.Integrity, "holdout %s: unknown data media type %q", ref, layer.MediaType)
-	}
-	h.Path = filepath.Join(dir, "holdout"+ext)
-	rc, err := store.Blob(ctx, a.Repository, layer.Digest)
-	if err != nil {
-		h.Close()
-		return nil, err
-	}
-	defer rc.Close()
-	out, err := os.Create(h.Path)
-	if err != nil {
-		h.Close()
-		return nil, err
-	}
-	if _, err := io.Copy(out, rc); err != nil {
-		out.Close()
-		h.Close()
-		return nil, fmt.Errorf("fetching holdout %s: %w", ref, err)
-	}
-	if err := out.Close(); err != nil {
-		h.Close()
-		return nil, err
+	if h.Info.Blocks != nil {
+		if err := h.Info.Blocks.Check(h.Layer.Size); err != nil {
+			return nil, errkind.New(errkind.Integrity, "holdout %s: summary: %v", ref, err)
+		}
 	}
 	return h, nil
 }

@@ -128,6 +128,10 @@ func verify(ctx context.Context, store registry.Store, repos []string, scrub boo
 					var info HoldoutInfo
 					if err := json.Unmarshal(raw, &info); err != nil {
 						rep.add(registry.SeverityDamage, where, "holdout summary %s is not valid: %v", m.Config.Digest, err)
+					} else if info.Blocks != nil && len(m.Layers) == 1 {
+						if err := info.Blocks.Check(m.Layers[0].Size); err != nil {
+							rep.add(registry.SeverityDamage, where, "holdout summary %s: %v", m.Config.Digest, err)
+						}
 					}
 				}
 			}

@@ -30,7 +30,7 @@ func demoRows(t *testing.T, store registry.Store) ([]data.HoldoutRow, data.Holdo
 		t.Fatal(err)
 	}
 	defer hold.Close()
-	r, err := data.Open(hold.Path, m.ReadOptions("demo holdout", true))
+	r, err := hold.Open(m.ReadOptions("demo holdout", true))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -225,14 +225,18 @@ func TestNeedUniqueRowIDs(t *testing.T) {
 	if err := os.WriteFile(path, []byte(line(1, "a")+line(2, "b")+line(1, "a")), 0o600); err != nil {
 		t.Fatal(err)
 	}
-	old := &artifact.Holdout{Path: path}
+	old, err := artifact.OpenHoldoutFile(path, artifact.HoldoutInfo{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer old.Close()
 	if err := needUniqueRowIDs(old, HoldoutConfig{}); !errkind.Is(err, errkind.BadInput) {
 		t.Errorf("old holdout with a repeated row_id: %v", err)
 	}
 	if err := needUniqueRowIDs(old, HoldoutConfig{ClusterColumn: "listener_id"}); err != nil {
 		t.Errorf("repeated within a cluster named by the policy: %v", err)
 	}
-	checked := &artifact.Holdout{Path: filepath.Join(t.TempDir(), "absent.jsonl"), Info: artifact.HoldoutInfo{RowIDsChecked: true}}
+	checked := &artifact.Holdout{Info: artifact.HoldoutInfo{RowIDsChecked: true}} // no data: reading it fails
 	if err := needUniqueRowIDs(checked, HoldoutConfig{}); err != nil {
 		t.Errorf("a holdout whose push checked its ids was read again: %v", err)
 	}

@@ -139,7 +139,7 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	open := func(m *score.Model) (data.Reader, error) {
 		opts := m.ReadOptions(hold.Artifact.Repository+"@"+hold.Artifact.Desc.Digest.String(), !encoder)
 		opts.ClusterColumn = clusterCol
-		return data.Open(hold.Path, opts)
+		return hold.Open(opts)
 	}
 	rc, err := open(cand)
 	if err != nil {
@@ -301,6 +301,31 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		w              []float32
 		rows           int64
 	)
+	// A shard skips the row groups before its first row unread (a ranged
+	// holdout blob then fetches none of their bytes).
+	if lo > 0 {
+		if sk, ok := rc.(data.Skipper); ok {
+			n, err := sk.SkipRows(lo)
+			if err != nil {
+				return nil, err
+			}
+			if rb != nil {
+				sb, ok := rb.(data.Skipper)
+				if !ok {
+					return nil, errkind.New(errkind.Internal, "holdout readers differ in kind")
+				}
+				if m, err := sb.SkipRows(n); err != nil {
+					return nil, fmt.Errorf("baseline's reading of the holdout: %w", err)
+				} else if m != n {
+					return nil, errkind.New(errkind.Internal, "holdout readers disagree: skipped %d and %d rows", n, m)
+				}
+			}
+			lo -= n
+			if hi >= 0 {
+				hi -= n
+			}
+		}
+	}
 	// Reading runs in its own goroutine, a few batches ahead of the
 	// forward pass and the statistics, which take the batches in file
 	// order: the numbers are those of a sequential run, bit for bit.

@@ -38,7 +38,7 @@ func needUniqueRowIDs(hold *artifact.Holdout, cfg HoldoutConfig) error {
 	if hold.Info.RowIDsChecked && (hold.Info.ClusterColumn == "" || hold.Info.ClusterColumn == col) {
 		return nil
 	}
-	_, err = artifact.ScanHoldout(hold.Path, col, nil)
+	_, err = hold.Scan(col)
 	return err
 }
 

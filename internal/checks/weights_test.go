@@ -126,7 +126,7 @@ func TestPlainLogLossMatchesSklearn(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		rd, err := data.Open(hold.Path, m.ReadOptions("holdout", true))
+		rd, err := hold.Open(m.ReadOptions("holdout", true))
 		if err != nil {
 			t.Fatal(err)
 		}

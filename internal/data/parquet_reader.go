@@ -153,6 +153,40 @@ func (p *parquetReader) Read(f *Frame, max int) (int, error) {
 	return n, nil
 }
 
+// SkipRows moves past up to n rows when they fill whole row groups,
+// without reading those row groups (a reader over a ranged blob then
+// fetches none of their bytes). It returns how many rows it skipped; the
+// caller reads the rest. Rows keep their numbers (RowIDs without a row_id
+// column, row numbers in errors).
+func (p *parquetReader) SkipRows(n int64) (int64, error) {
+	if p.err != nil {
+		return 0, p.err
+	}
+	if p.groupLeft != 0 || p.done {
+		return 0, nil
+	}
+	groups := p.file.RowGroups()
+	var skipped int64
+	for p.rowGroup < len(groups) && groups[p.rowGroup].NumRows() <= n-skipped {
+		if p.rowGroup > 0 {
+			// The row group read last must end where its rows end (a
+			// closed column, after the first skip, has nothing left).
+			for _, c := range p.cols {
+				if err := c.endChunk(); err != nil {
+					p.err = p.l.fileError("row group %d: %v", p.rowGroup, err)
+					return skipped, p.err
+				}
+				c.close()
+			}
+		}
+		rows := groups[p.rowGroup].NumRows()
+		skipped += rows
+		p.row += rows
+		p.rowGroup++
+	}
+	return skipped, nil
+}
+
 // collect reads every row, giving each bad row's error to sink until sink
 // returns false; it returns an error that stops reading.
 func (p *parquetReader) collect(sink func(error) bool) error {

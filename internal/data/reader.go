@@ -120,6 +120,14 @@ type Reader interface {
 	Close() error
 }
 
+// Skipper is a Reader that can move past rows without reading all of
+// them (the Parquet reader skips whole row groups).
+type Skipper interface {
+	// SkipRows skips up to n rows and returns how many it skipped; the
+	// caller reads the rest to reach row n.
+	SkipRows(n int64) (int64, error)
+}
+
 // RowError is a bad row in a holdout file.
 type RowError struct {
 	Name string // the file

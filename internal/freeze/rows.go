@@ -53,6 +53,7 @@ func (r *rowSets) close() {
 // from the store.
 type holdoutSource struct {
 	path, name string
+	hold       *artifact.Holdout // when it names a holdout artifact (then path is "")
 	rows       int
 	err        error
 	cleanup    func()
@@ -87,7 +88,7 @@ func openHoldout(ctx context.Context, store registry.Store, s string, n int) *ho
 	if err != nil {
 		return &holdoutSource{err: err}
 	}
-	return &holdoutSource{path: h.Path, name: ref.String() + " (" + h.Artifact.Desc.Digest.String() + ")", rows: n, cleanup: h.Close}
+	return &holdoutSource{hold: h, name: ref.String() + " (" + h.Artifact.Desc.Digest.String() + ")", rows: n, cleanup: h.Close}
 }
 
 func fileDigest(path string) (string, error) {
@@ -198,7 +199,14 @@ type sampled struct {
 // sampleHoldout draws hs.rows rows uniformly from the holdout (reservoir
 // sampling, Algorithm R, seeded with SampleSeed), in file order.
 func sampleHoldout(spec *model.Spec, vocab *data.Vocabulary, hs *holdoutSource) (*rowSet, error) {
-	r, err := data.Open(hs.path, data.Options{Spec: spec, Vocab: vocab, Name: hs.name})
+	opts := data.Options{Spec: spec, Vocab: vocab, Name: hs.name}
+	var r data.Reader
+	var err error
+	if hs.hold != nil {
+		r, err = hs.hold.Open(opts)
+	} else {
+		r, err = data.Open(hs.path, opts)
+	}
 	if err != nil {
 		return nil, err
 	}

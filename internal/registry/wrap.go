@@ -54,12 +54,22 @@ func transient(err error) error {
 	return fmt.Errorf("%w: %w", ErrTransient, err)
 }
 
+// wrapper is a store wrapping another one.
+type wrapper interface {
+	Store
+	// Unwrap returns the wrapped store: abilities compose does not carry
+	// are found along this chain (Ability).
+	Unwrap() Store
+	// self returns the wrapper itself (compose hides its other methods).
+	self() Store
+}
+
 // compose returns a Store made of base plus exactly the optional abilities
 // given non-nil, so that a type assertion on the result finds an ability
 // only when the wrapped store has it.
-func compose(base Store, sw TagSwapper, ml ManifestLister, sc Scrubber) Store {
+func compose(base wrapper, sw TagSwapper, ml ManifestLister, sc Scrubber) Store {
 	type (
-		s  = Store
+		s  = wrapper
 		w  = TagSwapper
 		m  = ManifestLister
 		sr = Scrubber

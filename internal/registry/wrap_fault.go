@@ -61,6 +61,10 @@ func NewFaulty(s Store, p FaultPlan) Store {
 	return compose(f, sw, ml, sc)
 }
 
+// Unwrap returns the wrapped store.
+func (f *faultyStore) Unwrap() Store { return f.s }
+func (f *faultyStore) self() Store   { return f }
+
 var errInjected = errors.New("injected fault")
 
 func (f *faultyStore) fail(op string) error {

@@ -128,6 +128,7 @@ func (r *retryStore) String() string { return r.s.String() }
 
 // Unwrap returns the wrapped store.
 func (r *retryStore) Unwrap() Store { return r.s }
+func (r *retryStore) self() Store   { return r }
 
 func (r *retryStore) Resolve(ctx context.Context, repo, tag string) (d v1.Descriptor, err error) {
 	err = r.do(ctx, "resolving "+repo+":"+tag, func() error { d, err = r.s.Resolve(ctx, repo, tag); return err }, nil)
