@@ -345,8 +345,30 @@ func TestCrashDuringPromote(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
 	}
+	crashPromote(t, newReleaseWorld(t, 0))
+}
+
+// TestCrashDuringReleaseOnDockerRegistry: the timed kills of promote and
+// rollback on docker-registry, when MODELGATE_TEST_REGISTRY names one (CI
+// starts it with .ci/services.sh); skipped without it.
+func TestCrashDuringReleaseOnDockerRegistry(t *testing.T) {
+	if testing.Short() {
+		t.Skip("crash suite skipped with -short")
+	}
+	for _, k := range everyStore(t, "timedcrash") {
+		if k.name != "docker-registry" {
+			continue
+		}
+		t.Run("promote", func(t *testing.T) { crashPromote(t, newReleaseWorldAt(t, 0, k.loc+"-promote")) })
+		t.Run("rollback", func(t *testing.T) { crashRollback(t, newReleaseWorldAt(t, 0, k.loc+"-rollback")) })
+		return
+	}
+	t.Skip("MODELGATE_TEST_REGISTRY is not set (.ci/services.sh starts docker-registry and sets it)")
+}
+
+// crashPromote kills promote at 20 points in the world w.
+func crashPromote(t *testing.T, w *releaseWorld) {
 	const runs = 20
-	w := newReleaseWorld(t, 0)
 	w.push(0, crashTarget)
 	var full time.Duration // the longer of two uninterrupted promotes
 	for n := 1; n <= 2; n++ {
@@ -379,8 +401,12 @@ func TestCrashDuringRollback(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
 	}
+	crashRollback(t, newReleaseWorld(t, 0))
+}
+
+// crashRollback kills rollback at 20 points in the world w.
+func crashRollback(t *testing.T, w *releaseWorld) {
 	const runs = 20
-	w := newReleaseWorld(t, 0)
 	released := []string{w.push(0, crashTarget)}
 	for i := 1; i <= 3; i++ {
 		released = append(released, w.push(i, ""))

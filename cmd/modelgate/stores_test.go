@@ -6,8 +6,10 @@ import (
 	"net/http/httptest"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/fsouza/fake-gcs-server/fakestorage"
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
@@ -52,7 +54,10 @@ func everyStore(t *testing.T, prefix string) []storeKind {
 	if addr := os.Getenv("MODELGATE_TEST_REGISTRY"); addr != "" {
 		t.Setenv("MODELGATE_REGISTRY_USER", os.Getenv("MODELGATE_TEST_REGISTRY_USER"))
 		t.Setenv("MODELGATE_REGISTRY_PASSWORD", os.Getenv("MODELGATE_TEST_REGISTRY_PASSWORD"))
-		kinds = append(kinds, storeKind{"docker-registry", "oci://" + addr + "/" + prefix, false})
+		// The registry outlives the test process: a prefix of its own per
+		// run keeps a rerun from finding an earlier run's tags.
+		run := strconv.FormatInt(time.Now().UnixNano(), 36)
+		kinds = append(kinds, storeKind{"docker-registry", "oci://" + addr + "/" + prefix + "-" + run, false})
 	} else if os.Getenv("CI") != "" && os.Getenv("MODELGATE_REQUIRE_SERVICES") == "1" {
 		t.Fatal("MODELGATE_TEST_REGISTRY is not set: .ci/services.sh should have started docker-registry")
 	}
