@@ -14,6 +14,7 @@ import (
 	"github.com/spf13/cobra"
 
 	"modelgate/internal/policy"
+	"modelgate/internal/registry"
 	"modelgate/internal/web"
 )
 
@@ -120,6 +121,14 @@ func runView(ctx context.Context, g *globals, o *viewOptions) error {
 	store, err := g.openStore()
 	if err != nil {
 		return err
+	}
+	if loc, _ := g.storeLocation(); !isLocalLocation(loc) {
+		// A remote store's manifests and small blobs are read once and
+		// kept in memory (content addressed: they cannot go stale), so a
+		// page seen again costs its tag lookups only. A blob damaged in
+		// the store after the view read it shows once the view restarts
+		// (verify always reads the store).
+		store = registry.NewMemo(store, 64<<20)
 	}
 	view, err := web.New(store, opts)
 	if err != nil {

@@ -307,3 +307,34 @@ func TestParseByteSize(t *testing.T) {
 		}
 	}
 }
+
+// TestMemo: a memo store reads a small blob once and serves it again from
+// memory, and keeps the wrapped store's abilities.
+func TestMemo(t *testing.T) {
+	ctx := context.Background()
+	reg := newCountingRegistry(t)
+	s := reg.open(t)
+	blob := randomBytes(10<<10, 5)
+	d := digestOf(blob)
+	if err := s.PutBlob(ctx, "r", d, int64(len(blob)), bytes.NewReader(blob)); err != nil {
+		t.Fatal(err)
+	}
+	m := registry.NewMemo(s, 1<<20)
+	for range 3 {
+		rc, err := m.Blob(ctx, "r", d)
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, err := io.ReadAll(rc)
+		rc.Close()
+		if err != nil || !bytes.Equal(b, blob) {
+			t.Fatalf("memo blob: %v", err)
+		}
+	}
+	if got := reg.blobOut.Load(); got != int64(len(blob)) {
+		t.Errorf("three reads through the memo fetched %d bytes, want %d (once)", got, len(blob))
+	}
+	if _, ok := m.(registry.TagSwapper); !ok {
+		t.Errorf("the memo store lost the registry's compare-and-swap ability")
+	}
+}

@@ -41,10 +41,39 @@ type repoTags struct {
 	Tags []tagRow
 }
 
+// repositories lists the store's repositories. A registry that does not
+// list them (no catalog) gives the repositories the policies name (their
+// target tags, holdouts and encoder tags), sorted, and listed false.
+func (s *Server) repositories(ctx context.Context) (repos []string, listed bool, err error) {
+	repos, err = s.store.Repositories(ctx)
+	if err == nil {
+		return repos, true, nil
+	}
+	if !errors.Is(err, registry.ErrNoCatalog) {
+		return nil, false, err
+	}
+	seen := map[string]bool{}
+	add := func(r *registry.Ref) {
+		if r != nil && r.Repository != "" && !seen[r.Repository] {
+			seen[r.Repository] = true
+			repos = append(repos, r.Repository)
+		}
+	}
+	for _, p := range s.opts.Policies {
+		for i := range p.Rules {
+			add(&p.Rules[i].Target)
+			add(p.Rules[i].HoldoutRef)
+			add(p.Rules[i].Freeze.EncoderTag)
+		}
+	}
+	sort.Strings(repos)
+	return repos, false, nil
+}
+
 // listTags reads every tag of every repository, leaving out the tags that
 // name release-log heads (they are shown as the log of their tag).
 func (s *Server) listTags(ctx context.Context) ([]repoTags, error) {
-	repos, err := s.store.Repositories(ctx)
+	repos, _, err := s.repositories(ctx)
 	if err != nil {
 		return nil, err
 	}
@@ -164,7 +193,7 @@ func newer(a, b reportRef) bool {
 // listing when the store has one, else through the referrers of every
 // tagged model.
 func (s *Server) scanReports(ctx context.Context) ([]reportRef, error) {
-	repos, err := s.store.Repositories(ctx)
+	repos, _, err := s.repositories(ctx)
 	if err != nil {
 		return nil, err
 	}
@@ -317,7 +346,7 @@ func (s *Server) specOf(ctx context.Context, a *artifact.Artifact) (*model.Spec,
 // locate finds the repository holding manifest d: repo first, then every
 // repository of the store. ok is false when none holds it.
 func (s *Server) locate(ctx context.Context, d v1.Hash, first string) (string, bool, error) {
-	repos, err := s.store.Repositories(ctx)
+	repos, _, err := s.repositories(ctx)
 	if err != nil {
 		return "", false, err
 	}

@@ -2,6 +2,7 @@ package web
 
 import (
 	"context"
+	"fmt"
 	"net/http"
 	"regexp"
 	"strings"
@@ -307,4 +308,33 @@ func resolveTag(t *testing.T, s *registry.Local, repo, tag string) string {
 		t.Fatal(err)
 	}
 	return d.Digest.String()
+}
+
+// noCatalog is the demo store seen through a registry that does not list
+// its repositories (its catalog endpoint off, as on many hosted ones).
+type noCatalog struct{ registry.Store }
+
+func (noCatalog) Repositories(context.Context) ([]string, error) {
+	return nil, fmt.Errorf("%w: catalog switched off", registry.ErrNoCatalog)
+}
+
+// TestServeWithoutCatalog: on a registry without a catalog the tag list
+// does not fail; it says why it cannot list everything and shows the
+// repositories the policies name, with their tags.
+func TestServeWithoutCatalog(t *testing.T) {
+	f := demoStore(t)
+	bare := mustGet(t, newServer(t, noCatalog{f.store}, Options{}), "/")
+	for _, want := range []string{"This registry does not list its repositories", "the policies name none"} {
+		if !strings.Contains(bare, want) {
+			t.Errorf("tag list without policies lacks %q", want)
+		}
+	}
+	s := newServer(t, noCatalog{f.store}, Options{})
+	s.opts.Policies = append(s.opts.Policies, f.policy)
+	home := mustGet(t, s, "/")
+	for _, want := range []string{"This registry does not list its repositories", `href="/tags/promo-scorer:prod"`, `<a href="/repositories/promo-scorer">promo-scorer</a>`} {
+		if !strings.Contains(home, want) {
+			t.Errorf("tag list with the policy lacks %q", want)
+		}
+	}
 }

@@ -54,10 +54,18 @@ func tagRef(raw string) (registry.Ref, error) {
 type tagsData struct {
 	Repos   []repoTags
 	Pending int
+	// Unlisted: the store does not list its repositories (a registry
+	// without a catalog); Named are those the policies name, shown instead.
+	Unlisted bool
+	Named    []string
 }
 
 func (s *Server) tagsPage(r *http.Request) (*view, error) {
 	ctx := r.Context()
+	named, listed, err := s.repositories(ctx)
+	if err != nil {
+		return nil, err
+	}
 	repos, err := s.listTags(ctx)
 	if err != nil {
 		return nil, err
@@ -70,7 +78,7 @@ func (s *Server) tagsPage(r *http.Request) (*view, error) {
 	if err != nil {
 		return nil, err
 	}
-	return &view{name: "tags", title: "Tags", section: "tags", data: tagsData{Repos: repos, Pending: len(pending)}}, nil
+	return &view{name: "tags", title: "Tags", section: "tags", data: tagsData{Repos: repos, Pending: len(pending), Unlisted: !listed, Named: named}}, nil
 }
 
 // ---- the candidate list ----

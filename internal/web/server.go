@@ -168,7 +168,9 @@ func (s *Server) page(fn func(*http.Request) (*view, error)) http.HandlerFunc {
 	return func(w http.ResponseWriter, r *http.Request) {
 		ctx, cancel := context.WithTimeout(r.Context(), requestTimeout)
 		defer cancel()
-		r = r.WithContext(ctx)
+		// One page asks a store made by registry.NewMemo each tag
+		// question once.
+		r = r.WithContext(registry.WithRequestMemo(ctx))
 		v, err := fn(r)
 		var rd *redirect
 		if errors.As(err, &rd) {
