@@ -85,6 +85,10 @@ type wireRule struct {
 	Holdout   *string       `json:"holdout"`
 	Checks    wireChecks    `json:"checks"`
 	Approvals wireApprovals `json:"approvals"`
+	Releasers struct {
+		Promote  []wireKey `json:"promote"`
+		Rollback []wireKey `json:"rollback"`
+	} `json:"releasers"`
 }
 
 type wireChecks struct {
@@ -399,6 +403,10 @@ func buildRule(name, at string, w *wireRule, probs *Problems, o loadOptions) Rul
 	}
 
 	r.Approvals = buildApprovals(name, at+"/approvals", &w.Approvals, probs, o)
+	r.Releasers = Releasers{
+		Promote:  buildKeys(name, at+"/releasers/promote", "promoter", w.Releasers.Promote, probs, o),
+		Rollback: buildKeys(name, at+"/releasers/rollback", "rollback signer", w.Releasers.Rollback, probs, o),
+	}
 	return r
 }
 

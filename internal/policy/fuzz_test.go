@@ -1,6 +1,7 @@
 package policy
 
 import (
+	"bytes"
 	"crypto/sha256"
 	"encoding/hex"
 	"os"
@@ -40,8 +41,16 @@ func FuzzParse(f *testing.F) {
 			return
 		}
 		sum := sha256.Sum256(raw)
-		if p.Digest() != "sha256:"+hex.EncodeToString(sum[:]) {
-			t.Fatalf("digest %s", p.Digest())
+		if p.FileDigest() != "sha256:"+hex.EncodeToString(sum[:]) {
+			t.Fatalf("file digest %s", p.FileDigest())
+		}
+		// The canonical form reads back to the same rules and digest.
+		c, err := Parse("canonical.json", p.Canonical())
+		if err != nil {
+			t.Fatalf("the canonical form does not parse: %v\n%s", err, p.Canonical())
+		}
+		if c.Digest() != p.Digest() || !bytes.Equal(c.Canonical(), p.Canonical()) {
+			t.Fatalf("the canonical form is not a fixed point:\n%s\n%s", p.Canonical(), c.Canonical())
 		}
 		if len(p.Rules) == 0 {
 			t.Fatal("a policy without rules")

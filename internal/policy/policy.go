@@ -6,9 +6,12 @@
 // schemas/policy.schema.json; Parse then applies the rules a schema cannot
 // express (references, duplicate targets, keys) and fills in every default
 // the schema documents, so a caller reads thresholds straight from the
-// structs. The file's exact bytes are the policy's identity: Digest is
-// their sha256, recorded in every gate report, approval and release
-// record.
+// structs. A policy's identity is its canonical form (Canonical): the
+// document as JSON with sorted keys, numbers written as RFC 8785 writes
+// them, and every keyFile replaced by the key it names, so that the form
+// is self-contained and its digest covers the keys. Digest is its sha256,
+// recorded in every gate report, approval and release record; the
+// canonical bytes are what a tag's release log binds (package release).
 package policy
 
 import (
@@ -57,12 +60,24 @@ type Policy struct {
 	// Rules are the policy's rules in file order, one per target tag.
 	Rules []Rule
 
-	digest string
+	digest     string
+	fileDigest string
+	canonical  []byte
 }
 
-// Digest returns "sha256:<64 hex>" of the exact bytes the policy was
-// parsed from: comments, spacing and key order all count.
+// Digest returns "sha256:<64 hex>" of the policy's canonical form:
+// comments, spacing, key order and whether a key is given inline or by
+// file do not count; every setting and every key does.
 func (p *Policy) Digest() string { return p.digest }
+
+// FileDigest returns "sha256:<64 hex>" of the exact bytes the policy was
+// parsed from: the identity modelgate recorded before policies were bound
+// to tags.
+func (p *Policy) FileDigest() string { return p.fileDigest }
+
+// Canonical returns a copy of the policy's canonical form: a JSON document
+// that Parse reads back to the same rules and the same Digest.
+func (p *Policy) Canonical() []byte { return append([]byte(nil), p.canonical...) }
 
 // Targets returns the policy's target tags (NAME:TAG) in file order.
 func (p *Policy) Targets() []string {
@@ -114,6 +129,17 @@ type Rule struct {
 	Budget    BudgetCheck
 	// Approvals is what promote demands besides a passing gate report.
 	Approvals Approvals
+	// Releasers are who may move the target.
+	Releasers Releasers
+}
+
+// Releasers are the keys that may sign a move of a target. An empty list
+// admits anyone, signed or not.
+type Releasers struct {
+	// Promote may sign promotions and changes of the tag's bound policy.
+	Promote []Key
+	// Rollback may sign rollbacks.
+	Rollback []Key
 }
 
 // Enabled reports whether the named check (CheckIntegrity … CheckBudget)
@@ -492,7 +518,15 @@ func Parse(name string, raw []byte, opts ...LoadOption) (*Policy, error) {
 	if err := probs.err(); err != nil {
 		return nil, err
 	}
+	canon, err := canonical(name, doc)
+	if err != nil {
+		probs.add("", "%v", err)
+		return nil, probs.err()
+	}
 	sum := sha256.Sum256(raw)
+	p.fileDigest = "sha256:" + hex.EncodeToString(sum[:])
+	sum = sha256.Sum256(canon)
 	p.digest = "sha256:" + hex.EncodeToString(sum[:])
+	p.canonical = canon
 	return p, nil
 }

@@ -1,6 +1,7 @@
 package policy
 
 import (
+	"bytes"
 	"crypto/sha256"
 	"encoding/hex"
 	"encoding/json"
@@ -594,8 +595,11 @@ func TestYAMLAndJSONAgree(t *testing.T) {
 	if d := cmp.Diff(y, j, opts, cmpopts.IgnoreUnexported(Policy{})); d != "" {
 		t.Errorf("YAML and JSON forms differ (-yaml +json):\n%s", d)
 	}
-	if y.Digest() == j.Digest() {
-		t.Error("different files share a digest")
+	if y.FileDigest() == j.FileDigest() {
+		t.Error("different files share a file digest")
+	}
+	if y.Digest() != j.Digest() {
+		t.Errorf("the YAML and JSON forms of one policy have different canonical digests:\n%s\n%s", y.Canonical(), j.Canonical())
 	}
 
 	// Spot checks against the text, so that agreeing on wrong values fails.
@@ -669,34 +673,99 @@ func TestDigest(t *testing.T) {
 	}
 	sum := sha256.Sum256(raw)
 	want := "sha256:" + hex.EncodeToString(sum[:])
-	if a.Digest() != want || b.Digest() != want {
-		t.Errorf("digests %s %s, want %s", a.Digest(), b.Digest(), want)
+	if a.FileDigest() != want || b.FileDigest() != want {
+		t.Errorf("file digests %s %s, want %s", a.FileDigest(), b.FileDigest(), want)
+	}
+	sum = sha256.Sum256(a.Canonical())
+	if a.Digest() != "sha256:"+hex.EncodeToString(sum[:]) || b.Digest() != a.Digest() {
+		t.Errorf("digests %s %s are not the sha256 of the canonical form", a.Digest(), b.Digest())
 	}
 	if _, err := registry.ParseDigest(a.Digest()); err != nil {
 		t.Errorf("digest is not an OCI digest: %v", err)
 	}
 
-	// A comment changes the bytes, hence the digest, not the rules.
+	// A comment changes the bytes, hence the file digest, not the rules
+	// nor the canonical digest; a changed setting changes both.
 	edited := append([]byte("# reviewed\n"), raw...)
 	c, err := Parse("a.yaml", edited)
 	if err != nil {
 		t.Fatal(err)
 	}
-	if c.Digest() == a.Digest() {
-		t.Error("an edited file kept its digest")
+	if c.FileDigest() == a.FileDigest() || c.Digest() != a.Digest() {
+		t.Errorf("a comment: file digest %s → %s, digest %s → %s", a.FileDigest(), c.FileDigest(), a.Digest(), c.Digest())
 	}
 	if d := cmp.Diff(a.Rules, c.Rules); d != "" {
 		t.Errorf("a comment changed the rules:\n%s", d)
 	}
+	if Diff(a, c) != nil {
+		t.Errorf("Diff of equal policies: %v", Diff(a, c))
+	}
+	stricter, err := Parse("a.yaml", bytes.Replace(raw, []byte("margin: 0.001"), []byte("margin: 0.0005"), 1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if stricter.Digest() == a.Digest() {
+		t.Error("a changed margin kept the canonical digest")
+	}
+	if d := cmp.Diff([]string{"/rules/0/checks/holdout/margin: 0.001 → 0.0005"}, Diff(a, stricter)); d != "" {
+		t.Errorf("Diff (-want +got):\n%s", d)
+	}
 
-	// Pinned: the minimal policy's digest, computed outside Go with
+	// Pinned: the minimal policy's file digest, computed outside Go with
 	// coreutils: printf %s "$minimalScorer" | sha256sum.
 	m, err := Parse("m.yaml", []byte(minimalScorer))
 	if err != nil {
 		t.Fatal(err)
 	}
-	if m.Digest() != pinnedMinimalDigest {
-		t.Errorf("minimal policy digest %s, want %s", m.Digest(), pinnedMinimalDigest)
+	if m.FileDigest() != pinnedMinimalDigest {
+		t.Errorf("minimal policy file digest %s, want %s", m.FileDigest(), pinnedMinimalDigest)
+	}
+	// Its canonical form, computed outside Go with Python 3 (PyYAML and
+	// the json module):
+	// json.dumps(yaml.safe_load(minimalScorer), sort_keys=True,
+	// separators=(",", ":"), ensure_ascii=False).
+	const wantCanonical = `{"name":"tiny","rules":[{"holdout":"promo-holdout:v1","kind":"scorer","target":"promo-scorer:prod"}],"schemaVersion":1}`
+	if string(m.Canonical()) != wantCanonical {
+		t.Errorf("canonical form\n%s\nwant\n%s", m.Canonical(), wantCanonical)
+	}
+}
+
+// TestCanonicalKeys checks that a key given by file and the same key
+// given inline make one canonical form, that the form holds the key
+// itself, and that replacing a key file's content changes the digest (the
+// file digest alone could not see it).
+func TestCanonicalKeys(t *testing.T) {
+	dir := t.TempDir()
+	_, anaPEM := testKey(t, 1)
+	_, boPEM := testKey(t, 2)
+	writeFile(t, dir, "keys/ana.pem", anaPEM)
+	byFile := minimalScorer + "    approvals:\n      approvers:\n        - name: ana\n          keyFile: keys/ana.pem\n"
+	inline := minimalScorer + "    approvals:\n      approvers:\n        - name: ana\n          publicKey: |\n            " + indent(anaPEM, 12) + "\n"
+	f, err := Load(writeFile(t, dir, "f.yaml", byFile))
+	if err != nil {
+		t.Fatal(err)
+	}
+	i, err := Load(writeFile(t, dir, "i.yaml", inline))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if f.Digest() != i.Digest() {
+		t.Errorf("by file and inline differ:\n%s\n%s", f.Canonical(), i.Canonical())
+	}
+	if bytes.Contains(f.Canonical(), []byte("keyFile")) || !bytes.Contains(f.Canonical(), []byte("PUBLIC KEY")) {
+		t.Errorf("canonical form does not hold the key itself: %s", f.Canonical())
+	}
+	writeFile(t, dir, "keys/ana.pem", boPEM)
+	g, err := Load(filepath.Join(dir, "f.yaml"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if g.FileDigest() != f.FileDigest() || g.Digest() == f.Digest() {
+		t.Errorf("a replaced key file: file digest %s → %s, digest %s → %s", f.FileDigest(), g.FileDigest(), f.Digest(), g.Digest())
+	}
+	d := Diff(f, g)
+	if len(d) != 1 || !strings.HasPrefix(d[0], "/rules/0/approvals/approvers/0/publicKey: key ") {
+		t.Errorf("Diff: %q", d)
 	}
 }
 
@@ -783,5 +852,33 @@ func TestRowWeight(t *testing.T) {
 	}
 	if got := (HoldoutCheck{WeightPower: 0}).RowWeight(4000, 10); got != 1 {
 		t.Errorf("power 0: %v", got)
+	}
+}
+
+// TestReleasers reads who may promote and roll back.
+func TestReleasers(t *testing.T) {
+	anaKey, anaPEM := testKey(t, 1)
+	doc := minimalScorer + "    releasers:\n      promote:\n        - name: rita\n          publicKey: |\n            " + indent(anaPEM, 12) +
+		"\n      rollback:\n        - name: oncall\n          publicKey: |\n            " + indent(anaPEM, 12) + "\n        - name: oncall2\n          publicKey: |\n            " + indent(anaPEM, 12) + "\n"
+	_, err := Parse("r.yaml", []byte(doc))
+	var probs *Problems
+	if !errors.As(err, &probs) || len(probs.List) != 1 || !strings.HasPrefix(probs.List[0], "/rules/0/releasers/rollback/1/publicKey: rollback signer \"oncall2\" has the same public key") {
+		t.Fatalf("a key listed twice: %v", err)
+	}
+	doc = doc[:strings.Index(doc, "        - name: oncall2")]
+	p, err := Parse("r.yaml", []byte(doc))
+	if err != nil {
+		t.Fatal(err)
+	}
+	r := p.Rules[0].Releasers
+	if len(r.Promote) != 1 || r.Promote[0].Name != "rita" || !r.Promote[0].PublicKey.Equal(anaKey) || len(r.Rollback) != 1 || r.Rollback[0].Name != "oncall" {
+		t.Errorf("releasers %+v", r)
+	}
+	m, err := Parse("m.yaml", []byte(minimalScorer))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if r := m.Rules[0].Releasers; r.Promote != nil || r.Rollback != nil {
+		t.Errorf("releasers of a policy that lists none: %+v", r)
 	}
 }
