@@ -133,6 +133,12 @@ type approvalContext struct {
 	// allowSelf says whether their own approval counts.
 	promoter  string
 	allowSelf bool
+	// promoterNames are the names the policy gives the promoter's key:
+	// an approval by a key the policy gives one of these names is theirs
+	// too.
+	promoterNames map[string]bool
+	// ended are approvals a rollback ended, with why.
+	ended map[string]string
 }
 
 // maxClockSkew is how far in the future an approval may be dated.
@@ -227,8 +233,11 @@ func checkApproval(ctx context.Context, store registry.Store, repo string, d v1.
 	case t.Sub(c.now) > maxClockSkew:
 		why = append(why, fmt.Sprintf("dated %s in the future", t.Sub(c.now).Round(time.Second)))
 	}
-	if len(verified) > 0 && !c.allowSelf && c.promoter != "" && verified[0].ID == c.promoter {
+	if len(verified) > 0 && !c.allowSelf && c.promoter != "" && (verified[0].ID == c.promoter || c.promoterNames[verified[0].Name]) {
 		why = append(why, "self-approval: the approver is the one promoting, and the policy forbids approving one's own promotion")
+	}
+	if e, ok := c.ended[d.String()]; ok {
+		why = append(why, e)
 	}
 	if len(why) > 0 {
 		ac.Why = strings.Join(why, "; ")

@@ -44,7 +44,10 @@ type PromoteRequest struct {
 	Candidate v1.Hash
 	// Target is the tag to move.
 	Target registry.Ref
-	// Policy is the parsed policy; Target must have a rule in it.
+	// Policy is a policy from a file; nil judges by the policy bound to
+	// Target. When Target has a bound policy, Policy must be that policy
+	// (else the promotion is refused, naming what differs); when Target has
+	// no release log, Policy is required and the promotion binds it.
 	Policy *policy.Policy
 	// Policies are further policies consulted for the coupling of encoders
 	// and scorers: their scorer rules whose freeze.encoderTag is Target
@@ -93,6 +96,9 @@ type Judge struct {
 	Required  int
 	Problems  []string
 	Kind      errkind.Kind // 0 when there is no problem
+	// Ended are the rollbacks that took the tag away from this candidate,
+	// ending its earlier gate reports and approvals, oldest first.
+	Ended []EndedRelease
 }
 
 // judgeMode says how far judge goes.
@@ -104,9 +110,16 @@ const (
 	judgeStanding                  // reports and approvals so far, whoever promotes
 )
 
+// promoterID is who signs a promotion: the key id and the names the
+// policy gives that key ("" and none when unsigned).
+type promoterID struct {
+	id    string
+	names map[string]bool
+}
+
 // judge checks the gate reports and approvals of cand for the rule of
 // target against baseline ("" when the tag is absent).
-func judge(ctx context.Context, store registry.Store, cand string, target registry.Ref, pol *policy.Policy, baseline string, promoter string, now time.Time, mode judgeMode) (*Judge, error) {
+func judge(ctx context.Context, store registry.Store, cand string, target registry.Ref, pol *policy.Policy, baseline string, promoter promoterID, now time.Time, mode judgeMode) (*Judge, error) {
 	rule, err := pol.Rule(target.String())
 	if err != nil {
 		return nil, err
@@ -138,6 +151,18 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 	if err != nil {
 		return nil, err
 	}
+	ended, err := endedFor(ctx, store, repo, cand, target.String())
+	if err != nil {
+		return nil, err
+	}
+	j.Ended = ended.rollbacks
+	for i := range j.Reports {
+		if why, ok := ended.digests[j.Reports[i].Digest]; ok {
+			r := &j.Reports[i]
+			r.Usable, r.otherBaseline, r.failed = false, false, false
+			r.Why = strings.TrimPrefix(r.Why+"; "+why, "; ")
+		}
+	}
 	usable := map[string]bool{}
 	var other, failed, damaged bool
 	for i := range j.Reports {
@@ -165,6 +190,9 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 		switch {
 		case damaged:
 			fail(errkind.Integrity, "a gate report of this candidate is damaged in the store")
+		case len(j.Ended) > 0 && len(j.Reports) > 0 && allEnded(j.Reports, ended):
+			e := j.Ended[len(j.Ended)-1]
+			fail(errkind.Unauthorized, "%s was rolled back from %s (%s, by %s: %q): the gate reports and approvals of that release no longer count; gate and approve it again", shortHex(cand), target, e.Time, e.By, e.Reason)
 		case other:
 			fail(errkind.Conflict, "the only gate reports bound to this candidate, policy and holdout were made against another baseline: %s now points at %s; gate again", target, orNone(baseline))
 		case failed:
@@ -178,12 +206,15 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 	if mode == judgeReports || rule.Approvals.Required == 0 {
 		return j, nil
 	}
-	if mode == judgePromote && promoter == "" && !rule.Approvals.AllowSelfApproval {
+	if mode == judgePromote && promoter.id == "" && !rule.Approvals.AllowSelfApproval {
 		fail(errkind.Unauthorized, "the policy forbids self-approval, so promote must know who promotes: sign with --key")
+	}
+	if mode == judgePromote && promoter.id != "" && len(promoter.names) == 0 && !rule.Approvals.AllowSelfApproval {
+		fail(errkind.Unauthorized, "the policy forbids self-approval, so whoever promotes must sign with a key the policy lists (under releasers.promote or approvals.approvers): key %s is not listed, so the policy cannot tell whose approval is their own", promoter.id)
 	}
 	j.Approvals, j.Counted, err = checkApprovals(ctx, store, repo, approvalContext{candidate: cand, target: target.String(),
 		policy: pol.Digest(), reports: usable, approvers: approvers, maxAge: rule.Approvals.MaxAge, now: now,
-		promoter: promoter, allowSelf: rule.Approvals.AllowSelfApproval})
+		promoter: promoter.id, promoterNames: promoter.names, allowSelf: rule.Approvals.AllowSelfApproval, ended: ended.digests})
 	if err != nil {
 		return nil, err
 	}
@@ -243,9 +274,6 @@ func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*Pr
 	if err := checkTarget(t); err != nil {
 		return nil, err
 	}
-	if req.Policy == nil {
-		return nil, errkind.New(errkind.BadInput, "promote needs a policy")
-	}
 	sw, err := swapper(store)
 	if err != nil {
 		return nil, err
@@ -268,20 +296,40 @@ func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*Pr
 		res.NoOp = true
 		return res, nil
 	}
+	bound, err := boundOf(ctx, store, s)
+	if err != nil {
+		return nil, err
+	}
+	if bound.Legacy {
+		return res, refuse(&Refusal{Kind: errkind.Unauthorized, Action: "promote", Problems: []string{fmt.Sprintf(
+			"%s has a release log from before policies were bound to tags: bind its policy first with `modelgate policy bind %s --policy FILE --key KEY` (see the README: the policy its last promotion was judged under)", t, t)}})
+	}
+	pol, err := choosePolicy(bound, t, req.Policy, "promote")
+	if err != nil {
+		return res, err
+	}
+	rule, err := pol.Rule(t.String())
+	if err != nil {
+		return nil, err
+	}
+	if msg := releaserCheck(rule, KindPromote, req.Key); msg != "" {
+		return res, refuse(&Refusal{Kind: errkind.Unauthorized, Action: "promote", Problems: []string{msg}})
+	}
 	now := nowUTC(req.Now)
-	promoter := ""
+	var promoter promoterID
 	if req.Key != nil {
-		promoter = req.Key.ID
+		promoter.id = req.Key.ID
+		promoter.names, _ = promoterIdentity(rule, req.Key.Public)
 	}
-	mv, err := newMove(ctx, store, t, req.Candidate, req.CandidateName, s.current(), req.Policy)
+	mv, err := newMove(ctx, store, t, req.Candidate, req.CandidateName, s.current(), pol)
 	if err != nil {
 		return nil, err
 	}
-	coupling, err := couplingProblems(ctx, store, []move{mv}, append([]*policy.Policy{req.Policy}, req.Policies...))
+	coupling, err := couplingProblems(ctx, store, []move{mv}, append([]*policy.Policy{pol}, req.Policies...))
 	if err != nil {
 		return nil, err
 	}
-	j, err := judge(ctx, store, req.Candidate.String(), t, req.Policy, s.current(), promoter, now, judgePromote)
+	j, err := judge(ctx, store, req.Candidate.String(), t, pol, s.current(), promoter, now, judgePromote)
 	if err != nil {
 		return nil, err
 	}
@@ -299,8 +347,19 @@ func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*Pr
 	}
 	sort.Strings(approvals)
 	rec := &Record{Kind: KindPromote, Target: t.String(), From: s.current(), To: req.Candidate.String(), Report: j.Report.Digest,
-		Approvals: approvals, PolicyDigest: req.Policy.Digest(), Reason: req.Reason, By: whoUnsigned(req.User),
+		Approvals: approvals, PolicyDigest: pol.Digest(), Policy: pol.Digest(), Reason: req.Reason, By: whoUnsigned(req.User),
 		Time: now.Format(time.RFC3339)}
+	var polBlob artifact.Blob
+	if bound.Policy != nil {
+		polBlob = artifact.Blob{Desc: *s.head.policy}
+	} else {
+		// The first release binds the policy: store it as an artifact of
+		// its own too, about the model it first released.
+		polBlob = policyBlob(pol)
+		if _, err := StorePolicy(ctx, store, repo, pol, req.Candidate, t.String()); err != nil {
+			return nil, fmt.Errorf("storing the policy: %w", err)
+		}
+	}
 	var released []string
 	if s.head != nil {
 		rec.Previous = s.head.Digest.String()
@@ -314,7 +373,7 @@ func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*Pr
 		released = []string{s.current()}
 	}
 	released = appendNew(released, rec.To)
-	recDesc, err := writeRecord(ctx, store, repo, rec, released, nil, req.Key)
+	recDesc, err := writeRecord(ctx, store, repo, rec, released, nil, req.Key, &polBlob)
 	if err != nil {
 		return nil, fmt.Errorf("writing the release record: %w", err)
 	}
@@ -402,8 +461,8 @@ func currentTarget(ctx context.Context, store registry.Store, target registry.Re
 	return d.Digest.String(), nil
 }
 
-// Standing is where cand stands for target under pol at now, judged by
-// promote's own rules: its gate reports against what the tag points at
+// Standing is where cand stands for target at now under the policy bound
+// to target (pol when none is bound), judged by promote's own rules: its gate reports against what the tag points at
 // now, and which stored approvals count (each key once). Who promotes is
 // not known, so the self-approval rule is not applied: a read-only view
 // shows this as "so far".
@@ -412,11 +471,22 @@ func Standing(ctx context.Context, store registry.Store, cand v1.Hash, target re
 	if err != nil {
 		return nil, err
 	}
-	return judge(ctx, store, cand.String(), target, pol, baseline, "", now, judgeStanding)
+	b, err := BoundPolicy(ctx, store, target)
+	if err != nil {
+		return nil, err
+	}
+	if b.Policy != nil {
+		pol = b.Policy
+	}
+	if pol == nil {
+		return nil, errkind.New(errkind.BadInput, "%s has no bound policy and none was given", target)
+	}
+	return judge(ctx, store, cand.String(), target, pol, baseline, promoterID{}, now, judgeStanding)
 }
 
-// ApproveCheck judges whether cand may be approved for target under pol
-// now: it needs a passing gate report bound to the tag's current target
+// ApproveCheck judges whether cand may be approved for target now under
+// the policy bound to it (pol, from a file, must be that policy; it is
+// used when none is bound): it needs a passing gate report bound to the tag's current target
 // (approvals are not counted). It returns the newest usable report.
 func ApproveCheck(ctx context.Context, store registry.Store, cand v1.Hash, target registry.Ref, pol *policy.Policy) (*ReportCheck, error) {
 	baseline, err := currentTarget(ctx, store, target)
@@ -429,7 +499,11 @@ func ApproveCheck(ctx context.Context, store registry.Store, cand v1.Hash, targe
 	if baseline == cand.String() {
 		return nil, errkind.New(errkind.BadInput, "%s already points at %s: nothing to approve", target, cand)
 	}
-	j, err := judge(ctx, store, cand.String(), target, pol, baseline, "", time.Now(), judgeReports)
+	pol, _, err = PolicyFor(ctx, store, target, pol, "approve")
+	if err != nil {
+		return nil, err
+	}
+	j, err := judge(ctx, store, cand.String(), target, pol, baseline, promoterID{}, time.Now(), judgeReports)
 	if err != nil {
 		return nil, err
 	}

@@ -28,6 +28,9 @@ const (
 	KindPromote = "promote"
 	// KindRollback records a rollback.
 	KindRollback = "rollback"
+	// KindPolicy records a change of the policy bound to the tag; the tag
+	// does not move (From = To).
+	KindPolicy = "policy"
 )
 
 // MediaTypeReleased is the media type of a record's released index.
@@ -52,8 +55,17 @@ type Record struct {
 	Report string `json:"gateReport,omitempty"`
 	// Approvals are the approvals a promotion counted, sorted.
 	Approvals []string `json:"approvals,omitempty"`
-	// PolicyDigest is the policy a promotion was judged under.
+	// PolicyDigest is the policy the change was judged under: for a
+	// promotion the policy of its gate report and approvals, for a policy
+	// change the policy it replaced ("" for the first).
 	PolicyDigest string `json:"policyDigest,omitempty"`
+	// Policy is the digest of the canonical form of the policy bound to
+	// the tag after this record, carried as a layer of the record; "" in
+	// records made before policies were bound to tags.
+	Policy string `json:"policy,omitempty"`
+	// Ended lists, for a rollback, the gate reports and approvals it
+	// ended: those of the models it took the tag away from, sorted.
+	Ended []string `json:"ended,omitempty"`
 	Reason       string `json:"reason,omitempty"`
 	// By is who made the change; SignerPublicKey is their PEM public key
 	// (empty for an unsigned record).
@@ -95,18 +107,22 @@ type UnitEntry struct {
 	Previous     string   `json:"previous,omitempty"`
 	Restore      *Restore `json:"restore,omitempty"`
 	Released     string   `json:"released"`
+	// Policy is the tag's bound policy after the release (see
+	// Record.Policy); its copy of the record carries it as a layer.
+	Policy string `json:"policy,omitempty"`
 }
 
 // entryOf returns the per-tag fields of a one-tag record.
 func (r *Record) entryOf() UnitEntry {
 	return UnitEntry{Target: r.Target, From: r.From, To: r.To, Report: r.Report, Approvals: r.Approvals,
-		PolicyDigest: r.PolicyDigest, Previous: r.Previous, Restore: r.Restore, Released: r.Released}
+		PolicyDigest: r.PolicyDigest, Previous: r.Previous, Restore: r.Restore, Released: r.Released, Policy: r.Policy}
 }
 
 // project sets the per-tag fields from e.
 func (r *Record) project(e UnitEntry) {
 	r.Target, r.From, r.To, r.Report, r.Approvals = e.Target, e.From, e.To, e.Report, e.Approvals
 	r.PolicyDigest, r.Previous, r.Restore, r.Released = e.PolicyDigest, e.Previous, e.Restore, e.Released
+	r.Policy = e.Policy
 }
 
 // UnitTargets returns the targets a record moved: its Unit's, or its own.
@@ -147,14 +163,16 @@ type loadedRecord struct {
 	// envelope is the signed statement's layer: the same blob in every
 	// copy of a release unit's record.
 	envelope v1.Descriptor
+	policy   *v1.Descriptor // the bound policy's layer, nil when none
 	st       *stored
 }
 
 // writeRecord signs rec with key (nil: unsigned), stores it with its
 // released index, subject = the To model, and returns its descriptor. The
 // index is released, or, when reuse is not nil, the index blob reuse
-// names, already in the store.
-func writeRecord(ctx context.Context, store registry.Store, repo string, rec *Record, released []string, reuse *v1.Descriptor, key *Key) (v1.Descriptor, error) {
+// names, already in the store. pol, when not nil, is the bound policy's
+// canonical blob, carried as a layer; rec.Policy must be its digest.
+func writeRecord(ctx context.Context, store registry.Store, repo string, rec *Record, released []string, reuse *v1.Descriptor, key *Key, pol *artifact.Blob) (v1.Descriptor, error) {
 	var idxBlob artifact.Blob
 	if reuse != nil {
 		idxBlob = artifact.Blob{Desc: *reuse}
@@ -167,6 +185,9 @@ func writeRecord(ctx context.Context, store registry.Store, repo string, rec *Re
 	}
 	rec.Released = idxBlob.Desc.Digest.String()
 	rec.Tool = toolVersion()
+	if (pol == nil) != (rec.Policy == "") || (pol != nil && pol.Desc.Digest.String() != rec.Policy) {
+		return v1.Descriptor{}, errkind.New(errkind.Internal, "release record of %s: policy layer and policy digest %q disagree", rec.Target, rec.Policy)
+	}
 	if key != nil {
 		rec.By = Actor{Name: key.Name, KeyID: key.ID}
 		der, _ := x509.MarshalPKIXPublicKey(key.Public)
@@ -201,6 +222,9 @@ func writeRecord(ctx context.Context, store registry.Store, repo string, rec *Re
 	layers := []artifact.Blob{
 		artifact.NewBlob(MediaTypeEnvelope, env, map[string]string{artifact.AnnotationTitle: "release.dsse.json"}),
 		idxBlob,
+	}
+	if pol != nil {
+		layers = append(layers, *pol)
 	}
 	return putArtifact(ctx, store, repo, ArtifactTypeRelease, layers, subject, ann)
 }
@@ -250,7 +274,7 @@ func readRecord(ctx context.Context, store registry.Store, repo string, d v1.Has
 		return nil, bad("its statement or manifest subject is not the model it released (%s)", rec.To)
 	}
 	switch rec.Kind {
-	case KindInitial, KindPromote, KindRollback:
+	case KindInitial, KindPromote, KindRollback, KindPolicy:
 	default:
 		return nil, bad("unknown kind %q", rec.Kind)
 	}
@@ -276,6 +300,18 @@ func readRecord(ctx context.Context, store registry.Store, repo string, d v1.Has
 	}
 	lr.released = ld
 	lr.envelope, _ = s.layer(MediaTypeEnvelope)
+	pd, ok := s.layer(MediaTypePolicy)
+	switch {
+	case rec.Policy == "" && ok:
+		return nil, bad("it carries a policy layer but names no bound policy")
+	case rec.Policy != "" && (!ok || pd.Digest.String() != rec.Policy):
+		return nil, bad("its bound policy layer is missing or is not the one it names (%s)", rec.Policy)
+	case ok:
+		lr.policy = &pd
+	}
+	if rec.Kind == KindPolicy && (rec.From != rec.To || rec.Policy == "") {
+		return nil, bad("a policy record must leave the tag where it was and name the policy it binds")
+	}
 	return lr, nil
 }
 

@@ -3,11 +3,14 @@ package release
 import (
 	"context"
 	"fmt"
+	"sort"
 	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
+	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
+	"modelgate/internal/policy"
 	"modelgate/internal/registry"
 )
 
@@ -80,6 +83,19 @@ func Rollback(ctx context.Context, store registry.Store, req RollbackRequest) (*
 		return nil, errkind.New(errkind.BadInput, "%s has no release log: rollback goes only to versions released with modelgate", t)
 	}
 	res := &RollbackResult{Target: t.String(), From: s.current(), DryRun: req.DryRun, Completed: completed, External: s.external}
+	bound, err := boundOf(ctx, store, s)
+	if err != nil {
+		return nil, err
+	}
+	if bound.Policy != nil {
+		rule, err := bound.Policy.Rule(t.String())
+		if err != nil {
+			return nil, errkind.New(errkind.Integrity, "the policy bound to %s has no rule for it: %v", t, err)
+		}
+		if msg := releaserCheck(rule, KindRollback, req.Key); msg != "" {
+			return res, refuse(&Refusal{Kind: errkind.Unauthorized, Action: "rollback", Problems: []string{msg}})
+		}
+	}
 	cur := s.current()
 	h := &s.head.Record
 	if s.pending != nil { // dry run: act as if it were completed
@@ -93,6 +109,9 @@ func Rollback(ctx context.Context, store registry.Store, req RollbackRequest) (*
 		return rollbackUnit(ctx, store, sw, s, req, res)
 	}
 	var restore *Restore
+	// skipped are the models a --to jump takes the tag away from besides
+	// the current one: those on the undo path it passes over.
+	var skipped []string
 	switch {
 	case req.To != nil:
 		to := req.To.String()
@@ -106,6 +125,9 @@ func Rollback(ctx context.Context, store registry.Store, req RollbackRequest) (*
 		}
 		res.To = to
 		restore = &Restore{Target: h.To, Record: s.head.Digest.String()}
+		if skipped, err = undoPath(ctx, store, repo, t.String(), s.head, to); err != nil {
+			return nil, err
+		}
 	case s.external:
 		res.To = h.To
 		restore = h.Restore
@@ -152,18 +174,75 @@ func Rollback(ctx context.Context, store registry.Store, req RollbackRequest) (*
 	rec := &Record{Kind: KindRollback, Target: t.String(), From: cur, To: res.To, Reason: req.Reason,
 		By: whoUnsigned(req.User), Time: now.Format(time.RFC3339), Previous: s.head.Digest.String(),
 		Restore: restore, External: s.external}
+	// The rollback ends the gate reports and approvals of every model it
+	// takes the tag away from.
+	away := []string{}
+	for _, m := range append([]string{cur}, skipped...) {
+		if m != "" && m != res.To && !contains(away, m) {
+			away = append(away, m)
+		}
+	}
+	evidence := map[string][]string{}
+	for _, m := range away {
+		ev, err := releaseEvidence(ctx, store, repo, m, t.String())
+		if err != nil {
+			return nil, err
+		}
+		evidence[m] = ev
+		rec.Ended = append(rec.Ended, ev...)
+	}
+	sort.Strings(rec.Ended)
 	// A rollback releases nothing new: the record shares the head's
-	// released index blob, which is not even read.
+	// released index blob, which is not even read, and its bound policy.
 	reuse := s.head.released
-	recDesc, err := writeRecord(ctx, store, repo, rec, nil, &reuse, req.Key)
+	var polBlob *artifact.Blob
+	if s.head.policy != nil {
+		rec.Policy, rec.PolicyDigest = s.head.Record.Policy, s.head.Record.Policy
+		polBlob = &artifact.Blob{Desc: *s.head.policy}
+	}
+	recDesc, err := writeRecord(ctx, store, repo, rec, nil, &reuse, req.Key, polBlob)
 	if err != nil {
 		return nil, fmt.Errorf("writing the rollback record: %w", err)
 	}
 	res.Record = recDesc.Digest.String()
+	for _, m := range away {
+		if len(evidence[m]) == 0 {
+			continue
+		}
+		e := EndedRelease{Target: t.String(), Model: m, Record: res.Record, Reason: req.Reason, By: rec.By.String(), Time: rec.Time, Ended: evidence[m]}
+		if err := writeEnded(ctx, store, repo, e); err != nil {
+			return res, fmt.Errorf("ending the approvals of %s: %w", m, err)
+		}
+	}
 	if err := commit(ctx, store, sw, s, recDesc, toDesc); err != nil {
 		return res, err
 	}
 	return res, nil
+}
+
+// undoPath returns the models a jump from head's state to "to" passes
+// over: the targets of the undo chain from head, up to the first that is
+// "to" (all of them when none is). It reads one record per step.
+func undoPath(ctx context.Context, store registry.Store, repo, target string, head *loadedRecord, to string) ([]string, error) {
+	var out []string
+	seen := map[string]bool{}
+	r := head
+	for r != nil && r.Record.Restore != nil && r.Record.Restore.Target != to {
+		out = append(out, r.Record.Restore.Target)
+		next := r.Record.Restore.Record
+		if next == "" || seen[next] {
+			break
+		}
+		seen[next] = true
+		d, err := registry.ParseDigest(next)
+		if err != nil {
+			return nil, errkind.New(errkind.Integrity, "release record %s names a malformed record to restore", r.Digest)
+		}
+		if r, err = readRecord(ctx, store, repo, d, target); err != nil {
+			return nil, fmt.Errorf("reading the undo path: %w", err)
+		}
+	}
+	return out, nil
 }
 
 func contains(list []string, d string) bool {
@@ -184,6 +263,8 @@ type InitialRequest struct {
 	Key    *Key
 	User   string
 	Now    time.Time
+	// Policy, when not nil, is bound to the tag by the record.
+	Policy *policy.Policy
 }
 
 // Initial records a tag's first release without a gate: for setup steps
@@ -219,7 +300,19 @@ func Initial(ctx context.Context, store registry.Store, req InitialRequest) (str
 		released = append(released, s.current())
 	}
 	released = appendNew(released, rec.To)
-	recDesc, err := writeRecord(ctx, store, t.Repository, rec, released, nil, req.Key)
+	var polBlob *artifact.Blob
+	if req.Policy != nil {
+		if _, err := req.Policy.Rule(t.String()); err != nil {
+			return "", err
+		}
+		b := policyBlob(req.Policy)
+		polBlob = &b
+		rec.Policy, rec.PolicyDigest = req.Policy.Digest(), req.Policy.Digest()
+		if _, err := StorePolicy(ctx, store, t.Repository, req.Policy, req.To, t.String()); err != nil {
+			return "", err
+		}
+	}
+	recDesc, err := writeRecord(ctx, store, t.Repository, rec, released, nil, req.Key, polBlob)
 	if err != nil {
 		return "", err
 	}

@@ -152,7 +152,7 @@ func TestLogDetectsDamage(t *testing.T) {
 		forged := lr.Record
 		forged.To = e.models[3].String()
 		released, _ := lr.releasedList(e.ctx, e.store, testRepo)
-		d, err := writeRecord(e.ctx, e.store, testRepo, &forged, appendNew(released[:len(released)-1], forged.To), nil, e.keys["mallory"])
+		d, err := writeRecord(e.ctx, e.store, testRepo, &forged, appendNew(released[:len(released)-1], forged.To), nil, e.keys["mallory"], lr.policyLayer())
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -183,7 +183,7 @@ func TestLogDetectsDamage(t *testing.T) {
 		recB.To = e.models[3].String()
 		recB.Reason = "the racing promote"
 		released, _ := lr.releasedList(e.ctx, e.store, testRepo)
-		dB, err := writeRecord(e.ctx, e.store, testRepo, &recB, appendNew(released[:len(released)-1], recB.To), nil, e.keys["rita"])
+		dB, err := writeRecord(e.ctx, e.store, testRepo, &recB, appendNew(released[:len(released)-1], recB.To), nil, e.keys["rita"], lr.policyLayer())
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -296,8 +296,8 @@ func TestInterruptedRelease(t *testing.T) {
 	released, _ := s.head.releasedList(e.ctx, e.store, testRepo)
 	rec := &Record{Kind: KindPromote, Target: prodRef.String(), From: s.current(), To: e.models[2].String(),
 		Time: e.now.Format("2006-01-02T15:04:05Z"), Previous: s.head.Digest.String(),
-		Restore: &Restore{Target: s.current(), Record: s.head.Digest.String()}}
-	d, err := writeRecord(e.ctx, e.store, testRepo, rec, appendNew(released, rec.To), nil, e.keys["rita"])
+		Restore: &Restore{Target: s.current(), Record: s.head.Digest.String()}, Policy: s.head.Record.Policy}
+	d, err := writeRecord(e.ctx, e.store, testRepo, rec, appendNew(released, rec.To), nil, e.keys["rita"], s.head.policyLayer())
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -156,7 +156,21 @@ func writeUnitRecord(ctx context.Context, store registry.Store, rec *Record, rel
 		if key != nil {
 			ann[AnnotationSigner] = key.ID
 		}
-		if out[i], err = putArtifact(ctx, store, t.Repository, ArtifactTypeRelease, []artifact.Blob{envBlob, idx[i]}, subjects[i], ann); err != nil {
+		layers := []artifact.Blob{envBlob, idx[i]}
+		if e.Policy != "" {
+			// The tag's bound policy, already in its repository (carried by
+			// its earlier records).
+			pd, err := registry.ParseDigest(e.Policy)
+			if err != nil {
+				return nil, err
+			}
+			size, err := store.StatBlob(ctx, t.Repository, pd)
+			if err != nil {
+				return nil, fmt.Errorf("the bound policy of %s: %w", e.Target, err)
+			}
+			layers = append(layers, artifact.Blob{Desc: v1.Descriptor{MediaType: MediaTypePolicy, Size: size, Digest: pd}})
+		}
+		if out[i], err = putArtifact(ctx, store, t.Repository, ArtifactTypeRelease, layers, subjects[i], ann); err != nil {
 			return nil, fmt.Errorf("writing the release record's copy for %s: %w", e.Target, err)
 		}
 		crashPoint("record")
@@ -480,6 +494,30 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 			problems = append(problems, problem{errkind.BadInput, fmt.Sprintf("%s already points at %s: leave it out of the release", t, m.Candidate)})
 		}
 		members[t.String()] = m
+		// Each member is judged by the policy bound to its tag.
+		if b, err := boundOf(ctx, store, s); err != nil {
+			return nil, err
+		} else if b.Legacy {
+			problems = append(problems, problem{errkind.Unauthorized, fmt.Sprintf("%s has a release log from before policies were bound to tags: bind its policy first (`modelgate policy bind %s --policy FILE --key KEY`)", t, t)})
+		} else if pol, err := choosePolicy(b, t, m.Policy, "release"); err != nil {
+			var rf *Refusal
+			if !errors.As(err, &rf) {
+				return nil, err
+			}
+			for _, p := range rf.Problems {
+				problems = append(problems, problem{rf.Kind, t.String() + ": " + p})
+			}
+		} else {
+			m.Policy = pol
+			if rule, err := pol.Rule(t.String()); err == nil {
+				if msg := releaserCheck(rule, KindPromote, req.Key); msg != "" {
+					problems = append(problems, problem{errkind.Unauthorized, msg})
+				}
+			}
+		}
+		if m.Policy == nil {
+			continue
+		}
 		mv, err := newMove(ctx, store, t, m.Candidate, m.CandidateName, s.current(), m.Policy)
 		if err != nil {
 			return nil, err
@@ -496,15 +534,18 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 	}
 	problems = append(problems, coupling...)
 	now := nowUTC(req.Now)
-	promoter := ""
-	if req.Key != nil {
-		promoter = req.Key.ID
-	}
 	order := moveOrder(kinds, mapKeys(members))
 	rec := &Record{Kind: KindPromote, Reason: req.Reason, By: whoUnsigned(req.User), Time: now.Format(time.RFC3339)}
 	released := map[string][]string{}
 	for _, target := range order {
 		m, s := members[target], states[target]
+		var promoter promoterID
+		if req.Key != nil {
+			promoter.id = req.Key.ID
+			if rule, err := m.Policy.Rule(target); err == nil {
+				promoter.names, _ = promoterIdentity(rule, req.Key.Public)
+			}
+		}
 		j, err := judge(ctx, store, m.Candidate.String(), m.Target, m.Policy, s.current(), promoter, now, judgePromote)
 		if err != nil {
 			return nil, err
@@ -533,7 +574,7 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 		}
 		released[target] = appendNew(list, r.To)
 		rec.Unit = append(rec.Unit, UnitEntry{Target: target, From: s.current(), To: r.To, Report: r.Report, Approvals: approvals,
-			PolicyDigest: m.Policy.Digest(), Previous: s.head.Digest.String(),
+			PolicyDigest: m.Policy.Digest(), Policy: m.Policy.Digest(), Previous: s.head.Digest.String(),
 			Restore: &Restore{Target: s.current(), Record: s.head.Digest.String()}})
 	}
 	if len(problems) > 0 {
@@ -649,7 +690,7 @@ func rollbackUnit(ctx context.Context, store registry.Store, sw registry.TagSwap
 			restore = prev.Record.Restore
 		}
 		rec.Unit = append(rec.Unit, UnitEntry{Target: c.target.String(), From: r.To, To: r.Restore.Target,
-			Previous: cs.head.Digest.String(), Restore: restore})
+			Previous: cs.head.Digest.String(), Restore: restore, Policy: cs.head.Record.Policy, PolicyDigest: cs.head.Record.Policy})
 		reuse[c.target.String()] = cs.head.released
 		res.With = append(res.With, UnitMove{Target: c.target.String(), From: r.To, To: r.Restore.Target})
 	}
