@@ -24,7 +24,7 @@ type approveOptions struct {
 func (o *approveOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.To, "to", "", "target tag NAME:TAG (required)")
-	f.StringVar(&o.Policy, "policy", "", "policy file with a rule for the target (required)")
+	f.StringVar(&o.Policy, "policy", "", "policy file with a rule for the target; default: the policy bound to the target (a different file is refused)")
 	f.StringVar(&o.Key, "key", "", "your private key, from keygen (required): env:VAR (PEM text in $VAR), file:PATH, PATH, or - (standard input)")
 	f.StringVar(&o.Comment, "comment", "", "free text stored in the approval")
 }
@@ -32,20 +32,22 @@ func (o *approveOptions) AddFlags(cmd *cobra.Command) {
 func newApproveCmd(g *globals) *cobra.Command {
 	o := &approveOptions{}
 	cmd := &cobra.Command{
-		Use:   "approve CANDIDATE --to NAME:TAG --policy FILE --key FILE",
+		Use:   "approve CANDIDATE --to NAME:TAG --key FILE [--policy FILE]",
 		Short: "Sign an approval for a gated candidate to go to a tag",
 		Long: `approve signs, with your key, a statement that CANDIDATE may go to the target
 tag under the policy, naming the passing gate report you approve (the newest
 one bound to the tag's current target, the policy's holdout, the policy and
 this modelgate version). It refuses when there is no such report. The
 approval is a DSSE envelope around an in-toto statement, stored as an
-artifact whose subject is the candidate.
+artifact whose subject is the candidate. The policy is the one bound to the
+target tag (--policy, when given, must be that policy).
 
 It prints the verdict of the report it signs and every warning in it (the
 approval says you saw them).
 
 Exit codes: 0 stored; 1 the gate failed; 2 bad input; 3 the gate report is
-for another baseline (the tag moved: gate again); 4 no gate report.`,
+for another baseline (the tag moved: gate again); 4 no gate report, or
+--policy is not the bound policy.`,
 		Args: exactArgs(1, "CANDIDATE"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runApprove(cmd.Context(), g, o, args[0])
@@ -81,15 +83,15 @@ func releaseTarget(ctx context.Context, store registry.Store, candStr, to string
 }
 
 func runApprove(ctx context.Context, g *globals, o *approveOptions, candStr string) error {
-	if o.To == "" || o.Policy == "" || o.Key == "" {
-		return usageErr("approve needs --to NAME:TAG, --policy FILE and --key FILE")
+	if o.To == "" || o.Key == "" {
+		return usageErr("approve needs --to NAME:TAG and --key FILE")
 	}
 	key, err := release.LoadKeyFrom(o.Key, g.Stdin)
 	if err != nil {
 		return err
 	}
 	warnKeyForm(g, o.Key, key)
-	pol, err := policy.Load(o.Policy)
+	given, err := loadOptionalPolicy(o.Policy)
 	if err != nil {
 		return err
 	}
@@ -98,6 +100,10 @@ func runApprove(ctx context.Context, g *globals, o *approveOptions, candStr stri
 		return err
 	}
 	cand, target, err := releaseTarget(ctx, store, candStr, o.To)
+	if err != nil {
+		return err
+	}
+	pol, _, err := release.PolicyFor(ctx, store, target, given, "approve")
 	if err != nil {
 		return err
 	}
@@ -136,7 +142,7 @@ func runApprove(ctx context.Context, g *globals, o *approveOptions, candStr stri
 		return err
 	}
 	if !listed {
-		g.logf("warning: your key %s is not among the approvers %s lists for %s: this approval will not count unless the policy adds it", key, o.Policy, target)
+		g.logf("warning: your key %s is not among the approvers %s lists for %s: this approval will not count unless the policy adds it", key, policySource(o.Policy, target), target)
 	}
 	if g.JSON {
 		return g.printJSON(map[string]any{"approval": desc.Digest.String(), "candidate": cand.Digest.String(), "target": target.String(),
@@ -167,4 +173,20 @@ func reportWarnings(rep *checks.Report) []string {
 		}
 	}
 	return warnings
+}
+
+// loadOptionalPolicy loads a --policy file, nil when none was given.
+func loadOptionalPolicy(path string) (*policy.Policy, error) {
+	if path == "" {
+		return nil, nil
+	}
+	return policy.Load(path)
+}
+
+// policySource names where the policy came from, for messages and reports.
+func policySource(path string, target registry.Ref) string {
+	if path != "" {
+		return path
+	}
+	return "the policy bound to " + target.String()
 }

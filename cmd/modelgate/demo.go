@@ -97,12 +97,20 @@ func runDemo(ctx context.Context, g *globals, o *demoOptions) error {
 	if err != nil {
 		return err
 	}
-	pub, err := demo.PublishWith(ctx, store, sc, say, demo.PublishOptions{ReleaseKey: keys["rita"]})
+	polPath, err := demoPolicy(work, keys)
+	if err != nil {
+		return err
+	}
+	bound, err := demoBoundPolicies(work, polPath)
+	if err != nil {
+		return err
+	}
+	pub, err := demo.PublishWith(ctx, store, sc, say, demo.PublishOptions{ReleaseKey: keys["rita"], Policies: bound})
 	if err != nil {
 		return err
 	}
 	var story bytes.Buffer
-	if err := releaseStory(ctx, g, &story, work, sc, keys); err != nil {
+	if err := releaseStory(ctx, g, &story, work, sc, keys, polPath); err != nil {
 		return err
 	}
 	if g.JSON {
@@ -268,6 +276,31 @@ func demoPolicyFor(work string, keys map[string]*release.Key, file, target strin
 	return p, nil
 }
 
+// demoBoundPolicies returns the policies the demo's first release records
+// bind: the promo-scorer copy with the demo's keys, and the embedded
+// listener-encoder policy (written beside it).
+func demoBoundPolicies(work, scorerPolicy string) (map[string]*policy.Policy, error) {
+	raw, err := policies.FS.ReadFile("listener-encoder.yaml")
+	if err != nil {
+		return nil, err
+	}
+	encPath := filepath.Join(work, "policies", "listener-encoder.yaml")
+	if err := os.WriteFile(encPath, raw, 0o644); err != nil {
+		return nil, err
+	}
+	out := map[string]*policy.Policy{}
+	for _, p := range []string{scorerPolicy, encPath} {
+		pol, err := policy.Load(p)
+		if err != nil {
+			return nil, err
+		}
+		for _, t := range pol.Targets() {
+			out[t] = pol
+		}
+	}
+	return out, nil
+}
+
 // sub runs one modelgate command against g's store and returns its
 // stdout and error, as a user typing it would get.
 func sub(ctx context.Context, g *globals, args ...string) (string, error) {
@@ -287,13 +320,9 @@ func sub(ctx context.Context, g *globals, args ...string) (string, error) {
 
 // releaseStory plays the release story on promo-scorer:prod and writes it
 // to w as text.
-func releaseStory(ctx context.Context, g *globals, w io.Writer, work string, sc *demo.Scenario, keys map[string]*release.Key) error {
+func releaseStory(ctx context.Context, g *globals, w io.Writer, work string, sc *demo.Scenario, keys map[string]*release.Key, polPath string) error {
 	const target = "promo-scorer:prod"
 	keyFile := func(name string) string { return filepath.Join(work, "keys", name+".key.pem") }
-	polPath, err := demoPolicy(work, keys)
-	if err != nil {
-		return err
-	}
 	section := func(format string, args ...any) { fmt.Fprintf(w, "\n"+format+"\n", args...) }
 	indent := func(s string) {
 		for _, l := range strings.Split(strings.TrimRight(s, "\n"), "\n") {

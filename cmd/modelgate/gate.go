@@ -37,7 +37,7 @@ type gateOptions struct {
 func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.To, "to", "", "target tag NAME:TAG the candidate asks to go to (required)")
-	f.StringVar(&o.Policy, "policy", "", "policy file (YAML or JSON) with a rule for the target (required)")
+	f.StringVar(&o.Policy, "policy", "", "policy file (YAML or JSON) with a rule for the target; default: the policy bound to the target (a different file is refused)")
 	f.StringVar(&o.Holdout, "holdout", "", "override the policy's holdout: NAME:TAG or NAME@DIGEST of a holdout artifact")
 	f.StringVar(&o.HTML, "html", "", "also write the HTML report to this file")
 	f.BoolVar(&o.NoPush, "no-push", false, "do not store the report in the store (it is stored by default, as a referrer of the candidate)")
@@ -53,7 +53,7 @@ func (o *gateOptions) AddFlags(cmd *cobra.Command) {
 func newGateCmd(g *globals) *cobra.Command {
 	o := &gateOptions{}
 	cmd := &cobra.Command{
-		Use:   "gate CANDIDATE --to NAME:TAG --policy FILE",
+		Use:   "gate CANDIDATE --to NAME:TAG [--policy FILE]",
 		Short: "Decide whether a candidate may replace what a tag points at now",
 		Long: `gate runs the policy's checks for the target tag — integrity, freeze,
 contract, holdout, budget — on the candidate against the tag's current
@@ -67,11 +67,19 @@ that also moves that tag (promote --with): a scorer whose policy ties it
 to that encoder tag has its freeze check run against CANDIDATE, the
 encoder that will be live.
 
+The policy is the one bound to the target tag by its release log; --policy
+may name the same policy (then it is checked to be the same) and is
+required only for a tag with no release log yet (its first promote binds
+it). A --policy that differs from the bound policy is refused, listing what
+it changes (see modelgate policy).
+
 With --shard I/N (or --shard-index I-1/N) it scores only shard I of N of
-the holdout and stores that shard's sums (a shard reads no key files the
-policy names: only the policy file need be there); --merge then runs the
-gate from the N stored shard results, and --wait DURATION makes it wait
-for them (the merge can start with the shards).
+the holdout and stores that shard's sums; --merge then runs the gate from
+the N stored shard results, and --wait DURATION makes it wait for them (the
+merge can start with the shards). A shard reads no key files the policy
+names: on a tag with a bound policy it needs no policy file at all (the
+store holds the policy, keys inline), and a --policy whose key files are
+not there runs the bound policy.
 
 On a registry or GCS store the holdout is read once per machine: blobs
 are kept, verified, in a local cache ($MODELGATE_CACHE, default
@@ -81,7 +89,7 @@ the holdout its rows are in, each checked against the holdout's block
 digests; the merge reads none of the holdout's data.
 
 Exit codes: 0 pass, 1 fail, 2 bad input (with --merge: shard results
-missing, or made for other inputs).`,
+missing, or made for other inputs), 4 --policy is not the bound policy.`,
 		Args: exactArgs(1, "CANDIDATE"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runGate(cmd.Context(), g, o, args[0])
@@ -92,8 +100,8 @@ missing, or made for other inputs).`,
 }
 
 func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) error {
-	if o.To == "" || o.Policy == "" {
-		return usageErr("gate needs --to NAME:TAG and --policy FILE")
+	if o.To == "" {
+		return usageErr("gate needs --to NAME:TAG")
 	}
 	cand, err := parseRef(candStr)
 	if err != nil {
@@ -140,7 +148,31 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 		// may be mounted (a ConfigMap), without the approvers' key files.
 		polOpts = append(polOpts, policy.SkipKeyFiles())
 	}
-	pol, err := policy.Load(o.Policy, polOpts...)
+	var given *policy.Policy
+	if o.Policy != "" {
+		if given, err = policy.Load(o.Policy, polOpts...); err != nil {
+			return err
+		}
+	}
+	store, err := g.openStore()
+	if err != nil {
+		return err
+	}
+	if given != nil && given.Digest() == "" {
+		// A shard's policy file without its key files has no identity (its
+		// digest covers its keys): the shard runs the bound policy, which
+		// the store holds with its keys inline.
+		b, err := release.BoundPolicy(ctx, store, target)
+		if err != nil {
+			return err
+		}
+		if b.Policy == nil {
+			return usageErr("--shard: %s has no bound policy, and %s's key files are not here, so its digest (which covers its keys) cannot be computed: give the shard the key files too, or leave --policy out once the tag's first release has bound a policy", target, o.Policy)
+		}
+		g.logf("gate: %s's key files are not here, so it cannot be compared with the policy bound to %s; the shard runs the bound policy %s", o.Policy, target, b.Policy.Digest())
+		given = nil
+	}
+	pol, _, err := release.PolicyFor(ctx, store, target, given, "gate")
 	if err != nil {
 		return err
 	}
@@ -153,10 +185,6 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 		if ts, err := release.TrustedKeys(rule.Approvals.ReportSigners); err == nil {
 			signKey.NameFrom(ts)
 		}
-	}
-	store, err := g.openStore()
-	if err != nil {
-		return err
 	}
 	encTagDigest := ""
 	if et := rule.Freeze.EncoderTag; et != nil {
@@ -192,7 +220,7 @@ func runGate(ctx context.Context, g *globals, o *gateOptions, candStr string) er
 	cfg := checks.FromRule(rule, encTagDigest)
 	cfg.Holdout.Threads = o.Threads
 	gate := checks.Gate{Store: store, Candidate: cand, Target: target, Holdout: holdRef, Config: cfg,
-		Policy:   checks.Policy{Name: pol.Name, Source: o.Policy, Digest: pol.Digest()},
+		Policy:   checks.Policy{Name: pol.Name, Source: policySource(o.Policy, target), Digest: pol.Digest()},
 		Progress: g.gateProgress()}
 	if o.Shard != "" {
 		return runGateShard(ctx, g, o, gate)

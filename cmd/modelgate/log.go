@@ -19,7 +19,7 @@ type logOptions struct {
 }
 
 func (o *logOptions) AddFlags(cmd *cobra.Command) {
-	cmd.Flags().StringVar(&o.Policy, "policy", "", "also check that every record is signed by a key the policy lists for the tag (approvers or report signers)")
+	cmd.Flags().StringVar(&o.Policy, "policy", "", "cross-check: the tag's bound policy must be this file, and every record signed by a key it lists (approvers or report signers)")
 }
 
 func newLogCmd(g *globals) *cobra.Command {
@@ -31,12 +31,17 @@ func newLogCmd(g *globals) *cobra.Command {
 listing: every record's signature, every hash link to the previous record,
 that each record starts where the previous one left the tag, the released
 index, that rollbacks went only to versions released before, and that the
-tag points where the newest record says. Anything wrong is reported, never
-skipped.
+tag points where the newest record says. It judges every record by the
+policy in force at it (the policy the log binds, stored in the store):
+the signer against releasers, a promotion's gate report and approvals
+(count, keys, self-approval, not ended by a rollback), a policy change's
+approvals by the policy it replaced. Anything wrong is reported, never
+skipped. --policy is only a cross-check against the bound policy.
 
-Exit codes: 0 verified; 2 bad input; 4 a record is unsigned or signed by a
-key the policy does not list (with --policy); 5 a broken chain, an edited
-or missing record, or a tag moved outside modelgate.`,
+Exit codes: 0 verified; 2 bad input; 4 a record the policy in force does
+not allow (or, with --policy, a record no key the file lists signed, or a
+bound policy other than the file); 5 a broken chain, an edited or missing
+record, or a tag moved outside modelgate.`,
 		Args: exactArgs(1, "NAME:TAG"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runLog(cmd.Context(), g, o, args[0])
@@ -69,6 +74,7 @@ func runLog(ctx context.Context, g *globals, o *logOptions, tagStr string) error
 			return err
 		}
 		opts.Trusted = keys
+		opts.Policy = pol
 	}
 	store, err := g.openStore()
 	if err != nil {
@@ -139,6 +145,12 @@ func printLog(w io.Writer, rep *release.LogReport) {
 		if r.Report != "" {
 			fmt.Fprintf(w, "    gate report %s, %d approval(s)\n", shortDigest(r.Report), len(r.Approvals))
 		}
+		if r.Kind == release.KindPolicy {
+			fmt.Fprintf(w, "    policy %s → %s, %d approval(s)\n", shortDigest(orAbsent(r.PolicyDigest)), shortDigest(r.Policy), len(r.Approvals))
+		}
+		if len(r.Ended) > 0 {
+			fmt.Fprintf(w, "    ended %d gate report(s) and approval(s) of the release(s) it undid\n", len(r.Ended))
+		}
 		for _, f := range byWhere[e.Digest] {
 			fmt.Fprintf(w, "    %s: %s\n", strings.ToUpper(f.Severity), f.Message)
 		}
@@ -160,7 +172,7 @@ func printLog(w io.Writer, rep *release.LogReport) {
 	case errkind.Integrity:
 		fmt.Fprintln(w, "\nverdict: the release log does NOT verify")
 	case errkind.Unauthorized:
-		fmt.Fprintln(w, "\nverdict: chain intact, but not every record is vouched for by a trusted key")
+		fmt.Fprintln(w, "\nverdict: chain intact, but not every record is allowed by the policy in force (or vouched for by a trusted key)")
 	default:
 		fmt.Fprintln(w, "\nverdict: every record, signature and link verified; the tag matches the newest record")
 	}

@@ -25,7 +25,7 @@ func (o *promoteOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.To, "to", "", "target tag NAME:TAG (required)")
 	f.StringArrayVar(&o.With, "with", nil, "CANDIDATE=NAME:TAG: move this tag too, in the same release (repeat it; each target needs a rule in one of the --policy files)")
-	f.StringArrayVar(&o.Policies, "policy", nil, "policy file with a rule for the target (required; repeat it to name the scorer policies whose rules tie scorers to an encoder tag)")
+	f.StringArrayVar(&o.Policies, "policy", nil, "policy file with a rule for the target: required for a tag's first release (which binds it), otherwise it must be the bound policy and may be left out; repeat it to name the scorer policies whose rules tie scorers to an encoder tag")
 	f.StringVar(&o.Key, "key", "", "private key that signs the release record (without it the record is unsigned and names $USER)")
 	f.StringVar(&o.Reason, "reason", "", "free text stored in the release record")
 }
@@ -33,7 +33,7 @@ func (o *promoteOptions) AddFlags(cmd *cobra.Command) {
 func newPromoteCmd(g *globals) *cobra.Command {
 	o := &promoteOptions{}
 	cmd := &cobra.Command{
-		Use:   "promote CANDIDATE --to NAME:TAG --policy FILE [--with CANDIDATE=NAME:TAG]... [--key FILE]",
+		Use:   "promote CANDIDATE --to NAME:TAG [--policy FILE]... [--with CANDIDATE=NAME:TAG]... [--key FILE]",
 		Short: "Move a tag to a gated, approved candidate, writing a signed release record",
 		Long: `promote moves the target tag to CANDIDATE only if all of these hold, and
 otherwise says which failed:
@@ -48,6 +48,14 @@ otherwise says which failed:
 It then writes the release record, moves the tag by compare-and-swap on
 the baseline, and advances the release log head (tag release-TAG).
 Promoting the tag's current target changes nothing.
+
+Every tag is judged by the policy bound to it (named by its release log);
+a --policy with a rule for it that differs is refused with what it
+changes. The first release of a tag with no release log binds the --policy
+given. When the policy lists releasers.promote, only those keys may sign
+(--key); when it forbids self-approval, the signer must be a key it lists,
+and approvals by that key or by another key the policy gives the same name
+do not count. Approvals and gate reports a rollback ended do not count.
 
 An encoder and the scorers built on its code are coupled. An encoder tag
 whose live target a live scorer consumes (a scorer tag with a release log
@@ -73,8 +81,9 @@ rollback of any tag whose log it claimed, and log shows it as
 
 Exit codes: 0 promoted (or already the target); 1 the gate failed; 2 bad
 input; 3 the tag moved since the gate ran, or a concurrent promote won;
-4 missing approvals or signatures, or an encoder moving without the
-scorers that consume it; 5 the release log disagrees with the tag.`,
+4 missing approvals or signatures, an encoder moving without the scorers
+that consume it, a signer the policy does not list, or a --policy that is
+not the bound policy; 5 the release log disagrees with the tag.`,
 		Args: exactArgs(1, "CANDIDATE"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runPromote(cmd.Context(), g, o, args[0])
@@ -100,8 +109,8 @@ func loadOptionalKey(path string) (*release.Key, error) {
 }
 
 func runPromote(ctx context.Context, g *globals, o *promoteOptions, candStr string) error {
-	if o.To == "" || len(o.Policies) == 0 {
-		return usageErr("promote needs --to NAME:TAG and --policy FILE")
+	if o.To == "" {
+		return usageErr("promote needs --to NAME:TAG")
 	}
 	key, err := loadOptionalKey(o.Key)
 	if err != nil {
@@ -182,8 +191,12 @@ func loadPolicies(paths []string) ([]*policy.Policy, error) {
 	return out, nil
 }
 
-// policyFor returns the one policy of pols with a rule for target.
+// policyFor returns the one policy of pols with a rule for target; nil
+// when no policy was given (the tag's bound policy then judges).
 func policyFor(pols []*policy.Policy, target registry.Ref) (*policy.Policy, error) {
+	if len(pols) == 0 {
+		return nil, nil
+	}
 	var found *policy.Policy
 	for _, p := range pols {
 		if _, err := p.Rule(target.String()); err != nil {

@@ -41,10 +41,15 @@ and why. If the tag had been moved outside modelgate, rollback restores the
 last released model. When the newest release of the tag moved several tags
 together (promote --with: an encoder and its scorers), rollback moves all
 of them back, as one record; --to is refused then.
+When the tag's bound policy lists releasers.rollback,
+only those keys may sign it (--key). A rollback ends the gate reports and
+approvals of the models it takes the tag away from: promoting one again
+needs a new gate report and new approvals.
 
 Exit codes: 0 done; 2 bad input, nothing earlier, or --to names a digest
 never released on the tag; 3 a concurrent change won; 4 a signature is
-missing or invalid; 5 the log is damaged.`,
+missing or invalid, or the signer is not one the policy lets roll back;
+5 the log is damaged.`,
 		Args: exactArgs(1, "NAME:TAG"),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runRollback(cmd.Context(), g, o, args[0])

@@ -8,6 +8,7 @@ import (
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
+	"modelgate/internal/policy"
 	"modelgate/internal/registry"
 	"modelgate/internal/release"
 )
@@ -27,6 +28,10 @@ type PublishOptions struct {
 	// ReleaseKey signs the first release records; nil leaves them
 	// unsigned, by "modelgate demo".
 	ReleaseKey *release.Key
+	// Policies, by production tag (NAME:TAG), are bound to the tags by
+	// their first release records; a tag without one gets a release log
+	// with no bound policy (bind one with modelgate policy bind).
+	Policies map[string]*policy.Policy
 }
 
 // Publish pushes a built scenario into store: encoders first, then the
@@ -92,7 +97,7 @@ func PublishWith(ctx context.Context, store registry.Store, sc *Scenario, progre
 			return nil, err
 		}
 		rec, err := release.Initial(ctx, store, release.InitialRequest{Target: ref, To: dg, Key: opts.ReleaseKey,
-			User: "modelgate demo", Reason: "first release of the demo's " + name})
+			User: "modelgate demo", Reason: "first release of the demo's " + name, Policy: opts.Policies[tag]})
 		switch {
 		case errkind.Is(err, errkind.Conflict):
 			cur, rerr := store.Resolve(ctx, ref.Repository, ref.Tag)

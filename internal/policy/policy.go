@@ -480,7 +480,9 @@ type loadOptions struct{ skipKeyFiles bool }
 // SkipKeyFiles leaves the keys a policy names by keyFile unread: their
 // Key.PublicKey is nil and a missing file is no error. For callers that
 // judge no signature — a gate shard, which runs where only the policy
-// file may be mounted. Inline keys are still parsed and checked.
+// file may be mounted. Inline keys are still parsed and checked. A policy
+// loaded so, with a key file it did not read, has no Digest ("") and no
+// canonical form: its identity covers its keys. Its FileDigest is set.
 func SkipKeyFiles() LoadOption { return func(o *loadOptions) { o.skipKeyFiles = true } }
 
 // Parse parses a policy from raw, the bytes of the file called name. name
@@ -518,15 +520,36 @@ func Parse(name string, raw []byte, opts ...LoadOption) (*Policy, error) {
 	if err := probs.err(); err != nil {
 		return nil, err
 	}
+	sum := sha256.Sum256(raw)
+	p.fileDigest = "sha256:" + hex.EncodeToString(sum[:])
 	canon, err := canonical(name, doc)
+	if err != nil && o.skipKeyFiles && p.keyFileUnread() {
+		// The canonical form holds every key: without its key files the
+		// policy has no identity (Digest is "").
+		return p, nil
+	}
 	if err != nil {
 		probs.add("", "%v", err)
 		return nil, probs.err()
 	}
-	sum := sha256.Sum256(raw)
-	p.fileDigest = "sha256:" + hex.EncodeToString(sum[:])
 	sum = sha256.Sum256(canon)
 	p.digest = "sha256:" + hex.EncodeToString(sum[:])
 	p.canonical = canon
 	return p, nil
+}
+
+// keyFileUnread reports whether a key the policy names by keyFile was
+// left unread (see SkipKeyFiles).
+func (p *Policy) keyFileUnread() bool {
+	for i := range p.Rules {
+		r := &p.Rules[i]
+		for _, list := range [][]Key{r.Approvals.Approvers, r.Approvals.ReportSigners, r.Releasers.Promote, r.Releasers.Rollback} {
+			for _, k := range list {
+				if k.KeyFile != "" && k.PublicKey == nil {
+					return true
+				}
+			}
+		}
+	}
+	return false
 }

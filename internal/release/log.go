@@ -6,11 +6,13 @@ import (
 	"fmt"
 	"sort"
 	"strings"
+	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/errkind"
+	"modelgate/internal/policy"
 	"modelgate/internal/registry"
 )
 
@@ -85,6 +87,11 @@ type LogOptions struct {
 	// Trusted, when not nil, are the keys whose records are trusted;
 	// records signed otherwise, or unsigned, are reported as untrusted.
 	Trusted []PublicKey
+	// Policy, when not nil, is a policy (from a file) to cross-check: a
+	// tag whose bound policy differs is reported as untrusted, with what
+	// differs. Every record is judged by the policy in force at it
+	// whether or not Policy is given.
+	Policy *policy.Policy
 }
 
 func (r *LogReport) add(sev, where, format string, args ...any) {
@@ -167,7 +174,9 @@ func Log(ctx context.Context, store registry.Store, target registry.Ref, opts Lo
 		}
 	}
 
-	// Oldest to newest: continuity, released index, rollbacks, restores.
+	// Oldest to newest: continuity, the policy in force, released index,
+	// rollbacks, restores.
+	pj := &policyJudge{policies: map[string]*policy.Policy{}, ended: map[string]string{}}
 	released := map[string]bool{}
 	var order []string
 	byDigest := map[string]*loadedRecord{}
@@ -192,6 +201,7 @@ func Log(ctx context.Context, store registry.Store, target registry.Ref, opts Lo
 				rep.add(SeverityDamage, where, "gap: record %s left the tag at %s but this record moved it from %s: the tag was moved outside modelgate in between", shortHex(chain[i+1].Digest.String()), prev.To, orNone(r.From))
 			}
 		}
+		judgeRecord(ctx, store, target, rep, lr, pj)
 		if r.Kind == KindRollback && !released[r.To] {
 			rep.add(SeverityDamage, where, "rollback to %s, which was never released on the tag before", r.To)
 		}
@@ -235,6 +245,14 @@ func Log(ctx context.Context, store registry.Store, target registry.Ref, opts Lo
 			}
 		}
 	}
+	if opts.Policy != nil && len(chain) > 0 && chain[0].Digest == s.headDesc.Digest {
+		switch b := pj.inForce; {
+		case b == nil:
+			rep.add(SeverityNote, tname, "%s has no bound policy; --policy %s was used only for the keys it trusts", target, opts.Policy.Source)
+		case b.Digest() != opts.Policy.Digest():
+			rep.add(SeverityUntrusted, tname, "%s is not the policy bound to %s (%s); it changes: %s", opts.Policy.Source, target, shortHex(b.Digest()), strings.Join(policy.Diff(b, opts.Policy), "; "))
+		}
+	}
 	orphans(ctx, store, target, rep, inChain)
 	var ds []string
 	for i := range rep.Entries {
@@ -244,6 +262,180 @@ func Log(ctx context.Context, store registry.Store, target registry.Ref, opts Lo
 	}
 	rep.Names = tagNames(ctx, store, repo, ds)
 	return rep, nil
+}
+
+// policyJudge carries, along a log walked oldest to newest, the policy in
+// force and the reports and approvals rollbacks ended.
+type policyJudge struct {
+	inForce  *policy.Policy
+	policies map[string]*policy.Policy
+	ended    map[string]string // digest → why it no longer counts
+}
+
+// judgeRecord judges one record by the policy in force at it (the
+// previous record's bound policy; for the record that first binds a
+// policy, that policy): who signed it, and for a promotion its gate
+// report and approvals, as promote would have judged them at the record's
+// time; for a policy change, the approvals of the policy it replaced.
+// What does not hold is reported as untrusted.
+func judgeRecord(ctx context.Context, store registry.Store, target registry.Ref, rep *LogReport, lr *loadedRecord, pj *policyJudge) {
+	r := &lr.Record
+	where := lr.Digest.String()
+	repo := target.Repository
+	untrusted := func(format string, args ...any) { rep.add(SeverityUntrusted, where, format, args...) }
+	var recPol *policy.Policy
+	if lr.policy != nil {
+		if p, ok := pj.policies[r.Policy]; ok {
+			recPol = p
+		} else {
+			p, err := lr.boundPolicy(ctx, store, repo)
+			if err != nil {
+				rep.add(SeverityDamage, where, "its bound policy: %v", err)
+			}
+			pj.policies[r.Policy], recPol = p, p
+		}
+	}
+	prev := pj.inForce
+	defer func() {
+		pj.inForce = recPol
+		if r.Kind == KindRollback {
+			for _, d := range r.Ended {
+				pj.ended[d] = fmt.Sprintf("ended by rollback %s (%s)", shortHex(where), r.Time)
+			}
+		}
+	}()
+	switch {
+	case prev == nil && recPol != nil:
+		rep.add(SeverityNote, where, "binds policy %s (%s) to %s: the first policy of the tag", recPol.Name, shortHex(recPol.Digest()), target)
+	case prev != nil && recPol == nil:
+		untrusted("it drops the policy bound to %s (%s): modelgate never writes such a record", target, shortHex(prev.Digest()))
+		return
+	case prev != nil && recPol != nil && recPol.Digest() != prev.Digest() && r.Kind != KindPolicy:
+		untrusted("it changes the policy bound to %s (%s → %s) without a policy record and its approvals", target, shortHex(prev.Digest()), shortHex(recPol.Digest()))
+	}
+	judgeBy := prev
+	if judgeBy == nil {
+		judgeBy = recPol
+	}
+	if judgeBy == nil {
+		return // a record from before policies were bound
+	}
+	rule, err := judgeBy.Rule(target.String())
+	if err != nil {
+		untrusted("the policy in force has no rule for %s", target)
+		return
+	}
+	var signerKey *Key
+	if lr.Signer != nil {
+		signerKey = &Key{Name: lr.Signer.Name, ID: lr.Signer.ID, Public: lr.Signer.Public}
+	}
+	now, terr := time.Parse(time.RFC3339, r.Time)
+	if terr != nil {
+		untrusted("its time %q is not RFC 3339", r.Time)
+		return
+	}
+	var signer promoterID
+	if lr.Signer != nil {
+		signer.id = lr.Signer.ID
+		signer.names, _ = promoterIdentity(rule, lr.Signer.Public)
+	}
+	switch r.Kind {
+	case KindRollback:
+		if msg := releaserCheck(rule, KindRollback, signerKey); msg != "" {
+			untrusted("%s", msg)
+		}
+	case KindPolicy:
+		if prev == nil {
+			if msg := releaserCheck(rule, KindPromote, signerKey); msg != "" {
+				untrusted("%s", msg)
+			}
+			return
+		}
+		if msg := releaserCheck(rule, KindPromote, signerKey); msg != "" {
+			untrusted("%s", msg)
+		}
+		if r.PolicyDigest != prev.Digest() {
+			untrusted("it says it replaced policy %s, but %s was in force", shortHex(r.PolicyDigest), shortHex(prev.Digest()))
+		}
+		approvers, _ := TrustedKeys(rule.Approvals.Approvers)
+		var ds []v1.Hash
+		for _, a := range r.Approvals {
+			if d, err := registry.ParseDigest(a); err == nil {
+				ds = append(ds, d)
+			}
+		}
+		acs, counted, _ := countPolicyApprovals(ctx, store, repo, ds, policyApprovalContext{target: target.String(), current: prev.Digest(),
+			proposed: r.Policy, record: r.Previous, approvers: approvers, maxAge: rule.Approvals.MaxAge, now: now, binder: signer,
+			allowSelf: rule.Approvals.AllowSelfApproval})
+		if counted < rule.Approvals.Required {
+			untrusted("a policy change with %d of the %d approvals the policy in force requires%s", counted, rule.Approvals.Required, whyNot(acs))
+		}
+	case KindPromote:
+		if msg := releaserCheck(rule, KindPromote, signerKey); msg != "" {
+			untrusted("%s", msg)
+		}
+		if r.PolicyDigest != judgeBy.Digest() {
+			untrusted("it was judged under policy %s, but %s was in force", shortHex(r.PolicyDigest), shortHex(judgeBy.Digest()))
+		}
+		signers, _ := TrustedKeys(rule.Approvals.ReportSigners)
+		reports := map[string]bool{}
+		if d, err := registry.ParseDigest(r.Report); err != nil {
+			untrusted("it names no gate report")
+		} else {
+			rc := checkReport(ctx, store, repo, d, Binding{Candidate: r.To, Target: target.String(), Baseline: r.From,
+				Policy: judgeBy.Digest(), Tool: r.Tool, Signers: signers, anyHoldout: true})
+			switch why, ended := pj.ended[r.Report]; {
+			case ended:
+				untrusted("its gate report %s was %s", shortHex(r.Report), why)
+			case !rc.Usable:
+				untrusted("its gate report %s does not hold under the policy in force: %s", shortHex(r.Report), rc.Why)
+			default:
+				reports[r.Report] = true
+			}
+		}
+		if rule.Approvals.Required == 0 {
+			return
+		}
+		if !rule.Approvals.AllowSelfApproval && len(signer.names) == 0 {
+			untrusted("the policy in force forbids self-approval, but the promotion is not signed by a key it lists")
+		}
+		approvers, _ := TrustedKeys(rule.Approvals.Approvers)
+		c := approvalContext{candidate: r.To, target: target.String(), policy: judgeBy.Digest(), reports: reports, approvers: approvers,
+			maxAge: rule.Approvals.MaxAge, now: now, promoter: signer.id, promoterNames: signer.names,
+			allowSelf: rule.Approvals.AllowSelfApproval, ended: pj.ended}
+		var acs []ApprovalCheck
+		counted := map[string]bool{}
+		for _, a := range r.Approvals {
+			d, err := registry.ParseDigest(a)
+			if err != nil {
+				continue
+			}
+			ac := checkApproval(ctx, store, repo, d, c)
+			if ac.Counted && counted[ac.Approver.KeyID] {
+				ac.Counted, ac.Why = false, "another approval by the same key is listed too"
+			}
+			if ac.Counted {
+				counted[ac.Approver.KeyID] = true
+			}
+			acs = append(acs, ac)
+		}
+		if len(counted) < rule.Approvals.Required {
+			untrusted("a promotion with %d of the %d approvals the policy in force requires%s", len(counted), rule.Approvals.Required, whyNot(acs))
+		}
+	}
+}
+
+func whyNot(acs []ApprovalCheck) string {
+	var out []string
+	for _, a := range acs {
+		if !a.Counted {
+			out = append(out, fmt.Sprintf("approval %s by %s: %s", shortHex(a.Digest), a.Approver, a.Why))
+		}
+	}
+	if len(out) == 0 {
+		return ""
+	}
+	return " (" + strings.Join(out, "; ") + ")"
 }
 
 // readStateLenient reads the head pointer and the tag without judging

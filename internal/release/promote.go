@@ -405,8 +405,19 @@ func commit(ctx context.Context, store registry.Store, sw registry.TagSwapper, s
 	}
 	if err := sw.SwapTag(ctx, t.Repository, s.headTag, s.headDigest(), recDesc); err != nil {
 		if errors.Is(err, registry.ErrConflict) {
-			if d, rerr := store.Resolve(ctx, t.Repository, s.headTag); rerr == nil && d.Digest == recDesc.Digest {
+			d, rerr := store.Resolve(ctx, t.Repository, s.headTag)
+			if rerr == nil && d.Digest == recDesc.Digest {
 				return nil // another process completed our record for us
+			}
+			// A policy record (which moves only the head pointer) won the
+			// race from the same head: put the tag back, so the log and
+			// the tag agree again.
+			if rerr == nil && s.tagDesc != nil {
+				if lr, err := readRecord(ctx, store, t.Repository, d.Digest, t.String()); err == nil && lr.Record.Kind == KindPolicy &&
+					lr.Record.Previous == s.headDigest().String() && sw.SwapTag(ctx, t.Repository, t.Tag, toDesc.Digest, *s.tagDesc) == nil {
+					return refuse(&Refusal{Kind: errkind.Conflict, Action: "release", Problems: []string{fmt.Sprintf(
+						"the policy bound to %s changed while this ran (record %s); %s was put back to %s: try again under the new policy", t, shortHex(d.Digest.String()), t, was)}})
+				}
 			}
 			return errkind.New(errkind.Integrity, "%s now points at %s, but the release log head %s was moved by someone else before it could name record %s: run `modelgate log %s`", t, toDesc.Digest, s.headTag, recDesc.Digest, t)
 		}

@@ -107,6 +107,8 @@ type Binding struct {
 	// Signers, when not empty, are the keys one of which must have signed
 	// the report.
 	Signers []PublicKey
+
+	anyHoldout bool // log: the holdout the report used is not judged
 }
 
 // ReportCheck is the verdict on one stored gate report.
@@ -196,7 +198,7 @@ func checkReport(ctx context.Context, store registry.Store, repo string, d v1.Ha
 	if rep.Holdout != nil {
 		holdout = rep.Holdout.Digest
 	}
-	if holdout != b.Holdout {
+	if holdout != b.Holdout && !b.anyHoldout {
 		why = append(why, fmt.Sprintf("it used holdout %s, the policy's holdout is now %s", orNone(holdout), orNone(b.Holdout)))
 	}
 	if rep.Tool.Version != b.Tool {

@@ -9,6 +9,7 @@ import (
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
 	"modelgate/internal/artifact"
+	"modelgate/internal/checks"
 	"modelgate/internal/errkind"
 	"modelgate/internal/registry"
 	"modelgate/internal/registry/storetest"
@@ -294,8 +295,9 @@ func TestInterruptedRelease(t *testing.T) {
 		t.Fatal(err)
 	}
 	released, _ := s.head.releasedList(e.ctx, e.store, testRepo)
-	rec := &Record{Kind: KindPromote, Target: prodRef.String(), From: s.current(), To: e.models[2].String(),
-		Time: e.now.Format("2006-01-02T15:04:05Z"), Previous: s.head.Digest.String(),
+	rep := e.report(e.models[2], e.models[1], e.pol, checks.VerdictPass, e.keys["ci"])
+	rec := &Record{Kind: KindPromote, Target: prodRef.String(), From: s.current(), To: e.models[2].String(), Report: rep.String(),
+		Time: e.now.Format("2006-01-02T15:04:05Z"), Previous: s.head.Digest.String(), PolicyDigest: e.pol.Digest(),
 		Restore: &Restore{Target: s.current(), Record: s.head.Digest.String()}, Policy: s.head.Record.Policy}
 	d, err := writeRecord(e.ctx, e.store, testRepo, rec, appendNew(released, rec.To), nil, e.keys["rita"], s.head.policyLayer())
 	if err != nil {

@@ -438,10 +438,9 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 			return nil, errkind.New(errkind.BadInput, "%s is named twice in one release", t)
 		}
 		seen[t.String()] = true
-		if m.Policy == nil {
-			return nil, errkind.New(errkind.BadInput, "no policy for %s", t)
+		if m.Policy != nil {
+			pols = append(pols, m.Policy)
 		}
-		pols = append(pols, m.Policy)
 		if _, err := subjectOf(ctx, store, t.Repository, m.Candidate); err != nil {
 			return nil, fmt.Errorf("the candidate %s (it must be in repository %s): %w", m.Candidate, t.Repository, err)
 		}
@@ -508,6 +507,9 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 				problems = append(problems, problem{rf.Kind, t.String() + ": " + p})
 			}
 		} else {
+			if m.Policy == nil {
+				pols = append(pols, pol)
+			}
 			m.Policy = pol
 			if rule, err := pol.Rule(t.String()); err == nil {
 				if msg := releaserCheck(rule, KindPromote, req.Key); msg != "" {
