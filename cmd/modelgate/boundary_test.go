@@ -342,4 +342,3 @@ func TestRollbackEndsApprovals(t *testing.T) {
 	}
 	mustMG(t, w.store, "log", "tiny-encoder:prod", "--policy", w.policy)
 }
-

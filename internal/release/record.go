@@ -65,8 +65,8 @@ type Record struct {
 	Policy string `json:"policy,omitempty"`
 	// Ended lists, for a rollback, the gate reports and approvals it
 	// ended: those of the models it took the tag away from, sorted.
-	Ended []string `json:"ended,omitempty"`
-	Reason       string `json:"reason,omitempty"`
+	Ended  []string `json:"ended,omitempty"`
+	Reason string   `json:"reason,omitempty"`
 	// By is who made the change; SignerPublicKey is their PEM public key
 	// (empty for an unsigned record).
 	By              Actor  `json:"by"`
