@@ -46,9 +46,11 @@ func TestServePages(t *testing.T) {
 		t.Error("the release record's page does not show its committed marker")
 	}
 
+	// The production tags' policies are bound by their release logs, so
+	// the view knows them without --policy.
 	list := mustGet(t, s, "/candidates")
-	if n := strings.Count(list, `<span class="muted">policy unknown</span>`); n != 4 {
-		t.Errorf("candidate list shows %d candidates with an unknown policy, want 4", n)
+	if n := strings.Count(list, `<span class="muted">policy unknown</span>`); n != 0 {
+		t.Errorf("candidate list shows %d candidates with an unknown policy, want 0", n)
 	}
 
 	// The candidate that passes: verdict, report link, the next commands.
@@ -56,8 +58,8 @@ func TestServePages(t *testing.T) {
 	for _, want := range []string{
 		`<span aria-hidden="true">✓</span> PASS`,
 		`href="/reports/promo-scorer@` + f.reports[f.better] + `"`,
-		"<strong>policy unknown</strong>",
-		"modelgate approve promo-scorer@" + f.better + " --to promo-scorer:prod --policy POLICY.yaml --key YOUR.key.pem --store /srv/store",
+		"bound to the tag by its release log", `<strong class="count">1 of 2</strong>`,
+		"modelgate approve promo-scorer@" + f.better + " --to promo-scorer:prod --key YOUR.key.pem --store /srv/store",
 	} {
 		if !strings.Contains(better, want) {
 			t.Errorf("passing candidate's page lacks %q", want)
@@ -82,7 +84,6 @@ func TestServePages(t *testing.T) {
 		`<strong class="count">1 of 2</strong>`, "no approval yet from sam",
 		"rita (" + f.keys["rita"].ID + ")", "slices read; fine by me",
 		"mallory", "which the policy does not list as an approver",
-		"--policy " + f.policy.Source,
 	} {
 		if !strings.Contains(better, want) {
 			t.Errorf("with the policy, the candidate page lacks %q", want)
@@ -116,6 +117,23 @@ func TestServePages(t *testing.T) {
 	}
 	if hold := mustGet(t, s, "/tags/promo-holdout:v1"); !strings.Contains(hold, "holdout") {
 		t.Error("holdout tag page does not say it is a holdout")
+	}
+
+	// listener-encoder v2 was promoted and rolled back: its page says so,
+	// with the reason, and offers only to gate it again.
+	v2 := resolveTag(t, f.store, "listener-encoder", "v2")
+	page := mustGet(t, s, "/candidates/listener-encoder@"+v2)
+	for _, want := range []string{"Rolled back:", "scorers trained on v1 codes; roll back until they are retrained",
+		"promote would refuse it now"} {
+		if !strings.Contains(page, want) {
+			t.Errorf("rolled-back candidate's page lacks %q", want)
+		}
+	}
+	if !strings.Contains(list, `<span aria-hidden="true">↶</span> rolled back</span> <span class="note">scorers trained on v1 codes`) {
+		t.Error("the candidate list does not show listener-encoder v2 as rolled back, with the reason")
+	}
+	if strings.Contains(page, "ready to promote") || strings.Contains(page, "modelgate promote") {
+		t.Error("the rolled-back candidate's page offers to promote it")
 	}
 }
 

@@ -88,10 +88,16 @@ func buildDemo() (*demoFixture, error) {
 		f.keys[name] = k
 	}
 	ctx := context.Background()
-	if _, err := demo.PublishWith(ctx, store, sc, nil, demo.PublishOptions{ReleaseKey: f.keys["rita"]}); err != nil {
+	if f.policy, err = approvalPolicy(dir, f.keys); err != nil {
 		return nil, err
 	}
-	if f.policy, err = approvalPolicy(dir, f.keys); err != nil {
+	encPol, err := policy.Load(filepath.Join("..", "..", "policies", "listener-encoder.yaml"))
+	if err != nil {
+		return nil, err
+	}
+	// The first release records bind the policies to the production tags.
+	if _, err := demo.PublishWith(ctx, store, sc, nil, demo.PublishOptions{ReleaseKey: f.keys["rita"],
+		Policies: map[string]*policy.Policy{"promo-scorer:prod": f.policy, "listener-encoder:prod": encPol}}); err != nil {
 		return nil, err
 	}
 	base, err := store.Resolve(ctx, "promo-scorer", "prod")
@@ -132,10 +138,6 @@ func buildDemo() (*demoFixture, error) {
 		return nil, err
 	}
 	// listener-encoder:prod gets a longer log: v2 gated, promoted, rolled back.
-	encPol, err := policy.Load(filepath.Join("..", "..", "policies", "listener-encoder.yaml"))
-	if err != nil {
-		return nil, err
-	}
 	rep, err := runGate(ctx, store, encPol, "listener-encoder:v2", "listener-encoder:prod", "policies/listener-encoder.yaml")
 	if err != nil {
 		return nil, err

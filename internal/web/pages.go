@@ -232,20 +232,26 @@ func (s *Server) candidateCommands(cand string, c candidateRow, rep *checks.Repo
 	if c.Promoted {
 		return nil
 	}
-	pol := policyPlaceholder
+	// A tag with a bound policy is judged by it: the commands need no
+	// --policy.
+	polArgs := []string{"--policy", policyPlaceholder}
 	if c.Approvals != nil && c.Approvals.PolicyKnown {
-		pol = c.Approvals.PolicySource
+		polArgs = []string{"--policy", c.Approvals.PolicySource}
+		if c.Approvals.Bound {
+			polArgs = nil
+		}
 	}
-	gate := command{Label: "Run the gate again against what the tag points at now", Text: s.cli("gate", cand, "--to", c.Target, "--policy", pol)}
-	if c.Stale || rep.Verdict != checks.VerdictPass || (c.Approvals != nil && c.Approvals.PolicyKnown && !c.Approvals.ReportPolicy) {
+	words := func(w ...string) []string { return append(w, polArgs...) }
+	gate := command{Label: "Run the gate again against what the tag points at now", Text: s.cli(words("gate", cand, "--to", c.Target)...)}
+	if c.Stale || rep.Verdict != checks.VerdictPass || (c.Approvals != nil && (c.Approvals.ReportEnded || (c.Approvals.PolicyKnown && !c.Approvals.ReportPolicy))) {
 		return []command{gate}
 	}
 	var out []command
 	if c.Approvals == nil || !c.Approvals.PolicyKnown || c.Approvals.Counted < c.Approvals.Required {
 		out = append(out, command{Label: "Approve (on your own machine, with your private key)",
-			Text: s.cli("approve", cand, "--to", c.Target, "--policy", pol, "--key", keyPlaceholder)})
+			Text: s.cli(append(words("approve", cand, "--to", c.Target), "--key", keyPlaceholder)...)})
 	}
-	out = append(out, command{Label: "Promote once the approvals are in", Text: s.cli("promote", cand, "--to", c.Target, "--policy", pol, "--key", keyPlaceholder)})
+	out = append(out, command{Label: "Promote once the approvals are in", Text: s.cli(append(words("promote", cand, "--to", c.Target), "--key", keyPlaceholder)...)})
 	return out
 }
 

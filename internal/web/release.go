@@ -130,6 +130,14 @@ type approvalView struct {
 	// Problems are what promote would say about the gate reports now
 	// (empty when a usable report exists or the policy is unknown).
 	Problems []string
+	// RolledBack are the rollbacks that took the target away from this
+	// candidate, oldest first; ReportEnded is true when the newest report
+	// is one of the gate reports they ended (promote would refuse it).
+	RolledBack  []release.EndedRelease
+	ReportEnded bool
+	// Bound is true when the policy shown is the one bound to the target
+	// by its release log (read from the store).
+	Bound bool
 }
 
 type approvalEntry struct {
@@ -167,7 +175,28 @@ func (s *Server) policyFor(target, want string) (*policy.Policy, *policy.Rule) {
 // alone also checks who promotes (self-approval), so the page says "so far".
 func (s *Server) approvals(ctx context.Context, repo string, cand v1.Hash, target string, rep reportRef) (*approvalView, error) {
 	av := &approvalView{}
+	tref, err := registry.ParseRef(target, false)
+	if err != nil {
+		return nil, err
+	}
+	rb, err := release.RolledBack(ctx, s.store, cand, tref)
+	if err != nil {
+		return nil, err
+	}
+	av.RolledBack = rb
+	for _, e := range rb {
+		for _, d := range e.Ended {
+			av.ReportEnded = av.ReportEnded || d == rep.Digest
+		}
+	}
 	pol, rule := s.policyFor(target, rep.Policy)
+	// The policy bound to the target, when it has one, is the one promote
+	// judges by.
+	if b, err := release.BoundPolicy(ctx, s.store, tref); err == nil && b.Policy != nil {
+		if r, err := b.Policy.Rule(target); err == nil {
+			pol, rule, av.Bound = b.Policy, r, true
+		}
+	}
 	if pol == nil {
 		return av, nil
 	}
@@ -177,10 +206,6 @@ func (s *Server) approvals(ctx context.Context, repo string, cand v1.Hash, targe
 	av.Required = rule.Approvals.Required
 	for _, k := range rule.Approvals.Approvers {
 		av.Approvers = append(av.Approvers, k.Name)
-	}
-	tref, err := registry.ParseRef(target, false)
-	if err != nil {
-		return nil, err
 	}
 	current := ""
 	if d, err := s.store.Resolve(ctx, tref.Repository, tref.Tag); err == nil {

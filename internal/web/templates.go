@@ -11,6 +11,7 @@ import (
 	"strings"
 
 	"modelgate/internal/checks"
+	"modelgate/internal/release"
 	"modelgate/internal/report"
 )
 
@@ -40,6 +41,7 @@ var funcs = template.FuncMap{
 	"bytes":         report.HumanBytes,
 	"num":           func(v int64) string { return groupDigits(v) },
 	"join":          strings.Join,
+	"lastRollback":  lastRollback,
 	"inc":           func(i int) int { return i + 1 },
 }
 
@@ -162,4 +164,13 @@ func groupDigits(v int64) string {
 		return "-" + b.String()
 	}
 	return b.String()
+}
+
+// lastRollback returns the newest of a candidate's rollbacks, nil when
+// none.
+func lastRollback(rb []release.EndedRelease) *release.EndedRelease {
+	if len(rb) == 0 {
+		return nil
+	}
+	return &rb[len(rb)-1]
 }
