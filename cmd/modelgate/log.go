@@ -95,7 +95,7 @@ func runLog(ctx context.Context, g *globals, o *logOptions, tagStr string) error
 	case errkind.Integrity:
 		return errkind.New(errkind.Integrity, "the release log of %s does not verify", target)
 	case errkind.Unauthorized:
-		return errkind.New(errkind.Unauthorized, "the release log of %s has records no trusted key vouches for", target)
+		return errkind.New(errkind.Unauthorized, "the release log of %s has records the policy in force does not allow, or that no trusted key vouches for", target)
 	}
 	return nil
 }

@@ -1,0 +1,70 @@
+package release
+
+import (
+	"strings"
+	"testing"
+
+	"modelgate/internal/errkind"
+)
+
+// TestBindLegacyLog: a release log written before policies were bound
+// (its promote records name the policy file's digest and carry no
+// policy) can only adopt the policy its newest promotion was judged
+// under; promote refuses the tag until then.
+func TestBindLegacyLog(t *testing.T) {
+	e := newEnv(t, envOptions{})
+	if _, err := Initial(e.ctx, e.store, InitialRequest{Target: prodRef, To: e.models[0], Key: e.keys["rita"], Now: e.now}); err != nil {
+		t.Fatal(err)
+	}
+	// What an older modelgate's promote left: PolicyDigest is the file
+	// digest, no bound policy.
+	s, err := readState(e.ctx, e.store, prodRef)
+	if err != nil {
+		t.Fatal(err)
+	}
+	released, _ := s.head.releasedList(e.ctx, e.store, testRepo)
+	rec := &Record{Kind: KindPromote, Target: prodRef.String(), From: s.current(), To: e.models[1].String(),
+		PolicyDigest: e.pol.FileDigest(), Time: e.now.Format("2006-01-02T15:04:05Z"), Previous: s.head.Digest.String(),
+		Restore: &Restore{Target: s.current(), Record: s.head.Digest.String()}}
+	d, err := writeRecord(e.ctx, e.store, testRepo, rec, appendNew(released, rec.To), nil, e.keys["rita"], nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, to, _ := e.store.Manifest(e.ctx, testRepo, e.models[1])
+	if err := e.store.SwapTag(e.ctx, testRepo, "prod", e.models[0], to); err != nil {
+		t.Fatal(err)
+	}
+	if err := e.store.SwapTag(e.ctx, testRepo, "release-prod", s.head.Digest, d); err != nil {
+		t.Fatal(err)
+	}
+	if lg := e.log(); lg.Worst() != 0 {
+		t.Fatalf("legacy log: %+v", lg.Findings)
+	}
+
+	_, err = e.promote(e.models[2], "rita")
+	wantRefusal(t, err, errkind.Unauthorized, "from before policies were bound", "modelgate policy bind")
+
+	other := e.writePolicy("other.yaml", envOptions{required: 0})
+	_, err = BindPolicy(e.ctx, e.store, PolicyChangeRequest{Target: prodRef, Policy: other, Key: e.keys["rita"], Now: e.now})
+	wantRefusal(t, err, errkind.Unauthorized, "was judged under policy")
+	res, err := BindPolicy(e.ctx, e.store, PolicyChangeRequest{Target: prodRef, Policy: e.pol, Key: e.keys["rita"], Now: e.now})
+	if err != nil || !res.Adopted {
+		t.Fatalf("binding the policy of the newest promotion: %+v %v", res, err)
+	}
+	b, err := BoundPolicy(e.ctx, e.store, prodRef)
+	if err != nil || b.Policy == nil || b.Policy.Digest() != e.pol.Digest() {
+		t.Fatalf("bound policy after the upgrade: %+v %v", b, err)
+	}
+	if lg := e.log(); lg.Worst() != 0 || !strings.Contains(findings(lg, SeverityNote), "the first policy of the tag") {
+		t.Errorf("log after the upgrade: %+v", lg.Findings)
+	}
+	e.mustPromote(e.models[2])
+	// A plain rollback passes over the policy record to the release before.
+	res2, err := e.rollback(nil, false)
+	if err != nil || res2.To != e.models[1].String() {
+		t.Fatalf("rollback over a policy record: %+v %v", res2, err)
+	}
+	if lg := e.log(); lg.Worst() != 0 {
+		t.Errorf("log after the rollback: %+v", lg.Findings)
+	}
+}
