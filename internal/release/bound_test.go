@@ -1,10 +1,15 @@
 package release
 
 import (
+	"context"
 	"strings"
 	"testing"
 
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"modelgate/internal/checks"
 	"modelgate/internal/errkind"
+	"modelgate/internal/registry"
 )
 
 // TestBindLegacyLog: a release log written before policies were bound
@@ -67,4 +72,59 @@ func TestBindLegacyLog(t *testing.T) {
 	if lg := e.log(); lg.Worst() != 0 {
 		t.Errorf("log after the rollback: %+v", lg.Findings)
 	}
+}
+
+// policyRacer is a store whose first move of tiny-encoder:prod is
+// followed, before anything else, by a policy record of the same parent
+// taking the head pointer: what a concurrent `policy bind` does to a
+// promote between its two compare-and-swaps.
+type policyRacer struct {
+	*registry.Local
+	e    *env
+	done bool
+}
+
+func (p *policyRacer) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, desc v1.Descriptor) error {
+	if err := p.Local.SwapTag(ctx, repo, tag, old, desc); err != nil || tag != "prod" || p.done {
+		return err
+	}
+	p.done = true
+	s, err := readState(ctx, p.Local, prodRef)
+	if err != nil {
+		return err
+	}
+	h := s.head.Record
+	rec := &Record{Kind: KindPolicy, Target: h.Target, From: h.To, To: h.To, PolicyDigest: h.Policy, Policy: h.Policy,
+		Time: h.Time, Previous: s.head.Digest.String(), Restore: h.Restore, Reason: "the racing policy change"}
+	reuse := s.head.released
+	d, err := writeRecord(ctx, p.Local, repo, rec, nil, &reuse, p.e.keys["rita"], s.head.policyLayer())
+	if err != nil {
+		return err
+	}
+	return p.Local.SwapTag(ctx, repo, "release-prod", s.head.Digest, d)
+}
+
+// TestPromoteLosesToPolicyChange: a policy record that takes the head
+// pointer between a promote's tag move and its head move wins; the
+// promote puts the tag back and fails with a conflict, and the log
+// verifies.
+func TestPromoteLosesToPolicyChange(t *testing.T) {
+	e := newEnv(t, envOptions{})
+	e.mustPromote(e.models[0])
+	e.report(e.models[1], e.models[0], e.pol, checks.VerdictPass, e.keys["ci"])
+	racer := &policyRacer{Local: e.store, e: e}
+	_, err := Promote(e.ctx, racer, PromoteRequest{Candidate: e.models[1], Target: prodRef, Key: e.keys["rita"], Now: e.now})
+	wantRefusal(t, err, errkind.Conflict, "the policy bound to tiny-encoder:prod changed while this ran")
+	if !racer.done {
+		t.Fatal("the race was not staged")
+	}
+	if e.current() != e.models[0].String() {
+		t.Errorf("the tag was left at %s", e.current())
+	}
+	lg := e.log()
+	if lg.Worst() != 0 || len(lg.Entries) != 2 || lg.Entries[0].Record.Kind != KindPolicy {
+		t.Errorf("log after the race: %d entries, %+v", len(lg.Entries), lg.Findings)
+	}
+	// The next promote goes through.
+	e.mustPromote(e.models[1])
 }
