@@ -59,6 +59,7 @@ func readPolicyBlob(ctx context.Context, store registry.Store, repo string, d v1
 	if pol.Digest() != d.Digest.String() {
 		return nil, errkind.New(errkind.Integrity, "%s (%s) is not in canonical form", label, d.Digest)
 	}
+	pol.Source = label
 	return pol, nil
 }
 
