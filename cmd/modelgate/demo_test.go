@@ -73,12 +73,20 @@ func TestDemo(t *testing.T) {
 // codes, the stored report (a referrer of the candidate), the HTML page.
 func TestGateCommand(t *testing.T) {
 	store := filepath.Join(t.TempDir(), "store")
-	mustMG(t, store, "demo", "--work", filepath.Join(t.TempDir(), "work"))
-	pol := filepath.Join("..", "..", "policies", "promo-scorer.yaml")
+	work := filepath.Join(t.TempDir(), "work")
+	mustMG(t, store, "demo", "--work", work)
+	// The demo's first release bound its copy of the policy (with the
+	// demo's keys) to promo-scorer:prod: the gate judges by it.
+	pol := filepath.Join(work, "policies", "promo-scorer.yaml")
 	html := filepath.Join(t.TempDir(), "report.html")
 	r := mustMG(t, store, "gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", pol, "--html", html)
 	if !strings.Contains(r.stdout, "verdict: pass") {
 		t.Errorf("gate output:\n%s", r.stdout)
+	}
+	// The file the repository ships is another policy: refused, exit 4.
+	repoPol := filepath.Join("..", "..", "policies", "promo-scorer.yaml")
+	if r := mg(t, store, "gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", repoPol); r.code != 4 || !strings.Contains(r.stderr, "not the policy bound") {
+		t.Errorf("gate with another policy file: exit %d\n%s", r.code, r.stderr)
 	}
 	page, err := os.ReadFile(html)
 	if err != nil || !strings.Contains(string(page), "<svg") {
@@ -102,13 +110,13 @@ func TestGateCommand(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	var refs []v1.Descriptor // the demo's own story gated it too, under its copy of the policy
+	var refs []v1.Descriptor // the demo's own story gated it too, signed by its CI key
 	for _, d := range all {
 		if d.Annotations["dev.modelgate.policy.digest"] == p.Digest() {
 			refs = append(refs, d)
 		}
 	}
-	if len(refs) != 1 {
+	if len(refs) != 2 {
 		t.Fatalf("reports of the candidate under %s: %v", pol, refs)
 	}
 	rep, err := checks.ReadReport(ctx, st, "promo-scorer", refs[0].Digest)
@@ -150,7 +158,7 @@ func TestGateCommand(t *testing.T) {
 	// Bad input exits 2.
 	for _, args := range [][]string{
 		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", pol, "--shard", "3/2"},
-		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod"},
+		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:staging"}, // no release log, no --policy
 		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:canary", "--policy", pol},
 		{"gate", "promo-scorer:nope", "--to", "promo-scorer:prod", "--policy", pol},
 		{"gate", "promo-scorer:cand-better", "--to", "promo-scorer:prod", "--policy", "missing.yaml"},
