@@ -89,6 +89,13 @@ func TestJSONContract(t *testing.T) {
 		{"promote", []string{"promote", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--key", key("rita")}, 3},
 		{"rollback", []string{"rollback", "promo-scorer:prod", "--reason", "contract test", "--dry-run"}, 2}, // the demo rolled back to the first release
 		{"log", []string{"log", "promo-scorer:prod", "--policy", pol}, 0},
+		{"policy", []string{"policy", "show", "promo-scorer:prod"}, 0},
+		{"policy", []string{"policy", "show", "promo-scorer:staging"}, 2},
+		{"policy", []string{"policy", "diff", "promo-scorer:prod", pol}, 0},
+		{"policy", []string{"policy", "diff", "promo-scorer:prod", filepath.Join("..", "..", "policies", "promo-scorer.yaml")}, 1},
+		{"policy", []string{"policy", "bind", "promo-scorer:prod", "--policy", pol}, 0},
+		{"policy", []string{"policy", "bind", "promo-scorer:prod", "--policy", filepath.Join("..", "..", "policies", "promo-scorer.yaml"), "--key", key("rita")}, 4},
+		{"policy", []string{"policy", "approve", "promo-scorer:prod", "--policy", filepath.Join("..", "..", "policies", "promo-scorer.yaml"), "--key", key("ana")}, 0},
 		{"copy", []string{"copy", "tiny-encoder:v1", "--dest", filepath.Join(dir, "copy")}, 0},
 	} {
 		r := mg(t, store, append(c.args, "--json")...)

@@ -248,11 +248,8 @@ func runPolicyBind(ctx context.Context, g *globals, o *policyChangeOptions, tagS
 	}
 	res, err := release.BindPolicy(ctx, store, release.PolicyChangeRequest{Target: t, Policy: pol, Key: key, User: currentUser(), Comment: o.Comment})
 	if g.JSON && res != nil {
-		out := map[string]any{"result": res}
-		if err != nil {
-			out["error"] = err.Error()
-		}
-		if perr := g.printJSON(out); perr != nil {
+		// On a refusal the error is added beside the result (finishJSON).
+		if perr := g.printJSON(map[string]any{"result": res}); perr != nil {
 			return perr
 		}
 		return err
