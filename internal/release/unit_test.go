@@ -43,9 +43,16 @@ func (e *env) pushScorer(i int, enc v1.Hash, tag string) v1.Hash {
 	return d
 }
 
+// initial starts target's release log at to, binding the policy the
+// tests judge it by: e.pol for the encoder tag, scorerPolicy(tag) for a
+// scorer tag.
 func (e *env) initial(target registry.Ref, to v1.Hash) {
 	e.t.Helper()
-	if _, err := Initial(e.ctx, e.store, InitialRequest{Target: target, To: to, User: "setup", Now: e.now}); err != nil {
+	pol := e.pol
+	if target.Repository == scorerRepo {
+		pol = e.scorerPolicy(target.Tag)
+	}
+	if _, err := Initial(e.ctx, e.store, InitialRequest{Target: target, To: to, User: "setup", Now: e.now, Policy: pol}); err != nil {
 		e.t.Fatal(err)
 	}
 }
@@ -321,7 +328,13 @@ func TestUnitInterrupted(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			if rep.Worst() != errkind.Integrity || len(rep.Findings) != 1 || !strings.HasPrefix(rep.Findings[0].Message, "interrupted: record "+copies[0].rec.Digest.String()) {
+			var found []Finding // notes aside (the first record binds a policy)
+			for _, f := range rep.Findings {
+				if f.Severity != SeverityNote {
+					found = append(found, f)
+				}
+			}
+			if rep.Worst() != errkind.Integrity || len(found) != 1 || !strings.HasPrefix(found[0].Message, "interrupted: record "+copies[0].rec.Digest.String()) {
 				t.Fatalf("log: %+v", rep.Findings)
 			}
 			// A rollback of a claimed tag completes the unit, then rolls
@@ -362,7 +375,7 @@ func TestUnitInterrupted(t *testing.T) {
 		ht, _ := headTag("prod")
 		cur, _ := w.store.Resolve(w.ctx, testRepo, ht)
 		other, err := writeRecord(w.ctx, w.store, testRepo, &Record{Kind: KindRollback, Target: prodRef.String(), From: w.models[0].String(),
-			To: w.models[0].String(), Previous: cur.Digest.String(), Reason: "x", By: Actor{Name: "t"}, Time: w.now.Format(time.RFC3339)}, nil, ptr(mustHead(t, w).released), nil)
+			To: w.models[0].String(), Previous: cur.Digest.String(), Reason: "x", By: Actor{Name: "t"}, Time: w.now.Format(time.RFC3339), Policy: mustHead(t, w).Record.Policy}, nil, ptr(mustHead(t, w).released), nil, mustHead(t, w).policyLayer())
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -398,17 +411,22 @@ func (w *unitWorld) writeUnit(enc, sc v1.Hash) []*unitCopy {
 	rec := &Record{Kind: KindPromote, By: Actor{Name: "tester"}, Time: w.now.Format(time.RFC3339)}
 	released := map[string][]string{}
 	for _, m := range []struct {
-		t  registry.Ref
-		to v1.Hash
-	}{{scorerProd, sc}, {prodRef, enc}} {
+		t    registry.Ref
+		to   v1.Hash
+		kind string
+		pol  *policy.Policy
+	}{{scorerProd, sc, "scorer", w.spol}, {prodRef, enc, "encoder", w.pol}} {
 		s, err := readState(w.ctx, w.store, m.t)
 		if err != nil {
 			w.t.Fatal(err)
 		}
+		cur, _ := registry.ParseDigest(s.current())
+		rep := w.reportFor(m.t, m.kind, m.to, cur, m.pol)
 		list, _ := s.head.releasedList(w.ctx, w.store, m.t.Repository)
 		released[m.t.String()] = appendNew(list, m.to.String())
 		rec.Unit = append(rec.Unit, UnitEntry{Target: m.t.String(), From: s.current(), To: m.to.String(), Previous: s.head.Digest.String(),
-			Restore: &Restore{Target: s.current(), Record: s.head.Digest.String()}})
+			Restore: &Restore{Target: s.current(), Record: s.head.Digest.String()}, Policy: s.head.Record.Policy, PolicyDigest: s.head.Record.Policy,
+			Report: rep.String()})
 	}
 	descs, err := writeUnitRecord(w.ctx, w.store, rec, released, nil, nil)
 	if err != nil {
