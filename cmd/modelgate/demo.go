@@ -101,7 +101,7 @@ func runDemo(ctx context.Context, g *globals, o *demoOptions) error {
 	if err != nil {
 		return err
 	}
-	bound, err := demoBoundPolicies(work, polPath)
+	bound, err := demoBoundPolicies(work, keys, polPath)
 	if err != nil {
 		return err
 	}
@@ -277,15 +277,11 @@ func demoPolicyFor(work string, keys map[string]*release.Key, file, target strin
 }
 
 // demoBoundPolicies returns the policies the demo's first release records
-// bind: the promo-scorer copy with the demo's keys, and the embedded
-// listener-encoder policy (written beside it).
-func demoBoundPolicies(work, scorerPolicy string) (map[string]*policy.Policy, error) {
-	raw, err := policies.FS.ReadFile("listener-encoder.yaml")
+// bind: its copies of the embedded policies with the demo's keys (the
+// encoder scene writes the same listener-encoder copy again).
+func demoBoundPolicies(work string, keys map[string]*release.Key, scorerPolicy string) (map[string]*policy.Policy, error) {
+	encPath, err := demoPolicyFor(work, keys, "listener-encoder.yaml", "listener-encoder:prod")
 	if err != nil {
-		return nil, err
-	}
-	encPath := filepath.Join(work, "policies", "listener-encoder.yaml")
-	if err := os.WriteFile(encPath, raw, 0o644); err != nil {
 		return nil, err
 	}
 	out := map[string]*policy.Policy{}
