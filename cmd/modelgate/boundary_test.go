@@ -14,6 +14,7 @@ import (
 
 	"modelgate/internal/artifact"
 	"modelgate/internal/registry"
+	"modelgate/internal/registry/storetest"
 	"modelgate/internal/release"
 )
 
@@ -172,10 +173,10 @@ func forgePromote(t *testing.T, w *releaseWorld, to string, keyFile string) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if err := st.Tag(ctx, "tiny-encoder", "prod", subject); err != nil {
+	if err := storetest.ForceTag(ctx, st, "tiny-encoder", "prod", subject); err != nil {
 		t.Fatal(err)
 	}
-	if err := st.Tag(ctx, "tiny-encoder", "release-prod", recDesc); err != nil {
+	if err := storetest.ForceTag(ctx, st, "tiny-encoder", "release-prod", recDesc); err != nil {
 		t.Fatal(err)
 	}
 }

@@ -24,7 +24,7 @@ type promoteOptions struct {
 func (o *promoteOptions) AddFlags(cmd *cobra.Command) {
 	f := cmd.Flags()
 	f.StringVar(&o.To, "to", "", "target tag NAME:TAG (required)")
-	f.StringArrayVar(&o.With, "with", nil, "CANDIDATE=NAME:TAG: move this tag too, in the same release (repeat it; each target needs a rule in one of the --policy files)")
+	f.StringArrayVar(&o.With, "with", nil, "CANDIDATE=NAME:TAG: move this tag too, in the same release (repeat it; each tag is judged by its bound policy)")
 	f.StringArrayVar(&o.Policies, "policy", nil, "policy file with a rule for the target: required for a tag's first release (which binds it), otherwise it must be the bound policy and may be left out; repeat it to name the scorer policies whose rules tie scorers to an encoder tag")
 	f.StringVar(&o.Key, "key", "", "private key that signs the release record (without it the record is unsigned and names $USER)")
 	f.StringVar(&o.Reason, "reason", "", "free text stored in the release record")
@@ -71,8 +71,8 @@ release: for example a new encoder with the scorers refitted on its code,
 each gated with --with naming the encoder's move (gate ... --with
 listener-encoder:v2=listener-encoder:prod) so that its freeze check runs
 against the encoder that will be live. Every member is judged as above
-under its own policy (the --policy file with a rule for it) and against
-the tag's current target; one signed record names every move and is kept
+under the policy bound to its tag (releasers, approvals, self-approval by
+the signer) and against the tag's current target; one signed record names every move and is kept
 in each tag's log. The tags move scorers first, the encoder last, each by
 compare-and-swap: first every release log head is claimed, then every
 tag moves. A run that stops part way is completed by the next promote or
@@ -128,7 +128,7 @@ func runPromote(ctx context.Context, g *globals, o *promoteOptions, candStr stri
 	if err != nil {
 		return err
 	}
-	pol, err := policyFor(pols, target)
+	pol, err := policyFor(ctx, store, pols, target)
 	if err != nil {
 		return err
 	}
@@ -192,8 +192,10 @@ func loadPolicies(paths []string) ([]*policy.Policy, error) {
 }
 
 // policyFor returns the one policy of pols with a rule for target; nil
-// when no policy was given (the tag's bound policy then judges).
-func policyFor(pols []*policy.Policy, target registry.Ref) (*policy.Policy, error) {
+// when no policy was given, or none of them has a rule for a target with a
+// bound policy (the policies are then only consulted for the coupling of
+// encoders and scorers, and the tag's bound policy judges it).
+func policyFor(ctx context.Context, store registry.Store, pols []*policy.Policy, target registry.Ref) (*policy.Policy, error) {
 	if len(pols) == 0 {
 		return nil, nil
 	}
@@ -208,6 +210,9 @@ func policyFor(pols []*policy.Policy, target registry.Ref) (*policy.Policy, erro
 		found = p
 	}
 	if found == nil {
+		if b, err := release.BoundPolicy(ctx, store, target); err == nil && b.Policy != nil {
+			return nil, nil
+		}
 		if len(pols) == 1 {
 			_, err := pols[0].Rule(target.String())
 			return nil, err
@@ -234,7 +239,7 @@ func parseWith(ctx context.Context, store registry.Store, with []string, pols []
 		if err != nil {
 			return nil, fmt.Errorf("--with %s: %w", w, err)
 		}
-		pol, err := policyFor(pols, target)
+		pol, err := policyFor(ctx, store, pols, target)
 		if err != nil {
 			return nil, err
 		}

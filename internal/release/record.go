@@ -110,19 +110,22 @@ type UnitEntry struct {
 	// Policy is the tag's bound policy after the release (see
 	// Record.Policy); its copy of the record carries it as a layer.
 	Policy string `json:"policy,omitempty"`
+	// Ended lists, for a rollback, the gate reports and approvals it
+	// ended on this tag (see Record.Ended).
+	Ended []string `json:"ended,omitempty"`
 }
 
 // entryOf returns the per-tag fields of a one-tag record.
 func (r *Record) entryOf() UnitEntry {
 	return UnitEntry{Target: r.Target, From: r.From, To: r.To, Report: r.Report, Approvals: r.Approvals,
-		PolicyDigest: r.PolicyDigest, Previous: r.Previous, Restore: r.Restore, Released: r.Released, Policy: r.Policy}
+		PolicyDigest: r.PolicyDigest, Previous: r.Previous, Restore: r.Restore, Released: r.Released, Policy: r.Policy, Ended: r.Ended}
 }
 
 // project sets the per-tag fields from e.
 func (r *Record) project(e UnitEntry) {
 	r.Target, r.From, r.To, r.Report, r.Approvals = e.Target, e.From, e.To, e.Report, e.Approvals
 	r.PolicyDigest, r.Previous, r.Restore, r.Released = e.PolicyDigest, e.Previous, e.Restore, e.Released
-	r.Policy = e.Policy
+	r.Policy, r.Ended = e.Policy, e.Ended
 }
 
 // UnitTargets returns the targets a record moved: its Unit's, or its own.

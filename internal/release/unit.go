@@ -587,7 +587,7 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 		}
 		return res, err
 	}
-	digests, statement, err := commitUnit(ctx, store, sw, rec, released, nil, req.Key)
+	digests, statement, err := commitUnit(ctx, store, sw, rec, released, nil, req.Key, nil)
 	for i, d := range digests {
 		res.Members[i].Record = d
 	}
@@ -597,7 +597,9 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 
 // commitUnit writes the unit's record and advances it; it returns the
 // digests of the record's copies (in Unit order) and of its statement.
-func commitUnit(ctx context.Context, store registry.Store, sw registry.TagSwapper, rec *Record, released map[string][]string, reuse map[string]v1.Descriptor, key *Key) ([]string, string, error) {
+// before, when not nil, runs once the copies are written and before any
+// head pointer or tag moves.
+func commitUnit(ctx context.Context, store registry.Store, sw registry.TagSwapper, rec *Record, released map[string][]string, reuse map[string]v1.Descriptor, key *Key, before func(digests []string) error) ([]string, string, error) {
 	descs, err := writeUnitRecord(ctx, store, rec, released, reuse, key)
 	if err != nil {
 		return nil, "", fmt.Errorf("writing the release record: %w", err)
@@ -615,6 +617,11 @@ func commitUnit(ctx context.Context, store registry.Store, sw registry.TagSwappe
 		copies = append(copies, &unitCopy{target: t, headTag: ht, rec: lr})
 		digests = append(digests, descs[i].Digest.String())
 		statement = lr.envelope.Digest.String()
+	}
+	if before != nil {
+		if err := before(digests); err != nil {
+			return digests, statement, err
+		}
 	}
 	return digests, statement, advanceUnit(ctx, store, sw, copies)
 }
@@ -658,7 +665,7 @@ func rollbackUnit(ctx context.Context, store registry.Store, sw registry.TagSwap
 	}
 	rec := &Record{Kind: KindRollback, Reason: req.Reason, By: whoUnsigned(req.User), Time: nowUTC(req.Now).Format(time.RFC3339)}
 	reuse := map[string]v1.Descriptor{}
-	var problems []string
+	var problems, unauthorized []string
 	for _, c := range copies {
 		r := &c.rec.Record
 		cs := s
@@ -691,10 +698,36 @@ func rollbackUnit(ctx context.Context, store registry.Store, sw registry.TagSwap
 			}
 			restore = prev.Record.Restore
 		}
+		// Each member's own bound policy says who may roll it back.
+		if c.target.String() != s.target.String() {
+			b, err := boundOf(ctx, store, cs)
+			if err != nil {
+				return nil, err
+			}
+			if b.Policy != nil {
+				rule, err := b.Policy.Rule(c.target.String())
+				if err != nil {
+					return nil, errkind.New(errkind.Integrity, "the policy bound to %s has no rule for it: %v", c.target, err)
+				}
+				if msg := releaserCheck(rule, KindRollback, req.Key); msg != "" {
+					unauthorized = append(unauthorized, msg)
+				}
+			}
+		}
+		// The rollback ends the gate reports and approvals of the model
+		// it takes each tag away from.
+		ended, err := releaseEvidence(ctx, store, c.target.Repository, r.To, c.target.String())
+		if err != nil {
+			return nil, err
+		}
 		rec.Unit = append(rec.Unit, UnitEntry{Target: c.target.String(), From: r.To, To: r.Restore.Target,
-			Previous: cs.head.Digest.String(), Restore: restore, Policy: cs.head.Record.Policy, PolicyDigest: cs.head.Record.Policy})
+			Previous: cs.head.Digest.String(), Restore: restore, Policy: cs.head.Record.Policy, PolicyDigest: cs.head.Record.Policy,
+			Ended: ended})
 		reuse[c.target.String()] = cs.head.released
 		res.With = append(res.With, UnitMove{Target: c.target.String(), From: r.To, To: r.Restore.Target})
+	}
+	if len(unauthorized) > 0 {
+		return res, refuse(&Refusal{Kind: errkind.Unauthorized, Action: "rollback", Problems: unauthorized})
 	}
 	if len(problems) > 0 {
 		return res, refuse(&Refusal{Kind: errkind.Conflict, Action: "rollback", Problems: append([]string{fmt.Sprintf(
@@ -712,7 +745,23 @@ func rollbackUnit(ctx context.Context, store registry.Store, sw registry.TagSwap
 	if req.DryRun {
 		return res, nil
 	}
-	digests, statement, err := commitUnit(ctx, store, sw, rec, nil, reuse, req.Key)
+	// Ended markers go in before any tag moves (see ended.go): a
+	// rollback that stops half way may end approvals, never leave them
+	// counting.
+	endMarkers := func(digests []string) error {
+		for i, e := range rec.Unit {
+			if len(e.Ended) == 0 {
+				continue
+			}
+			t, _ := registry.ParseRef(e.Target, false)
+			m := EndedRelease{Target: e.Target, Model: e.From, Record: digests[i], Reason: req.Reason, By: rec.By.String(), Time: rec.Time, Ended: e.Ended}
+			if err := writeEnded(ctx, store, t.Repository, m); err != nil {
+				return fmt.Errorf("ending the approvals of %s on %s: %w", e.From, e.Target, err)
+			}
+		}
+		return nil
+	}
+	digests, statement, err := commitUnit(ctx, store, sw, rec, nil, reuse, req.Key, endMarkers)
 	for i, e := range rec.Unit {
 		if e.Target == s.target.String() && i < len(digests) {
 			res.Record = digests[i]

@@ -123,13 +123,13 @@ func TestServePages(t *testing.T) {
 	// with the reason, and offers only to gate it again.
 	v2 := resolveTag(t, f.store, "listener-encoder", "v2")
 	page := mustGet(t, s, "/candidates/listener-encoder@"+v2)
-	for _, want := range []string{"Rolled back:", "scorers trained on v1 codes; roll back until they are retrained",
+	for _, want := range []string{"Rolled back:", "canary: fewer subscriptions; back to v1 and its scorer",
 		"promote would refuse it now"} {
 		if !strings.Contains(page, want) {
 			t.Errorf("rolled-back candidate's page lacks %q", want)
 		}
 	}
-	if !strings.Contains(list, `<span aria-hidden="true">↶</span> rolled back</span> <span class="note">scorers trained on v1 codes`) {
+	if !strings.Contains(list, `<span aria-hidden="true">↶</span> rolled back</span> <span class="note">canary: fewer subscriptions; back to v1 and its scorer`) {
 		t.Error("the candidate list does not show listener-encoder v2 as rolled back, with the reason")
 	}
 	if strings.Contains(page, "ready to promote") || strings.Contains(page, "modelgate promote") {
