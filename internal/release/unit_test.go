@@ -444,3 +444,79 @@ func (w *unitWorld) writeUnit(enc, sc v1.Hash) []*unitCopy {
 	}
 	return out
 }
+
+// TestUnitRollbackEndsApprovalsOfEveryMember: rolling back a release of
+// several tags checks each tag's own bound policy for who may roll it
+// back, and ends the gate reports and approvals of every model it takes
+// a tag away from, so the same release cannot be promoted again on them.
+func TestUnitRollbackEndsApprovalsOfEveryMember(t *testing.T) {
+	e := newEnv(t, envOptions{})
+	// The scorer tag's policy lets only ben roll it back; the encoder's
+	// lets anyone.
+	spol := e.scorerPolicy("prod")
+	raw, err := os.ReadFile(spol.Source)
+	if err != nil {
+		t.Fatal(err)
+	}
+	p := filepath.Join(e.dir, "scorer-releasers.yaml")
+	if err := os.WriteFile(p, append(raw, "    releasers:\n      rollback:\n        - {name: ben, keyFile: ben.pub.pem}\n"...), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if spol, err = policy.Load(p); err != nil {
+		t.Fatal(err)
+	}
+	w := &unitWorld{env: e, spol: spol}
+	e.initial(prodRef, e.models[0])
+	w.s0 = e.pushScorer(0, e.models[0], "v0")
+	if _, err := Initial(e.ctx, e.store, InitialRequest{Target: scorerProd, To: w.s0, User: "setup", Now: e.now, Policy: spol}); err != nil {
+		t.Fatal(err)
+	}
+	w.s1 = e.pushScorer(1, e.models[1], "v1")
+	encRep := e.reportFor(prodRef, "encoder", e.models[1], e.models[0], e.pol)
+	scRep := e.reportFor(scorerProd, "scorer", w.s1, w.s0, w.spol)
+	if _, err := PromoteUnit(e.ctx, e.store, w.unit(e.models[1], w.s1)); err != nil {
+		t.Fatal(err)
+	}
+
+	// rita may roll back the encoder tag but not the scorer tag, and the
+	// rollback of either moves both: refused, nothing moved.
+	_, err = Rollback(e.ctx, e.store, RollbackRequest{Target: prodRef, Reason: "canary: fewer subscriptions", Key: e.keys["rita"]})
+	wantRefusal(t, err, errkind.Unauthorized, "rollback of tiny-scorer:prod", "ben")
+	if w.tag(prodRef) != e.models[1].String() || w.tag(scorerProd) != w.s1.String() {
+		t.Fatalf("a refused rollback moved a tag: %s %s", w.tag(prodRef), w.tag(scorerProd))
+	}
+	if _, err := Rollback(e.ctx, e.store, RollbackRequest{Target: prodRef, Reason: "canary: fewer subscriptions", Key: e.keys["ben"]}); err != nil {
+		t.Fatal(err)
+	}
+	logs := w.mustVerify("after the rollback")
+	for i, want := range []v1.Hash{encRep, scRep} {
+		h := logs[i].Entries[0].Record
+		if h.Kind != KindRollback || !contains(h.Ended, want.String()) {
+			t.Errorf("the rollback's record for %s ends %v; want it to end the gate report %s", logs[i].Target, h.Ended, want)
+		}
+	}
+	for _, m := range []struct {
+		model  v1.Hash
+		target registry.Ref
+	}{{e.models[1], prodRef}, {w.s1, scorerProd}} {
+		rb, err := RolledBack(e.ctx, e.store, m.model, m.target)
+		if err != nil || len(rb) != 1 || rb[0].Reason != "canary: fewer subscriptions" {
+			t.Errorf("RolledBack(%s on %s) = %+v, %v; want the one rollback with its reason", m.model, m.target, rb, err)
+		}
+	}
+	// The same release again, on the reports the rollback ended: refused
+	// for each member.
+	_, err = PromoteUnit(e.ctx, e.store, w.unit(e.models[1], w.s1))
+	wantRefusal(t, err, errkind.Unauthorized, "tiny-encoder:prod: "+shortHex(e.models[1].String())+" was rolled back",
+		"tiny-scorer:prod: "+shortHex(w.s1.String())+" was rolled back")
+	if w.tag(prodRef) != e.models[0].String() || w.tag(scorerProd) != w.s0.String() {
+		t.Fatalf("the refused release moved a tag: %s %s", w.tag(prodRef), w.tag(scorerProd))
+	}
+	// New gate reports count again.
+	e.reportFor(prodRef, "encoder", e.models[1], e.models[0], e.pol)
+	e.reportFor(scorerProd, "scorer", w.s1, w.s0, w.spol)
+	if _, err := PromoteUnit(e.ctx, e.store, w.unit(e.models[1], w.s1)); err != nil {
+		t.Fatalf("the release with new gate reports: %v", err)
+	}
+	w.mustVerify("after the release again")
+}
