@@ -138,9 +138,24 @@ func TestGateCommand(t *testing.T) {
 	// Sharded: two shard runs store their sums; --merge gives the same
 	// holdout line as one run.
 	single := mg(t, store, "gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--no-push")
-	for _, sh := range []string{"1/2", "2/2"} {
-		if r := mustMG(t, store, "gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--shard", sh); !strings.HasPrefix(r.stdout, "sha256:") {
+	// Shard 2 runs where only the policy file is mounted (its key files
+	// are not there): it runs the policy bound to the tag, so --merge finds
+	// both shards under the same policy digest.
+	mounted := filepath.Join(t.TempDir(), "promo-scorer.yaml")
+	raw, err := os.ReadFile(pol)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(mounted, raw, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	for sh, file := range map[string]string{"1/2": pol, "2/2": mounted} {
+		r := mustMG(t, store, "gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", file, "--shard", sh)
+		if !strings.HasPrefix(r.stdout, "sha256:") {
 			t.Errorf("--shard %s printed %q", sh, r.stdout)
+		}
+		if file == mounted && !strings.Contains(r.stderr, "the shard runs the bound policy") {
+			t.Errorf("--shard %s without the key files: stderr %q", sh, r.stderr)
 		}
 	}
 	merged := mg(t, store, "gate", "promo-scorer:cand-worse", "--to", "promo-scorer:prod", "--policy", pol, "--merge", "--no-push")
