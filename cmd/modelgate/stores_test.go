@@ -110,17 +110,38 @@ func TestPromoteRaceOnEveryStore(t *testing.T) {
 		if k.name == "local" {
 			continue // TestConcurrentPromote
 		}
-		if k.name == "registry-no-catalog" {
-			// The same registry semantics as "registry"; what differs is
-			// listing, and an encoder promote there must be given the
-			// policies that name its scorer tags (the dependents cannot be
-			// listed), which this race of bare encoder promotes does not do.
-			continue
-		}
 		t.Run(k.name, func(t *testing.T) {
 			racePromotes(t, newReleaseWorldAt(t, 0, k.loc), k.exact)
 		})
 	}
+}
+
+// TestEncoderAloneRefusedWithoutCatalog: on a registry that does not list
+// its repositories, an encoder promote given no scorer policy still finds
+// the released scorer tag that reads its code (through the marker the
+// scorer's release left on the encoder) and refuses, exit 4, naming it,
+// with nothing moved; the release of both then goes through. Before the
+// markers the promote exited 2, asking for the scorers' policies.
+func TestEncoderAloneRefusedWithoutCatalog(t *testing.T) {
+	noCat := httptest.NewServer(storetest.NoCatalog(ggcrregistry.New(ggcrregistry.WithReferrersSupport(true), ggcrregistry.Logger(nopLogger()))))
+	t.Cleanup(noCat.Close)
+	u := newUnitWorld(t, "oci://"+strings.TrimPrefix(noCat.URL, "http://")+"/alone")
+	lsTags := func() string {
+		return mustMG(t, u.store, "ls", "--json", "tiny-encoder").stdout + mustMG(t, u.store, "ls", "--json", "tiny-scorer").stdout
+	}
+	_, _, promote := u.candidates()
+	alone := append([]string(nil), promote[:4]...) // promote tiny-encoder:vN --to tiny-encoder:prod
+	before := lsTags()
+	r := mg(t, u.store, append(alone, "--key", u.key("rita"))...)
+	wantExit(t, r, 4, "is consumed by tiny-scorer:prod (scorer ", "--with SCORER-CANDIDATE=tiny-scorer:prod")
+	if lsTags() != before {
+		t.Fatal("the refused promote moved a tag")
+	}
+	mustMG(t, u.store, promote...)
+	if lsTags() == before {
+		t.Fatal("the release of both tags moved nothing")
+	}
+	u.logsVerify("after the release without a catalog")
 }
 
 func nopLogger() *log.Logger { return log.New(io.Discard, "", 0) }

@@ -35,6 +35,9 @@ type Dependent struct {
 type modelInfo struct {
 	kind    string
 	encoder string
+	// encoderName is the spec's hint of where the encoder came from
+	// (NAME:TAG), "" when none.
+	encoderName string
 }
 
 // readModelInfo reads repo@d's manifest and, for a scorer, its spec.
@@ -53,6 +56,7 @@ func readModelInfo(ctx context.Context, store registry.Store, repo string, d v1.
 	}
 	var spec struct {
 		Encoder *struct {
+			Name   string `json:"name"`
 			Digest string `json:"digest"`
 		} `json:"encoder"`
 	}
@@ -60,22 +64,27 @@ func readModelInfo(ctx context.Context, store registry.Store, repo string, d v1.
 		return modelInfo{}, errkind.New(errkind.Integrity, "the spec of %s@%s is not JSON: %v", repo, d, err)
 	}
 	if spec.Encoder != nil {
-		mi.encoder = spec.Encoder.Digest
+		mi.encoder, mi.encoderName = spec.Encoder.Digest, spec.Encoder.Name
 	}
 	return mi, nil
 }
 
 // Dependents returns the scorer tags whose live scorer consumes the code
 // of encoder digest enc, the live target of the encoder tag encTag. They
-// are found two ways: by reverse lineage (every tag of the store that has
-// a release log and points at a scorer whose spec names enc), and through
-// the scorer rules of pols whose freeze.encoderTag is encTag (their tags
-// count when they point at a scorer of enc). Sorted by target.
+// are found three ways: by reverse lineage (every tag of the store that
+// has a release log and points at a scorer whose spec names enc), through
+// the consumer markers releases leave on enc (see noteConsumer), and
+// through the scorer rules of pols whose freeze.encoderTag is encTag
+// (their tags count when they point at a scorer of enc). Sorted by
+// target.
 //
-// It costs one Repositories call, one Tags call per repository and a few
-// reads per released tag. On a store that cannot list its repositories
-// (registry.ErrNoCatalog) the reverse lineage covers only the repositories
-// that encTag and pols name.
+// It costs one Referrers call, one Repositories call, one Tags call per
+// repository and a few reads per released tag. On a store that cannot
+// list its repositories (registry.ErrNoCatalog) the reverse lineage covers
+// only the repositories that encTag and pols name; the markers find the
+// scorer tags released since they were written (a scorer tag whose last
+// release was made by a modelgate without them is found only through its
+// policy, until its next release).
 func Dependents(ctx context.Context, store registry.Store, encTag registry.Ref, enc string, pols []*policy.Policy) ([]Dependent, error) {
 	found := map[string]Dependent{}
 	consider := func(target registry.Ref, how string) error {
@@ -98,14 +107,19 @@ func Dependents(ctx context.Context, store registry.Store, encTag registry.Ref, 
 		}
 		return nil
 	}
+	marked, err := consumerTags(ctx, store, encTag.Repository, enc)
+	if err != nil {
+		return nil, err
+	}
+	for _, t := range marked {
+		if err := consider(t, "release log"); err != nil {
+			return nil, err
+		}
+	}
 	repos, err := store.Repositories(ctx)
 	if errors.Is(err, registry.ErrNoCatalog) {
-		// A registry that does not list its repositories: search the
-		// repositories the encoder tag and the policies name, and refuse
-		// to guess when no policy names a scorer tag.
-		if !namesScorers(pols) {
-			return nil, errkind.New(errkind.BadInput, "%v, so the scorers that read the code of %s cannot be searched for: pass the policies of the scorer tags too (--policy FILE, repeatable)", err, encTag)
-		}
+		// A registry that does not list its repositories: the markers,
+		// and the repositories the encoder tag and the policies name.
 		repos = knownRepositories(encTag, pols)
 	} else if err != nil {
 		return nil, fmt.Errorf("listing repositories to find the scorers of %s: %w", encTag, err)
@@ -313,19 +327,4 @@ func knownRepositories(encTag registry.Ref, pols []*policy.Policy) []string {
 	}
 	sort.Strings(out)
 	return out
-}
-
-// namesScorers reports whether a rule of pols governs a scorer tag.
-func namesScorers(pols []*policy.Policy) bool {
-	for _, p := range pols {
-		if p == nil {
-			continue
-		}
-		for i := range p.Rules {
-			if p.Rules[i].Kind == policy.KindScorer {
-				return true
-			}
-		}
-	}
-	return false
 }

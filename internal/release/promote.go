@@ -378,6 +378,9 @@ func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*Pr
 		return nil, fmt.Errorf("writing the release record: %w", err)
 	}
 	res.Record = recDesc.Digest.String()
+	if err := noteConsumer(ctx, store, t, rec.To, rule); err != nil {
+		return res, err
+	}
 	if err := commit(ctx, store, sw, s, recDesc, candDesc); err != nil {
 		return res, err
 	}
@@ -409,14 +412,20 @@ func commit(ctx context.Context, store registry.Store, sw registry.TagSwapper, s
 			if rerr == nil && d.Digest == recDesc.Digest {
 				return nil // another process completed our record for us
 			}
-			// A policy record (which moves only the head pointer) won the
-			// race from the same head: put the tag back, so the log and
-			// the tag agree again.
+			// Another record built on the same head won the head: a policy
+			// record (which moves only the head pointer) or a release of
+			// several tags that claimed this tag's head before moving it.
+			// Put the tag back, so the log and the tag agree again (the
+			// release then moves it from where its record says).
 			if rerr == nil && s.tagDesc != nil {
-				if lr, err := readRecord(ctx, store, t.Repository, d.Digest, t.String()); err == nil && lr.Record.Kind == KindPolicy &&
+				if lr, err := readRecord(ctx, store, t.Repository, d.Digest, t.String()); err == nil &&
 					lr.Record.Previous == s.headDigest().String() && sw.SwapTag(ctx, t.Repository, t.Tag, toDesc.Digest, *s.tagDesc) == nil {
-					return refuse(&Refusal{Kind: errkind.Conflict, Action: "release", Problems: []string{fmt.Sprintf(
-						"the policy bound to %s changed while this ran (record %s); %s was put back to %s: try again under the new policy", t, shortHex(d.Digest.String()), t, was)}})
+					why := fmt.Sprintf("the policy bound to %s changed while this ran (record %s); %s was put back to %s: try again under the new policy", t, shortHex(d.Digest.String()), t, was)
+					if lr.Record.Kind != KindPolicy {
+						why = fmt.Sprintf("a concurrent release (record %s, of %s) claimed the release log of %s while this ran; %s was put back to %s and that release goes on: nothing of this one changed, gate again against what %s points at then",
+							shortHex(d.Digest.String()), strings.Join(lr.Record.UnitTargets(), ", "), t, t, was, t)
+					}
+					return refuse(&Refusal{Kind: errkind.Conflict, Action: "release", Problems: []string{why}})
 				}
 			}
 			return errkind.New(errkind.Integrity, "%s now points at %s, but the release log head %s was moved by someone else before it could name record %s: run `modelgate log %s`", t, toDesc.Digest, s.headTag, recDesc.Digest, t)

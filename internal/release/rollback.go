@@ -170,6 +170,13 @@ func Rollback(ctx context.Context, store registry.Store, req RollbackRequest) (*
 	if req.DryRun {
 		return res, nil
 	}
+	var rule *policy.Rule
+	if bound.Policy != nil {
+		rule, _ = bound.Policy.Rule(t.String())
+	}
+	if err := noteConsumer(ctx, store, t, res.To, rule); err != nil {
+		return res, err
+	}
 	now := nowUTC(req.Now)
 	rec := &Record{Kind: KindRollback, Target: t.String(), From: cur, To: res.To, Reason: req.Reason,
 		By: whoUnsigned(req.User), Time: now.Format(time.RFC3339), Previous: s.head.Digest.String(),
@@ -314,6 +321,13 @@ func Initial(ctx context.Context, store registry.Store, req InitialRequest) (str
 	}
 	recDesc, err := writeRecord(ctx, store, t.Repository, rec, released, nil, req.Key, polBlob)
 	if err != nil {
+		return "", err
+	}
+	var rule *policy.Rule
+	if req.Policy != nil {
+		rule, _ = req.Policy.Rule(t.String())
+	}
+	if err := noteConsumer(ctx, store, t, rec.To, rule); err != nil {
 		return "", err
 	}
 	if s.current() == rec.To { // only the head pointer is new

@@ -347,14 +347,16 @@ func advanceUnit(ctx context.Context, store registry.Store, sw registry.TagSwapp
 		if err != nil {
 			return fmt.Errorf("the model %s released on %s: %w", r.To, c.target, err)
 		}
-		if err := sw.SwapTag(ctx, c.target.Repository, c.target.Tag, old, toDesc); err != nil {
-			if !errors.Is(err, registry.ErrConflict) {
-				return fmt.Errorf("moving %s: %w", c.target, err)
+		if err := moveMember(ctx, store, sw, c.target, old, r.From, r.To, toDesc); err != nil {
+			if !errors.Is(err, errForeign) {
+				return err
 			}
-			if now, rerr := resolveOrEmpty(ctx, store, c.target.Repository, c.target.Tag); rerr != nil || now != r.To {
-				return broken(fmt.Sprintf("%s was moved by someone else (to %s) before the release could move it", c.target, orNone(now)))
+			if !moved {
+				return giveUp(fmt.Sprintf("%s: %v", c.target, err))
 			}
+			return broken(fmt.Sprintf("%s %v", c.target, err))
 		}
+		moved = true
 		crashPoint("move")
 	}
 	// 3. Committed markers.
@@ -369,6 +371,45 @@ func advanceUnit(ctx context.Context, store registry.Store, sw registry.TagSwapp
 		crashPoint("mark")
 	}
 	return nil
+}
+
+// errForeign says a member tag points neither where a release unit's
+// record says it was nor where it goes.
+var errForeign = errors.New("was moved by someone else")
+
+// moveMember moves target from "from" (old) to toDesc ("to") by
+// compare-and-swap. A one-tag promote or rollback that read the tag
+// before the unit claimed its head may have moved it in between; that
+// release then loses its own head move and puts the tag back (see
+// commit), so a tag found elsewhere is read again a few times before it
+// counts as moved by someone else (errForeign).
+func moveMember(ctx context.Context, store registry.Store, sw registry.TagSwapper, target registry.Ref, old v1.Hash, from, to string, toDesc v1.Descriptor) error {
+	now := ""
+	for try := 0; try < 6; try++ {
+		err := sw.SwapTag(ctx, target.Repository, target.Tag, old, toDesc)
+		if err == nil {
+			return nil
+		}
+		if !errors.Is(err, registry.ErrConflict) {
+			return fmt.Errorf("moving %s: %w", target, err)
+		}
+		now, err = resolveOrEmpty(ctx, store, target.Repository, target.Tag)
+		if err != nil {
+			return err
+		}
+		switch now {
+		case to:
+			return nil
+		case from:
+			continue
+		}
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-time.After(time.Duration(25<<try) * time.Millisecond):
+		}
+	}
+	return fmt.Errorf("%w (to %s) before the release could move it", errForeign, orNone(now))
 }
 
 // unitOpen reports whether the head record of s, a copy of a release
@@ -488,7 +529,7 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 		case s.external:
 			problems = append(problems, problem{errkind.Integrity, fmt.Sprintf("%s points at %s but its newest release record says %s: the tag was moved outside modelgate. Inspect with `modelgate log %s`, then `modelgate rollback %s` restores the last released model", t, orNone(s.current()), s.head.Record.To, t, t)})
 		case s.head == nil:
-			problems = append(problems, problem{errkind.BadInput, fmt.Sprintf("%s has no release log yet: a release unit moves only tags that have one (promote it alone first)", t)})
+			problems = append(problems, problem{errkind.BadInput, fmt.Sprintf("%s has no release log yet, so no bound policy: a release of several tags moves only tags that have one (a release that loses a race gives back every release log head it claimed, and a head that did not exist cannot be given back by compare-and-swap). Give %s its first release alone, which binds its policy: `modelgate promote CANDIDATE --to %s --policy FILE --key KEY` with a candidate that fits what is live now (for a scorer, one of the encoder live now), then release it with the others", t, t, t)})
 		case s.current() == m.Candidate.String():
 			problems = append(problems, problem{errkind.BadInput, fmt.Sprintf("%s already points at %s: leave it out of the release", t, m.Candidate)})
 		}
@@ -586,6 +627,13 @@ func PromoteUnit(ctx context.Context, store registry.Store, req UnitRequest) (*U
 			rf.Reports, rf.Approvals = refusal.Reports, refusal.Approvals
 		}
 		return res, err
+	}
+	for _, e := range rec.Unit {
+		m := members[e.Target]
+		rule, _ := m.Policy.Rule(e.Target)
+		if err := noteConsumer(ctx, store, m.Target, e.To, rule); err != nil {
+			return res, err
+		}
 	}
 	digests, statement, err := commitUnit(ctx, store, sw, rec, released, nil, req.Key, nil)
 	for i, d := range digests {
@@ -744,6 +792,15 @@ func rollbackUnit(ctx context.Context, store registry.Store, sw registry.TagSwap
 	}
 	if req.DryRun {
 		return res, nil
+	}
+	for _, c := range copies {
+		var rule *policy.Rule
+		if b, err := boundOf(ctx, store, &state{target: c.target, head: c.rec}); err == nil && b.Policy != nil {
+			rule, _ = b.Policy.Rule(c.target.String())
+		}
+		if err := noteConsumer(ctx, store, c.target, c.rec.Record.Restore.Target, rule); err != nil {
+			return res, err
+		}
 	}
 	// Ended markers go in before any tag moves (see ended.go): a
 	// rollback that stops half way may end approvals, never leave them

@@ -520,3 +520,26 @@ func TestUnitRollbackEndsApprovalsOfEveryMember(t *testing.T) {
 	}
 	w.mustVerify("after the release again")
 }
+
+// TestUnitFirstReleaseRefused: a tag with no release log cannot be a
+// member of a release of several tags; the refusal says why and names the
+// one-tag promote that gives it its first release (and binds its policy),
+// and nothing moves.
+func TestUnitFirstReleaseRefused(t *testing.T) {
+	w := newUnitWorld(t)
+	canary := registry.Ref{Repository: scorerRepo, Tag: "canary"}
+	cpol := w.scorerPolicy("canary")
+	req := UnitRequest{Members: []UnitMember{
+		{Candidate: w.models[1], Target: prodRef},
+		{Candidate: w.s1, Target: canary, Policy: cpol},
+	}, User: "tester", Now: w.now}
+	_, err := PromoteUnit(w.ctx, w.store, req)
+	wantRefusal(t, err, errkind.BadInput, "tiny-scorer:canary has no release log yet", "cannot be given back by compare-and-swap",
+		"`modelgate promote CANDIDATE --to tiny-scorer:canary --policy FILE --key KEY`")
+	if w.tag(prodRef) != w.models[0].String() {
+		t.Fatalf("the refused release moved %s", prodRef)
+	}
+	if _, err := w.store.Resolve(w.ctx, scorerRepo, "release-canary"); err == nil {
+		t.Fatal("the refused release started a release log of tiny-scorer:canary")
+	}
+}
