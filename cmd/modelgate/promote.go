@@ -59,9 +59,10 @@ do not count. Approvals and gate reports a rollback ended do not count.
 
 An encoder and the scorers built on its code are coupled. An encoder tag
 whose live target a live scorer consumes (a scorer tag with a release log
-pointing at a scorer whose spec names that encoder, or a scorer rule of a
---policy file whose freeze.encoderTag is the encoder tag) does not move
-alone: promote refuses with exit 4, naming those scorer tags and the
+pointing at a scorer whose spec names that encoder — found by listing the
+store, or on a registry without a catalog by the markers its releases left
+on the encoder —, or a scorer rule of a --policy file whose
+freeze.encoderTag is the encoder tag) does not move alone: promote refuses with exit 4, naming those scorer tags and the
 command that moves them together. A scorer whose rule names an encoder
 tag must consume the encoder that tag points at (exit 3 otherwise: the
 encoder moved since the gate).
@@ -77,7 +78,8 @@ in each tag's log. The tags move scorers first, the encoder last, each by
 compare-and-swap: first every release log head is claimed, then every
 tag moves. A run that stops part way is completed by the next promote or
 rollback of any tag whose log it claimed, and log shows it as
-"interrupted". Every member must already have a release log.
+"interrupted". Every member must already have a release log (give a new
+tag its first release alone: it binds its policy).
 
 Exit codes: 0 promoted (or already the target); 1 the gate failed; 2 bad
 input; 3 the tag moved since the gate ran, or a concurrent promote won;
