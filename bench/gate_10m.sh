@@ -33,7 +33,7 @@ rm "$tmp/gate.parquet"
 echo "gate, $ROWS rows: $(load)"
 code=0
 /usr/bin/time -v "$tmp/modelgate" -q gate --json promo-scorer:cand-better --to promo-scorer:prod \
-  --policy policies/promo-scorer.yaml --holdout promo-holdout:big --no-push \
+  --holdout promo-holdout:big --no-push \
   >"$tmp/report.json" 2>"$tmp/time.txt" || code=$?
 echo "after: $(load)"
 if [ "$code" -ne 0 ] && [ "$code" -ne 1 ]; then

@@ -27,6 +27,6 @@ echo "score, $GATE_ROWS rows (the forward pass of one model in the gate):"
 rss "$tmp/modelgate" score promo-scorer:cand-better --holdout "$tmp/gate.parquet" --out "$tmp/p2.parquet"
 "$tmp/modelgate" -q push --kind holdout "$tmp/gate.parquet" promo-holdout:big >/dev/null
 echo "gate, $GATE_ROWS rows:"
-rss "$tmp/modelgate" gate promo-scorer:cand-better --to promo-scorer:prod --policy policies/promo-scorer.yaml --holdout promo-holdout:big --no-push
-"$tmp/modelgate" gate --json promo-scorer:cand-better --to promo-scorer:prod --policy policies/promo-scorer.yaml --holdout promo-holdout:big --no-push \
+rss "$tmp/modelgate" gate promo-scorer:cand-better --to promo-scorer:prod --holdout promo-holdout:big --no-push
+"$tmp/modelgate" gate --json promo-scorer:cand-better --to promo-scorer:prod --holdout promo-holdout:big --no-push \
   | /usr/bin/python3 -c 'import json,sys; r=json.load(sys.stdin)["report"]; print("check seconds:", {c["name"]: round(c["seconds"],3) for c in r["checks"]}); print("holdout phases (s):", {k: round(v,3) for c in r["checks"] for k, v in (c.get("phases") or {}).items()})' || true
