@@ -1,4 +1,4 @@
-module modelgate
+module github.com/modelgate/modelgate
 
 go 1.26.8
 

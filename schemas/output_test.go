@@ -3,7 +3,7 @@ package schemas_test
 import (
 	"testing"
 
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 // TestOutputSchemasCompile: every command's output schema compiles (with

@@ -8,9 +8,9 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/report/reporttest"
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/report/reporttest"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 func validateReport(t *testing.T, r any) []schemas.Violation {

@@ -6,7 +6,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 // TestSpecCreatedRFC3339: lineage.created takes every RFC 3339 date-time

@@ -15,9 +15,9 @@ import (
 	"math/rand/v2"
 	"os"
 
-	"modelgate/internal/data"
-	"modelgate/internal/demo/listening"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/demo/listening"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 func main() {

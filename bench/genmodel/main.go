@@ -14,8 +14,8 @@ import (
 	"fmt"
 	"os"
 
-	"modelgate/internal/fixture/bigmodel"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/fixture/bigmodel"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 func main() {

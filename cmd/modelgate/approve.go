@@ -7,11 +7,11 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/checks"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 type approveOptions struct {

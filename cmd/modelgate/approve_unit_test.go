@@ -5,7 +5,7 @@ import (
 
 	"github.com/google/go-cmp/cmp"
 
-	"modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/checks"
 )
 
 func TestReportWarnings(t *testing.T) {

@@ -16,9 +16,9 @@ import (
 	"testing"
 	"time"
 
-	"modelgate/internal/fixture"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/model/safetensors"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model/safetensors"
 )
 
 // copyDir copies a flat model directory.

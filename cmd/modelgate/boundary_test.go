@@ -12,10 +12,10 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/registry"
-	"modelgate/internal/registry/storetest"
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 // The tests in this file reproduce, through the binary, ways around the

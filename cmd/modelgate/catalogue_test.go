@@ -14,10 +14,10 @@ import (
 
 	"github.com/parquet-go/parquet-go"
 
-	"modelgate/internal/artifact"
-	mgpolicy "modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/artifact"
+	mgpolicy "github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 // catCase is one malformed input of the bad-input catalogue: a command

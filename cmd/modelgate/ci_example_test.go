@@ -9,7 +9,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 // TestCIExample runs examples/ci/gate.sh as a CI job would, on the demo's

@@ -9,11 +9,11 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 // EnvInsecure allows plain HTTP to registries that are not on a loopback

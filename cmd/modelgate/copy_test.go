@@ -15,10 +15,10 @@ import (
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/fixture"
-	"modelgate/internal/registry"
-	"modelgate/internal/registry/storetest"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
 )
 
 // runMG runs the CLI in this process and returns exit code and output.

@@ -13,8 +13,8 @@ import (
 	"syscall"
 	"testing"
 
-	"modelgate/internal/fixture"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // The release of several tags at once (promote --with) is killed with

@@ -17,13 +17,13 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/demo"
-	"modelgate/internal/errkind"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
-	"modelgate/policies"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/demo"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
+	"github.com/modelgate/modelgate/policies"
 )
 
 type demoOptions struct {

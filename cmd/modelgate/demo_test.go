@@ -10,9 +10,9 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // TestDemo runs the README's first command against a temporary store: the

@@ -15,8 +15,8 @@ import (
 	"github.com/google/go-containerregistry/pkg/v1/layout"
 	"github.com/google/go-containerregistry/pkg/v1/validate"
 
-	"modelgate/internal/fixture"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // mgBinary is the modelgate executable built once for the end-to-end tests.

@@ -13,9 +13,9 @@ import (
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
 	"github.com/google/go-containerregistry/pkg/v1/remote"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/fixture"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // TestEncoderMissingIsMissingInput: a scorer whose encoder is gone from

@@ -9,8 +9,8 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/freeze"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/freeze"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 type freezeOptions struct {

@@ -6,8 +6,8 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/freeze"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/freeze"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // TestFreezeCLI freezes the tiny scorer through the binary: text and JSON

@@ -10,13 +10,13 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/checks"
-	"modelgate/internal/errkind"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 type gateOptions struct {

@@ -9,9 +9,9 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
-	"modelgate/internal/registry/storetest"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
 )
 
 // forceTag moves repo:tag of the local store at dir to digest, bypassing

@@ -5,8 +5,8 @@ import (
 	"encoding/hex"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 func sha256Hex(b []byte) string {

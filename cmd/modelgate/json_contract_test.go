@@ -6,7 +6,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 // checkJSON validates a command's stdout against the command's output

@@ -17,7 +17,7 @@ import (
 	metav1 "k8s.io/apimachinery/pkg/apis/meta/v1"
 	"sigs.k8s.io/yaml"
 
-	"modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/policy"
 )
 
 var pinnedDigest = regexp.MustCompile(`@sha256:[0-9a-f]{64}$`)

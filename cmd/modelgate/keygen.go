@@ -7,7 +7,7 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 type keygenOptions struct {

@@ -8,10 +8,10 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 type logOptions struct {

@@ -10,9 +10,9 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/policyscaffold"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/policyscaffold"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // addPolicyScaffold adds `policy draft` and `policy check` under the root's

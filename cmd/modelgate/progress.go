@@ -12,9 +12,9 @@ import (
 	"github.com/schollz/progressbar/v3"
 	"golang.org/x/term"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/checks"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 // progress returns an event sink for the long commands, in three modes:

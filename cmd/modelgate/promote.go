@@ -8,9 +8,9 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 type promoteOptions struct {

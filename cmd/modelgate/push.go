@@ -6,8 +6,8 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 type pushOptions struct {

@@ -12,10 +12,10 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 func newPullCmd(g *globals) *cobra.Command {

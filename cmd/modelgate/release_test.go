@@ -10,9 +10,9 @@ import (
 	"sync"
 	"testing"
 
-	"modelgate/internal/fixture"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/policy"
 )
 
 // releaseWorld is a store with tiny encoder variants, keys and a policy

@@ -6,8 +6,8 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 type rollbackOptions struct {

@@ -16,10 +16,10 @@ import (
 	"github.com/spf13/cobra"
 	"golang.org/x/term"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
-	"modelgate/internal/version"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/version"
 )
 
 // globals are the flags every command shares, and where output goes.

@@ -10,7 +10,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // probeHoldout writes the model directory's probe rows as a JSON Lines

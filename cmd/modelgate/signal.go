@@ -9,7 +9,7 @@ import (
 	"syscall"
 	"time"
 
-	"modelgate/internal/fileio"
+	"github.com/modelgate/modelgate/internal/fileio"
 )
 
 // interruptGrace is how long a command may take to unwind after SIGINT or

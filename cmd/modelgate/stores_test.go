@@ -14,7 +14,7 @@ import (
 	"github.com/fsouza/fake-gcs-server/fakestorage"
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
 
-	"modelgate/internal/registry/storetest"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
 )
 
 // storeKind is a store location for the CLI, with whether tags move by a

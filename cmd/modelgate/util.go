@@ -3,8 +3,8 @@ package main
 import (
 	"strings"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 func usageErr(format string, args ...any) error {

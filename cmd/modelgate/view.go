@@ -13,9 +13,9 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/web"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/web"
 )
 
 type viewOptions struct {

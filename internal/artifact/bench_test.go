@@ -9,9 +9,9 @@ import (
 	"testing"
 	"time"
 
-	"modelgate/internal/fixture/bigmodel"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/fixture/bigmodel"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // bigModel writes an encoder whose one tensor file is about mb megabytes.

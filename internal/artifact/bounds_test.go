@@ -6,11 +6,11 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/errkind"
-	"modelgate/internal/fixture"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // TestModelFilesLayerLimits: a model manifest whose vocabulary, stats or

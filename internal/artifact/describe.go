@@ -11,9 +11,9 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // LayerRow is one row of a model's layer table.

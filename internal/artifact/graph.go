@@ -3,10 +3,10 @@ package artifact
 import (
 	"context"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // checkGraph compiles the model with the runtime so that a push refuses

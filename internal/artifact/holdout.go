@@ -19,11 +19,11 @@ import (
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
 
-	"modelgate/internal/data"
-	"modelgate/internal/errkind"
-	"modelgate/internal/fileio"
-	"modelgate/internal/model"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fileio"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // MediaTypeHoldoutInfo is the config blob of a holdout artifact: what the

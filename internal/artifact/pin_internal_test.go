@@ -8,9 +8,9 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // scorerByTagDir copies testdata/models/tiny-scorer and rewrites its spec

@@ -13,10 +13,10 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/model/safetensors"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model/safetensors"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // plainStore hides every optional ability of a store (staging included),

@@ -13,12 +13,12 @@ import (
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/fileio"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/model/safetensors"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fileio"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model/safetensors"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // Artifact is a manifest read from a store.

@@ -6,7 +6,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // TestScanHoldoutRowIDs: a row_id given twice is refused; with a cluster

@@ -10,8 +10,8 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/model"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // VerifyReport is the result of verifying a whole store.

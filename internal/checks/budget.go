@@ -9,10 +9,10 @@ import (
 	"sort"
 	"strings"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
-	"modelgate/internal/score"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/score"
 )
 
 // BudgetConfig holds the serving budget. Nil limits are not enforced.

@@ -5,8 +5,8 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // TestBudgetVerdictRepeats: ten consecutive gates of the demo's better

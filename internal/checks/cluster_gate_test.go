@@ -10,10 +10,10 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/data"
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // demoRows reads the demo scorer holdout back into writable rows (raw ids

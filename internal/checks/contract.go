@@ -5,9 +5,9 @@ import (
 	"math"
 	"math/rand/v2"
 
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/score"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/score"
 )
 
 // ContractConfig holds the contract check's thresholds.

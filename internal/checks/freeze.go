@@ -6,10 +6,10 @@ import (
 	"sort"
 	"strings"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/freeze"
-	"modelgate/internal/model"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/freeze"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // FreezeConfig holds the freeze check's rules.

@@ -6,12 +6,12 @@ import (
 	"fmt"
 	"time"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
-	"modelgate/internal/registry"
-	"modelgate/internal/score"
-	"modelgate/internal/version"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/score"
+	"github.com/modelgate/modelgate/internal/version"
 )
 
 // Config is everything the checks need from a policy rule, with the

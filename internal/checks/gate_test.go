@@ -13,15 +13,15 @@ import (
 	"testing"
 	"time"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/demo"
-	"modelgate/internal/errkind"
-	"modelgate/internal/freeze"
-	"modelgate/internal/model"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/score"
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/demo"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/freeze"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/score"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 var (

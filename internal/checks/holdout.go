@@ -9,13 +9,13 @@ import (
 	"strings"
 	"time"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/checks/stats"
-	"modelgate/internal/data"
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
-	"modelgate/internal/policy"
-	"modelgate/internal/score"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/checks/stats"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/score"
 )
 
 // HoldoutConfig holds the holdout check's rules.

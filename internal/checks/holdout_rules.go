@@ -5,11 +5,11 @@ import (
 	"math"
 	"slices"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/checks/stats"
-	"modelgate/internal/data"
-	"modelgate/internal/errkind"
-	"modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/checks/stats"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/policy"
 )
 
 // clusterColumn returns the cluster column the gate uses: the policy's,

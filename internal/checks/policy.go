@@ -1,7 +1,7 @@
 package checks
 
 import (
-	"modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/policy"
 )
 
 // FromRule turns a policy rule (defaults applied) into the checks'

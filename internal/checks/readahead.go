@@ -7,8 +7,8 @@ import (
 	"io"
 	"time"
 
-	"modelgate/internal/data"
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // readAheadDepth is how many batches the reader may hold at once: one

@@ -8,8 +8,8 @@ import (
 	"slices"
 	"testing"
 
-	"modelgate/internal/data"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // frameOf builds a frame from rows of (item, value) pairs and one dense

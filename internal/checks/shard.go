@@ -7,8 +7,8 @@ import (
 	"math"
 	"sort"
 
-	"modelgate/internal/checks/stats"
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/checks/stats"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // holdoutState is the holdout check's mergeable sufficient statistics:

@@ -20,10 +20,10 @@ import (
 	"github.com/google/go-containerregistry/pkg/authn"
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/data"
-	"modelgate/internal/demo/listening"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/demo/listening"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // blobCounter is a reverse proxy in front of a registry that counts the

@@ -10,10 +10,10 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // TestHolmMatchesStatsmodels: Holm's adjusted p-values and decisions equal

@@ -10,8 +10,8 @@ import (
 
 	"gonum.org/v1/gonum/stat/distuv"
 
-	"modelgate/internal/checks/stats"
-	"modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/checks/stats"
+	"github.com/modelgate/modelgate/internal/policy"
 )
 
 // simFull runs the soundness simulation at full size (4,000 holdouts per

@@ -4,9 +4,9 @@ import (
 	"fmt"
 	"math"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/model"
-	"modelgate/internal/score"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/score"
 )
 
 // Where the rows' slices and weights come from. The candidate never

@@ -13,9 +13,9 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/data"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // editedStatsCandidate pushes a copy of the demo's better candidate whose

@@ -6,7 +6,7 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // benchmarkRead reads a generated holdout of rows rows (up to 30 items

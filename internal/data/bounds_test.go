@@ -16,8 +16,8 @@ import (
 	"github.com/parquet-go/parquet-go/encoding/thrift"
 	"github.com/parquet-go/parquet-go/format"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // boundsHoldout is a small Parquet holdout (three row groups) and the

@@ -7,7 +7,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // TestClusterColumn: a named cluster column is read from Parquet and JSON

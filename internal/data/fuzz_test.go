@@ -11,8 +11,8 @@ import (
 
 	"github.com/google/go-cmp/cmp"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 var fuzzDense = []model.DenseInput{{Name: "age", Size: 1}, {Name: "aff", Size: 2}}

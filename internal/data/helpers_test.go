@@ -8,8 +8,8 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // Demo-flavoured fixtures: listeners of a fictional podcast network, the

@@ -13,8 +13,8 @@ import (
 	"github.com/parquet-go/parquet-go"
 	"github.com/parquet-go/parquet-go/compress/zstd"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // HoldoutRow is one row to write to a holdout file.

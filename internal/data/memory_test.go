@@ -7,7 +7,7 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // writeBig writes n generated rows in chunks, so the test never holds them

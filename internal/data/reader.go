@@ -9,9 +9,9 @@ import (
 	"path/filepath"
 	"strings"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/fileio"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fileio"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // Holdout file formats, as OpenReader and NewHoldoutWriter name them.

@@ -13,7 +13,7 @@ import (
 	"github.com/google/go-cmp/cmp"
 	"github.com/parquet-go/parquet-go"
 
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 func TestRoundTrip(t *testing.T) {

@@ -10,8 +10,8 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // Two good JSON Lines rows: with and without labels; unknown fields are

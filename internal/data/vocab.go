@@ -10,8 +10,8 @@ import (
 	"strconv"
 	"unicode/utf8"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 // Vocabulary maps raw item ids to weight rows of one sparse input.

@@ -6,8 +6,8 @@ import (
 	"testing"
 	"unicode/utf8"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
 )
 
 func sparseInput(size int, unknown string) model.SparseInput {

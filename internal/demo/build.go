@@ -12,12 +12,12 @@ import (
 
 	"gonum.org/v1/gonum/mat"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/data"
-	"modelgate/internal/errkind"
-	"modelgate/internal/fit"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fit"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // Names of the model directories Build writes under <dir>/models.

@@ -16,12 +16,12 @@ import (
 	"sync"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/data"
-	"modelgate/internal/errkind"
-	"modelgate/internal/fit"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fit"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // The default scenario is built once and shared by the tests that read it.

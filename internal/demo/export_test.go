@@ -9,8 +9,8 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // debianPython is the interpreter that sees Debian's numpy 1.24; another

@@ -5,8 +5,8 @@ import (
 	"math"
 	"sort"
 
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // net64 is the training side's forward pass: a plain float64 interpreter of

@@ -7,8 +7,8 @@ import (
 	"slices"
 	"sort"
 
-	"modelgate/internal/demo/listening"
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/demo/listening"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // Config sets the size and the seed of the generated network. The zero

@@ -7,9 +7,9 @@ import (
 	"fmt"
 	"math"
 
-	"modelgate/internal/fit"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/fit"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // File names inside the model directories Build writes.

@@ -3,7 +3,7 @@ package demo
 import (
 	"fmt"
 
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // probeRow is one probe input; l supplies the dense inputs.

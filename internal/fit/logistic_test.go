@@ -9,7 +9,7 @@ import (
 
 	"gonum.org/v1/gonum/mat"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // logisticData draws a seeded data set from a logistic model with the

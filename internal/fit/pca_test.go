@@ -6,7 +6,7 @@ import (
 	"math/rand/v2"
 	"testing"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // randomSparse makes a seeded rows×cols matrix with a few dominant latent

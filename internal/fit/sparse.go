@@ -3,7 +3,7 @@ package fit
 import (
 	"math"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // Sparse is a Rows×Cols matrix in compressed sparse row form: row r's

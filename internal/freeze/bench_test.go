@@ -9,7 +9,7 @@ import (
 	"testing"
 	"time"
 
-	"modelgate/internal/freeze"
+	"github.com/modelgate/modelgate/internal/freeze"
 )
 
 // heapPeak samples the live heap every millisecond until stopped and

@@ -13,15 +13,15 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/checks"
-	"modelgate/internal/data"
-	"modelgate/internal/demo"
-	"modelgate/internal/freeze"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
-	"modelgate/internal/score"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/demo"
+	"github.com/modelgate/modelgate/internal/freeze"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/score"
 )
 
 // TestFreezeTrainableEncoderCandidate freezes the demo's candidate that

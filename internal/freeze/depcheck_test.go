@@ -16,8 +16,8 @@ func TestFreezeImports(t *testing.T) {
 	}
 	for _, imp := range p.Imports {
 		switch {
-		case imp == "modelgate/internal/checks", strings.HasPrefix(imp, "modelgate/internal/release"),
-			strings.HasPrefix(imp, "modelgate/internal/report"), strings.HasPrefix(imp, "modelgate/cmd"),
+		case imp == "github.com/modelgate/modelgate/internal/checks", strings.HasPrefix(imp, "github.com/modelgate/modelgate/internal/release"),
+			strings.HasPrefix(imp, "github.com/modelgate/modelgate/internal/report"), strings.HasPrefix(imp, "github.com/modelgate/modelgate/cmd"),
 			strings.HasPrefix(imp, "github.com/spf13/"), strings.HasPrefix(imp, "cloud.google.com/"):
 			t.Errorf("internal/freeze imports %s", imp)
 		}

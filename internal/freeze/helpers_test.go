@@ -7,12 +7,12 @@ import (
 	"sync"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/demo"
-	"modelgate/internal/fixture"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/demo"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // The demo scenario is built once per test binary (it takes seconds) and

@@ -10,10 +10,10 @@ import (
 	"sort"
 	"strings"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/model/safetensors"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model/safetensors"
 )
 
 // stored is what freeze needs of a stored model: its decoded content and

@@ -9,9 +9,9 @@ import (
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/registry"
-	"modelgate/internal/version"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/version"
 )
 
 // ReportKind is the artifact kind of a freeze record: a report

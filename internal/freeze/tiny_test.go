@@ -14,16 +14,16 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/checks"
-	"modelgate/internal/data"
-	"modelgate/internal/errkind"
-	"modelgate/internal/fixture"
-	"modelgate/internal/freeze"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/model/safetensors"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/data"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/freeze"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model/safetensors"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // TestFreezeExternalScorer freezes the tiny scorer, which references its

@@ -7,8 +7,8 @@ import (
 	"slices"
 	"strings"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model/kernel"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model/kernel"
 )
 
 // This file is the reference runtime's compiler: it checks a spec (and the

@@ -10,8 +10,8 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/demo/listening"
-	"modelgate/internal/model/kernel"
+	"github.com/modelgate/modelgate/internal/demo/listening"
+	"github.com/modelgate/modelgate/internal/model/kernel"
 )
 
 // The runtime benchmark's workload, a podcast network at production scale

@@ -5,7 +5,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 func TestCompileErrors(t *testing.T) {

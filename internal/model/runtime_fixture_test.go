@@ -5,8 +5,8 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
 
 // TestRuntimeMatchesFixtureProbes runs the repository's tiny encoder and

@@ -3,7 +3,7 @@ package model
 import (
 	"fmt"
 
-	"modelgate/internal/model/kernel"
+	"github.com/modelgate/modelgate/internal/model/kernel"
 )
 
 // activation is a layer's activation as the kernels take it.

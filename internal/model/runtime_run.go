@@ -8,8 +8,8 @@ import (
 	"sync"
 	"sync/atomic"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model/kernel"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model/kernel"
 )
 
 // DefaultTileRows is the number of rows a Runner computes together unless

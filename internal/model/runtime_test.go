@@ -8,7 +8,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // handModel is small enough to compute by hand. Sparse input: vocabulary 3

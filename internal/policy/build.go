@@ -11,9 +11,9 @@ import (
 	"strings"
 	"time"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 // Defaults the schema documents; build applies them.

@@ -7,7 +7,7 @@ import (
 	"os"
 	"testing"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // FuzzParse: Parse never panics; it either returns a policy whose digest

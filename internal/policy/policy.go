@@ -25,8 +25,8 @@ import (
 	"strings"
 	"time"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // MaxFileBytes bounds the size of a policy file.

@@ -19,9 +19,9 @@ import (
 	"github.com/google/go-cmp/cmp/cmpopts"
 	"sigs.k8s.io/yaml"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 var examples = []string{"../../policies/listener-encoder.yaml", "../../policies/promo-scorer.yaml"}

@@ -14,7 +14,7 @@ import (
 
 	"sigs.k8s.io/yaml"
 
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 // Setting is one leaf property of a rule: its path in the policy (from

@@ -16,7 +16,7 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // BlobRanger is a store that can read part of a blob. The bytes are NOT

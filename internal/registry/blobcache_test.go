@@ -21,8 +21,8 @@ import (
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 func digestOf(b []byte) v1.Hash {

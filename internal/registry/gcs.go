@@ -21,7 +21,7 @@ import (
 	"google.golang.org/api/iterator"
 	"google.golang.org/api/option"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // GCS is a store in a Google Cloud Storage bucket, under a prefix. Object

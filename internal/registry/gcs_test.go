@@ -14,8 +14,8 @@ import (
 	gax "github.com/googleapis/gax-go/v2"
 	"google.golang.org/api/option"
 
-	"modelgate/internal/registry"
-	"modelgate/internal/registry/storetest"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
 )
 
 const testBucket = "podcast-models"

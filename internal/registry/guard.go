@@ -6,7 +6,7 @@ import (
 	"fmt"
 	"strings"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // Reserved tag prefixes. A tag starting with one of them is never written

@@ -22,8 +22,8 @@ import (
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/fileio"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fileio"
 )
 
 // Annotation keys that the local store writes on index.json entries and

@@ -12,7 +12,7 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 const benchBlobSize = 200 << 20

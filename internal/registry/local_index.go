@@ -17,7 +17,7 @@ import (
 	"github.com/google/go-containerregistry/pkg/v1/types"
 	"golang.org/x/sys/unix"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // indexCache holds the parsed index.json of one version of the file. It is

@@ -19,8 +19,8 @@ import (
 	"github.com/google/go-containerregistry/pkg/v1/types"
 	"github.com/google/go-containerregistry/pkg/v1/validate"
 
-	"modelgate/internal/registry"
-	"modelgate/internal/registry/storetest"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
 )
 
 const (

@@ -13,9 +13,9 @@ import (
 	"github.com/google/go-cmp/cmp"
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/registry"
-	"modelgate/internal/registry/storetest"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
 )
 
 // oldIndex is index.json as the local store wrote it before side files

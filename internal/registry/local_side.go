@@ -18,7 +18,7 @@ import (
 	"github.com/google/go-containerregistry/pkg/v1/types"
 	"golang.org/x/sys/unix"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // Side files: the record of which manifests a repository holds and which

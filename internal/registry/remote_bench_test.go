@@ -6,11 +6,11 @@ import (
 	"path/filepath"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/fixture/bigmodel"
-	"modelgate/internal/model"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/fixture/bigmodel"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // benchModel writes an encoder whose tensor file is about mb MiB and

@@ -13,7 +13,7 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // CopyEvent is a progress event of Copy: Phase "blob" (Done/Total bytes of

@@ -9,9 +9,9 @@ import (
 
 	"github.com/google/go-containerregistry/pkg/v1/types"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // A release that points a scorer tag at a scorer leaves, as a referrer of

@@ -16,8 +16,8 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/policy"
 )
 
 func jsonUnmarshal(t *testing.T, b []byte, v any) {

@@ -56,7 +56,7 @@ func TestImports(t *testing.T) {
 		t.Fatal(err)
 	}
 	for _, imp := range pkg.Imports {
-		for _, bad := range []string{"github.com/spf13/", "modelgate/internal/checks", "cloud.google.com/", "modelgate/internal/demo"} {
+		for _, bad := range []string{"github.com/spf13/", "github.com/modelgate/modelgate/internal/checks", "cloud.google.com/", "github.com/modelgate/modelgate/internal/demo"} {
 			if strings.HasPrefix(imp, bad) {
 				t.Errorf("release imports %s", imp)
 			}

@@ -11,14 +11,14 @@ import (
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/checks"
-	"modelgate/internal/errkind"
-	"modelgate/internal/fixture"
-	"modelgate/internal/model/modeldir"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/version"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/model/modeldir"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/version"
 )
 
 const testRepo = "tiny-encoder"

@@ -17,8 +17,8 @@ import (
 	"regexp"
 	"strings"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/policy"
 )
 
 // nameLinePrefix starts the line that key files of modelgate 0.1 carried

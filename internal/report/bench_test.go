@@ -4,7 +4,7 @@ import (
 	"io"
 	"testing"
 
-	"modelgate/internal/report/reporttest"
+	"github.com/modelgate/modelgate/internal/report/reporttest"
 )
 
 func BenchmarkHTML(b *testing.B) {

@@ -12,8 +12,8 @@ import (
 	"testing"
 	"time"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/report/reporttest"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/report/reporttest"
 )
 
 // chromium finds Debian's chromium; without it the test fails when CI is

@@ -10,7 +10,7 @@ import (
 	"strconv"
 	"strings"
 
-	"modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/checks"
 )
 
 // HTML writes r as one self-contained page for a release manager: the

@@ -12,8 +12,8 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/report/reporttest"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/report/reporttest"
 )
 
 var keep = flag.String("keep", "", "write the sample pages into this folder")

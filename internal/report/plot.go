@@ -17,7 +17,7 @@ import (
 	"gonum.org/v1/plot/vg/draw"
 	"gonum.org/v1/plot/vg/vgsvg"
 
-	"modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/checks"
 )
 
 // Plot colours: a blue and an orange that stay apart for the common forms

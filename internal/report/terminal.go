@@ -9,7 +9,7 @@ import (
 	"strings"
 	"unicode"
 
-	"modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/checks"
 )
 
 // TerminalOptions adjusts the terminal rendering.

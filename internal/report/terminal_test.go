@@ -7,8 +7,8 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/report/reporttest"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/report/reporttest"
 )
 
 var show = flag.Bool("show", false, "print the terminal renderings")

@@ -18,7 +18,7 @@ import (
 	"github.com/chromedp/cdproto/page"
 	"github.com/chromedp/chromedp"
 
-	"modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/policy"
 )
 
 // chromiumPath finds Debian's chromium; without it the test fails when CI

@@ -20,9 +20,9 @@ func TestServeImports(t *testing.T) {
 	}
 	for _, imp := range p.Imports {
 		switch {
-		case strings.HasPrefix(imp, "modelgate/cmd"), strings.HasPrefix(imp, "github.com/spf13/"),
+		case strings.HasPrefix(imp, "github.com/modelgate/modelgate/cmd"), strings.HasPrefix(imp, "github.com/spf13/"),
 			strings.HasPrefix(imp, "cloud.google.com/"), strings.HasPrefix(imp, "github.com/chromedp/"),
-			imp == "text/template", imp == "os/exec", imp == "modelgate/internal/freeze", imp == "modelgate/internal/demo":
+			imp == "text/template", imp == "os/exec", imp == "github.com/modelgate/modelgate/internal/freeze", imp == "github.com/modelgate/modelgate/internal/demo":
 			t.Errorf("internal/web imports %s", imp)
 		}
 	}

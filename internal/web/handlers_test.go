@@ -8,7 +8,7 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 // TestServePages walks the demo store's pages: the tag list, a tag, the

@@ -7,11 +7,11 @@ import (
 	"strings"
 	"testing"
 
-	"modelgate/internal/artifact"
-	"modelgate/internal/fixture"
-	"modelgate/internal/registry"
-	"modelgate/internal/registry/storetest"
-	"modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/artifact"
+	"github.com/modelgate/modelgate/internal/fixture"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 // TestServeBrokenLog: a verified release log shows as verified; a tag

@@ -13,12 +13,12 @@ import (
 	"sync"
 	"testing"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/demo"
-	"modelgate/internal/policy"
-	"modelgate/internal/registry"
-	"modelgate/internal/release"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/demo"
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 // demoFixture is the demo scenario published into a temporary local store

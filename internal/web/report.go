@@ -16,8 +16,8 @@ import (
 
 	"golang.org/x/net/html"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 // pageCSP is the policy of the view's own pages: nothing but the view's

@@ -10,9 +10,9 @@ import (
 	"strconv"
 	"strings"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/release"
-	"modelgate/internal/report"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/release"
+	"github.com/modelgate/modelgate/internal/report"
 )
 
 //go:embed templates/*.html

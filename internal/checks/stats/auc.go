@@ -5,7 +5,7 @@ import (
 	"math"
 	"slices"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // ExactAUC returns the area under the ROC curve of scores against labels:

@@ -3,7 +3,7 @@ package stats
 import (
 	"math"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 const (

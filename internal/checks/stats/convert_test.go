@@ -3,8 +3,8 @@ package stats_test
 import (
 	"testing"
 
-	"modelgate/internal/checks"
-	"modelgate/internal/checks/stats"
+	"github.com/modelgate/modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/checks/stats"
 )
 
 // The result types mirror the report types field for field, so the caller

@@ -14,8 +14,8 @@ func TestImports(t *testing.T) {
 		t.Fatal(err)
 	}
 	for _, imp := range pkg.Imports {
-		std := !strings.Contains(strings.Split(imp, "/")[0], ".") && !strings.HasPrefix(imp, "modelgate/")
-		if std || strings.HasPrefix(imp, "gonum.org/v1/gonum/") || imp == "modelgate/internal/errkind" {
+		std := !strings.Contains(strings.Split(imp, "/")[0], ".") && !strings.HasPrefix(imp, "github.com/modelgate/modelgate/")
+		if std || strings.HasPrefix(imp, "gonum.org/v1/gonum/") || imp == "github.com/modelgate/modelgate/internal/errkind" {
 			continue
 		}
 		t.Errorf("stats imports %s", imp)

@@ -5,7 +5,7 @@ import (
 	"math"
 	"slices"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // Shard accumulators travel between machines as bytes: each accumulator

@@ -3,7 +3,7 @@ package stats
 import (
 	"math"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // Histogram is a weighted histogram with equal-width bins over [Min, Max]:

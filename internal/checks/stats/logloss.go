@@ -3,7 +3,7 @@ package stats
 import (
 	"math"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // Eps is the clipping bound of every logarithm in this package: a

@@ -9,7 +9,7 @@ import (
 
 	"gonum.org/v1/gonum/stat/distuv"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // DefaultReplicates is the number of Poisson-bootstrap replicates the gate

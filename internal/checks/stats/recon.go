@@ -3,7 +3,7 @@ package stats
 import (
 	"math"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // BCE returns a row's binary cross-entropy between reconstruction q and

@@ -4,7 +4,7 @@ import (
 	"math"
 	"slices"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // TailWorst is how many rows a Tail keeps as the worst.

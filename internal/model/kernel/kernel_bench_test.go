@@ -7,7 +7,7 @@ import (
 	"sync"
 	"testing"
 
-	"modelgate/internal/demo/listening"
+	"github.com/modelgate/modelgate/internal/demo/listening"
 )
 
 // The shapes of the runtime benchmark's workload (a podcast network at

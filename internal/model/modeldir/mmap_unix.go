@@ -7,7 +7,7 @@ import (
 
 	"golang.org/x/sys/unix"
 
-	"modelgate/internal/fileio"
+	"github.com/modelgate/modelgate/internal/fileio"
 )
 
 // mmapMin is the size from which tensor files are mapped, not read.

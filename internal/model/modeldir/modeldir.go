@@ -29,11 +29,11 @@ import (
 	"strings"
 	"unicode/utf8"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/fileio"
-	"modelgate/internal/model"
-	"modelgate/internal/model/safetensors"
-	"modelgate/schemas"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/fileio"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/safetensors"
+	"github.com/modelgate/modelgate/schemas"
 )
 
 // SpecFile is the spec's file name inside a model directory.

@@ -9,9 +9,9 @@ import (
 	"sort"
 	"strings"
 
-	"modelgate/internal/errkind"
-	"modelgate/internal/model"
-	"modelgate/internal/model/safetensors"
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/model"
+	"github.com/modelgate/modelgate/internal/model/safetensors"
 )
 
 // Encode renders m as the files of a model directory, deterministically:

@@ -26,7 +26,7 @@ import (
 
 	"github.com/x448/float16"
 
-	"modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/errkind"
 )
 
 // MaxHeaderSize is the largest header length N that Parse accepts. A larger

@@ -9,7 +9,7 @@ import (
 	"math"
 	"math/rand/v2"
 
-	"modelgate/internal/checks"
+	"github.com/modelgate/modelgate/internal/checks"
 )
 
 // Digests used by the sample reports: 64 hex digits each.
