@@ -229,7 +229,7 @@ func judge(ctx context.Context, store registry.Store, cand string, target regist
 		if damaged {
 			fail(errkind.Integrity, "an approval of this candidate is damaged in the store")
 		}
-		fail(errkind.Unauthorized, "%d of the %d approvals the policy requires (from distinct trusted keys; %d stored approval(s) judged)", j.Counted, rule.Approvals.Required, len(j.Approvals))
+		fail(errkind.Unauthorized, "%d of the %d approvals the policy requires (from distinct trusted keys; %d stored approval(s) judged)%s", j.Counted, rule.Approvals.Required, len(j.Approvals), whoCanApprove(j.Approvals, approvers, promoter, rule.Approvals.AllowSelfApproval))
 	}
 	return j, nil
 }
@@ -531,4 +531,39 @@ func ApproveCheck(ctx context.Context, store registry.Store, cand v1.Hash, targe
 		return nil, refuse(&Refusal{Kind: j.Kind, Action: "approve", Problems: j.Problems, Reports: j.Reports})
 	}
 	return j.Report, nil
+}
+
+// whoCanApprove says, for a refusal short of approvals, whose approvals
+// counted and which approvers the policy lists could still approve: each
+// listed key without a counted approval, leaving out the promoter's own
+// keys when the policy forbids self-approval.
+func whoCanApprove(checks []ApprovalCheck, approvers []PublicKey, promoter promoterID, allowSelf bool) string {
+	counted := map[string]bool{}
+	var by []string
+	for _, a := range checks {
+		if a.Counted {
+			counted[a.Approver.KeyID] = true
+			by = append(by, a.Approver.Name)
+		}
+	}
+	var can []string
+	seen := map[string]bool{}
+	for _, k := range approvers {
+		if counted[k.ID] || seen[k.ID] {
+			continue
+		}
+		seen[k.ID] = true
+		if !allowSelf && (k.ID == promoter.id || promoter.names[k.Name]) {
+			continue
+		}
+		can = append(can, k.Name)
+	}
+	out := "; approved by: none"
+	if len(by) > 0 {
+		out = "; approved by: " + strings.Join(by, ", ")
+	}
+	if len(can) > 0 {
+		return out + fmt.Sprintf("; can still approve (%d): ", len(can)) + strings.Join(can, ", ")
+	}
+	return out + "; no other approver the policy lists can approve"
 }

@@ -65,7 +65,7 @@ func TestPromoteRefusals(t *testing.T) {
 		{"no approvals", one, func(e *env, cand, base v1.Hash) string {
 			e.report(cand, base, e.pol, checks.VerdictPass, nil)
 			return "rita"
-		}, errkind.Unauthorized, []string{"0 of the 1 approvals"}},
+		}, errkind.Unauthorized, []string{"0 of the 1 approvals", "approved by: none; can still approve (2): ana, ben"}},
 		{"forged signature", one, func(e *env, cand, base v1.Hash) string {
 			rep := e.report(cand, base, e.pol, checks.VerdictPass, nil)
 			// mallory signs a statement that names ana's key id.
@@ -116,7 +116,7 @@ func TestPromoteRefusals(t *testing.T) {
 			e.approve("ana", cand, rep, nil)
 			e.approve("rita", cand, rep, nil)
 			return "rita"
-		}, errkind.Unauthorized, []string{"self-approval", "1 of the 2"}},
+		}, errkind.Unauthorized, []string{"self-approval", "1 of the 2", "approved by: ana; can still approve (1): ben"}},
 		{"self-approval needs a promoter", one, func(e *env, cand, base v1.Hash) string {
 			rep := e.report(cand, base, e.pol, checks.VerdictPass, nil)
 			e.approve("ana", cand, rep, nil)
