@@ -96,6 +96,9 @@ func TestJSONContract(t *testing.T) {
 		{"policy", []string{"policy", "bind", "promo-scorer:prod", "--policy", pol}, 0},
 		{"policy", []string{"policy", "bind", "promo-scorer:prod", "--policy", filepath.Join("..", "..", "policies", "promo-scorer.yaml"), "--key", key("rita")}, 4},
 		{"policy", []string{"policy", "approve", "promo-scorer:prod", "--policy", filepath.Join("..", "..", "policies", "promo-scorer.yaml"), "--key", key("ana")}, 0},
+		{"policy", []string{"policy", "draft", "promo-scorer:prod"}, 0},
+		{"policy", []string{"policy", "check", pol}, 0},
+		{"policy", []string{"policy", "check", filepath.Join(dir, "absent.yaml")}, 2},
 		{"copy", []string{"copy", "tiny-encoder:v1", "--dest", filepath.Join(dir, "copy")}, 0},
 	} {
 		r := mg(t, store, append(c.args, "--json")...)
