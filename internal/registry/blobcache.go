@@ -192,6 +192,11 @@ func (c *BlobCache) adopt(f *os.File, dgst v1.Hash, size int64) error {
 		os.Remove(f.Name())
 		return err
 	}
+	// Stamp the entry with the clock's full resolution: the time the
+	// kernel gives a written file is coarse (a scheduler tick), so blobs
+	// entered within one tick would tie and be evicted in any order.
+	now := time.Now()
+	os.Chtimes(c.path(dgst), now, now)
 	c.evict(dgst)
 	return nil
 }
@@ -225,7 +230,7 @@ func (c *BlobCache) evict(keep v1.Hash) {
 			os.Remove(filepath.Join(c.dir, "blobs", e.Name()))
 		}
 	}
-	sort.Slice(all, func(i, j int) bool { return all[i].mod.Before(all[j].mod) })
+	sort.SliceStable(all, func(i, j int) bool { return all[i].mod.Before(all[j].mod) })
 	for _, e := range all {
 		if total <= c.max {
 			break

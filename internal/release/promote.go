@@ -356,7 +356,18 @@ func Promote(ctx context.Context, store registry.Store, req PromoteRequest) (*Pr
 		// The first release binds the policy: store it as an artifact of
 		// its own too, about the model it first released.
 		polBlob = policyBlob(pol)
-		if _, err := StorePolicy(ctx, store, repo, pol, req.Candidate, t.String()); err != nil {
+		// Racing first releases store the same policy artifact at once; a
+		// registry may fail one of several concurrent uploads of the same
+		// blob (docker-registry answers DIGEST_INVALID), so the write,
+		// which is content-addressed and idempotent, is tried again.
+		var err error
+		for attempt := 1; ; attempt++ {
+			if _, err = StorePolicy(ctx, store, repo, pol, req.Candidate, t.String()); err == nil || attempt == 4 || ctx.Err() != nil {
+				break
+			}
+			time.Sleep(time.Duration(attempt*attempt) * 50 * time.Millisecond)
+		}
+		if err != nil {
 			return nil, fmt.Errorf("storing the policy: %w", err)
 		}
 	}
