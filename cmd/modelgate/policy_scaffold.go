@@ -69,6 +69,8 @@ policy check before the first gate. Writes to stdout unless --out.`,
 	f.StringVar(&o.Holdout, "holdout", "", "the holdout artifact, NAME:TAG or NAME@DIGEST (default: found in the store)")
 	f.StringArrayVar(&o.Approvers, "approver", nil, "NAME=PUBLIC_KEY_FILE of an approver (repeatable; keygen writes the key)")
 	f.IntVar(&o.Required, "required", -1, "approvals required (default: all approvers, at most 2)")
+	// 25% by default: our own choice, room for a retrained model to grow
+	// a little before the budget needs a policy change.
 	f.Float64Var(&o.Headroom, "headroom", 0.25, "headroom over the measured bytes and parameters, a fraction")
 	f.StringVar(&o.Out, "out", "", "write the policy to this file (refused if it exists) instead of stdout")
 	return cmd

@@ -97,7 +97,9 @@ type BlockDigests struct {
 const MaxBlocks = 2048
 
 // BlockSize is the block size for a blob of total bytes: 64 KiB, doubled
-// until the blob has at most MaxBlocks blocks.
+// until the blob has at most MaxBlocks blocks. Our own choice: small
+// enough that a shard fetches little beyond its row groups, large enough
+// that a block's digest (32 bytes) is under 0.05% of it.
 func BlockSize(total int64) int64 {
 	b := int64(64 << 10)
 	for (total+b-1)/b > MaxBlocks {

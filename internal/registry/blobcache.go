@@ -29,7 +29,9 @@ const (
 	EnvCacheSize = "MODELGATE_CACHE_SIZE"
 )
 
-// DefaultCacheSize bounds the cache when EnvCacheSize is unset.
+// DefaultCacheSize bounds the cache when EnvCacheSize is unset: our own
+// choice, room for a few holdouts of our demo's scale (a 1M-row holdout is
+// about 60 MB) on a CI runner's disk without taking most of it.
 const DefaultCacheSize int64 = 4 << 30
 
 // minCached is the smallest blob the cache keeps: smaller ones (specs,

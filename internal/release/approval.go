@@ -141,7 +141,10 @@ type approvalContext struct {
 	ended map[string]string
 }
 
-// maxClockSkew is how far in the future an approval may be dated.
+// maxClockSkew is how far in the future an approval may be dated: the
+// tolerance MIT Kerberos allows between clocks by default (clockskew, 300
+// seconds; krb5.conf documentation), a published figure for machines whose
+// clocks are synchronised but not equal.
 const maxClockSkew = 5 * time.Minute
 
 // checkApprovals reads every approval referring to the candidate and says
