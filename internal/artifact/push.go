@@ -268,6 +268,9 @@ func pushStaged(ctx context.Context, store registry.Store, stager registry.BlobS
 		if errkind.Of(c.err) == errkind.BadInput {
 			// List every problem, values too, as the full check does.
 			full, ferr := modeldir.Check(dir)
+			if errors.Is(ferr, modeldir.ErrChangedWhileRead) {
+				return nil, errkind.New(errkind.BadInput, "model directory %s: a tensor file changed while it was pushed; push again once it is written:\n%v", dir, ferr)
+			}
 			if ferr != nil {
 				return nil, ferr
 			}

@@ -20,10 +20,13 @@ import (
 	"bytes"
 	"crypto/sha256"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"hash/maphash"
 	"math"
 	"os"
+	"runtime"
+	"runtime/debug"
 	"sort"
 	"strconv"
 	"strings"
@@ -191,6 +194,20 @@ func (p *Problems) err() error {
 		return nil
 	}
 	return errkind.Wrap(errkind.BadInput, p)
+}
+
+// Is lets errors.Is(err, ErrChangedWhileRead) find a problem list in which
+// a mapped file shrank while it was checked.
+func (p *Problems) Is(target error) bool {
+	if target != ErrChangedWhileRead {
+		return false
+	}
+	for _, s := range p.List {
+		if strings.Contains(s, changedWhileRead) {
+			return true
+		}
+	}
+	return false
 }
 
 // ParseSpec validates raw spec JSON against schemas/spec.schema.json and
@@ -431,8 +448,8 @@ func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 		}
 		var b []byte
 		var err error
+		var mapped bool
 		if opt.mmap {
-			var mapped bool
 			b, mapped, err = mapFile(d.Path, name)
 			if mapped {
 				d.mapped = append(d.mapped, b)
@@ -449,7 +466,13 @@ func (d *Dir) readTensors(probs *Problems, opt readOptions) {
 		} else {
 			d.TensorFiles = append(d.TensorFiles, File{Name: name, Bytes: b, Size: int64(len(b))})
 		}
-		tensors, problems := checkTensors(name, b, byFile[name], opt.decode)
+		var tensors map[string][]float32
+		var problems []string
+		if mapped {
+			tensors, problems = checkMapped(name, b, byFile[name], opt.decode)
+		} else {
+			tensors, problems = checkTensors(name, b, byFile[name], opt.decode)
+		}
 		probs.List = append(probs.List, problems...)
 		for k, v := range tensors {
 			d.Model.Tensors[k] = v
@@ -553,6 +576,38 @@ func CheckTensors(file string, b []byte, declared []model.Tensor) []string {
 	_, problems := checkTensors(file, b, declared, false)
 	return problems
 }
+
+// ErrChangedWhileRead marks a problem list that includes a mapped tensor
+// file which shrank while it was being checked (errors.Is finds it).
+var ErrChangedWhileRead = errors.New("a file changed while it was read")
+
+// checkMapped is checkTensors on a memory-mapped file. A file truncated
+// while it is mapped faults on the pages past its new end (SIGBUS), which
+// would kill the process; here the fault becomes a panic (see
+// runtime/debug.SetPanicOnFault), recovered into a problem that names the
+// file. Only this goroutine reads the mapping while it is checked.
+func checkMapped(file string, b []byte, declared []model.Tensor, decode bool) (tensors map[string][]float32, problems []string) {
+	defer debug.SetPanicOnFault(debug.SetPanicOnFault(true))
+	defer func() {
+		r := recover()
+		if r == nil {
+			return
+		}
+		// A memory fault carries the faulting address (runtime/debug.SetPanicOnFault).
+		if fault, ok := r.(interface {
+			runtime.Error
+			Addr() uintptr
+		}); ok {
+			tensors, problems = nil, []string{fmt.Sprintf("%s: %s (fault at %#x)", file, changedWhileRead, fault.Addr())}
+			return
+		}
+		panic(r)
+	}()
+	return checkTensors(file, b, declared, decode)
+}
+
+// changedWhileRead is the text of a problem checkMapped recovered.
+const changedWhileRead = "changed while it was read: the file shrank under the check; check again once it is written"
 
 func checkTensors(file string, b []byte, declared []model.Tensor, decode bool) (map[string][]float32, []string) {
 	if decode {
