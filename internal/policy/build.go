@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"path"
 	"regexp"
 	"strconv"
 	"strings"
@@ -41,6 +42,13 @@ const (
 	defaultMinSliceRows      = 100
 	defaultMaxAge            = 72 * time.Hour
 	defaultTailExcess        = 5.0
+	// Retention defaults, our own choices (see the schema): seven days
+	// of grace, ten spare candidates per repository. The grace period
+	// cannot be shorter than minGrace, so that no push in flight (blobs
+	// uploaded, manifest not yet written) is ever eligible.
+	defaultGrace          = 168 * time.Hour
+	defaultKeepCandidates = 10
+	minGrace              = time.Hour
 )
 
 var quotedNumber = regexp.MustCompile(`value must be "(-?[0-9][0-9.eE+-]*)"`)
@@ -77,6 +85,17 @@ type wirePolicy struct {
 	Name          string     `json:"name"`
 	Description   string     `json:"description"`
 	Rules         []wireRule `json:"rules"`
+	Retention     *struct {
+		Grace        *string `json:"grace"`
+		Repositories []struct {
+			Repository     string `json:"repository"`
+			KeepCandidates *wint  `json:"keepCandidates"`
+			ExpireTags     []struct {
+				Tags  string `json:"tags"`
+				After string `json:"after"`
+			} `json:"expireTags"`
+		} `json:"repositories"`
+	} `json:"retention"`
 }
 
 type wireRule struct {
@@ -256,7 +275,62 @@ func build(name string, doc []byte, probs *Problems, o loadOptions) *Policy {
 		}
 		p.Rules = append(p.Rules, r)
 	}
+	if w.Retention != nil {
+		p.Retention = buildRetention(w, probs)
+	}
 	return p
+}
+
+// buildRetention applies the retention defaults and checks the patterns
+// and durations the schema cannot.
+func buildRetention(w wirePolicy, probs *Problems) *Retention {
+	wr := w.Retention
+	r := &Retention{Grace: defaultGrace}
+	duration := func(at, s string) (time.Duration, bool) {
+		d, err := time.ParseDuration(s)
+		switch {
+		case err != nil:
+			probs.add(at, "%q is not a duration: write it like \"168h\" or \"90m\"", s)
+		case d < minGrace:
+			probs.add(at, "%q is shorter than %s: a push in flight could lose blobs it uploaded but has not yet named", s, minGrace)
+		default:
+			return d, true
+		}
+		return 0, false
+	}
+	if wr.Grace != nil {
+		if d, ok := duration("/retention/grace", *wr.Grace); ok {
+			r.Grace = d
+		}
+	}
+	seen := map[string]int{}
+	for i, wrr := range wr.Repositories {
+		at := fmt.Sprintf("/retention/repositories/%d", i)
+		rr := RepositoryRetention{Pattern: wrr.Repository, KeepCandidates: intOr(wrr.KeepCandidates, defaultKeepCandidates)}
+		if _, err := path.Match(wrr.Repository, ""); err != nil {
+			probs.add(at+"/repository", "%q is not a valid pattern: %v", wrr.Repository, err)
+		} else if j, dup := seen[wrr.Repository]; dup {
+			probs.add(at+"/repository", "%q is already given by /retention/repositories/%d", wrr.Repository, j)
+		} else {
+			seen[wrr.Repository] = i
+		}
+		for k, e := range wrr.ExpireTags {
+			eat := fmt.Sprintf("%s/expireTags/%d", at, k)
+			te := TagExpiry{Pattern: e.Tags}
+			if _, err := path.Match(e.Tags, ""); err != nil {
+				probs.add(eat+"/tags", "%q is not a valid pattern: %v", e.Tags, err)
+			}
+			if d, ok := duration(eat+"/after", e.After); ok {
+				if d < r.Grace {
+					probs.add(eat+"/after", "%q is shorter than the grace period %s", e.After, r.Grace)
+				}
+				te.After = d
+			}
+			rr.ExpireTags = append(rr.ExpireTags, te)
+		}
+		r.Repositories = append(r.Repositories, rr)
+	}
+	return r
 }
 
 // decodeMessage names the field of a decoding error.

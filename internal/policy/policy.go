@@ -22,6 +22,7 @@ import (
 	"io"
 	"math"
 	"os"
+	"path"
 	"strings"
 	"time"
 
@@ -59,6 +60,9 @@ type Policy struct {
 	Source string
 	// Rules are the policy's rules in file order, one per target tag.
 	Rules []Rule
+	// Retention says what the store collector may remove; nil when the
+	// policy has no retention section (then nothing is eligible).
+	Retention *Retention
 
 	digest     string
 	fileDigest string
@@ -552,4 +556,62 @@ func (p *Policy) keyFileUnread() bool {
 		}
 	}
 	return false
+}
+
+// Retention is what the store collector may remove. Whatever it says,
+// release records and everything they reach are never eligible (package
+// retain enforces that); Retention only widens what else may go.
+type Retention struct {
+	// Grace: nothing younger is eligible, manifest or blob. Default 168h.
+	Grace time.Duration
+	// Repositories are the per-repository rules in file order; the first
+	// whose Pattern matches a repository applies to it.
+	Repositories []RepositoryRetention
+}
+
+// RepositoryRetention is the retention of the repositories Pattern
+// matches.
+type RepositoryRetention struct {
+	// Pattern is a repository name or a path.Match pattern.
+	Pattern string
+	// KeepCandidates is how many of the newest models that nothing else
+	// keeps are kept. Default 10.
+	KeepCandidates int
+	// ExpireTags are the tags that may expire, in file order.
+	ExpireTags []TagExpiry
+}
+
+// TagExpiry lets the tags matching Pattern (path.Match) stop keeping
+// their artifact once it is older than After (≥ the grace period).
+type TagExpiry struct {
+	Pattern string
+	After   time.Duration
+}
+
+// For returns the retention of repo: the first entry whose pattern
+// matches it, nil when none does (then nothing in repo is eligible).
+func (r *Retention) For(repo string) *RepositoryRetention {
+	if r == nil {
+		return nil
+	}
+	for i := range r.Repositories {
+		if ok, _ := path.Match(r.Repositories[i].Pattern, repo); ok {
+			return &r.Repositories[i]
+		}
+	}
+	return nil
+}
+
+// Expiry returns the expiry whose pattern matches tag first, nil when
+// none does (the tag keeps its artifact).
+func (r *RepositoryRetention) Expiry(tag string) *TagExpiry {
+	if r == nil {
+		return nil
+	}
+	for i := range r.ExpireTags {
+		if ok, _ := path.Match(r.ExpireTags[i].Pattern, tag); ok {
+			return &r.ExpireTags[i]
+		}
+	}
+	return nil
 }
