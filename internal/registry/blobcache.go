@@ -302,7 +302,11 @@ func NewCached(s Store, c *BlobCache) Store {
 	sw, _ := s.(TagSwapper)
 	ml, _ := s.(ManifestLister)
 	sc, _ := s.(Scrubber)
-	return compose(w, sw, ml, sc)
+	var dl Deleter
+	if _, ok := s.(Deleter); ok {
+		dl = cachedDeleter{w}
+	}
+	return compose(w, sw, ml, sc, dl)
 }
 
 // BlobCache returns the cache.

@@ -1046,8 +1046,11 @@ func (l *Local) setTag(ctx context.Context, repo, tag string, old *v1.Hash, desc
 	return nil
 }
 
-// Untag removes repo:tag. The manifest stays in the repository (its side
-// file remains). A missing tag wraps ErrNotFound.
+// Untag removes repo:tag, whatever it is: it applies none of DeleteTag's
+// guards (reserved names, release logs, the expected target), so it is
+// for tests that damage a store on purpose; everything else removes tags
+// with DeleteTag. The manifest stays in the repository (its side file
+// remains). A missing tag wraps ErrNotFound.
 func (l *Local) Untag(ctx context.Context, repo, tag string) error {
 	if err := ValidateRepository(repo); err != nil {
 		return err

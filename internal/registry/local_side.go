@@ -219,6 +219,12 @@ func (c *entryCache) put(p string, d v1.Descriptor) {
 	c.m[p] = d
 }
 
+func (c *entryCache) drop(p string) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	delete(c.m, p)
+}
+
 // readEntry reads and checks the side file p, which must record manifest
 // dgst of repo. A missing file wraps ErrNotFound (errkind.BadInput); a file
 // that is not such a record is damage (errkind.Integrity).

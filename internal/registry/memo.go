@@ -101,7 +101,11 @@ func NewMemo(s Store, max int64) Store {
 	sw, _ := s.(TagSwapper)
 	ml, _ := s.(ManifestLister)
 	sc, _ := s.(Scrubber)
-	return compose(w, sw, ml, sc)
+	var dl Deleter
+	if _, ok := s.(Deleter); ok {
+		dl = memoDeleter{w}
+	}
+	return compose(w, sw, ml, sc, dl)
 }
 
 func (m *memoStore) Unwrap() Store { return m.Store }

@@ -14,6 +14,7 @@ import (
 	"fmt"
 	"io"
 	"strings"
+	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/types"
@@ -145,6 +146,128 @@ type StagedBlob interface {
 type StagedReader interface {
 	StagedBlob
 	io.ReaderAt
+}
+
+// Deleter is a Store that can remove what it holds: the primitives a
+// collector (and the untag command) builds on. Every method is safe for
+// concurrent use, also by several processes, and crash-safe: a crash at
+// any point leaves the store as before the call or as after it, or with
+// at most a leftover that Scrub reports as a hint (never as damage), and
+// calling the method again finishes the job.
+//
+// What no Deleter removes, whoever calls it (the guards live here, in the
+// store, not in the caller):
+//   - a tag that has a release log, or a release log's head pointer
+//     (ErrGuarded, errkind.Unauthorized, for a guarded tag; errkind.BadInput
+//     for the reserved names, see CheckTagName);
+//   - a manifest that a tag of its repository still names (ErrConflict,
+//     errkind.Conflict): tags go first, by DeleteTag;
+//   - a release record or a marker of one (IsReleaseLogType: ErrGuarded,
+//     errkind.Unauthorized): release logs are history and are never
+//     collected.
+type Deleter interface {
+	// DeleteTag removes repo:tag if it points at want (a digest; zero is
+	// refused). A tag pointing elsewhere wraps ErrConflict
+	// (errkind.Conflict) and changes nothing; a missing tag wraps
+	// ErrNotFound. Reserved tags and tags with a release log are refused
+	// (CheckTagWrite's rules). The manifest stays in the repository.
+	//
+	// A store that cannot remove a tag on its own (an OCI registry without
+	// the distribution-spec v1.1 tag DELETE) removes it by deleting its
+	// manifest when no other tag names that manifest, and otherwise fails
+	// with an error wrapping errors.ErrUnsupported (errkind.BadInput).
+	DeleteTag(ctx context.Context, repo, tag string, want v1.Hash) error
+
+	// DeleteManifest removes manifest dgst from repo, with the store's own
+	// records of it (referrer links, bookkeeping tags, side files). It is
+	// idempotent: a manifest that is not there is not an error. It
+	// refuses, changing nothing, a manifest a tag of repo names
+	// (ErrConflict) and a release record (ErrGuarded). The manifest's
+	// referrers are not removed (their subject need not exist); remove
+	// them first. On stores whose manifests are blobs (local), the
+	// manifest's bytes go when no repository records the manifest any
+	// more; config and layer blobs stay until DeleteBlob.
+	DeleteManifest(ctx context.Context, repo string, dgst v1.Hash) error
+
+	// DeleteBlob removes blob dgst. It is idempotent: a missing blob is not
+	// an error. It does not check that no manifest references the blob:
+	// that is the caller's mark, and Blobs' Modified times are the caller's
+	// guard against a push in flight. When SharesBlobs, the blob is removed
+	// for every repository of the store. A store that cannot remove blobs
+	// returns an error wrapping errors.ErrUnsupported.
+	DeleteBlob(ctx context.Context, repo string, dgst v1.Hash) error
+
+	// Blobs lists the content blobs (configs, layers, and leftovers of
+	// interrupted pushes; never a manifest some repository records) that
+	// DeleteBlob can remove, sorted by digest. When SharesBlobs, the list
+	// is the whole store's whatever repo is, and a blob is garbage only
+	// when no manifest of any repository references it. A store that
+	// cannot list blobs (an OCI registry: the distribution API has no such
+	// call) returns an error wrapping errors.ErrUnsupported; its blob
+	// space comes back only through the registry's own garbage collection.
+	Blobs(ctx context.Context, repo string) ([]BlobInfo, error)
+
+	// ManifestTimes returns, for every manifest recorded in repo, when the
+	// store recorded it (first put into repo). A store that keeps no such
+	// time (an OCI registry) returns an error wrapping
+	// errors.ErrUnsupported; callers then fall back to the manifest's
+	// org.opencontainers.image.created annotation, which the client wrote.
+	ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]time.Time, error)
+
+	// SharesBlobs reports whether blobs are one pool for every repository
+	// of the store (local, GCS) rather than per repository.
+	SharesBlobs() bool
+}
+
+// BlobInfo describes a stored blob.
+type BlobInfo struct {
+	Digest v1.Hash
+	Size   int64
+	// Modified is when the store last wrote the blob. A push that finds
+	// the blob present and skips the upload does not change it.
+	Modified time.Time
+}
+
+// Artifact types of the release log (see internal/release): records and
+// the markers that say how they ended. No Deleter removes them.
+const (
+	releaseRecordType    = "application/vnd.modelgate.release.v1"
+	releaseCommittedType = "application/vnd.modelgate.committed.v1"
+	releaseEndedType     = "application/vnd.modelgate.ended.v1"
+)
+
+// IsReleaseLogType reports whether artifactType is that of a release
+// record or of a marker of one, which DeleteManifest refuses to remove.
+func IsReleaseLogType(artifactType string) bool {
+	switch artifactType {
+	case releaseRecordType, releaseCommittedType, releaseEndedType:
+		return true
+	}
+	return false
+}
+
+// checkDeleteTag applies DeleteTag's rules on the name and want.
+func checkDeleteTag(repo, tag string, want v1.Hash) error {
+	if err := ValidateRepository(repo); err != nil {
+		return err
+	}
+	if err := CheckTagName(tag); err != nil {
+		return err
+	}
+	if err := checkDigest(want); err != nil {
+		return errkind.New(errkind.BadInput, "removing tag %s:%s: the digest it must point at: %w", repo, tag, err)
+	}
+	return nil
+}
+
+// releaseLogError is DeleteManifest's refusal of a release record.
+func releaseLogError(repo string, dgst v1.Hash, artifactType string) error {
+	return errkind.New(errkind.Unauthorized, "%s@%s is part of a release log (%s): release records and their markers are never removed: %w", repo, dgst, artifactType, ErrGuarded)
+}
+
+// taggedError is DeleteManifest's refusal of a manifest tags still name.
+func taggedError(repo string, dgst v1.Hash, tags []string) error {
+	return errkind.New(errkind.Conflict, "%s@%s is still tagged (%s): remove its tags first: %w", repo, dgst, strings.Join(tags, ", "), ErrConflict)
 }
 
 // Finding is something a store-level check noticed.

@@ -67,14 +67,23 @@ type wrapper interface {
 // compose returns a Store made of base plus exactly the optional abilities
 // given non-nil, so that a type assertion on the result finds an ability
 // only when the wrapped store has it.
-func compose(base wrapper, sw TagSwapper, ml ManifestLister, sc Scrubber) Store {
+func compose(base wrapper, sw TagSwapper, ml ManifestLister, sc Scrubber, dl Deleter) Store {
 	type (
 		s  = wrapper
 		w  = TagSwapper
 		m  = ManifestLister
 		sr = Scrubber
+		d  = Deleter
 	)
 	switch {
+	case sw != nil && ml != nil && sc != nil && dl != nil:
+		return struct {
+			s
+			w
+			m
+			sr
+			d
+		}{base, sw, ml, sc, dl}
 	case sw != nil && ml != nil && sc != nil:
 		return struct {
 			s
@@ -82,6 +91,27 @@ func compose(base wrapper, sw TagSwapper, ml ManifestLister, sc Scrubber) Store 
 			m
 			sr
 		}{base, sw, ml, sc}
+	case sw != nil && ml != nil && dl != nil:
+		return struct {
+			s
+			w
+			m
+			d
+		}{base, sw, ml, dl}
+	case sw != nil && sc != nil && dl != nil:
+		return struct {
+			s
+			w
+			sr
+			d
+		}{base, sw, sc, dl}
+	case ml != nil && sc != nil && dl != nil:
+		return struct {
+			s
+			m
+			sr
+			d
+		}{base, ml, sc, dl}
 	case sw != nil && ml != nil:
 		return struct {
 			s
@@ -94,12 +124,30 @@ func compose(base wrapper, sw TagSwapper, ml ManifestLister, sc Scrubber) Store 
 			w
 			sr
 		}{base, sw, sc}
+	case sw != nil && dl != nil:
+		return struct {
+			s
+			w
+			d
+		}{base, sw, dl}
 	case ml != nil && sc != nil:
 		return struct {
 			s
 			m
 			sr
 		}{base, ml, sc}
+	case ml != nil && dl != nil:
+		return struct {
+			s
+			m
+			d
+		}{base, ml, dl}
+	case sc != nil && dl != nil:
+		return struct {
+			s
+			sr
+			d
+		}{base, sc, dl}
 	case sw != nil:
 		return struct {
 			s
@@ -115,6 +163,11 @@ func compose(base wrapper, sw TagSwapper, ml ManifestLister, sc Scrubber) Store 
 			s
 			sr
 		}{base, sc}
+	case dl != nil:
+		return struct {
+			s
+			d
+		}{base, dl}
 	}
 	return struct{ s }{base}
 }

@@ -58,7 +58,11 @@ func NewFaulty(s Store, p FaultPlan) Store {
 	if _, ok := s.(Scrubber); ok {
 		sc = faultyScrubber{f}
 	}
-	return compose(f, sw, ml, sc)
+	var dl Deleter
+	if _, ok := s.(Deleter); ok {
+		dl = faultyDeleter{f}
+	}
+	return compose(f, sw, ml, sc, dl)
 }
 
 // Unwrap returns the wrapped store.

@@ -35,7 +35,7 @@ type retryStore struct {
 
 // NewRetry wraps s so that operations failing with a transient error are
 // tried again. The result has exactly the optional abilities (TagSwapper,
-// ManifestLister, Scrubber) that s has.
+// ManifestLister, Scrubber, Deleter) that s has.
 //
 // What a retry can and cannot do:
 //   - Reads are retried; a blob reader that fails mid-stream reopens the
@@ -78,7 +78,11 @@ func NewRetry(s Store, o RetryOptions) Store {
 	if _, ok := s.(Scrubber); ok {
 		sc = retryScrubber{r}
 	}
-	return compose(r, sw, ml, sc)
+	var dl Deleter
+	if _, ok := s.(Deleter); ok {
+		dl = retryDeleter{r}
+	}
+	return compose(r, sw, ml, sc, dl)
 }
 
 func sleepCtx(ctx context.Context, d time.Duration) error {

@@ -38,7 +38,7 @@ const (
 
 // Run runs the conformance suite. open must return a new, empty store for
 // each call (each subtest calls it once). Optional abilities (TagSwapper,
-// ManifestLister, BlobStager) are tested when the store has them.
+// ManifestLister, BlobStager, Deleter) are tested when the store has them.
 //
 // Behaviour the suite pins down beyond the Store doc comment: Tags of a
 // repository never written to returns no tags or an error wrapping
@@ -77,6 +77,10 @@ func run(t *testing.T, open func(t *testing.T) registry.Store, noCatalog bool) {
 	t.Run("InvalidNamesRefused", func(t *testing.T) { testInvalidNames(t, open(t)) })
 	t.Run("ConcurrentWriters", func(t *testing.T) { testConcurrent(t, open(t)) })
 	t.Run("StagedBlobs", func(t *testing.T) { testStaged(t, open(t)) })
+	t.Run("DeleteTag", func(t *testing.T) { testDeleteTag(t, open(t)) })
+	t.Run("DeleteGuarded", func(t *testing.T) { testDeleteGuarded(t, open(t)) })
+	t.Run("DeleteManifest", func(t *testing.T) { testDeleteManifest(t, open(t)) })
+	t.Run("DeleteBlob", func(t *testing.T) { testDeleteBlob(t, open(t)) })
 }
 
 // Blob is content with its digest.
