@@ -15,6 +15,8 @@ import (
 	"syscall"
 	"testing"
 	"time"
+
+	"github.com/modelgate/modelgate/internal/clitest"
 )
 
 // The crash suite kills modelgate with SIGKILL part way through copy,
@@ -47,18 +49,8 @@ func runKilled(t *testing.T, store string, delay time.Duration, args ...string) 
 	timer := time.AfterFunc(delay, func() { _ = cmd.Process.Signal(syscall.SIGKILL) })
 	err := cmd.Wait()
 	timer.Stop()
-	var ee *exec.ExitError
-	switch {
-	case err == nil:
-		return killed{finished: true, res: result{0, so.String(), se.String()}}
-	case errors.As(err, &ee):
-		if ws, ok := ee.Sys().(syscall.WaitStatus); ok && ws.Signaled() {
-			return killed{}
-		}
-		return killed{finished: true, res: result{ee.ExitCode(), so.String(), se.String()}}
-	}
-	t.Fatalf("running modelgate %v: %v", args, err)
-	return killed{}
+	k := clitest.Outcome(t, err, so.String(), se.String(), args)
+	return killed{finished: k.Finished, res: fromResult(k.Res)}
 }
 
 // timedMG runs modelgate to completion (exit 0 required) and returns how

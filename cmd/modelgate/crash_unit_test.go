@@ -1,18 +1,15 @@
 package main
 
 import (
-	"bytes"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"os"
-	"os/exec"
 	"path/filepath"
 	"strings"
 	"sync"
-	"syscall"
 	"testing"
 
+	"github.com/modelgate/modelgate/internal/clitest"
 	"github.com/modelgate/modelgate/internal/fixture"
 	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
@@ -32,48 +29,12 @@ import (
 // unitSteps are the crash points of a release of two tags, in order.
 var unitSteps = []string{"record:1", "record:2", "claim:1", "claim:2", "move:1", "move:2", "mark:1", "mark:2"}
 
-var crashBuild struct {
-	once sync.Once
-	path string
-	err  error
-}
-
-// crashpointBinary builds modelgate with -tags crashpoints, once.
-func crashpointBinary(t *testing.T) string {
-	t.Helper()
-	crashBuild.once.Do(func() {
-		crashBuild.path = filepath.Join(filepath.Dir(mgBinary), "modelgate-crashpoints")
-		if out, err := exec.Command("go", "build", "-tags", "crashpoints", "-o", crashBuild.path, ".").CombinedOutput(); err != nil {
-			crashBuild.err = fmt.Errorf("building modelgate -tags crashpoints: %v\n%s", err, out)
-		}
-	})
-	if crashBuild.err != nil {
-		t.Fatal(crashBuild.err)
-	}
-	return crashBuild.path
-}
-
 // runCrashAt runs the crashpoints build with args, killing itself after
 // step at.
 func runCrashAt(t *testing.T, store, at string, args ...string) killed {
 	t.Helper()
-	cmd := exec.Command(crashpointBinary(t), args...)
-	cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store, "MODELGATE_TEST_CRASH_AT="+at)
-	var so, se bytes.Buffer
-	cmd.Stdout, cmd.Stderr = &so, &se
-	err := cmd.Run()
-	var ee *exec.ExitError
-	switch {
-	case err == nil:
-		return killed{finished: true, res: result{0, so.String(), se.String()}}
-	case errors.As(err, &ee):
-		if ws, ok := ee.Sys().(syscall.WaitStatus); ok && ws.Signaled() {
-			return killed{}
-		}
-		return killed{finished: true, res: result{ee.ExitCode(), so.String(), se.String()}}
-	}
-	t.Fatalf("running modelgate %v: %v", args, err)
-	return killed{}
+	k := clitest.RunCrashAt(t, store, at, args...)
+	return killed{finished: k.Finished, res: fromResult(k.Res)}
 }
 
 const (

@@ -1,127 +1,16 @@
 package main
 
 import (
-	"bytes"
 	"encoding/json"
-	"fmt"
 	"os"
 	"os/exec"
 	"path/filepath"
-	"runtime"
-	"sort"
 	"strings"
 	"testing"
 
 	"github.com/google/go-containerregistry/pkg/v1/layout"
 	"github.com/google/go-containerregistry/pkg/v1/validate"
-
-	"github.com/modelgate/modelgate/internal/fixture"
-	"github.com/modelgate/modelgate/internal/registry"
 )
-
-// mgBinary is the modelgate executable built once for the end-to-end tests.
-var mgBinary string
-
-func TestMain(m *testing.M) {
-	dir, err := os.MkdirTemp("", "modelgate-e2e-")
-	if err != nil {
-		fmt.Fprintln(os.Stderr, err)
-		os.Exit(1)
-	}
-	mgBinary = filepath.Join(dir, "modelgate")
-	// The blob cache of every test run lives with the binary, never in
-	// the user's cache directory.
-	os.Setenv(registry.EnvCache, filepath.Join(dir, "cache"))
-	if runtime.GOOS == "windows" {
-		mgBinary += ".exe"
-	}
-	out, err := exec.Command("go", "build", "-o", mgBinary, ".").CombinedOutput()
-	if err != nil {
-		fmt.Fprintf(os.Stderr, "building modelgate: %v\n%s", err, out)
-		os.Exit(1)
-	}
-	code := m.Run()
-	os.RemoveAll(dir)
-	os.Exit(code)
-}
-
-type result struct {
-	code           int
-	stdout, stderr string
-}
-
-// mg runs the built binary against store with args.
-func mg(t *testing.T, store string, args ...string) result {
-	t.Helper()
-	cmd := exec.Command(mgBinary, args...)
-	cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
-	var so, se bytes.Buffer
-	cmd.Stdout, cmd.Stderr = &so, &se
-	err := cmd.Run()
-	code := 0
-	if ee, ok := err.(*exec.ExitError); ok {
-		code = ee.ExitCode()
-	} else if err != nil {
-		t.Fatalf("running modelgate %v: %v", args, err)
-	}
-	return result{code, so.String(), se.String()}
-}
-
-func mustMG(t *testing.T, store string, args ...string) result {
-	t.Helper()
-	r := mg(t, store, args...)
-	if r.code != 0 {
-		t.Fatalf("modelgate %s: exit %d\nstdout: %s\nstderr: %s", strings.Join(args, " "), r.code, r.stdout, r.stderr)
-	}
-	return r
-}
-
-// fixtures writes the tiny encoder and scorer into a fresh directory.
-func fixtures(t *testing.T) (encDir, scorerDir string) {
-	t.Helper()
-	dir := t.TempDir()
-	if _, err := fixture.Write(dir); err != nil {
-		t.Fatal(err)
-	}
-	return filepath.Join(dir, fixture.EncoderDir), filepath.Join(dir, fixture.ScorerDir)
-}
-
-// listing describes every file of a directory tree (path, size, sha of
-// content) so tests can assert a store did not change.
-func listing(t *testing.T, root string) string {
-	t.Helper()
-	var lines []string
-	err := filepath.Walk(root, func(p string, info os.FileInfo, err error) error {
-		if err != nil {
-			return err
-		}
-		rel, _ := filepath.Rel(root, p)
-		if info.IsDir() {
-			lines = append(lines, rel+"/")
-			return nil
-		}
-		b, err := os.ReadFile(p)
-		if err != nil {
-			return err
-		}
-		lines = append(lines, fmt.Sprintf("%s %d %x", rel, len(b), b))
-		return nil
-	})
-	if err != nil && !os.IsNotExist(err) {
-		t.Fatal(err)
-	}
-	sort.Strings(lines)
-	return strings.Join(lines, "\n")
-}
-
-func countBlobs(t *testing.T, store string) int {
-	t.Helper()
-	es, err := os.ReadDir(filepath.Join(store, "blobs", "sha256"))
-	if err != nil {
-		t.Fatal(err)
-	}
-	return len(es)
-}
 
 func TestEndToEnd(t *testing.T) {
 	store := filepath.Join(t.TempDir(), "store")

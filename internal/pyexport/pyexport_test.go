@@ -9,34 +9,14 @@ import (
 	"os"
 	"os/exec"
 	"path/filepath"
-	"runtime"
 	"sort"
 	"strings"
 	"testing"
+
+	"github.com/modelgate/modelgate/internal/clitest"
 )
 
-// mgBinary is the modelgate executable built once for these tests.
-var mgBinary string
-
-func TestMain(m *testing.M) {
-	dir, err := os.MkdirTemp("", "modelgate-pyexport-")
-	if err != nil {
-		fmt.Fprintln(os.Stderr, err)
-		os.Exit(1)
-	}
-	mgBinary = filepath.Join(dir, "modelgate")
-	if runtime.GOOS == "windows" {
-		mgBinary += ".exe"
-	}
-	out, err := exec.Command("go", "build", "-o", mgBinary, "../../cmd/modelgate").CombinedOutput()
-	if err != nil {
-		fmt.Fprintf(os.Stderr, "building modelgate: %v\n%s", err, out)
-		os.Exit(1)
-	}
-	code := m.Run()
-	os.RemoveAll(dir)
-	os.Exit(code)
-}
+func TestMain(m *testing.M) { clitest.Main(m) }
 
 // inCI is true when .ci/run (CI=true) or a caller (MODELGATE_CI) says the
 // run is CI's: there a missing framework is a failure, not a skip.
@@ -77,36 +57,6 @@ func need(t *testing.T, modules ...string) string {
 		}
 	}
 	return py
-}
-
-type result struct {
-	code           int
-	stdout, stderr string
-}
-
-func mg(t *testing.T, store string, args ...string) result {
-	t.Helper()
-	cmd := exec.Command(mgBinary, args...)
-	cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
-	var so, se bytes.Buffer
-	cmd.Stdout, cmd.Stderr = &so, &se
-	err := cmd.Run()
-	code := 0
-	if ee, ok := err.(*exec.ExitError); ok {
-		code = ee.ExitCode()
-	} else if err != nil {
-		t.Fatalf("running modelgate %v: %v", args, err)
-	}
-	return result{code, so.String(), se.String()}
-}
-
-func mustMG(t *testing.T, store string, args ...string) result {
-	t.Helper()
-	r := mg(t, store, args...)
-	if r.code != 0 {
-		t.Fatalf("modelgate %s: exit %d\nstdout: %s\nstderr: %s", strings.Join(args, " "), r.code, r.stdout, r.stderr)
-	}
-	return r
 }
 
 // readOutputs reads a score --out .jsonl file: row_id -> the values of the
@@ -237,12 +187,12 @@ type gateReport struct {
 
 func gate(t *testing.T, store, cand, fw, pol string) (int, gateReport) {
 	t.Helper()
-	r := mg(t, store, "gate", "--json", "--no-push", cand, "--to", "promo-scorer-"+fw+":prod", "--policy", pol)
+	r := clitest.MG(t, store, "gate", "--json", "--no-push", cand, "--to", "promo-scorer-"+fw+":prod", "--policy", pol)
 	var g gateOut
-	if err := json.Unmarshal([]byte(r.stdout), &g); err != nil {
-		t.Fatalf("gate --json: %v\n%s\n%s", err, r.stdout, r.stderr)
+	if err := json.Unmarshal([]byte(r.Stdout), &g); err != nil {
+		t.Fatalf("gate --json: %v\n%s\n%s", err, r.Stdout, r.Stderr)
 	}
-	return r.code, g.Report
+	return r.Code, g.Report
 }
 
 // TestJourney trains tiny models in each framework, exports them with the
@@ -286,19 +236,19 @@ func TestJourney(t *testing.T) {
 			t.Logf("outside reference: %s", ref.Reference)
 
 			encTag, scTag := "listener-encoder-"+c.fw+":v1", "promo-scorer-"+c.fw+":c1"
-			encDigest := strings.TrimSpace(mustMG(t, store, "push", filepath.Join(out, "encoder"), encTag).stdout)
+			encDigest := strings.TrimSpace(clitest.MustMG(t, store, "push", filepath.Join(out, "encoder"), encTag).Stdout)
 			// The scorer's directory names its encoder by tag; push pins the digest.
 			var pushed struct {
 				EncoderPinned struct{ Name, Digest string } `json:"encoderPinned"`
 			}
-			if err := json.Unmarshal([]byte(mustMG(t, store, "push", "--json", filepath.Join(out, "scorer"), scTag).stdout), &pushed); err != nil {
+			if err := json.Unmarshal([]byte(clitest.MustMG(t, store, "push", "--json", filepath.Join(out, "scorer"), scTag).Stdout), &pushed); err != nil {
 				t.Fatal(err)
 			}
 			if pushed.EncoderPinned.Name != encTag || pushed.EncoderPinned.Digest != encDigest {
 				t.Fatalf("push pinned %+v, want %s -> %s", pushed.EncoderPinned, encTag, encDigest)
 			}
 			hold := filepath.Join(out, "holdout.jsonl")
-			mustMG(t, store, "push", "--kind", "holdout", hold, "promo-holdout-"+c.fw+":v1")
+			clitest.MustMG(t, store, "push", "--kind", "holdout", hold, "promo-holdout-"+c.fw+":v1")
 
 			score := func(ref, layer string) map[int64][]float64 {
 				p := filepath.Join(dir, strings.NewReplacer(":", "_", "/", "_").Replace(ref)+layer+".jsonl")
@@ -306,7 +256,7 @@ func TestJourney(t *testing.T) {
 				if layer != "" {
 					args = append(args, "--layer", layer)
 				}
-				mustMG(t, store, args...)
+				clitest.MustMG(t, store, args...)
 				return readOutputs(t, p)
 			}
 			// Outside reference: the framework's forward pass (ref.Reference names it).
@@ -336,7 +286,7 @@ func TestJourney(t *testing.T) {
 			switch c.fw {
 			case "sklearn":
 				// Outside reference: scikit-learn's LogisticRegression.predict_proba.
-				mustMG(t, store, "push", filepath.Join(out, "scorer-logreg"), "promo-scorer-sklearn:logreg")
+				clitest.MustMG(t, store, "push", filepath.Join(out, "scorer-logreg"), "promo-scorer-sklearn:logreg")
 				d = compare(t, "sklearn logistic regression p", score("promo-scorer-sklearn:logreg", ""), ref.PLogreg, c.abs, c.rel, 0)
 				t.Logf("sklearn logreg p: max deviation %.3g", d)
 			case "torch":
@@ -361,7 +311,7 @@ func TestJourney(t *testing.T) {
 			}
 			// Training-only state is recorded, so the gate's freeze check sees it.
 			if _, err := os.Stat(filepath.Join(out, "scorer-trainstate")); err == nil {
-				mustMG(t, store, "push", filepath.Join(out, "scorer-trainstate"), "promo-scorer-"+c.fw+":trainstate")
+				clitest.MustMG(t, store, "push", filepath.Join(out, "scorer-trainstate"), "promo-scorer-"+c.fw+":trainstate")
 				code, g := gate(t, store, "promo-scorer-"+c.fw+":trainstate", c.fw, pol)
 				slots, regs := 0, 0
 				for _, ch := range g.Checks {
@@ -447,7 +397,7 @@ func TestExamples(t *testing.T) {
 			run(example)
 			store := filepath.Join(work, "store")
 			fw := c.fw
-			mustMG(t, store, "push", filepath.Join(work, "out", "encoder"), "listener-encoder-"+fw+":v1")
+			clitest.MustMG(t, store, "push", filepath.Join(work, "out", "encoder"), "listener-encoder-"+fw+":v1")
 			// The examples name listener-encoder:v1; this store names the
 			// encoder per framework, so the scorer's spec is pointed there.
 			specPath := filepath.Join(work, "out", "scorer", "spec.json")
@@ -461,9 +411,9 @@ func TestExamples(t *testing.T) {
 			if err := os.WriteFile(specPath, bytes.Replace(spec, []byte(`"listener-encoder:v1"`), []byte(`"listener-encoder-`+fw+`:v1"`), 1), 0o644); err != nil {
 				t.Fatal(err)
 			}
-			r := mustMG(t, store, "push", filepath.Join(work, "out", "scorer"), "promo-scorer-"+fw+":cand")
-			if !strings.Contains(r.stderr, "encoder listener-encoder-"+fw+":v1 pinned") {
-				t.Fatalf("push did not report the pinned encoder:\n%s", r.stderr)
+			r := clitest.MustMG(t, store, "push", filepath.Join(work, "out", "scorer"), "promo-scorer-"+fw+":cand")
+			if !strings.Contains(r.Stderr, "encoder listener-encoder-"+fw+":v1 pinned") {
+				t.Fatalf("push did not report the pinned encoder:\n%s", r.Stderr)
 			}
 			// The journey's holdout: listeners the examples never trained on.
 			cmd := exec.Command(py, "-c", `import sys, modelgate_export as mx
@@ -473,7 +423,7 @@ mx.write_holdout(sys.argv[1], rows, labels=y)`, filepath.Join(work, "holdout.jso
 			if b, err := cmd.CombinedOutput(); err != nil {
 				t.Fatalf("holdout: %v\n%s", err, b)
 			}
-			mustMG(t, store, "push", "--kind", "holdout", filepath.Join(work, "holdout.jsonl"), "promo-holdout-"+fw+":v1")
+			clitest.MustMG(t, store, "push", "--kind", "holdout", filepath.Join(work, "holdout.jsonl"), "promo-holdout-"+fw+":v1")
 			pol := policy(t, work, fw)
 			cand := "promo-scorer-" + fw + ":cand"
 			code, g := gate(t, store, cand, fw, pol)
@@ -489,7 +439,7 @@ mx.write_holdout(sys.argv[1], rows, labels=y)`, filepath.Join(work, "holdout.jso
 				if code != 1 || regs != 1 {
 					t.Fatalf("the LogisticRegression scorer with its penalty: gate exit %d, %d regularization findings; want exit 1 and one", code, regs)
 				}
-				mustMG(t, store, "freeze", cand, "--out", "promo-scorer-"+fw+":frozen")
+				clitest.MustMG(t, store, "freeze", cand, "--out", "promo-scorer-"+fw+":frozen")
 				cand = "promo-scorer-" + fw + ":frozen"
 				code, g = gate(t, store, cand, fw, pol)
 			}
