@@ -127,6 +127,7 @@ type Remote struct {
 	present      sync.Map     // repoKey → size: blobs this process saw present
 	holders      sync.Map     // digest → full repository name that has the blob
 	tagLocks     sync.Map     // full name:tag → *sync.Mutex
+	tagDelete    atomic.Int32 // tagDeleteUnknown, tagDeleteYes, tagDeleteNo
 }
 
 var (

@@ -1,0 +1,369 @@
+package registry
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"net/http"
+	"sort"
+	"strings"
+	"sync"
+	"time"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+	"github.com/google/go-containerregistry/pkg/v1/remote/transport"
+	"github.com/google/go-containerregistry/pkg/v1/types"
+
+	"github.com/modelgate/modelgate/internal/errkind"
+)
+
+// Deletion on a registry (distribution spec v1.1, "Content Management"):
+//
+//   - Manifests are deleted by digest (DELETE /v2/<name>/manifests/<digest>).
+//     A registry may refuse all deletes (405, or the UNSUPPORTED code:
+//     docker-registry unless storage.delete.enabled); the store then says
+//     so (errkind.BadInput wrapping errors.ErrUnsupported), having changed
+//     nothing. docker-registry removes every tag naming a manifest it
+//     deletes; other registries keep tags under their own names, which the
+//     store then deletes by name.
+//   - Tags are deleted by name (DELETE /v2/<name>/manifests/<tag>) where
+//     the registry has it (spec v1.1; the in-memory go-containerregistry
+//     registry). docker-registry 2.8 does not (400 DIGEST_INVALID); there
+//     a tag goes only with its manifest, so DeleteTag deletes the
+//     manifest when no other tag names it and refuses otherwise.
+//   - Blobs are never listed (the API has no such call): Blobs and
+//     DeleteBlob return errors.ErrUnsupported, and blob space comes back
+//     only through the registry's own garbage collection of blobs no
+//     manifest references.
+//   - The store's own bookkeeping tags of a deleted manifest (its keep tag,
+//     its per-referrer link tag, its entry in the fallback referrers index
+//     of its subject) are removed after it.
+
+var _ Deleter = (*Remote)(nil)
+
+// SharesBlobs is false: a registry scopes blobs to repositories.
+func (r *Remote) SharesBlobs() bool { return false }
+
+// Blobs is unsupported: the distribution API cannot list blobs.
+func (r *Remote) Blobs(ctx context.Context, repo string) ([]BlobInfo, error) {
+	return nil, r.noBlobs()
+}
+
+// DeleteBlob is unsupported: see Blobs.
+func (r *Remote) DeleteBlob(ctx context.Context, repo string, dgst v1.Hash) error {
+	return r.noBlobs()
+}
+
+func (r *Remote) noBlobs() error {
+	return errkind.New(errkind.BadInput, "%s: a registry does not list its blobs; their space comes back through the registry's own garbage collection once no manifest references them: %w", r, errors.ErrUnsupported)
+}
+
+// ManifestTimes is unsupported: a registry keeps no time of a manifest.
+func (r *Remote) ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]time.Time, error) {
+	return nil, errkind.New(errkind.BadInput, "%s: a registry records no time for a manifest (read its org.opencontainers.image.created annotation): %w", r, errors.ErrUnsupported)
+}
+
+// deleteStatus classifies a refused DELETE: unsupported is true when the
+// registry does not do that kind of delete at all.
+func deleteUnsupported(err error) bool {
+	var te *transport.Error
+	if !errors.As(err, &te) {
+		return false
+	}
+	if te.StatusCode == http.StatusMethodNotAllowed {
+		return true
+	}
+	for _, d := range te.Errors {
+		if d.Code == transport.UnsupportedErrorCode {
+			return true
+		}
+	}
+	return false
+}
+
+// deleteManifestByDigest deletes a manifest by digest; a missing one is
+// fine. A registry that refuses deletes gives errors.ErrUnsupported.
+func (r *Remote) deleteManifestByDigest(ctx context.Context, full string, dgst v1.Hash) error {
+	resp, err := r.call(ctx, full, http.MethodDelete, "/v2/"+full+"/manifests/"+dgst.String(), nil, nil, 0, http.StatusAccepted, http.StatusOK, http.StatusNoContent)
+	switch {
+	case err == nil:
+		drain(resp)
+		return nil
+	case errors.Is(err, ErrNotFound):
+		return nil
+	case deleteUnsupported(err):
+		return errkind.New(errkind.BadInput, "%s does not allow deleting manifests (switched off on the registry; docker-registry: storage.delete.enabled: true): %w", r.reg.RegistryStr(), errors.ErrUnsupported)
+	}
+	return err
+}
+
+// deleteTagByName deletes a tag by name (spec v1.1). ok is false when the
+// registry does not delete tags by name (docker-registry 2.8 answers 400
+// DIGEST_INVALID, others 405 or UNSUPPORTED).
+func (r *Remote) deleteTagByName(ctx context.Context, full, tag string) (ok bool, err error) {
+	resp, err := r.call(ctx, full, http.MethodDelete, "/v2/"+full+"/manifests/"+tag, nil, nil, 0, http.StatusAccepted, http.StatusOK, http.StatusNoContent)
+	switch {
+	case err == nil:
+		drain(resp)
+		return true, nil
+	case errors.Is(err, ErrNotFound):
+		return true, nil
+	case deleteUnsupported(err):
+		return false, nil
+	}
+	var te *transport.Error
+	if errors.As(err, &te) && te.StatusCode == http.StatusBadRequest {
+		return false, nil
+	}
+	return false, err
+}
+
+// tagsNaming returns the tags of full (reserved ones aside, and except)
+// that point at dgst, resolving them eight at a time.
+func (r *Remote) tagsNaming(ctx context.Context, full string, dgst v1.Hash, except string) ([]string, error) {
+	all, err := r.allTags(ctx, full)
+	if errors.Is(err, ErrNotFound) {
+		return nil, nil
+	}
+	if err != nil {
+		return nil, err
+	}
+	var (
+		mu    sync.Mutex
+		found []string
+		first error
+		wg    sync.WaitGroup
+		sem   = make(chan struct{}, 8)
+	)
+	for _, t := range all {
+		if t == except || isReservedTag(t) || ValidateTag(t) != nil {
+			continue
+		}
+		wg.Add(1)
+		sem <- struct{}{}
+		go func(t string) {
+			defer func() { <-sem; wg.Done() }()
+			d, err := r.head(ctx, full, t)
+			mu.Lock()
+			defer mu.Unlock()
+			switch {
+			case errors.Is(err, ErrNotFound):
+			case err != nil:
+				if first == nil {
+					first = err
+				}
+			case d.Digest == dgst:
+				found = append(found, t)
+			}
+		}(t)
+	}
+	wg.Wait()
+	sort.Strings(found)
+	return found, first
+}
+
+// DeleteTag removes repo:tag if it points at want: by name where the
+// registry deletes tags; otherwise by deleting the manifest, when no other
+// tag names it (see the comment at the top of this file). It refuses
+// reserved tags and tags with a release log.
+func (r *Remote) DeleteTag(ctx context.Context, repo, tag string, want v1.Hash) error {
+	if err := checkDeleteTag(repo, tag, want); err != nil {
+		return err
+	}
+	full := fullName(r.prefix, repo)
+	if err := r.deleteTag(ctx, repo, full, tag, want); err != nil {
+		return fmt.Errorf("removing tag %s:%s: %w", repo, tag, err)
+	}
+	return nil
+}
+
+func (r *Remote) deleteTag(ctx context.Context, repo, full, tag string, want v1.Hash) error {
+	if ValidateTag(HeadTag(tag)) == nil {
+		_, err := r.head(ctx, full, HeadTag(tag))
+		switch {
+		case err == nil:
+			return releasedTagError(repo, tag)
+		case !errors.Is(err, ErrNotFound):
+			return fmt.Errorf("checking whether %s:%s has a release log: %w", repo, tag, err)
+		}
+	}
+	cur, err := r.head(ctx, full, tag)
+	if errors.Is(err, ErrNotFound) {
+		return notFound("tag %s:%s", repo, tag)
+	}
+	if err != nil {
+		return err
+	}
+	if cur.Digest != want {
+		return errkind.New(errkind.Conflict, "tag %s:%s points at %s, not %s: %w", repo, tag, cur.Digest, want, ErrConflict)
+	}
+	if r.tagDelete.Load() != tagDeleteNo {
+		ok, err := r.deleteTagByName(ctx, full, tag)
+		if err != nil {
+			return err
+		}
+		if ok {
+			r.tagDelete.Store(tagDeleteYes)
+			return nil
+		}
+		r.tagDelete.Store(tagDeleteNo)
+	}
+	others, err := r.tagsNaming(ctx, full, want, tag)
+	if err != nil {
+		return err
+	}
+	if len(others) > 0 {
+		return errkind.New(errkind.BadInput, "%s cannot delete a tag alone, only a manifest with every tag naming it, and %s is also tagged %s: %w", r.reg.RegistryStr(), want, strings.Join(others, ", "), errors.ErrUnsupported)
+	}
+	return r.deleteManifest(ctx, repo, full, want, tag)
+}
+
+// Whether the registry deletes tags by name, learnt on the first try.
+const (
+	tagDeleteUnknown int32 = iota
+	tagDeleteYes
+	tagDeleteNo
+)
+
+// DeleteManifest deletes manifest dgst from repo, then its bookkeeping
+// tags and its entry in its subject's fallback referrers index. It
+// refuses a release record and a manifest a tag names (resolving every
+// tag of repo: one HEAD each).
+func (r *Remote) DeleteManifest(ctx context.Context, repo string, dgst v1.Hash) error {
+	if err := r.checkBlobArgs(repo, dgst); err != nil {
+		return err
+	}
+	if err := r.deleteManifest(ctx, repo, fullName(r.prefix, repo), dgst, ""); err != nil {
+		return fmt.Errorf("removing manifest %s from %s: %w", dgst, repo, err)
+	}
+	return nil
+}
+
+// deleteManifest is DeleteManifest, with tag (the one DeleteTag removes)
+// allowed to name the manifest.
+func (r *Remote) deleteManifest(ctx context.Context, repo, full string, dgst v1.Hash, tag string) error {
+	raw, _, err := r.getManifest(ctx, full, dgst.String())
+	gone := errors.Is(err, ErrNotFound)
+	if gone {
+		// Deleted already; its bookkeeping tags may be left (an earlier
+		// call stopped, or a registry that keeps tags of deleted
+		// manifests): the keep tag still has the bytes.
+		raw, _, err = r.getManifest(ctx, full, keepTag(dgst))
+		if errors.Is(err, ErrNotFound) {
+			return nil
+		}
+	}
+	if err != nil {
+		return err
+	}
+	var mf manifestFields
+	if err := json.Unmarshal(raw, &mf); err != nil || sha256Of(raw) != dgst {
+		if gone {
+			return nil // the keep tag names other bytes: not ours to touch
+		}
+		return errkind.New(errkind.Integrity, "manifest %s: the registry's content does not parse or does not match its digest", dgst)
+	}
+	if at := mf.ArtifactType; IsReleaseLogType(at) {
+		return releaseLogError(repo, dgst, at)
+	}
+	if !gone {
+		tags, err := r.tagsNaming(ctx, full, dgst, tag)
+		if err != nil {
+			return err
+		}
+		if len(tags) > 0 {
+			return taggedError(repo, dgst, tags)
+		}
+		if err := r.deleteManifestByDigest(ctx, full, dgst); err != nil {
+			return err
+		}
+	}
+	// Bookkeeping: tags the registry kept, then the fallback index entry.
+	names := []string{keepTag(dgst)}
+	if tag != "" {
+		names = append(names, tag)
+	}
+	if mf.Subject != nil && checkDigest(mf.Subject.Digest) == nil {
+		names = append(names, linkTag(mf.Subject.Digest, dgst))
+	}
+	for _, t := range names {
+		if err := r.dropTag(ctx, full, t, dgst); err != nil {
+			return err
+		}
+	}
+	if mf.Subject != nil && checkDigest(mf.Subject.Digest) == nil {
+		return r.dropFromFallbackIndex(ctx, full, mf.Subject.Digest, dgst)
+	}
+	return nil
+}
+
+// sha256Of is the sha256 digest of b.
+func sha256Of(b []byte) v1.Hash {
+	sum := sha256.Sum256(b)
+	return v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(sum[:])}
+}
+
+// dropTag removes tag when it still points at dgst.
+func (r *Remote) dropTag(ctx context.Context, full, tag string, dgst v1.Hash) error {
+	d, err := r.head(ctx, full, tag)
+	if errors.Is(err, ErrNotFound) {
+		return nil
+	}
+	if err != nil {
+		return err
+	}
+	if d.Digest != dgst {
+		return nil
+	}
+	ok, err := r.deleteTagByName(ctx, full, tag)
+	if err != nil {
+		return err
+	}
+	if !ok {
+		return errkind.New(errkind.Integrity, "%s kept tag %s of deleted manifest %s and does not delete tags by name", r.reg.RegistryStr(), tag, dgst)
+	}
+	return nil
+}
+
+// dropFromFallbackIndex removes ref from subject's fallback referrers
+// index (read, modify, write, as the spec's fallback does), deleting the
+// index when ref was its last entry.
+func (r *Remote) dropFromFallbackIndex(ctx context.Context, full string, subject, ref v1.Hash) error {
+	raw, _, err := r.getManifest(ctx, full, fallbackTag(subject))
+	if errors.Is(err, ErrNotFound) {
+		return nil
+	}
+	if err != nil {
+		return err
+	}
+	var idx v1.IndexManifest
+	if err := json.Unmarshal(raw, &idx); err != nil || idx.SchemaVersion != 2 {
+		return errkind.New(errkind.Integrity, "fallback referrers index %s is not an OCI image index", fallbackTag(subject))
+	}
+	kept := idx.Manifests[:0]
+	for _, d := range idx.Manifests {
+		if d.Digest != ref {
+			kept = append(kept, d)
+		}
+	}
+	if len(kept) == len(idx.Manifests) {
+		return nil
+	}
+	if len(kept) == 0 {
+		old := sha256Of(raw)
+		if err := r.deleteManifestByDigest(ctx, full, old); err != nil {
+			return err
+		}
+		return r.dropTag(ctx, full, fallbackTag(subject), old)
+	}
+	idx.Manifests = kept
+	b, err := json.Marshal(idx)
+	if err != nil {
+		return err
+	}
+	_, err = r.putManifest(ctx, full, fallbackTag(subject), types.OCIImageIndex, b)
+	return err
+}
