@@ -11,11 +11,11 @@ import (
 
 // benchmarkRead reads a generated holdout of rows rows (up to 30 items
 // each, one dense input of size 4) in batches of 1024 and reports rows/s.
-func benchmarkRead(b *testing.B, ext string, rows int) {
+func benchmarkRead(b *testing.B, ext string, rows int, rowPath bool) {
 	v := testVocab(b, model.UnknownBucket, episodeIDs(32768)...)
 	path := filepath.Join(b.TempDir(), "holdout"+ext)
 	writeBig(b, path, rows, 32768, 30, denseAffinity)
-	opts := Options{Spec: testSpec(v, denseAffinity), Vocab: v}
+	opts := Options{Spec: testSpec(v, denseAffinity), Vocab: v, rowPath: rowPath}
 	var f Frame
 	b.ReportAllocs()
 	b.ResetTimer()
@@ -43,5 +43,8 @@ func benchmarkRead(b *testing.B, ext string, rows int) {
 	b.ReportMetric(float64(rows)*float64(b.N)/b.Elapsed().Seconds(), "rows/s")
 }
 
-func BenchmarkReadParquet1M(b *testing.B) { benchmarkRead(b, ".parquet", 1_000_000) }
-func BenchmarkReadJSONL100k(b *testing.B) { benchmarkRead(b, ".jsonl", 100_000) }
+func BenchmarkReadParquet1M(b *testing.B) { benchmarkRead(b, ".parquet", 1_000_000, false) }
+
+// BenchmarkReadParquet1MRowPath reads the same file value by value.
+func BenchmarkReadParquet1MRowPath(b *testing.B) { benchmarkRead(b, ".parquet", 1_000_000, true) }
+func BenchmarkReadJSONL100k(b *testing.B)        { benchmarkRead(b, ".jsonl", 100_000, false) }

@@ -31,6 +31,9 @@ type parquetReader struct {
 	groupLeft int64 // rows left in the open row group
 	row       int64 // 0-based number of the next row
 	sc        scratch
+	columnar  bool    // Read decodes column by column (parquet_columnar.go)
+	csc       scratch // a row of the run readColumnar checks
+	denseAt   []int32 // readColumnar's position in each dense input's run
 	slices    interner
 	num       []byte // scratch for an integer cluster value's text
 	done      bool
@@ -110,6 +113,7 @@ func openParquet(r io.ReaderAt, size int64, l *layout) (*parquetReader, error) {
 			return nil, err
 		}
 	}
+	p.setRoles()
 	return p, nil
 }
 
@@ -130,6 +134,13 @@ func (p *parquetReader) Read(f *Frame, max int) (int, error) {
 	}
 	if max <= 0 {
 		return 0, errMaxRows
+	}
+	if p.columnar {
+		n, err := p.readColumnar(f, max)
+		if err != nil && err != io.EOF {
+			p.err = err
+		}
+		return n, err
 	}
 	n := 0
 	for n < max {
@@ -190,6 +201,7 @@ func (p *parquetReader) SkipRows(n int64) (int64, error) {
 // collect reads every row, giving each bad row's error to sink until sink
 // returns false; it returns an error that stops reading.
 func (p *parquetReader) collect(sink func(error) bool) error {
+	p.setColumnar(false)
 	var f Frame
 	f.HasLabels = p.label != nil
 	for {
@@ -216,35 +228,9 @@ func (p *parquetReader) collect(sink func(error) bool) error {
 // file. A bad row is reported as a RowError after all columns moved past it.
 func (p *parquetReader) next() (bool, error) {
 	for p.groupLeft == 0 {
-		if p.done {
-			return false, nil
+		if ok, err := p.openGroup(); !ok || err != nil {
+			return false, err
 		}
-		groups := p.file.RowGroups()
-		if p.rowGroup > 0 {
-			for _, c := range p.cols {
-				if err := c.endChunk(); err != nil {
-					return false, p.l.fileError("row group %d: %v", p.rowGroup, err)
-				}
-			}
-		}
-		if p.rowGroup >= len(groups) {
-			p.done = true
-			for _, c := range p.cols {
-				c.close()
-			}
-			return false, nil
-		}
-		var err error
-		if p.win, err = checkParquetGroup(p.r, p.size, p.file, p.rowGroup, p.cols, p.win); err != nil {
-			return false, p.l.fileError("row group %d of %d: %v", p.rowGroup+1, len(groups), err)
-		}
-		g := groups[p.rowGroup]
-		chunks := g.ColumnChunks()
-		for _, c := range p.cols {
-			c.open(chunks[c.index])
-		}
-		p.groupLeft = g.NumRows()
-		p.rowGroup++
 	}
 	s := &p.sc
 	s.reset(len(p.dense))
@@ -401,6 +387,41 @@ func (p *parquetReader) next() (bool, error) {
 	return true, nil
 }
 
+// openGroup checks that the row group read last ended where its rows end
+// and opens the next one. It returns false at the end of the file.
+func (p *parquetReader) openGroup() (bool, error) {
+	if p.done {
+		return false, nil
+	}
+	groups := p.file.RowGroups()
+	if p.rowGroup > 0 {
+		for _, c := range p.cols {
+			if err := c.endChunk(); err != nil {
+				return false, p.l.fileError("row group %d: %v", p.rowGroup, err)
+			}
+		}
+	}
+	if p.rowGroup >= len(groups) {
+		p.done = true
+		for _, c := range p.cols {
+			c.close()
+		}
+		return false, nil
+	}
+	var err error
+	if p.win, err = checkParquetGroup(p.r, p.size, p.file, p.rowGroup, p.cols, p.win); err != nil {
+		return false, p.l.fileError("row group %d of %d: %v", p.rowGroup+1, len(groups), err)
+	}
+	g := groups[p.rowGroup]
+	chunks := g.ColumnChunks()
+	for _, c := range p.cols {
+		c.open(chunks[c.index])
+	}
+	p.groupLeft = g.NumRows()
+	p.rowGroup++
+	return true, nil
+}
+
 func (p *parquetReader) corrupt(c *column, err error) error {
 	if errors.Is(err, io.EOF) {
 		err = errors.New("ends before the row group does")
@@ -472,9 +493,15 @@ type column struct {
 	maxDef   int
 	unsigned bool
 
+	role     colRole
+	kind     parquet.Kind // the leaf's physical type
+	columnar bool         // read with readRows, not next
+
 	pages parquet.Pages
 	page  parquet.Page
 	vals  parquet.ValueReader
+	cur   colPage // the page's levels and values, read column by column
+	seg   colSegment
 	buf   []parquet.Value
 	pos   int
 	n     int
@@ -505,6 +532,7 @@ func newColumn(name string, c *parquet.Column, want shape, kinds kindSet) (*colu
 		c = children[0]
 	}
 	col.index = c.Index()
+	col.kind = c.Type().Kind()
 	col.maxDef = c.MaxDefinitionLevel()
 	if def != col.maxDef || c.MaxRepetitionLevel() != repeats {
 		return nil, fmt.Errorf("column %q has unexpected nesting levels", name)
@@ -598,6 +626,7 @@ func (c *column) releasePage() {
 		parquet.Release(c.page)
 		c.page, c.vals = nil, nil
 	}
+	c.cur = colPage{}
 }
 
 // fill refills buf from the current page or the next ones; io.EOF at the
@@ -674,6 +703,9 @@ func (c *column) next() ([]parquet.Value, error) {
 
 // endChunk checks that the chunk has no values left.
 func (c *column) endChunk() error {
+	if c.columnar {
+		return c.endChunkColumnar()
+	}
 	if c.pos < c.n {
 		return fmt.Errorf("column %q has more values than rows", c.name)
 	}

@@ -83,6 +83,10 @@ type Options struct {
 	// map or a nested list can feed no model and is refused, naming the
 	// column. A push of a holdout sets it.
 	EveryColumn bool
+
+	// rowPath reads a Parquet file value by value (the reader's general
+	// path) instead of column by column; tests compare the two.
+	rowPath bool
 }
 
 // ClusterKey is the key of a cluster column's value: the 64-bit FNV-1a
@@ -287,6 +291,7 @@ type layout struct {
 	requireLabels bool
 	cluster       string // the cluster column, "" for none
 	everyColumn   bool
+	rowPath       bool
 }
 
 func newLayout(opts Options) (*layout, error) {
@@ -311,6 +316,7 @@ func newLayout(opts Options) (*layout, error) {
 		requireLabels: opts.RequireLabels,
 		cluster:       opts.ClusterColumn,
 		everyColumn:   opts.EveryColumn,
+		rowPath:       opts.rowPath,
 	}
 	if l.cluster != "" && reservedColumn(l.cluster) {
 		return nil, bad("the cluster column cannot be the holdout column %q", l.cluster)
@@ -421,6 +427,48 @@ func checkWeight(v float64) (float32, string) {
 // file). hasLabels says whether the file has labels. On error f is left as
 // it was.
 func (l *layout) appendRow(f *Frame, s *scratch, row int64, hasLabels bool) error {
+	if err := l.checkRow(s, row, int64(len(f.Indices)), hasLabels); err != nil {
+		return err
+	}
+	if len(f.Indptr) == 0 {
+		f.Indptr = append(f.Indptr, 0)
+	}
+	for i, ix := range s.idx {
+		if ix >= 0 {
+			f.Indices = append(f.Indices, ix)
+			f.Values = append(f.Values, s.vals[i])
+		}
+	}
+	f.Indptr = append(f.Indptr, int32(len(f.Indices)))
+	if len(l.dense) > 0 && f.Dense == nil {
+		f.Dense = make(map[string][]float32, len(l.dense))
+	}
+	for i, d := range l.dense {
+		f.Dense[d.Name] = append(f.Dense[d.Name], s.dense[i]...)
+	}
+	if hasLabels {
+		f.Labels = append(f.Labels, s.label)
+	}
+	w := float32(1)
+	if s.hasWeight {
+		w = s.weight
+	}
+	f.Weights = append(f.Weights, w)
+	f.Slices = append(f.Slices, s.slice)
+	id := row
+	if s.hasRowID {
+		id = s.rowID
+	}
+	f.RowIDs = append(f.RowIDs, id)
+	if l.cluster != "" {
+		f.Clusters = append(f.Clusters, s.cluster)
+	}
+	return nil
+}
+
+// checkRow checks s as row number row (0-based in the file) of a batch
+// that holds pairs sparse pairs before it.
+func (l *layout) checkRow(s *scratch, row int64, pairs int64, hasLabels bool) error {
 	bad := func(format string, args ...any) error { return l.rowError(row+1, format, args...) }
 	switch {
 	case !s.itemsSet:
@@ -457,42 +505,8 @@ func (l *layout) appendRow(f *Frame, s *scratch, row int64, hasLabels bool) erro
 	if !hasLabels && s.hasLabel {
 		return bad("label present, but the file's first row has none")
 	}
-	if len(f.Indptr) == 0 {
-		f.Indptr = append(f.Indptr, 0)
-	}
-	if int64(len(f.Indices))+int64(len(s.idx)) > math.MaxInt32 {
+	if pairs+int64(len(s.idx)) > math.MaxInt32 {
 		return bad("batch holds more than %d pairs; read smaller batches", math.MaxInt32)
-	}
-	// Checks done: append.
-	for i, ix := range s.idx {
-		if ix >= 0 {
-			f.Indices = append(f.Indices, ix)
-			f.Values = append(f.Values, s.vals[i])
-		}
-	}
-	f.Indptr = append(f.Indptr, int32(len(f.Indices)))
-	if len(l.dense) > 0 && f.Dense == nil {
-		f.Dense = make(map[string][]float32, len(l.dense))
-	}
-	for i, d := range l.dense {
-		f.Dense[d.Name] = append(f.Dense[d.Name], s.dense[i]...)
-	}
-	if hasLabels {
-		f.Labels = append(f.Labels, s.label)
-	}
-	w := float32(1)
-	if s.hasWeight {
-		w = s.weight
-	}
-	f.Weights = append(f.Weights, w)
-	f.Slices = append(f.Slices, s.slice)
-	id := row
-	if s.hasRowID {
-		id = s.rowID
-	}
-	f.RowIDs = append(f.RowIDs, id)
-	if l.cluster != "" {
-		f.Clusters = append(f.Clusters, s.cluster)
 	}
 	return nil
 }

@@ -1,0 +1,656 @@
+package data
+
+import (
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"strconv"
+
+	"github.com/parquet-go/parquet-go"
+	"github.com/parquet-go/parquet-go/encoding"
+)
+
+// Reading column by column. Read decodes a run of rows (up to the batch
+// size, within one row group) one column at a time, straight from each
+// page's levels and typed values (no parquet.Value per value), then checks
+// the rows in file order exactly as the row path does (the same problems
+// in the same order, the same messages and row numbers) and appends the
+// run to the frame column by column. The row path (next) stays for
+// Validate, which goes on past bad rows, and for tests to compare against.
+
+// colRole is what a column feeds.
+type colRole int
+
+const (
+	roleItems colRole = iota + 1
+	roleValues
+	roleDense
+	roleLabel
+	roleWeight
+	roleSlice
+	roleRowID
+	roleCluster
+)
+
+func (p *parquetReader) setRoles() {
+	p.items.role, p.values.role = roleItems, roleValues
+	for _, c := range p.dense {
+		c.role = roleDense
+	}
+	for c, r := range map[*column]colRole{p.label: roleLabel, p.weight: roleWeight, p.slice: roleSlice, p.rowID: roleRowID, p.cluster: roleCluster} {
+		if c != nil {
+			c.role = r
+		}
+	}
+	p.setColumnar(!p.l.rowPath)
+}
+
+// setColumnar chooses how the columns are read; only before any row is.
+func (p *parquetReader) setColumnar(on bool) {
+	p.columnar = on
+	for _, c := range p.cols {
+		c.columnar = on
+	}
+}
+
+// colPage is a column's open page: its levels and its non-null values.
+type colPage struct {
+	rep, def []byte // nil when the column has no such levels
+	n        int    // levels (values, nulls included) in the page
+	lp, dp   int    // next level, next non-null value
+	// The values, by physical type; idx holds dictionary indexes into
+	// them when the page is dictionary-encoded.
+	bits []byte // booleans, one bit each from the lowest
+	i32  []int32
+	i64  []int64
+	f32  []float32
+	f64  []float64
+	ba   []byte
+	off  []uint32
+	idx  []int32
+	nv   int // values held (the dictionary's length for indexed pages)
+}
+
+// colSegment is one column's decoded run of rows.
+type colSegment struct {
+	cnt []int32   // per row: elements (1 for a scalar), -1 for a null
+	ix  []int32   // items: weight rows, -1 for a dropped pair
+	fv  []float32 // values and dense inputs: elements; label and weight: one per row
+	i64 []int64   // row_id: one per row
+	str []string  // slice: one per row
+	key []uint64  // cluster: one per row
+	// bad is the first row of the run with a problem (msg) or a fault
+	// (err, which wins: the row path stops on it); -1 for none. Decoding
+	// stops there.
+	bad     int
+	msg     string
+	err     error
+	dropped bool // an item was dropped
+}
+
+// setPage takes page's levels and values.
+func (c *column) setPage(page parquet.Page) error {
+	pg := colPage{n: int(page.NumValues())}
+	if c.maxDef > 0 {
+		pg.def = page.DefinitionLevels()
+		if len(pg.def) != pg.n {
+			return fmt.Errorf("a page has %d definition levels for %d values", len(pg.def), pg.n)
+		}
+	}
+	if c.list {
+		pg.rep = page.RepetitionLevels()
+		if len(pg.rep) != pg.n {
+			return fmt.Errorf("a page has %d repetition levels for %d values", len(pg.rep), pg.n)
+		}
+	}
+	nonNull := pg.n
+	if pg.def != nil {
+		nonNull = 0
+		md := byte(c.maxDef)
+		for _, d := range pg.def {
+			if d == md {
+				nonNull++
+			}
+		}
+	}
+	data := page.Data()
+	if dict := page.Dictionary(); dict != nil {
+		if data.Kind() != encoding.Int32 {
+			return errors.New("a dictionary page's indexes are not integers")
+		}
+		pg.idx = data.Int32()
+		if len(pg.idx) < nonNull {
+			return fmt.Errorf("a page has %d values for %d non-null levels", len(pg.idx), nonNull)
+		}
+		data = dict.Page().Data()
+	}
+	var n int
+	switch c.kind {
+	case parquet.Boolean:
+		if data.Kind() == encoding.Boolean {
+			pg.bits = data.Boolean()
+			n = 8 * len(pg.bits)
+		}
+	case parquet.Int32:
+		if data.Kind() == encoding.Int32 {
+			pg.i32 = data.Int32()
+			n = len(pg.i32)
+		}
+	case parquet.Int64:
+		if data.Kind() == encoding.Int64 {
+			pg.i64 = data.Int64()
+			n = len(pg.i64)
+		}
+	case parquet.Float:
+		if data.Kind() == encoding.Float {
+			pg.f32 = data.Float()
+			n = len(pg.f32)
+		}
+	case parquet.Double:
+		if data.Kind() == encoding.Double {
+			pg.f64 = data.Double()
+			n = len(pg.f64)
+		}
+	case parquet.ByteArray:
+		if data.Kind() == encoding.ByteArray {
+			pg.ba, pg.off = data.ByteArray()
+			n = max(len(pg.off)-1, 0)
+			for i := 0; i < n; i++ {
+				if pg.off[i] > pg.off[i+1] || int(pg.off[i+1]) > len(pg.ba) {
+					return errors.New("a page's byte array offsets are out of order")
+				}
+			}
+		}
+	default:
+		return fmt.Errorf("values of type %s", c.kind)
+	}
+	pg.nv = n
+	if pg.idx == nil && n < nonNull {
+		return fmt.Errorf("a page has %d values for %d non-null levels", n, nonNull)
+	}
+	c.cur = pg
+	return nil
+}
+
+// at maps the page's j-th non-null value to its position in the values,
+// false when a dictionary index is out of range.
+func (pg *colPage) at(j int) (int, bool) {
+	if pg.idx == nil {
+		return j, true
+	}
+	k := int(pg.idx[j])
+	return k, k >= 0 && k < pg.nv
+}
+
+// loadPage opens the chunk's next page that has values; io.EOF at the end
+// of the chunk.
+func (c *column) loadPage() error {
+	for {
+		c.releasePage()
+		if c.pages == nil {
+			return io.EOF
+		}
+		page, err := c.pages.ReadPage()
+		if err != nil {
+			return err
+		}
+		c.page = page
+		if err := c.setPage(page); err != nil {
+			return err
+		}
+		if c.cur.n > 0 {
+			return nil
+		}
+	}
+}
+
+func (c *column) endChunkColumnar() error {
+	if c.cur.lp < c.cur.n {
+		return fmt.Errorf("column %q has more values than rows", c.name)
+	}
+	switch err := c.loadPage(); err {
+	case nil:
+		return fmt.Errorf("column %q has more values than rows", c.name)
+	case io.EOF:
+		return nil
+	default:
+		return fmt.Errorf("column %q: %w", c.name, err)
+	}
+}
+
+// readColumnar is Read, column by column.
+func (p *parquetReader) readColumnar(f *Frame, max int) (int, error) {
+	n := 0
+	for n < max {
+		if p.groupLeft == 0 {
+			ok, err := p.openGroup()
+			if err != nil {
+				return 0, err
+			}
+			if !ok {
+				break
+			}
+			continue
+		}
+		k := int(min(int64(max-n), p.groupLeft))
+		for _, c := range p.cols {
+			p.readRows(c, k)
+		}
+		if err := p.checkRun(f, k); err != nil {
+			return 0, err
+		}
+		p.appendRun(f, k)
+		p.row += int64(k)
+		p.groupLeft -= int64(k)
+		n += k
+	}
+	if n == 0 {
+		return 0, io.EOF
+	}
+	return n, nil
+}
+
+// readRows decodes the next k rows of column c into c.seg, stopping at the
+// first row with a problem or a fault.
+func (p *parquetReader) readRows(c *column, k int) {
+	s := &c.seg
+	s.cnt, s.ix, s.fv, s.i64, s.str, s.key = s.cnt[:0], s.ix[:0], s.fv[:0], s.i64[:0], s.str[:0], s.key[:0]
+	s.bad, s.msg, s.err, s.dropped = -1, "", nil, false
+	pg := &c.cur
+	md := byte(c.maxDef)
+	for r := 0; r < k; r++ {
+		if pg.lp == pg.n {
+			if err := c.loadPage(); err != nil {
+				s.bad, s.err = r, err
+				return
+			}
+		}
+		if pg.rep != nil && pg.rep[pg.lp] != 0 {
+			s.bad, s.err = r, errors.New("a row does not start where the previous one ends")
+			return
+		}
+		if !c.list {
+			// One level: a value or a null.
+			d := md
+			if pg.def != nil {
+				d = pg.def[pg.lp]
+			}
+			pg.lp++
+			if d < md {
+				s.cnt = append(s.cnt, -1)
+				if msg := p.scalarNull(c, r); msg != "" {
+					s.bad, s.msg = r, msg
+					return
+				}
+				continue
+			}
+			j, ok := pg.at(pg.dp)
+			pg.dp++
+			if !ok {
+				s.bad, s.err = r, errors.New("a dictionary index is out of range")
+				return
+			}
+			s.cnt = append(s.cnt, 1)
+			if msg := p.scalarValue(c, pg, j, r); msg != "" {
+				s.bad, s.msg = r, msg
+				return
+			}
+			continue
+		}
+		// A list: its levels up to the next row's first.
+		elems, firstNull, d0 := 0, -1, byte(0)
+		msg := ""
+		for {
+			d := pg.def[pg.lp]
+			if elems == 0 {
+				d0 = d
+			}
+			if d == md {
+				j, ok := pg.at(pg.dp)
+				pg.dp++
+				if !ok {
+					s.bad, s.err = r, errors.New("a dictionary index is out of range")
+					return
+				}
+				if firstNull < 0 && msg == "" {
+					msg = p.listValue(c, pg, j, elems)
+				}
+			} else if firstNull < 0 && msg == "" {
+				firstNull = elems
+			}
+			pg.lp++
+			elems++
+			if pg.lp == pg.n {
+				if err := c.loadPage(); err == io.EOF {
+					break
+				} else if err != nil {
+					s.bad, s.err = r, err
+					return
+				}
+			}
+			if pg.rep[pg.lp] == 0 {
+				break
+			}
+		}
+		if elems == 1 && int(d0) < c.repDef {
+			// No element: an empty list, or a null one.
+			if int(d0) == c.repDef-1 {
+				s.cnt = append(s.cnt, 0)
+				continue
+			}
+			s.cnt = append(s.cnt, -1)
+			s.bad, s.msg = r, p.listNull(c)
+			return
+		}
+		if firstNull >= 0 {
+			s.bad, s.msg = r, p.elemNull(c, firstNull)
+			return
+		}
+		if msg != "" {
+			s.bad, s.msg = r, msg
+			return
+		}
+		s.cnt = append(s.cnt, int32(elems))
+	}
+}
+
+// number reads value j of a page of a number column as float64 (column.float).
+func (c *column) number(pg *colPage, j int) float64 {
+	switch c.kind {
+	case parquet.Float:
+		return float64(pg.f32[j])
+	case parquet.Double:
+		return pg.f64[j]
+	case parquet.Int32:
+		if c.unsigned {
+			return float64(uint32(pg.i32[j]))
+		}
+		return float64(pg.i32[j])
+	case parquet.Int64:
+		if c.unsigned {
+			return float64(uint64(pg.i64[j]))
+		}
+		return float64(pg.i64[j])
+	case parquet.Boolean:
+		if pg.bits[j>>3]>>(j&7)&1 != 0 {
+			return 1
+		}
+		return 0
+	}
+	return math.NaN()
+}
+
+// integer reads value j of a page of an integer column (column.int).
+func (c *column) integer(pg *colPage, j int) (int64, bool) {
+	switch c.kind {
+	case parquet.Int32:
+		if c.unsigned {
+			return int64(uint32(pg.i32[j])), true
+		}
+		return int64(pg.i32[j]), true
+	case parquet.Int64:
+		if c.unsigned {
+			u := uint64(pg.i64[j])
+			return int64(u), u <= math.MaxInt64
+		}
+		return pg.i64[j], true
+	}
+	return 0, false
+}
+
+// listValue takes element i (value j of the page) of a list row and
+// returns the row path's problem with it, or "".
+func (p *parquetReader) listValue(c *column, pg *colPage, j, i int) string {
+	s := &c.seg
+	switch c.role {
+	case roleItems:
+		var (
+			ix   int32
+			keep bool
+			err  error
+		)
+		if c.kind == parquet.ByteArray {
+			id := pg.ba[pg.off[j]:pg.off[j+1]]
+			if len(id) == 0 {
+				return fmt.Sprintf("items[%d] is an empty id", i)
+			}
+			ix, keep, err = p.l.vocab.mapBytes(id)
+		} else {
+			n, ok := c.integer(pg, j)
+			if !ok {
+				return fmt.Sprintf("items[%d] is beyond the int64 range", i)
+			}
+			ix, keep, err = p.l.vocab.mapInt(n)
+		}
+		if err != nil {
+			return fmt.Sprintf("items[%d]: %v", i, err)
+		}
+		if !keep {
+			ix = -1
+			s.dropped = true
+		}
+		s.ix = append(s.ix, ix)
+	default: // values, dense inputs
+		s.fv = append(s.fv, float32(c.number(pg, j)))
+	}
+	return ""
+}
+
+func (p *parquetReader) listNull(c *column) string {
+	switch c.role {
+	case roleItems:
+		return "items is null"
+	case roleValues:
+		return "values is null"
+	}
+	return fmt.Sprintf("dense input %q is null", c.name)
+}
+
+func (p *parquetReader) elemNull(c *column, i int) string {
+	switch c.role {
+	case roleItems:
+		return fmt.Sprintf("items[%d] is null", i)
+	case roleValues:
+		return fmt.Sprintf("values[%d] is null", i)
+	}
+	return fmt.Sprintf("dense input %q [%d] is null", c.name, i)
+}
+
+// scalarNull records a null scalar of row r (0-based in the run) and
+// returns the row path's problem with it, or "".
+func (p *parquetReader) scalarNull(c *column, r int) string {
+	s := &c.seg
+	switch c.role {
+	case roleDense:
+		return fmt.Sprintf("dense input %q is null", c.name)
+	case roleLabel:
+		return "label is null"
+	case roleWeight:
+		s.fv = append(s.fv, 1)
+	case roleSlice:
+		s.str = append(s.str, "")
+	case roleRowID:
+		s.i64 = append(s.i64, p.row+int64(r))
+	case roleCluster:
+		s.key = append(s.key, 0)
+	}
+	return ""
+}
+
+// scalarValue takes row r's value (value j of the page) and returns the
+// row path's problem with it, or "".
+func (p *parquetReader) scalarValue(c *column, pg *colPage, j, r int) string {
+	s := &c.seg
+	switch c.role {
+	case roleDense:
+		s.fv = append(s.fv, float32(c.number(pg, j)))
+	case roleLabel:
+		lab, msg := checkLabel(c.number(pg, j))
+		if msg != "" {
+			return msg
+		}
+		s.fv = append(s.fv, lab)
+	case roleWeight:
+		w, msg := checkWeight(c.number(pg, j))
+		if msg != "" {
+			return msg
+		}
+		s.fv = append(s.fv, w)
+	case roleSlice:
+		s.str = append(s.str, p.slices.get(pg.ba[pg.off[j]:pg.off[j+1]]))
+	case roleRowID:
+		id, ok := c.integer(pg, j)
+		if !ok {
+			return "row_id is beyond the int64 range"
+		}
+		s.i64 = append(s.i64, id)
+	case roleCluster:
+		if id, ok := c.integer(pg, j); ok {
+			s.key = append(s.key, ClusterKey(strconv.AppendInt(p.num[:0], id, 10)))
+		} else if c.kind == parquet.ByteArray {
+			s.key = append(s.key, ClusterKey(pg.ba[pg.off[j]:pg.off[j+1]]))
+		} else {
+			return fmt.Sprintf("%s is beyond the int64 range", c.name)
+		}
+	}
+	return ""
+}
+
+// checkRun checks the decoded run of k rows in file order as the row path
+// does: a column's fault, then the first problem by column, then the
+// checks of a whole row (layout.checkRow).
+func (p *parquetReader) checkRun(f *Frame, k int) error {
+	bad := k
+	for _, c := range p.cols {
+		if c.seg.bad >= 0 && c.seg.bad < bad {
+			bad = c.seg.bad
+		}
+	}
+	s := &p.csc
+	s.reset(len(p.dense))
+	s.itemsSet, s.valuesSet = true, true
+	for i := range s.denseSet {
+		s.denseSet[i] = true
+	}
+	hasLabels := p.label != nil
+	s.hasLabel = hasLabels
+	s.hasClust = true
+	pairs := int64(len(f.Indices))
+	items, values := &p.items.seg, &p.values.seg
+	var ia, va int32
+	if len(p.denseAt) != len(p.dense) {
+		p.denseAt = make([]int32, len(p.dense))
+	}
+	da := p.denseAt
+	clear(da)
+	for r := 0; r < k; r++ {
+		if r == bad {
+			for _, c := range p.cols {
+				if c.seg.bad == r && c.seg.err != nil {
+					return p.corruptAt(c, p.row+int64(r), c.seg.err)
+				}
+			}
+			for _, c := range p.cols {
+				if c.seg.bad == r {
+					return p.l.rowError(p.row+int64(r)+1, "%s", c.seg.msg)
+				}
+			}
+		}
+		ni, nv := items.cnt[r], values.cnt[r]
+		s.nItems = int(ni)
+		s.idx = items.ix[ia : ia+ni]
+		s.vals = values.fv[va : va+nv]
+		ia, va = ia+ni, va+nv
+		for i, c := range p.dense {
+			nd := c.seg.cnt[r]
+			s.dense[i] = c.seg.fv[da[i] : da[i]+nd]
+			da[i] += nd
+		}
+		if p.cluster != nil {
+			s.hasClust = p.cluster.seg.cnt[r] >= 0
+		}
+		if err := p.l.checkRow(s, p.row+int64(r), pairs, hasLabels); err != nil {
+			return err
+		}
+		if items.dropped {
+			for _, ix := range s.idx {
+				if ix >= 0 {
+					pairs++
+				}
+			}
+		} else {
+			pairs += int64(ni)
+		}
+	}
+	return nil
+}
+
+func (p *parquetReader) corruptAt(c *column, row int64, err error) error {
+	if errors.Is(err, io.EOF) {
+		err = errors.New("ends before the row group does")
+	}
+	return p.l.fileError("row %d: column %q: %v", row+1, c.name, err)
+}
+
+// appendRun appends a checked run of k rows to f.
+func (p *parquetReader) appendRun(f *Frame, k int) {
+	if len(f.Indptr) == 0 {
+		f.Indptr = append(f.Indptr, 0)
+	}
+	items, values := &p.items.seg, &p.values.seg
+	if !items.dropped {
+		f.Indices = append(f.Indices, items.ix...)
+		f.Values = append(f.Values, values.fv...)
+		end := f.Indptr[len(f.Indptr)-1]
+		for _, n := range items.cnt[:k] {
+			end += n
+			f.Indptr = append(f.Indptr, end)
+		}
+	} else {
+		a := 0
+		for _, n := range items.cnt[:k] {
+			for j := a; j < a+int(n); j++ {
+				if ix := items.ix[j]; ix >= 0 {
+					f.Indices = append(f.Indices, ix)
+					f.Values = append(f.Values, values.fv[j])
+				}
+			}
+			a += int(n)
+			f.Indptr = append(f.Indptr, int32(len(f.Indices)))
+		}
+	}
+	if len(p.dense) > 0 && f.Dense == nil {
+		f.Dense = make(map[string][]float32, len(p.dense))
+	}
+	for i, d := range p.l.dense {
+		f.Dense[d.Name] = append(f.Dense[d.Name], p.dense[i].seg.fv...)
+	}
+	if p.label != nil {
+		f.Labels = append(f.Labels, p.label.seg.fv...)
+	}
+	if p.weight != nil {
+		f.Weights = append(f.Weights, p.weight.seg.fv...)
+	} else {
+		for range k {
+			f.Weights = append(f.Weights, 1)
+		}
+	}
+	if p.slice != nil {
+		f.Slices = append(f.Slices, p.slice.seg.str...)
+	} else {
+		for range k {
+			f.Slices = append(f.Slices, "")
+		}
+	}
+	if p.rowID != nil {
+		f.RowIDs = append(f.RowIDs, p.rowID.seg.i64...)
+	} else {
+		for r := range k {
+			f.RowIDs = append(f.RowIDs, p.row+int64(r))
+		}
+	}
+	if p.cluster != nil {
+		f.Clusters = append(f.Clusters, p.cluster.seg.key...)
+	}
+}
