@@ -22,7 +22,7 @@ import (
 type Vocabulary struct {
 	in    model.SparseInput
 	ids   []string
-	index map[string]int32
+	index *idTable // the row of each id
 	// ints indexes the ids that are the canonical decimal form of an int64
 	// ("42", "-7"; not "042", "+7" or "-0"), so integer ids from a holdout
 	// are looked up without formatting them.
@@ -52,7 +52,7 @@ func ParseVocabulary(r io.Reader, in model.SparseInput) (*Vocabulary, error) {
 	v := &Vocabulary{
 		in:    in,
 		ids:   make([]string, 0, min(in.VocabularySize, 1<<20)),
-		index: make(map[string]int32, min(in.VocabularySize, 1<<20)),
+		index: newIDTable(min(in.VocabularySize, 1<<20)),
 		ints:  make(map[int64]int32),
 	}
 	br := bufio.NewReaderSize(r, 64<<10)
@@ -107,14 +107,14 @@ func (v *Vocabulary) add(id []byte, lineNo int) error {
 	if len(v.ids) >= math.MaxInt32 {
 		return bad("too many ids")
 	}
-	if prev, dup := v.index[string(id)]; dup {
+	if prev, dup := v.index.lookup(v.ids, id); dup {
 		return errkind.New(errkind.BadInput, "vocabulary of input %q: id %q appears on lines %d and %d (weight rows %d and %d)",
 			v.in.Name, id, prev+1, lineNo, prev, lineNo-1)
 	}
 	s := string(id)
 	row := int32(len(v.ids))
 	v.ids = append(v.ids, s)
-	v.index[s] = row
+	v.index.insert(v.ids, row)
 	if n, ok := canonicalInt(id); ok {
 		v.ints[n] = row
 	}
@@ -147,8 +147,7 @@ func (v *Vocabulary) ID(i int) string { return v.ids[i] }
 // Lookup returns the weight row of a known id. Ids are compared byte for
 // byte: no trimming, no case folding, no Unicode normalisation.
 func (v *Vocabulary) Lookup(id string) (int32, bool) {
-	i, ok := v.index[id]
-	return i, ok
+	return v.index.lookup(v.ids, []byte(id))
 }
 
 // Map returns the weight row the sparse input's unknown-id rule gives id:
@@ -156,7 +155,7 @@ func (v *Vocabulary) Lookup(id string) (int32, bool) {
 // "drop" (the pair is to be left out), and an errkind.BadInput error for
 // "refuse".
 func (v *Vocabulary) Map(id string) (idx int32, keep bool, err error) {
-	if i, ok := v.index[id]; ok {
+	if i, ok := v.index.lookup(v.ids, []byte(id)); ok {
 		return i, true, nil
 	}
 	if p := model.ItemIDProblem(id); p != "" {
@@ -170,7 +169,7 @@ func (v *Vocabulary) Map(id string) (idx int32, keep bool, err error) {
 
 // mapBytes is Map for an id held in a byte slice; it does not allocate.
 func (v *Vocabulary) mapBytes(id []byte) (int32, bool, error) {
-	if i, ok := v.index[string(id)]; ok {
+	if i, ok := v.index.lookup(v.ids, id); ok {
 		return i, true, nil
 	}
 	// A known id passed this check when its model was pushed; an unknown

@@ -1,0 +1,11 @@
+//go:build !linux
+
+package data
+
+import "time"
+
+// threadCPU falls back to wall time where thread CPU time is not at hand.
+func threadCPU() func() time.Duration {
+	start := time.Now()
+	return func() time.Duration { return time.Since(start) }
+}
