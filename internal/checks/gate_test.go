@@ -143,15 +143,24 @@ func TestDemoVerdicts(t *testing.T) {
 			}
 		})
 	}
-	// The worse candidate fails on holdout alone (its other checks pass).
-	rep := gate(t, store, "promo-scorer:cand-worse", "promo-scorer:prod", "promo-scorer.yaml")
-	for name, s := range status(rep) {
-		if name != CheckHoldout && s == StatusFail {
-			t.Errorf("worse candidate: %s failed too", name)
+	// The worse candidate fails on holdout alone, the trainable-encoder one
+	// on freeze alone and the over-budget one on budget alone: their other
+	// checks pass. (The shuffled vocabulary fails holdout too: its outputs
+	// are wrong, which is the point.)
+	for _, c := range []struct{ cand, check string }{
+		{"promo-scorer:cand-worse", CheckHoldout},
+		{"promo-scorer:cand-trainable-encoder", CheckFreeze},
+		{"promo-scorer:cand-over-budget", CheckBudget},
+	} {
+		rep := gate(t, store, c.cand, "promo-scorer:prod", "promo-scorer.yaml")
+		for name, s := range status(rep) {
+			if name != c.check && s == StatusFail {
+				t.Errorf("%s: %s failed too (%v)", c.cand, name, rep.Reasons)
+			}
 		}
 	}
 	// The shuffled vocabulary is caught by the probe rows, naming them.
-	rep = gate(t, store, "promo-scorer:cand-shuffled-vocab", "promo-scorer:prod", "promo-scorer.yaml")
+	rep := gate(t, store, "promo-scorer:cand-shuffled-vocab", "promo-scorer:prod", "promo-scorer.yaml")
 	found := false
 	for _, c := range rep.Checks {
 		for _, f := range c.Findings {

@@ -8,6 +8,7 @@ import (
 	"math/rand/v2"
 	"os"
 	"path/filepath"
+	"strconv"
 	"sync"
 
 	"gonum.org/v1/gonum/mat"
@@ -46,6 +47,12 @@ const (
 
 // worseRows is how many training rows the worse candidate sees.
 const worseRows = 1000
+
+// overBudgetHalf is half the hidden units of the over-budget candidate's
+// head (our own choice: with the demo's 16-wide code and dense features,
+// enough that the head alone is above the demo policy's 512 KiB and 131,072
+// parameters).
+const overBudgetHalf = 4096
 
 // Scenario says what Build wrote and how the demo pushes and gates it.
 //
@@ -208,7 +215,7 @@ func (b *builder) run(cfg Config) error {
 	}{
 		{EncoderV1, "listener-encoder:v1", fmt.Sprintf("PCA of listening history, %d-wide code, fitted on the training listeners", cfg.CodeWidth), "2026-02-01T09:00:00Z", trainDigest, v1, len(d.Train), [][]Listener{d.Train}},
 		{EncoderV2, "listener-encoder:v2", "the same PCA refitted on the training listeners plus a later sample of the network", "2026-03-01T09:00:00Z", datasetDigest(d, d.Train, d.Extra), v2, len(d.Train) + len(d.Extra), [][]Listener{d.Train, d.Extra}},
-		{EncoderWide, "listener-encoder:wide", fmt.Sprintf("PCA with a %d-wide code: what the over-budget scorer uses", cfg.WideCodeWidth), "2026-03-01T10:00:00Z", trainDigest, wide, len(d.Train), [][]Listener{d.Train}},
+		{EncoderWide, "listener-encoder:wide", fmt.Sprintf("PCA with a %d-wide code: an encoder over the encoder budget", cfg.WideCodeWidth), "2026-03-01T10:00:00Z", trainDigest, wide, len(d.Train), [][]Listener{d.Train}},
 	}
 	for _, e := range encoders {
 		stats := map[string]any{
@@ -263,15 +270,6 @@ func (b *builder) run(cfg Config) error {
 	if err != nil {
 		return fmt.Errorf("fitting the worse candidate: %w", err)
 	}
-	wideCodes, err := b.codes(b.models[EncoderWide], d.Train)
-	if err != nil {
-		return err
-	}
-	over, err := b.logistic(d.Train, wideCodes, betterDense)
-	if err != nil {
-		return fmt.Errorf("fitting the over-budget candidate: %w", err)
-	}
-
 	v2Codes, err := b.codes(b.models[EncoderV2], d.Train)
 	if err != nil {
 		return err
@@ -308,12 +306,17 @@ func (b *builder) run(cfg Config) error {
 		b.vocab, baseDense, base.head, base.intercept, ref(EncoderV1), nil, scorerStats(d.Train), lin(ScorerBaseline, "2026-02-02T09:00:00Z", d.Train))
 	shuffled := scorerModel(CandShuffledVocab, what+"the baseline's weights with a vocabulary file in another order.",
 		b.shuffledVocabulary(), baseDense, base.head, base.intercept, ref(EncoderV1), nil, scorerStats(d.Train), lin(CandShuffledVocab, "2026-03-02T09:00:00Z", d.Train))
-	trainable := scorerModel(CandTrainableEncoder, what+"the baseline exported with its encoder embedded and still trainable.",
-		b.vocab, baseDense, base.head, base.intercept, model.EncoderRef{Name: "listener-encoder:v1", Digest: b.digests[EncoderV1], Embedded: true, Output: lCode},
+	// The candidates built to fail the freeze and the budget check are the
+	// better candidate's function, so that they fail that check alone.
+	trainable := scorerModel(CandTrainableEncoder, what+"the better candidate exported with its encoder embedded and still trainable.",
+		b.vocab, betterDense, better.head, better.intercept, model.EncoderRef{Name: "listener-encoder:v1", Digest: b.digests[EncoderV1], Embedded: true, Output: lCode},
 		b.models[EncoderV1], scorerStats(d.Train), lin(CandTrainableEncoder, "2026-03-02T10:00:00Z", d.Train))
-	if err := b.attachTraining(trainable, base); err != nil {
+	if err := b.attachTraining(trainable, better); err != nil {
 		return err
 	}
+	overBudget := scorerModel(CandOverBudget, what+fmt.Sprintf("the better candidate re-expressed through a %s-unit hidden ReLU layer: the same predictions, many times the size and cost.", thousands(2*overBudgetHalf)),
+		b.vocab, betterDense, better.head, better.intercept, ref(EncoderV1), nil, scorerStats(d.Train), lin(CandOverBudget, "2026-03-02T13:00:00Z", d.Train))
+	widenHead(overBudget, overBudgetHalf)
 	scorers := []scorer{
 		{ScorerBaseline, "promo-scorer:baseline", EncoderV1, "baseline", "", fmt.Sprintf("logistic regression on the %d-wide code plus listener and show features", cfg.CodeWidth), baseModel},
 		{CandBetter, "promo-scorer:cand-better", EncoderV1, "candidate", "", "adds the listener's affinity to the promoted show's category",
@@ -323,10 +326,8 @@ func (b *builder) run(cfg Config) error {
 			scorerModel(CandWorse, what+"fitted on a small sample, without listener or show features.",
 				b.vocab, nil, worse.head, worse.intercept, ref(EncoderV1), nil, scorerStats(d.Train[:worseRows]), lin(CandWorse, "2026-03-02T12:00:00Z", d.Train[:worseRows]))},
 		{CandShuffledVocab, "promo-scorer:cand-shuffled-vocab", EncoderV1, "candidate", "contract", "the baseline with its vocabulary file shuffled: ids no longer match weight rows", shuffled},
-		{CandTrainableEncoder, "promo-scorer:cand-trainable-encoder", EncoderV1, "candidate", "freeze", "the baseline with the encoder embedded as trainable variables, an Adam slot and an l2 term", trainable},
-		{CandOverBudget, "promo-scorer:cand-over-budget", EncoderWide, "candidate", "budget", fmt.Sprintf("the better candidate's features on the %d-wide code: fitted for real, many times larger", cfg.WideCodeWidth),
-			scorerModel(CandOverBudget, what+fmt.Sprintf("logistic regression on a %d-wide listener code with the better candidate's features.", cfg.WideCodeWidth),
-				b.vocab, betterDense, over.head, over.intercept, ref(EncoderWide), nil, scorerStats(d.Train), lin(CandOverBudget, "2026-03-02T13:00:00Z", d.Train))},
+		{CandTrainableEncoder, "promo-scorer:cand-trainable-encoder", EncoderV1, "candidate", "freeze", "the better candidate with the encoder embedded as trainable variables, an Adam slot and an l2 term", trainable},
+		{CandOverBudget, "promo-scorer:cand-over-budget", EncoderV1, "candidate", "budget", fmt.Sprintf("the better candidate through a %s-unit hidden layer that computes the same function: many times larger and slower", thousands(2*overBudgetHalf)), overBudget},
 		{CandEncoderV2, "promo-scorer:cand-encoder-v2", EncoderV2, "candidate", "", "the better candidate's features refitted on listener-encoder:v2's code: released together with that encoder",
 			scorerModel(CandEncoderV2, what+"the better candidate's features, refitted on the code of listener-encoder:v2.",
 				b.vocab, betterDense, onV2.head, onV2.intercept, ref(EncoderV2), nil, scorerStats(d.Train), lin(CandEncoderV2, "2026-03-03T09:00:00Z", d.Train))},
@@ -365,6 +366,15 @@ func (b *builder) run(cfg Config) error {
 		return err
 	}
 	return writeFile(filepath.Join(b.dir, ScenarioFile), append(raw, '\n'))
+}
+
+// thousands writes n with comma thousands separators (8,192).
+func thousands(n int) string {
+	s := strconv.Itoa(n)
+	for i := len(s) - 3; i > 0; i -= 3 {
+		s = s[:i] + "," + s[i:]
+	}
+	return s
 }
 
 func sum(x []float64) float64 {

@@ -261,8 +261,9 @@ func TestScenarioShape(t *testing.T) {
 	if err != nil || !bytes.Contains(raw, []byte(`"promo-scorer:cand-better"`)) {
 		t.Errorf("scenario.json: %v", err)
 	}
-	if ob, base := sc.model(t, CandOverBudget), sc.model(t, ScorerBaseline); ob.ServedBytes < 10*base.ServedBytes {
-		t.Errorf("over-budget candidate serves %d bytes, baseline %d: want at least ten times", ob.ServedBytes, base.ServedBytes)
+	// The demo policy's budget is 512 KiB (policies/promo-scorer.yaml).
+	if ob, base := sc.model(t, CandOverBudget), sc.model(t, ScorerBaseline); ob.ServedBytes < 2*base.ServedBytes || ob.ServedBytes <= 512<<10 {
+		t.Errorf("over-budget candidate serves %d bytes, baseline %d: want more than 512 KiB and twice the baseline", ob.ServedBytes, base.ServedBytes)
 	}
 	if v1, v2 := sc.model(t, EncoderV1), sc.model(t, EncoderV2); !(v2.ReconstructionError <= v1.ReconstructionError) {
 		t.Errorf("encoder v2 reconstruction error %v > v1's %v", v2.ReconstructionError, v1.ReconstructionError)
@@ -284,8 +285,14 @@ func TestCandidateLogLossOrder(t *testing.T) {
 	if !(worse.HoldoutLogLoss > base.HoldoutLogLoss+0.005) {
 		t.Errorf("worse candidate %.5f not clearly above the baseline %.5f", worse.HoldoutLogLoss, base.HoldoutLogLoss)
 	}
-	if tr := sc.model(t, CandTrainableEncoder); math.Abs(tr.HoldoutLogLoss-base.HoldoutLogLoss) > 1e-12 {
-		t.Errorf("trainable-encoder candidate %.6f should predict like the baseline %.6f", tr.HoldoutLogLoss, base.HoldoutLogLoss)
+	// The candidates built to fail freeze and budget compute the better
+	// candidate's function: the first exactly (float64 reference forward),
+	// the second up to the rounding of its re-expressed head.
+	if tr := sc.model(t, CandTrainableEncoder); math.Abs(tr.HoldoutLogLoss-better.HoldoutLogLoss) > 1e-12 {
+		t.Errorf("trainable-encoder candidate %.6f should predict like the better candidate %.6f", tr.HoldoutLogLoss, better.HoldoutLogLoss)
+	}
+	if ob := sc.model(t, CandOverBudget); math.Abs(ob.HoldoutLogLoss-better.HoldoutLogLoss) > 1e-6 {
+		t.Errorf("over-budget candidate %.8f should predict like the better candidate %.8f", ob.HoldoutLogLoss, better.HoldoutLogLoss)
 	}
 }
 
@@ -414,10 +421,24 @@ func TestProbes(t *testing.T) {
 			if worst < 1e-2 {
 				t.Errorf("shuffled vocabulary: runtime agrees with the probes (worst difference %.3g)", worst)
 			}
-		} else if worst > 1e-5 {
-			t.Errorf("%s: runtime differs from the probes by %.3g (relative)", sm.Name, worst)
+		} else if bound := probeBound(sm.Name); worst > bound {
+			t.Errorf("%s: runtime differs from the probes by %.3g (relative), bound %.3g", sm.Name, worst, bound)
 		}
 	}
+}
+
+// probeBound is how far the runtime (float32) may be from a model's float64
+// probe outputs, relative. The over-budget candidate's output sums 8,192
+// float32 products, and the rounding error of a sum grows with its length
+// (Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed. 2002,
+// §4.2: |error| ≤ γ_{n−1}·Σ|terms|, γ_n = nu/(1−nu), u = 2⁻²⁴ in float32), so
+// it is held to the demo policy's relative probe tolerance (1e-4,
+// policies/promo-scorer.yaml) instead of 1e-5.
+func probeBound(name string) float64 {
+	if name == CandOverBudget {
+		return 1e-4
+	}
+	return 1e-5
 }
 
 func TestShuffledVocabulary(t *testing.T) {

@@ -37,8 +37,8 @@ type Config struct {
 	// bucket.
 	VocabularyMinListeners int
 	// CodeWidth is the code width of the encoders the scorers use;
-	// WideCodeWidth that of the over-budget candidate's encoder. Both must
-	// not exceed the vocabulary size.
+	// WideCodeWidth that of listener-encoder:wide, an encoder built to fail
+	// the encoder budget. Both must not exceed the vocabulary size.
 	CodeWidth, WideCodeWidth int
 }
 
@@ -46,7 +46,7 @@ type Config struct {
 // 3,000 shows, 24,000 training listeners, 5,000 holdout listeners, 10,000
 // more for the refit, one listener in 25 with no history yet, the default
 // listening model (listening.Default), and encoders with a 16-wide code
-// (192-wide for the over-budget candidate).
+// (192-wide for the encoder built to fail its budget).
 func DefaultConfig() Config {
 	return Config{
 		Seed: 20260201, Shows: 3000, LatentDim: 8, Promoted: 40,

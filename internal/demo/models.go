@@ -34,7 +34,10 @@ const (
 	lCode   = "code"
 	lRecon  = "reconstruction"
 	lConcat = "features"
+	lHidden = "hidden"
 	lP      = "p"
+	tHidW   = "hidden.w"
+	tHidB   = "hidden.b"
 )
 
 // sourceRepository is the fictional network's training code repository.
@@ -189,6 +192,46 @@ func scorerModel(name, description string, vocab []string, dense []string, head 
 		model.Layer{Name: lP, Op: model.OpDense, Input: lConcat, Weight: tHeadW, Bias: tHeadB, Activation: model.ActSigmoid},
 	)
 	return &modeldir.Model{Spec: spec, Vocabulary: vocab, Stats: stats, Tensors: tensors}
+}
+
+// widenHead re-expresses a scorer's logistic head sigmoid(w·x + c) through a
+// hidden ReLU layer of 2k units that computes the same function: unit j < k
+// is relu(a_j w·x) and unit k+j is relu(−a_j w·x), with output weights
+// ±1/(k a_j), so the output sums relu(a z) − relu(−a z) = a z back to z.
+// The scales a_j = 1 + j/k keep the units distinct. The predictions are the
+// original's up to float32 rounding; the size and the cost per row are not.
+func widenHead(m *modeldir.Model, k int) {
+	w, c := m.Tensors[tHeadW], m.Tensors[tHeadB][0]
+	in, units := len(w), 2*k
+	w1 := make([]float32, in*units)
+	w2 := make([]float32, units)
+	for j := range k {
+		a := 1 + float64(j)/float64(k)
+		for i, wi := range w {
+			w1[i*units+j] = float32(a * float64(wi))
+			w1[i*units+k+j] = float32(-a * float64(wi))
+		}
+		w2[j] = float32(1 / (float64(k) * a))
+		w2[k+j] = -w2[j]
+	}
+	m.Tensors = map[string][]float32{tHidW: w1, tHidB: make([]float32, units), tHeadW: w2, tHeadB: {c}}
+	for i := range m.Spec.Tensors {
+		if m.Spec.Tensors[i].Name == tHeadW {
+			m.Spec.Tensors[i].Shape = []int{units, 1}
+		}
+	}
+	m.Spec.Tensors = append(m.Spec.Tensors,
+		model.Tensor{Name: tHidW, File: headFile, Shape: []int{in, units}, DType: "F32", Part: "head"},
+		model.Tensor{Name: tHidB, File: headFile, Shape: []int{units}, DType: "F32", Part: "head"},
+	)
+	for i := range m.Spec.Layers {
+		if m.Spec.Layers[i].Name == lP {
+			m.Spec.Layers[i].Input = lHidden
+			hidden := model.Layer{Name: lHidden, Op: model.OpDense, Input: lConcat, Weight: tHidW, Bias: tHidB, Activation: model.ActReLU}
+			m.Spec.Layers = append(m.Spec.Layers[:i], append([]model.Layer{hidden}, m.Spec.Layers[i:]...)...)
+			break
+		}
+	}
 }
 
 // nonzeroStats summarises the nonzeros per row of a training set: the

@@ -49,7 +49,7 @@ func heapPeak() (stop func() uint64) {
 }
 
 // BenchmarkFreezeOverBudget freezes the demo's largest scorer (the
-// over-budget candidate on the 192-wide encoder) with verification on its
+// over-budget candidate, an 8,192-unit hidden layer) with verification on its
 // probes and a 2,000-row holdout sample, and pushes it and its record.
 // Metrics: time per freeze, bytes allocated per freeze (B/op), and the
 // peak live heap above the starting level (peak-heap-B, sampled every ms).

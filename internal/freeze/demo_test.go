@@ -28,8 +28,8 @@ import (
 // embeds its encoder as trainable variables with an Adam slot and an l2
 // term: the result passes the gate's freeze check, shares the encoder's
 // blob by digest, and scores the whole holdout bit-identically to the
-// baseline scorer composed with its encoder by the runtime (the candidate
-// is the baseline's head on listener-encoder:v1).
+// better candidate composed with its encoder by the runtime (the candidate
+// is the better candidate's head on listener-encoder:v1).
 func TestFreezeTrainableEncoderCandidate(t *testing.T) {
 	ctx := context.Background()
 	store, sc := demoStore(t)
@@ -111,8 +111,9 @@ func TestFreezeTrainableEncoderCandidate(t *testing.T) {
 		t.Errorf("against the source as stored: %+v", a)
 	}
 
-	// The whole holdout, frozen against the baseline's runtime composition.
-	base := load(t, store, "promo-scorer:baseline")
+	// The whole holdout, frozen against the runtime composition of the
+	// better candidate (the trainable-encoder candidate is its function).
+	base := load(t, store, "promo-scorer:cand-better")
 	bm, err := score.Prepare(base)
 	if err != nil {
 		t.Fatal(err)
