@@ -2,6 +2,7 @@ package main
 
 import (
 	"encoding/json"
+	"os"
 	"path/filepath"
 	"strings"
 	"testing"
@@ -61,6 +62,11 @@ func TestJSONContract(t *testing.T) {
 	pol := filepath.Join(work, "policies", "promo-scorer.yaml")
 	key := func(n string) string { return filepath.Join(work, "keys", n+".key.pem") }
 	enc, scorer := fixtures(t)
+	retention := filepath.Join(dir, "retention.yaml")
+	if err := os.WriteFile(retention, []byte("schemaVersion: 1\nname: keep-little\nrules: [{target: \"tiny-encoder:prod\", kind: encoder, checks: {holdout: {enabled: false}}}]\n"+
+		"retention: {grace: 1h, repositories: [{repository: \"*\", keepCandidates: 0}]}\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
 	for _, c := range []struct {
 		cmd  string
 		args []string
@@ -100,6 +106,9 @@ func TestJSONContract(t *testing.T) {
 		{"policy", []string{"policy", "check", pol}, 0},
 		{"policy", []string{"policy", "check", filepath.Join(dir, "absent.yaml")}, 2},
 		{"copy", []string{"copy", "tiny-encoder:v1", "--dest", filepath.Join(dir, "copy")}, 0},
+		{"reclaim", []string{"reclaim", "--policy", retention}, 0},
+		{"reclaim", []string{"reclaim", "--policy", retention, "--apply"}, 0},
+		{"reclaim", []string{"reclaim"}, 2},
 	} {
 		r := mg(t, store, append(c.args, "--json")...)
 		if r.code != c.code {

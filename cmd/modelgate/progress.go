@@ -29,9 +29,13 @@ func (g *globals) progress() func(artifact.Event) {
 	if !g.interactive() {
 		if p := g.plainProgress(); p != nil {
 			return func(e artifact.Event) {
-				if e.Phase == "verify" {
+				switch e.Phase {
+				case "verify", "mark":
 					// One manifest after another: a line per phase, not per name.
-					p.event("verify", "", e.Done, e.Total, "manifests")
+					p.event(e.Phase, "", e.Done, e.Total, "manifests")
+					return
+				case "reclaim-tag", "reclaim-manifest", "reclaim-blob":
+					p.event("reclaim", "", e.Done, e.Total, "removals")
 					return
 				}
 				p.event(e.Phase, e.Name, e.Done, e.Total, "bytes")
@@ -59,11 +63,19 @@ func (g *globals) progress() func(artifact.Event) {
 				)
 			}
 			_ = bar.Set64(e.Done)
-		case "verify":
-			if bar == nil || current != "verify" {
-				current = "verify"
+		case "verify", "mark":
+			if bar == nil || current != e.Phase {
+				current = e.Phase
+				desc := map[string]string{"verify": "verifying manifests", "mark": "reading manifests"}[e.Phase]
 				bar = progressbar.NewOptions64(-1, progressbar.OptionSetWriter(g.Stderr),
-					progressbar.OptionSetDescription("verifying manifests"), progressbar.OptionClearOnFinish())
+					progressbar.OptionSetDescription(desc), progressbar.OptionClearOnFinish())
+			}
+			_ = bar.Set64(e.Done)
+		case "reclaim-tag", "reclaim-manifest", "reclaim-blob":
+			if bar == nil || current != "reclaim" {
+				current = "reclaim"
+				bar = progressbar.NewOptions64(e.Total, progressbar.OptionSetWriter(g.Stderr),
+					progressbar.OptionSetDescription("removing"), progressbar.OptionClearOnFinish())
 			}
 			_ = bar.Set64(e.Done)
 		default:

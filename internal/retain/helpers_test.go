@@ -2,6 +2,7 @@ package retain
 
 import (
 	"context"
+	"encoding/json"
 	"fmt"
 	"os"
 	"path/filepath"
@@ -27,9 +28,10 @@ import (
 // test can push over simulated months in seconds.
 type clocked struct {
 	*registry.Local
-	mu    sync.Mutex
-	now   time.Time
-	times map[string]map[v1.Hash]time.Time
+	mu        sync.Mutex
+	now       time.Time
+	times     map[string]map[v1.Hash]time.Time
+	blobTimes map[v1.Hash]time.Time
 }
 
 func (c *clocked) PutManifest(ctx context.Context, repo string, mt types.MediaType, raw []byte) (v1.Descriptor, error) {
@@ -41,6 +43,17 @@ func (c *clocked) PutManifest(ctx context.Context, repo string, mt types.MediaTy
 		}
 		if _, ok := c.times[repo][d.Digest]; !ok {
 			c.times[repo][d.Digest] = c.now
+		}
+		var m struct {
+			Config v1.Descriptor   `json:"config"`
+			Layers []v1.Descriptor `json:"layers"`
+		}
+		if json.Unmarshal(raw, &m) == nil {
+			for _, b := range append(m.Layers, m.Config) {
+				if _, ok := c.blobTimes[b.Digest]; !ok && b.Digest.Hex != "" {
+					c.blobTimes[b.Digest] = c.now
+				}
+			}
 		}
 		c.mu.Unlock()
 	}
@@ -55,6 +68,20 @@ func (c *clocked) ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]t
 		out[d] = t
 	}
 	return out, nil
+}
+
+// Blobs stamps each blob with the fake time of the first manifest that
+// referenced it; a blob no manifest did keeps the store's own time.
+func (c *clocked) Blobs(ctx context.Context, repo string) ([]registry.BlobInfo, error) {
+	bs, err := c.Local.Blobs(ctx, repo)
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	for i := range bs {
+		if t, ok := c.blobTimes[bs[i].Digest]; ok {
+			bs[i].Modified = t
+		}
+	}
+	return bs, err
 }
 
 func (c *clocked) advance(d time.Duration) {
@@ -100,7 +127,7 @@ func newScene(t testing.TB, retention string) *scene {
 	if err != nil {
 		t.Fatal(err)
 	}
-	s := &scene{t: t, ctx: context.Background(), dir: dir, store: &clocked{Local: l, now: start, times: map[string]map[v1.Hash]time.Time{}},
+	s := &scene{t: t, ctx: context.Background(), dir: dir, store: &clocked{Local: l, now: start, times: map[string]map[v1.Hash]time.Time{}, blobTimes: map[v1.Hash]time.Time{}},
 		base: fixture.EncoderModel()}
 	text := `schemaVersion: 1
 name: listener-encoder
@@ -125,6 +152,16 @@ rules:
 // as encRepo:tag.
 func (s *scene) push(i int, tag string) v1.Hash {
 	s.t.Helper()
+	d, err := s.tryPush(i, tag)
+	if err != nil {
+		s.t.Fatal(err)
+	}
+	s.cands = append(s.cands, d)
+	return d
+}
+
+// tryPush is push for any goroutine: it returns the error.
+func (s *scene) tryPush(i int, tag string) (v1.Hash, error) {
 	m := *s.base
 	spec := *s.base.Spec
 	spec.Name = fmt.Sprintf("listener-encoder-ci-%d", i)
@@ -138,18 +175,14 @@ func (s *scene) push(i int, tag string) v1.Hash {
 	m.Tensors["dec.b"] = dec
 	dir := filepath.Join(s.dir, "models", fmt.Sprint(i))
 	if err := modeldir.Write(dir, &m); err != nil {
-		s.t.Fatal(err)
+		return v1.Hash{}, err
 	}
+	defer os.RemoveAll(dir)
 	res, err := artifact.PushModelDir(s.ctx, s.store, dir, registry.Ref{Repository: encRepo, Tag: tag}, artifact.Options{})
 	if err != nil {
-		s.t.Fatal(err)
+		return v1.Hash{}, fmt.Errorf("push %d as %s: %w", i, tag, err)
 	}
-	if err := os.RemoveAll(dir); err != nil {
-		s.t.Fatal(err)
-	}
-	d, _ := registry.ParseDigest(res.Digest)
-	s.cands = append(s.cands, d)
-	return d
+	return registry.ParseDigest(res.Digest)
 }
 
 // report stores a passing gate report for cand against prod's current

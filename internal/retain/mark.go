@@ -170,6 +170,9 @@ type Plan struct {
 	// Notes say what the plan could not consider (a store that cannot
 	// list blobs, say).
 	Notes []string `json:"notes,omitempty"`
+
+	// known are the manifests the mark read.
+	known map[key]bool
 }
 
 // Kept counts what a plan keeps.
@@ -252,6 +255,9 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 		return nil, errkind.New(errkind.BadInput, "store %s cannot list its manifests: nothing can be shown unreferenced there", store)
 	}
 	now := opts.Now
+	if now.IsZero() {
+		now = testNow()
+	}
 	if now.IsZero() {
 		now = time.Now()
 	}
@@ -387,6 +393,10 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 		return nil, err
 	}
 	mk.fill(plan)
+	plan.known = map[key]bool{}
+	for k := range mk.nodes {
+		plan.known[k] = true
+	}
 	return plan, nil
 }
 
