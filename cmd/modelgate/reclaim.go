@@ -161,4 +161,3 @@ func bytesText(n int64) string {
 	}
 	return fmt.Sprintf("%.1f %ciB", f, "KMGT"[u-1])
 }
-
