@@ -116,6 +116,7 @@ func crashReclaim(t *testing.T, store string) {
 		}
 	}
 	// One removal per killed run: a kill at every step of the collection.
+	t.Logf("%d kills for a plan of %d steps (%d tags, %d manifests, %d blobs)", kills, plan.steps(), len(plan.Plan.Tags), len(plan.Plan.Manifests), len(plan.Plan.Blobs))
 	if kills != plan.steps() {
 		t.Errorf("%d kills for a plan of %d steps", kills, plan.steps())
 	}

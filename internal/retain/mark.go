@@ -130,7 +130,8 @@ type Manifest struct {
 // Blob is a blob the plan removes.
 type Blob struct {
 	// Repository is one repository whose manifests referenced the blob
-	// ("" for an unreferenced blob of a store whose blobs are shared).
+	// (for an unreferenced blob, any repository: the stores that list
+	// blobs share them between repositories).
 	Repository string `json:"repository"`
 	Digest     string `json:"digest"`
 	Size       int64  `json:"size"`
@@ -240,6 +241,9 @@ type marker struct {
 	blobInfo  map[v1.Hash]Blob // size and one repository
 	queue     []*node
 	opts      Options
+	// anyRepo is a repository of the store, to name a blob no manifest
+	// references (blobs are shared when the store can list them).
+	anyRepo string
 	done      int64
 }
 
@@ -284,6 +288,9 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 		target    v1.Hash
 	}
 	var tags []tagged
+	if len(repos) > 0 {
+		mk.anyRepo = repos[0]
+	}
 	for _, repo := range repos {
 		descs, err := ml.Manifests(ctx, repo)
 		if err != nil {
@@ -638,7 +645,7 @@ func (mk *marker) fill(plan *Plan) {
 				delete(mk.blobInfo, sb.Digest)
 				mk.blobKept[sb.Digest] = KeepBlobYoung
 			case !ofEligible && mk.ret != nil:
-				mk.blobInfo[sb.Digest] = Blob{Digest: sb.Digest.String(), Size: sb.Size, Reason: ReasonUnreferencedBlob}
+				mk.blobInfo[sb.Digest] = Blob{Repository: mk.anyRepo, Digest: sb.Digest.String(), Size: sb.Size, Reason: ReasonUnreferencedBlob}
 			case !ofEligible:
 				mk.blobKept[sb.Digest] = KeepNoRule
 			default:
