@@ -58,6 +58,7 @@ var (
 	reservedTagPattern = regexp.MustCompile(`^sha256-[a-f0-9]{64}`)
 	keepTagPattern     = regexp.MustCompile(`^sha256-([a-f0-9]{64})\.keep$`)
 	linkTagPattern     = regexp.MustCompile(`^sha256-([a-f0-9]{64})\.([a-f0-9]{56})$`)
+	fallbackTagPattern = regexp.MustCompile(`^sha256-[a-f0-9]{64}$`)
 )
 
 func keepTag(d v1.Hash) string              { return "sha256-" + d.Hex + ".keep" }
@@ -123,11 +124,12 @@ type Remote struct {
 	mu      sync.Mutex
 	clients map[string]*http.Client // by repository full name; "" is the catalog
 
-	referrersAPI atomic.Int32 // 0 unknown, 1 supported, 2 not supported
-	present      sync.Map     // repoKey → size: blobs this process saw present
-	holders      sync.Map     // digest → full repository name that has the blob
-	tagLocks     sync.Map     // full name:tag → *sync.Mutex
-	tagDelete    atomic.Int32 // tagDeleteUnknown, tagDeleteYes, tagDeleteNo
+	referrersAPI   atomic.Int32 // 0 unknown, 1 supported, 2 not supported
+	noFallbackTags sync.Map     // full name → true: no link or fallback tags (registry with the API)
+	present        sync.Map     // repoKey → size: blobs this process saw present
+	holders        sync.Map     // digest → full repository name that has the blob
+	tagLocks       sync.Map     // full name:tag → *sync.Mutex
+	tagDelete      atomic.Int32 // tagDeleteUnknown, tagDeleteYes, tagDeleteNo
 }
 
 var (
@@ -643,7 +645,7 @@ func (r *Remote) Resolve(ctx context.Context, repo, tag string) (v1.Descriptor, 
 	if err := r.checkTagArgs(repo, tag); err != nil {
 		return v1.Descriptor{}, err
 	}
-	d, err := r.head(ctx, fullName(r.prefix, repo), tag)
+	d, err := r.headOnce(ctx, fullName(r.prefix, repo), tag)
 	if errors.Is(err, ErrNotFound) {
 		return v1.Descriptor{}, notFound("tag %s:%s", repo, tag)
 	}
@@ -792,7 +794,7 @@ func (r *Remote) Tags(ctx context.Context, repo string) ([]string, error) {
 	if err := ValidateRepository(repo); err != nil {
 		return nil, err
 	}
-	all, err := r.allTags(ctx, fullName(r.prefix, repo))
+	all, err := r.tagList(ctx, fullName(r.prefix, repo))
 	if errors.Is(err, ErrNotFound) {
 		return nil, notFound("repository %s", repo)
 	}
@@ -879,7 +881,7 @@ func (r *Remote) Manifests(ctx context.Context, repo string) ([]v1.Descriptor, e
 		return nil, err
 	}
 	full := fullName(r.prefix, repo)
-	all, err := r.allTags(ctx, full)
+	all, err := r.tagList(ctx, full)
 	if errors.Is(err, ErrNotFound) {
 		return []v1.Descriptor{}, nil
 	}
@@ -901,7 +903,7 @@ func (r *Remote) Manifests(ctx context.Context, repo string) ([]v1.Descriptor, e
 		if isReservedTag(t) || ValidateTag(t) != nil {
 			continue
 		}
-		d, err := r.head(ctx, full, t)
+		d, err := r.headOnce(ctx, full, t)
 		if err != nil {
 			if errors.Is(err, ErrNotFound) {
 				continue // deleted meanwhile
@@ -1025,51 +1027,49 @@ func (r *Remote) Referrers(ctx context.Context, repo string, subject v1.Hash, ar
 	}
 	full := fullName(r.prefix, repo)
 	cands := map[string]bool{} // digests, or tags of per-referrer links
-	useFallback := r.referrersAPI.Load() != referrersAPI
 	if r.referrersAPI.Load() != referrersFallback {
-		resp, err := r.call(ctx, full, http.MethodGet, "/v2/"+full+"/referrers/"+subject.String(), http.Header{"Accept": {string(types.OCIImageIndex)}}, nil, 0, http.StatusOK)
-		switch {
-		case err == nil:
-			ct, _, _ := mime.ParseMediaType(resp.Header.Get("Content-Type"))
-			var idx v1.IndexManifest
-			derr := json.NewDecoder(io.LimitReader(resp.Body, MaxManifestSize)).Decode(&idx)
-			resp.Body.Close()
-			if ct == string(types.OCIImageIndex) && derr == nil {
-				r.referrersAPI.Store(referrersAPI)
-				useFallback = false
-				for _, d := range idx.Manifests {
-					if checkDigest(d.Digest) == nil {
-						cands[d.Digest.String()] = true
-					}
-				}
-			}
-		case errors.Is(err, ErrNotFound):
-			// No API, or (some registries) a repository not known yet.
-		case errkind.Of(err) == errkind.BadInput:
-		default:
-			return nil, err
-		}
-	}
-	if useFallback {
-		all, err := r.allTags(ctx, full)
-		if errors.Is(err, ErrNotFound) {
-			return []v1.Descriptor{}, nil
-		}
+		ans, err := r.askReferrersAPI(ctx, full, subject)
 		if err != nil {
 			return nil, err
 		}
+		for _, d := range ans.digests {
+			cands[d.String()] = true
+		}
+	}
+	// Link tags and the fallback index: on a registry without the API, and
+	// on one with it as long as the repository has any (written before the
+	// registry had the API).
+	if _, clean := r.noFallbackTags.Load(full); r.referrersAPI.Load() != referrersAPI || !clean {
+		all, err := r.tagList(ctx, full)
+		if err != nil && !errors.Is(err, ErrNotFound) {
+			return nil, err
+		}
+		legacy := false
 		for _, t := range all {
-			if m := linkTagPattern.FindStringSubmatch(t); m != nil && m[1] == subject.Hex {
-				cands[t] = true
+			if m := linkTagPattern.FindStringSubmatch(t); m != nil {
+				legacy = true
+				if m[1] == subject.Hex {
+					cands[t] = true
+				}
+			} else if fallbackTagPattern.MatchString(t) {
+				legacy = true
 			}
 		}
-		idx, err := r.fallbackIndex(ctx, full, subject)
+		if err == nil && !legacy && r.referrersAPI.Load() == referrersAPI {
+			r.noFallbackTags.Store(full, true)
+		}
+		idx, err := r.fallbackIndexOnce(ctx, full, subject, all)
 		if err != nil {
 			return nil, err
 		}
 		for _, d := range idx.Manifests {
-			if checkDigest(d.Digest) == nil && !cands[linkTag(subject, d.Digest)] {
+			if checkDigest(d.Digest) == nil {
 				cands[d.Digest.String()] = true
+			}
+		}
+		for k := range cands {
+			if d, err := ParseDigest(k); err == nil {
+				delete(cands, linkTag(subject, d)) // read by digest once
 			}
 		}
 	}
@@ -1081,7 +1081,7 @@ func (r *Remote) Referrers(ctx context.Context, repo string, subject v1.Hash, ar
 	seen := map[v1.Hash]bool{}
 	out := []v1.Descriptor{}
 	for _, k := range keys {
-		raw, mt, err := r.getManifest(ctx, full, k)
+		raw, mt, err := r.candidateManifest(ctx, repo, full, k)
 		if errors.Is(err, ErrNotFound) {
 			continue // listed but gone: stale index entry
 		}
@@ -1102,6 +1102,7 @@ func (r *Remote) Referrers(ctx context.Context, repo string, subject v1.Hash, ar
 		if m := linkTagPattern.FindStringSubmatch(k); m != nil && !strings.HasPrefix(d.Digest.Hex, m[2]) {
 			return nil, errkind.New(errkind.Integrity, "referrer tag %s points at %s, not the referrer it names", k, d.Digest)
 		}
+		keepCandidate(ctx, repo, full, k, raw, d)
 		if mf.Subject == nil || mf.Subject.Digest != subject || seen[d.Digest] {
 			continue
 		}

@@ -45,7 +45,8 @@ func BenchmarkServePages(b *testing.B) {
 // The store is wrapped as modelgate view wraps a remote store
 // (registry.NewMemo). "first" is a fresh server's first view of each page
 // (what every view cost before manifests and blobs were kept in memory);
-// "again" every later view.
+// "again" every later view. requests/op counts the requests a page sends
+// the registry.
 func BenchmarkServePagesRegistry(b *testing.B) {
 	f := demoStore(b)
 	ctx := context.Background()
@@ -57,16 +58,30 @@ func BenchmarkServePagesRegistry(b *testing.B) {
 		b.Cleanup(srv.Close)
 		addr = strings.TrimPrefix(srv.URL, "http://")
 	}
-	r, err := registry.OpenRemote(fmt.Sprintf("%s/mgweb-%d-%d", addr, os.Getpid(), time.Now().UnixNano()), registry.WithRemoteAuth(auth))
+	loc := fmt.Sprintf("%s/mgweb-%d-%d", addr, os.Getpid(), time.Now().UnixNano())
+	w, err := registry.OpenRemote(loc, registry.WithRemoteAuth(auth))
 	if err != nil {
 		b.Fatal(err)
 	}
-	remote := registry.NewRetry(r, registry.RetryOptions{})
-	if _, err := registry.CopyAll(ctx, f.store, remote, registry.CopyOptions{}); err != nil {
+	if _, err := registry.CopyAll(ctx, f.store, registry.NewRetry(w, registry.RetryOptions{}), registry.CopyOptions{}); err != nil {
 		b.Fatal(err)
 	}
+	// A fresh server reads through a fresh store, as a new modelgate view
+	// process does; requests/op counts what one page sends the registry.
+	rl := &requestLog{n: map[string]int{}}
 	fresh := func() *Server {
-		return newServer(b, registry.NewMemo(remote, 64<<20), Options{Policies: []*policy.Policy{f.policy}})
+		r, err := registry.OpenRemote(loc, registry.WithRemoteAuth(auth), registry.WithRemoteTransport(rl))
+		if err != nil {
+			b.Fatal(err)
+		}
+		return newServer(b, registry.NewMemo(registry.NewRetry(r, registry.RetryOptions{}), 64<<20), Options{Policies: []*policy.Policy{f.policy}})
+	}
+	requests := func(b *testing.B) {
+		total := 0
+		for _, n := range rl.reset() {
+			total += n
+		}
+		b.ReportMetric(float64(total)/float64(b.N), "requests/op")
 	}
 	pages := []struct{ name, path string }{
 		{"tags", "/"}, {"candidates", "/candidates"}, {"candidate", "/candidates/promo-scorer@" + f.better},
@@ -74,20 +89,24 @@ func BenchmarkServePagesRegistry(b *testing.B) {
 	}
 	for _, p := range pages {
 		b.Run(p.name+"/first", func(b *testing.B) {
+			rl.reset()
 			for b.Loop() {
 				if r := get(b, fresh(), p.path); r.status != http.StatusOK {
 					b.Fatalf("%s: %d", p.path, r.status)
 				}
 			}
+			requests(b)
 		})
 		s := fresh()
 		get(b, s, p.path)
 		b.Run(p.name+"/again", func(b *testing.B) {
+			rl.reset()
 			for b.Loop() {
 				if r := get(b, s, p.path); r.status != http.StatusOK {
 					b.Fatalf("%s: %d", p.path, r.status)
 				}
 			}
+			requests(b)
 		})
 	}
 }

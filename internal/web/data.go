@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"sort"
+	"sync"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
@@ -77,7 +78,12 @@ func (s *Server) listTags(ctx context.Context) ([]repoTags, error) {
 	if err != nil {
 		return nil, err
 	}
-	var out []repoTags
+	type job struct {
+		repo, tag string
+		row       *tagRow
+		err       error
+	}
+	var jobs []*job
 	for _, repo := range repos {
 		tags, err := s.store.Tags(ctx, repo)
 		if errors.Is(err, registry.ErrNotFound) {
@@ -86,9 +92,20 @@ func (s *Server) listTags(ctx context.Context) ([]repoTags, error) {
 		if err != nil {
 			return nil, err
 		}
-		rt := repoTags{Repo: repo}
 		for _, tag := range tags {
-			row, err := s.tagRow(ctx, repo, tag)
+			jobs = append(jobs, &job{repo: repo, tag: tag})
+		}
+	}
+	// Each row waits on the store most of its time: read them a few at a
+	// time (a registry answers each request on loopback in milliseconds).
+	parallel(len(jobs), rowReaders, func(i int) {
+		jobs[i].row, jobs[i].err = s.tagRow(ctx, jobs[i].repo, jobs[i].tag)
+	})
+	var out []repoTags
+	for i := 0; i < len(jobs); {
+		rt := repoTags{Repo: jobs[i].repo}
+		for ; i < len(jobs) && jobs[i].repo == rt.Repo; i++ {
+			row, err := jobs[i].row, jobs[i].err
 			if errors.Is(err, registry.ErrNotFound) {
 				continue // moved or deleted while we listed
 			}
@@ -107,6 +124,26 @@ func (s *Server) listTags(ctx context.Context) ([]repoTags, error) {
 		}
 	}
 	return out, nil
+}
+
+// rowReaders is how many rows of a page are read from the store at once.
+const rowReaders = 8
+
+// parallel calls fn(0) … fn(n-1), at most width at a time, and waits for
+// all of them.
+func parallel(n, width int, fn func(i int)) {
+	sem := make(chan struct{}, width)
+	var wg sync.WaitGroup
+	for i := range n {
+		wg.Add(1)
+		sem <- struct{}{}
+		go func() {
+			defer wg.Done()
+			defer func() { <-sem }()
+			fn(i)
+		}()
+	}
+	wg.Wait()
 }
 
 func (s *Server) tagRow(ctx context.Context, repo, tag string) (*tagRow, error) {
@@ -284,46 +321,20 @@ func (s *Server) candidates(ctx context.Context, reports []reportRef, pendingOnl
 		}
 		c.Reports++
 	}
-	current := map[string]string{}
+	// Each pair waits on the store most of its time: read a few at once.
+	rows := make([]*candidateRow, len(keys))
+	errs := make([]error, len(keys))
+	parallel(len(keys), rowReaders, func(i int) {
+		rows[i], errs[i] = s.candidate(ctx, byKey[keys[i]], pendingOnly)
+	})
 	var out []candidateRow
-	for _, k := range keys {
-		c := byKey[k]
-		cur, ok := current[c.Target]
-		if !ok {
-			t, _ := registry.ParseRef(c.Target, false)
-			d, err := s.store.Resolve(ctx, t.Repository, t.Tag)
-			switch {
-			case err == nil:
-				cur = d.Digest.String()
-			case !errors.Is(err, registry.ErrNotFound):
-				return nil, err
-			}
-			current[c.Target] = cur
+	for i := range keys {
+		if errs[i] != nil {
+			return nil, errs[i]
 		}
-		c.Current = cur
-		c.Promoted = cur == c.Candidate
-		c.Stale = !c.Promoted && cur != c.Report.Baseline
-		if pendingOnly && c.Promoted {
-			continue
+		if rows[i] != nil {
+			out = append(out, *rows[i])
 		}
-		cd, err := registry.ParseDigest(c.Candidate)
-		if err != nil {
-			continue
-		}
-		a, err := s.read(ctx, c.Repo, cd)
-		if errors.Is(err, registry.ErrNotFound) {
-			continue // a report about a candidate that is not in the store
-		}
-		if err != nil {
-			return nil, err
-		}
-		c.Name, c.Kind = a.Manifest.Annotations[artifact.AnnotationName], a.Kind()
-		av, err := s.approvals(ctx, c.Repo, cd, c.Target, c.Report)
-		if err != nil {
-			return nil, err
-		}
-		c.Approvals = av
-		out = append(out, *c)
 	}
 	sort.SliceStable(out, func(i, j int) bool {
 		if out[i].Target != out[j].Target {
@@ -332,6 +343,44 @@ func (s *Server) candidates(ctx context.Context, reports []reportRef, pendingOnl
 		return newer(out[i].Report, out[j].Report)
 	})
 	return out, nil
+}
+
+// candidate completes one pair: where its target points now, the
+// candidate's name and kind, its approvals. nil when pendingOnly and the
+// target points at the candidate, or when the candidate is not in the
+// store.
+func (s *Server) candidate(ctx context.Context, c *candidateRow, pendingOnly bool) (*candidateRow, error) {
+	t, _ := registry.ParseRef(c.Target, false)
+	d, err := s.store.Resolve(ctx, t.Repository, t.Tag)
+	switch {
+	case err == nil:
+		c.Current = d.Digest.String()
+	case !errors.Is(err, registry.ErrNotFound):
+		return nil, err
+	}
+	c.Promoted = c.Current == c.Candidate
+	c.Stale = !c.Promoted && c.Current != c.Report.Baseline
+	if pendingOnly && c.Promoted {
+		return nil, nil
+	}
+	cd, err := registry.ParseDigest(c.Candidate)
+	if err != nil {
+		return nil, nil
+	}
+	a, err := s.read(ctx, c.Repo, cd)
+	if errors.Is(err, registry.ErrNotFound) {
+		return nil, nil // a report about a candidate that is not in the store
+	}
+	if err != nil {
+		return nil, err
+	}
+	c.Name, c.Kind = a.Manifest.Annotations[artifact.AnnotationName], a.Kind()
+	av, err := s.approvals(ctx, c.Repo, cd, c.Target, c.Report)
+	if err != nil {
+		return nil, err
+	}
+	c.Approvals = av
+	return c, nil
 }
 
 // specOf reads a model's spec without its tensors.
