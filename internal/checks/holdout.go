@@ -7,6 +7,8 @@ import (
 	"sort"
 	"strconv"
 	"strings"
+	"sync"
+	"sync/atomic"
 	"time"
 
 	"github.com/modelgate/modelgate/internal/artifact"
@@ -295,11 +297,11 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		d, l    []float64
 	}
 	var (
-		pc, pb, qc, qb []float32
-		tc, tb         []float32
-		lc, lb, d      []float64
-		w              []float32
-		rows           int64
+		qc, qb    []float32
+		tc, tb    []float32
+		lc, lb, d []float64
+		w         []float32
+		rows      int64
 	)
 	// A shard skips the row groups before its first row unread (a ranged
 	// holdout blob then fetches none of their bytes).
@@ -331,31 +333,17 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	// order: the numbers are those of a sequential run, bit for bit.
 	batches, stopReading := readAhead(ctx, rc, rb, cfg.BatchSize, lo, hi)
 	defer stopReading()
-	for {
-		if err := ctx.Err(); err != nil {
-			return nil, err
-		}
-		fp, ok := <-batches
-		if !ok {
-			if err := ctx.Err(); err != nil {
-				return nil, err
-			}
-			return nil, errkind.New(errkind.Internal, "holdout reader stopped without a reason")
-		}
-		if fp.err != nil {
-			return nil, fp.err
-		}
-		if fp.end {
-			st.Read += fp.readSeconds
-			break
-		}
+	// process adds a batch to the statistics (and, for an encoder, runs
+	// its forward pass); a scorer's predictions are fp.pc and fp.pb.
+	process := func(fp *framePair) error {
 		n := fp.n
+		pc, pb := fp.pc, fp.pb
 		fc, fb := &fp.fc, &fp.fb
 		if shared {
 			fb = fc
 		}
 		if err := st.Repeats.add(fc, n); err != nil {
-			return nil, err
+			return err
 		}
 		tStats := time.Now()
 		forward := 0.0
@@ -373,23 +361,23 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		lc, lb, d = grow64(lc, n), grow64(lb, n), grow64(d, n)
 		groups, err := groupRows(n, func(i int) string { return sliceOf(nnz[i]) }, slice)
 		if err != nil {
-			return nil, err
+			return err
 		}
 		if segments {
 			segGroups, err := groupRows(n, func(i int) string { return segmentOf(fc.Slices[i]) }, slice)
 			if err != nil {
-				return nil, err
+				return err
 			}
 			groups = append(groups, segGroups...)
 		}
 		if encoder {
 			tf := time.Now()
 			if qc, tc, err = reconstruct(runC, cand, &fc.Batch, qc, tc); err != nil {
-				return nil, fmt.Errorf("candidate: %w", err)
+				return fmt.Errorf("candidate: %w", err)
 			}
 			if base != nil {
 				if qb, tb, err = reconstruct(runB, base, &fb.Batch, qb, tb); err != nil {
-					return nil, fmt.Errorf("baseline: %w", err)
+					return fmt.Errorf("baseline: %w", err)
 				}
 			}
 			forward += time.Since(tf).Seconds()
@@ -401,26 +389,26 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			for i := 0; i < n; i++ {
 				acc, err := slice(sliceOf(nnz[i]))
 				if err != nil {
-					return nil, err
+					return err
 				}
 				accs := []*sliceAcc{all, acc}
 				if segments {
 					seg, err := slice(segmentOf(fc.Slices[i]))
 					if err != nil {
-						return nil, err
+						return err
 					}
 					accs = append(accs, seg)
 				}
 				for _, a := range accs {
 					c, err := a.rc.AddRow(qc[i*wc:(i+1)*wc], tc[i*wc:(i+1)*wc])
 					if err != nil {
-						return nil, fmt.Errorf("row %d: %w", rows+int64(i)+1, err)
+						return fmt.Errorf("row %d: %w", rows+int64(i)+1, err)
 					}
 					lc[i] = c
 					if base != nil {
 						b, err := a.rb.AddRow(qb[i*wb:(i+1)*wb], tb[i*wb:(i+1)*wb])
 						if err != nil {
-							return nil, fmt.Errorf("row %d: %w", rows+int64(i)+1, err)
+							return fmt.Errorf("row %d: %w", rows+int64(i)+1, err)
 						}
 						lb[i] = b
 					}
@@ -430,27 +418,17 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				}
 			}
 		} else {
-			tf := time.Now()
-			if pc, err = runC.Run(&fc.Batch, cand.Net.Output(), pc); err != nil {
-				return nil, fmt.Errorf("candidate: %w", err)
-			}
-			if base != nil {
-				if pb, err = runB.Run(&fb.Batch, base.Net.Output(), pb); err != nil {
-					return nil, fmt.Errorf("baseline: %w", err)
-				}
-			}
-			forward += time.Since(tf).Seconds()
 			y := fc.Labels[:n]
 			if err := all.cand.AddBatchLoss(pc[:n], y, w, lc); err != nil {
-				return nil, err
+				return err
 			}
 			if base != nil {
 				if err := all.base.AddBatchLoss(pb[:n], y, w, lb); err != nil {
-					return nil, err
+					return err
 				}
 				if st.Tail != nil {
 					if err := st.Tail.AddBatch(fc.RowIDs[:n], pc[:n], pb[:n], y, w); err != nil {
-						return nil, err
+						return err
 					}
 				}
 			}
@@ -458,11 +436,11 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			for _, g := range groups {
 				gp, gy, gw := gather(pc, g.rows, &scr.p), gather(y, g.rows, &scr.y), gather(w, g.rows, &scr.w)
 				if err := g.acc.cand.AddBatchWithLoss(gp, gy, gw, gather64(lc, g.rows, &scr.l)); err != nil {
-					return nil, err
+					return err
 				}
 				if base != nil {
 					if err := g.acc.base.AddBatchWithLoss(gather(pb, g.rows, &scr.p), gy, gw, gather64(lb, g.rows, &scr.l)); err != nil {
-						return nil, err
+						return err
 					}
 				}
 			}
@@ -480,10 +458,10 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				d[i] = lc[i] - lb[i]
 			}
 			if err := addPaired(all.paired, fc.RowIDs[:n], fc.Clusters, d, w); err != nil {
-				return nil, err
+				return err
 			}
 			if err := diffHist.AddBatch(d, w); err != nil {
-				return nil, err
+				return err
 			}
 			for _, g := range groups {
 				ids := scr.ids[:0]
@@ -498,17 +476,111 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 				}
 				scr.ids, scr.d, scr.cl = ids, ds, cl
 				if err := addPaired(g.acc.paired, ids, cl, ds, gather(w, g.rows, &scr.w)); err != nil {
-					return nil, err
+					return err
 				}
 			}
 		}
-		st.Forward += forward
+		if encoder { // a scorer's forward pass is timed where it runs
+			st.Forward += forward
+		}
 		st.Stats += time.Since(tStats).Seconds() - forward
 		rows += int64(n)
 		if progress != nil {
 			progress(rows, hold.Info.Rows)
 		}
-		fp.release()
+		return nil
+	}
+	// A scorer's batches go through a pipeline: this goroutine runs the
+	// forward pass of a batch while another adds the one before to the
+	// statistics (and the reader reads the one after). Each stage takes
+	// the batches in file order, so the numbers are a sequential run's.
+	// An encoder's forward pass and statistics run here, in turn.
+	var (
+		toStats   chan *framePair
+		statsDone chan struct{}
+		statsErr  error
+		statsBad  atomic.Bool
+	)
+	if !encoder {
+		toStats, statsDone = make(chan *framePair, 1), make(chan struct{})
+		go func() {
+			defer close(statsDone)
+			for fp := range toStats {
+				if !statsBad.Load() {
+					if err := process(fp); err != nil {
+						statsErr = err
+						statsBad.Store(true)
+					}
+				}
+				fp.release()
+			}
+		}()
+	}
+	// finish waits for the statistics of the batches sent so far; an
+	// error there came first in file order.
+	finish := sync.OnceValue(func() error {
+		if toStats != nil {
+			close(toStats)
+			<-statsDone
+		}
+		return statsErr
+	})
+	defer finish()
+	fail := func(err error) (*holdoutState, error) {
+		if serr := finish(); serr != nil {
+			return nil, serr
+		}
+		return nil, err
+	}
+	for {
+		if err := ctx.Err(); err != nil {
+			return fail(err)
+		}
+		if statsBad.Load() {
+			return fail(nil)
+		}
+		fp, ok := <-batches
+		if !ok {
+			if err := ctx.Err(); err != nil {
+				return fail(err)
+			}
+			return fail(errkind.New(errkind.Internal, "holdout reader stopped without a reason"))
+		}
+		if fp.err != nil {
+			return fail(fp.err)
+		}
+		if fp.end {
+			st.Read += fp.readSeconds
+			break
+		}
+		if encoder {
+			if err := process(fp); err != nil {
+				return nil, err
+			}
+			fp.release()
+			continue
+		}
+		fc, fb := &fp.fc, &fp.fb
+		if shared {
+			fb = fc
+		}
+		tf := time.Now()
+		var err error
+		if fp.pc, err = runC.Run(&fc.Batch, cand.Net.Output(), fp.pc); err != nil {
+			fp.release()
+			return fail(fmt.Errorf("candidate: %w", err))
+		}
+		if base != nil {
+			if fp.pb, err = runB.Run(&fb.Batch, base.Net.Output(), fp.pb); err != nil {
+				fp.release()
+				return fail(fmt.Errorf("baseline: %w", err))
+			}
+		}
+		st.Forward += time.Since(tf).Seconds()
+		toStats <- fp
+	}
+	if err := finish(); err != nil {
+		return nil, err
 	}
 	st.Rows = rows
 	st.Anomaly, st.Lower = anomaly, lower

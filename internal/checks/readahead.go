@@ -12,15 +12,19 @@ import (
 )
 
 // readAheadDepth is how many batches the reader may hold at once: one
-// being read, one waiting, one being scored. Memory stays bounded by the
-// batch size times this depth.
-const readAheadDepth = 3
+// being read, one through the forward pass, one in the statistics and one
+// waiting between two of them. Memory stays bounded by the batch size
+// times this depth.
+const readAheadDepth = 4
 
 // framePair is one batch as read for the candidate (fc) and, when the
 // baseline reads the holdout differently, for the baseline (fb).
 type framePair struct {
 	fc, fb data.Frame
 	n      int
+	// pc and pb are the candidate's and the baseline's predictions for
+	// the batch (a scorer's), kept with it for the statistics.
+	pc, pb []float32
 	// end: no more batches; readSeconds is then the reader's total time.
 	end         bool
 	readSeconds float64
