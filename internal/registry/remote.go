@@ -42,17 +42,22 @@ const (
 // "sha256-<64 hex>", the prefix the OCI distribution spec (v1.1, "Referrers
 // Tag Schema") already gives to the referrers fallback index:
 //
-//   - sha256-<subject>: the spec's fallback referrers index (an OCI image
-//     index of the referrers of subject), for registries without the
-//     referrers API; other OCI tools read it.
 //   - sha256-<manifest>.keep: one per manifest the store puts, pointing at
-//     it, so that every manifest is listable (Manifests) and a registry's
-//     garbage collector never removes an untagged report or approval.
+//     it, on every registry: the API lists tags, not manifests, so this is
+//     how every manifest is listed (Manifests), and a registry's garbage
+//     collection of untagged manifests (distribution's garbage-collect
+//     --delete-untagged, which does not spare referrers) never removes a
+//     report, approval or release record.
+//   - sha256-<subject>: the spec's fallback referrers index (an OCI image
+//     index of the referrers of subject), only on registries without the
+//     referrers API; other OCI tools read it.
 //   - sha256-<subject>.<first 56 hex of the referrer>: one per referrer,
-//     written once and never rewritten, so that a referrer is found even
-//     when concurrent writers lost it from the read-modify-write fallback
-//     index.
+//     only on registries without the referrers API, written once and never
+//     rewritten, so that a referrer is found even when concurrent writers
+//     lost it from the read-modify-write fallback index.
 //
+// Referrers reads the last two also on a registry with the API while the
+// repository has any (written before the registry had the API).
 // Tags lists none of them; Tag and SwapTag refuse them.
 var (
 	reservedTagPattern = regexp.MustCompile(`^sha256-[a-f0-9]{64}`)
