@@ -30,7 +30,7 @@ const (
 func Output(command string) string { return "output-" + command + ".schema.json" }
 
 // OutputCommands are the commands whose --json output has a schema.
-var OutputCommands = []string{"approve", "copy", "demo", "diff", "freeze", "gate", "keygen", "log", "ls", "policy", "promote", "pull", "push", "reclaim", "rollback", "score", "show", "verify"}
+var OutputCommands = []string{"approve", "copy", "demo", "diff", "freeze", "gate", "keygen", "log", "ls", "policy", "promote", "pull", "push", "reclaim", "rollback", "score", "show", "untag", "verify"}
 
 var (
 	mu       sync.Mutex

@@ -530,6 +530,13 @@ rules:
 		{name: "rollback: --to a digest never released on the tag", store: w.store, args: []string{"rollback", "tiny-encoder:prod", "--reason", "x", "--to", unreleased}, code: 2, want: []string{unreleased, "never released"}},
 		{name: "rollback: malformed --to digest", args: []string{"rollback", "tiny-scorer:prod", "--reason", "x", "--to", "sha256:1234"}, code: 2, want: []string{"sha256:1234"}},
 		{name: "log: a digest instead of a tag", args: []string{"log", "tiny-scorer@" + missingDigest}, code: 2, want: []string{"NAME:TAG"}},
+		{name: "untag: a tag with a release log", store: w.store, args: []string{"untag", "tiny-encoder:prod"}, code: 4, want: []string{"tiny-encoder:prod", "release log"}},
+		{name: "untag: a release head pointer", store: w.store, args: []string{"untag", "tiny-encoder:release-prod"}, code: 2, want: []string{"release-prod", "reserved"}},
+		{name: "untag: a sha256- bookkeeping tag", args: []string{"untag", "tiny-encoder:sha256-" + strings.TrimPrefix(missingDigest, "sha256:")}, code: 2, want: []string{"sha256-", "reserved"}},
+		{name: "untag: the tag moved since --expect", args: []string{"untag", "tiny-encoder:v1", "--expect", missingDigest}, code: 3, want: []string{"tiny-encoder:v1", missingDigest}},
+		{name: "untag: malformed --expect", args: []string{"untag", "tiny-encoder:v1", "--expect", "sha256:1234"}, code: 2, want: []string{"--expect", "sha256:1234"}},
+		{name: "untag: tag missing", args: []string{"untag", "tiny-encoder:nope"}, code: 2, want: []string{"tiny-encoder:nope"}},
+		{name: "untag: a digest instead of a tag", args: []string{"untag", "tiny-encoder@" + missingDigest}, code: 2, want: []string{"NAME:TAG"}},
 
 		// Flags.
 		{name: "unknown flag", args: []string{"verify", "--frobnicate"}, code: 2, want: []string{"--frobnicate"}},

@@ -1,6 +1,7 @@
 package main
 
 import (
+	"encoding/json"
 	"net/http/httptest"
 	"path/filepath"
 	"strings"
@@ -28,6 +29,22 @@ func TestFullFlowOnEveryStore(t *testing.T) {
 				}
 			}
 			mustMG(t, k.loc, "log", "promo-scorer:prod", "--policy", filepath.Join(work, "policies", "promo-scorer.yaml"))
+			// Untag a candidate (docker-registry deletes tags only with
+			// their manifest: the output must say so), and refuse the
+			// released tag; verify below runs after the removal.
+			var un struct{ ManifestKept bool }
+			if err := json.Unmarshal([]byte(mustMG(t, k.loc, "untag", "promo-scorer:cand-over-budget", "--json").stdout), &un); err != nil {
+				t.Fatal(err)
+			}
+			if un.ManifestKept == (k.name == "docker-registry") {
+				t.Errorf("%s: untag says manifestKept %v", k.name, un.ManifestKept)
+			}
+			if r := mg(t, k.loc, "show", "promo-scorer:cand-over-budget"); r.code != 2 {
+				t.Errorf("%s: show of the removed tag: exit %d, want 2", k.name, r.code)
+			}
+			if r := mg(t, k.loc, "untag", "promo-scorer:prod"); r.code != 4 || !strings.Contains(r.stderr, "release log") {
+				t.Errorf("%s: untag of the released tag: exit %d, want 4\n%s", k.name, r.code, r.stderr)
+			}
 			if k.name == "registry-no-catalog" {
 				r := mg(t, k.loc, "verify")
 				if r.code != 2 || !strings.Contains(r.stderr, "does not list repositories") || !strings.Contains(r.stderr, "modelgate verify NAME") {
