@@ -216,6 +216,10 @@ func runPolicyCheck(ctx context.Context, g *globals, o *policyCheckOptions, path
 			fmt.Fprintf(w, "  %s\t%s\t%s\t%s\n", s.Path, policyscaffold.FormatValue(s.Value), s.Source, def)
 		}
 	}
+	fmt.Fprintf(w, "\nretention\n")
+	for _, f := range rep.Retention {
+		fmt.Fprintf(w, "  %s\t%s\n", strings.ToUpper(f.Status), f.Message)
+	}
 	if err := w.Flush(); err != nil {
 		return err
 	}

@@ -41,6 +41,10 @@ type CheckReport struct {
 	Name   string       `json:"name"`
 	Digest string       `json:"digest"`
 	Rules  []RuleReport `json:"rules"`
+	// Retention says what the policy's retention section lets reclaim
+	// remove, one finding per setting; a repository pattern that matches
+	// none of the store's repositories warns.
+	Retention []Finding `json:"retention"`
 	// Failed counts the findings of status fail over every rule.
 	Failed int `json:"failed"`
 	Warned int `json:"warned"`
@@ -104,7 +108,42 @@ func Check(ctx context.Context, store registry.Store, path, target string) (*Che
 	if !matched {
 		return nil, errkind.New(errkind.BadInput, "policy %s has no rule for %s", path, target)
 	}
+	rep.Retention = checkRetention(ctx, store, p.Retention, func() { rep.Warned++ })
 	return rep, nil
+}
+
+// checkRetention describes a retention section as findings.
+func checkRetention(ctx context.Context, store registry.Store, r *policy.Retention, warned func()) []Finding {
+	if r == nil {
+		return []Finding{{StatusOK, "no retention section: reclaim finds nothing eligible under this policy"}}
+	}
+	out := []Finding{{StatusOK, fmt.Sprintf("grace period %s: nothing younger is eligible", r.Grace)}}
+	repos, err := store.Repositories(ctx)
+	for i := range r.Repositories {
+		rr := &r.Repositories[i]
+		msg := fmt.Sprintf("repository %s: keeps the newest %d candidates nothing else keeps", rr.Pattern, rr.KeepCandidates)
+		if len(rr.ExpireTags) == 0 {
+			msg += "; no tag expires"
+		}
+		for _, e := range rr.ExpireTags {
+			msg += fmt.Sprintf("; tags %s expire after %s", e.Pattern, e.After)
+		}
+		out = append(out, Finding{StatusOK, msg})
+		if err != nil {
+			continue // a registry without a catalog: nothing to compare with
+		}
+		matches := false
+		for _, repo := range repos {
+			if r.For(repo) == rr {
+				matches = true
+			}
+		}
+		if !matches {
+			out = append(out, Finding{StatusWarn, fmt.Sprintf("retention entry %s applies to none of the store's repositories (an earlier entry may match them first)", rr.Pattern)})
+			warned()
+		}
+	}
+	return out
 }
 
 func checkRule(ctx context.Context, store registry.Store, r *policy.Rule, add func(status, format string, args ...any)) {

@@ -203,3 +203,48 @@ func TestCheckFindings(t *testing.T) {
 		t.Fatalf("unreadable key file: %v", err)
 	}
 }
+
+func TestCheckRetention(t *testing.T) {
+	ctx := context.Background()
+	s, dir := world(t)
+	body := "schemaVersion: 1\nname: t\nrules:\n  - target: promo-scorer:prod\n    kind: scorer\n    holdout: promo-holdout:v1\n"
+	p := filepath.Join(dir, "plain.yaml")
+	if err := os.WriteFile(p, []byte(body), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	rep, err := Check(ctx, s, p, "")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(rep.Retention) != 1 || !strings.Contains(rep.Retention[0].Message, "nothing eligible") {
+		t.Errorf("without retention: %+v", rep.Retention)
+	}
+	p = filepath.Join(dir, "retention.yaml")
+	body += "retention:\n  repositories:\n    - {repository: promo-scorer, expireTags: [{tags: \"ci-*\", after: 720h}]}\n    - {repository: \"promo-*\", keepCandidates: 2}\n    - {repository: nowhere}\n"
+	if err := os.WriteFile(p, []byte(body), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	warned := rep.Warned
+	if rep, err = Check(ctx, s, p, ""); err != nil {
+		t.Fatal(err)
+	}
+	var text []string
+	for _, f := range rep.Retention {
+		text = append(text, f.Status+" "+f.Message)
+	}
+	got := strings.Join(text, "\n")
+	for _, want := range []string{
+		"ok grace period 168h0m0s",
+		"ok repository promo-scorer: keeps the newest 10 candidates nothing else keeps; tags ci-* expire after 720h0m0s",
+		"ok repository promo-*: keeps the newest 2 candidates nothing else keeps; no tag expires",
+		// promo-holdout matches promo-*; nowhere matches nothing.
+		"warn retention entry nowhere applies to none",
+	} {
+		if !strings.Contains(got, want) {
+			t.Errorf("retention findings lack %q:\n%s", want, got)
+		}
+	}
+	if strings.Contains(got, "warn retention entry promo-*") || rep.Warned != warned+1 {
+		t.Errorf("warnings: %d (was %d)\n%s", rep.Warned, warned, got)
+	}
+}

@@ -244,7 +244,7 @@ type marker struct {
 	// anyRepo is a repository of the store, to name a blob no manifest
 	// references (blobs are shared when the store can list them).
 	anyRepo string
-	done      int64
+	done    int64
 }
 
 // Mark reads the whole store and returns the plan pol's retention makes
@@ -400,6 +400,9 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 		return nil, err
 	}
 	mk.fill(plan)
+	if opts.Blobs == nil && len(plan.Blobs) > 0 {
+		plan.Notes = append(plan.Notes, "the store does not list its blobs: the blobs counted are those of eligible manifests only, and an OCI registry removes none (its own garbage collection reclaims their space once the manifests are gone)")
+	}
 	plan.known = map[key]bool{}
 	for k := range mk.nodes {
 		plan.known[k] = true

@@ -21,6 +21,12 @@ type Remover interface {
 	DeleteBlob(ctx context.Context, repo string, dgst v1.Hash) error
 }
 
+// recheckEvery is how many blobs Sweep removes between two looks for
+// manifests pushed since the mark (our own choice: a look lists every
+// repository's manifests, so it costs about as much as removing a few
+// hundred blobs).
+const recheckEvery = 256
+
 // Result is what Sweep did.
 type Result struct {
 	Tags      int   `json:"tags"`
@@ -59,9 +65,9 @@ type SweepOptions struct {
 //
 // What changed since the mark is respected: a manifest a tag now names,
 // or that has a referrer the plan did not list, is left with its blobs;
-// before the blobs go, every manifest the store holds and the plan had
-// not seen (a push since the mark) is read, and the blobs it references
-// are left too.
+// before the blobs go, and again every recheckEvery blobs, every manifest
+// the store holds and the plan had not seen (a push since the mark) is
+// read, and the blobs it references are left too.
 func Sweep(ctx context.Context, store registry.Store, plan *Plan, opts SweepOptions) (*Result, error) {
 	rm, ok := store.(Remover)
 	if !ok {
@@ -146,7 +152,14 @@ func Sweep(ctx context.Context, store registry.Store, plan *Plan, opts SweepOpti
 		return res, err
 	}
 	removed := map[v1.Hash]bool{}
-	for _, b := range plan.Blobs {
+	for i, b := range plan.Blobs {
+		if i > 0 && i%recheckEvery == 0 {
+			// Look again for pushes since the last look: the window in
+			// which a push can reuse a blob about to go stays short.
+			if hold, err = heldBlobs(ctx, store, plan, eligible); err != nil {
+				return res, err
+			}
+		}
 		d, _ := v1.NewHash(b.Digest)
 		if hold[d] {
 			res.Skipped = append(res.Skipped, Skip{"blob " + b.Digest, "a manifest that stays references it"})
