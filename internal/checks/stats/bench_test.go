@@ -47,6 +47,29 @@ func BenchmarkBinaryAddBatch(b *testing.B) {
 	}
 }
 
+// BenchmarkBinaryAddBatchMany: each batch of 4,096 rows added to 12
+// accumulators in turn, as a gate adds its rows overall and per slice for
+// two models (12 MiB of AUC histograms, more than a core's cache).
+func BenchmarkBinaryAddBatchMany(b *testing.B) {
+	r := benchScored()
+	accs := make([]*Binary, 12)
+	for i := range accs {
+		accs[i] = NewBinary()
+	}
+	stop := threadCPU()
+	for b.Loop() {
+		for s := 0; s < benchRows; s += 4096 {
+			e := min(s+4096, benchRows)
+			for _, acc := range accs {
+				if err := acc.AddBatch(r.cand[s:e], r.y[s:e], r.w[s:e]); err != nil {
+					b.Fatal(err)
+				}
+			}
+		}
+	}
+	reportRows(b, benchRows*len(accs), stop())
+}
+
 // BenchmarkPairedAddBatch: the paired accumulator over 1M rows with R
 // bootstrap replicates (R draws per row).
 func BenchmarkPairedAddBatch(b *testing.B) {
