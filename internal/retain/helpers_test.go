@@ -113,8 +113,9 @@ type scene struct {
 	pol   *policy.Policy
 	base  *modeldir.Model
 	// released lists every digest ever promoted to prod.
-	released []v1.Hash
-	cands    []v1.Hash
+	released  []v1.Hash
+	cands     []v1.Hash
+	rollbacks int
 }
 
 // start is when the simulated history begins.
@@ -218,6 +219,7 @@ func (s *scene) rollback() {
 	if _, err := release.Rollback(s.ctx, s.store, release.RollbackRequest{Target: prod, Reason: "on-call: listeners saw worse shows", User: "oncall", Now: s.store.clock()}); err != nil {
 		s.t.Fatalf("rollback: %v", err)
 	}
+	s.rollbacks++
 }
 
 // history pushes n candidates, one every interval, each with a gate

@@ -73,12 +73,23 @@ func (s *scene) check(k mustKeep) {
 	if !rep.OK() {
 		s.t.Errorf("verify: %d damaged: %+v", rep.Damage, rep.Findings)
 	}
-	lr, err := release.Log(s.ctx, s.store, prod, release.LogOptions{})
+	// log verifies on every tag (prod has the release log; the others
+	// were only pushed and say so).
+	tags, err := s.store.Tags(s.ctx, encRepo)
 	if err != nil {
 		s.t.Fatal(err)
 	}
-	if lr.Worst() != 0 || len(lr.Entries) == 0 {
-		s.t.Errorf("log of %s: %d entries, findings %+v", prod, len(lr.Entries), lr.Findings)
+	for _, tag := range tags {
+		if registry.IsReservedTag(tag) {
+			continue
+		}
+		lr, err := release.Log(s.ctx, s.store, registry.Ref{Repository: encRepo, Tag: tag}, release.LogOptions{})
+		if err != nil {
+			s.t.Fatalf("log of %s: %v", tag, err)
+		}
+		if lr.Worst() != 0 || (tag == prod.Tag) == lr.NoLog || (tag == prod.Tag && len(lr.Entries) != len(s.released)+s.rollbacks) {
+			s.t.Errorf("log of %s: %d entries, no log %v, findings %+v", tag, len(lr.Entries), lr.NoLog, lr.Findings)
+		}
 	}
 	for _, group := range [][]v1.Hash{k.records, k.released, k.reports} {
 		for _, d := range group {
