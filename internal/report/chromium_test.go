@@ -102,6 +102,13 @@ func TestChromiumLoadsPage(t *testing.T) {
 				t.Fatalf("screenshot is not a PNG: %v", err)
 			}
 			checkScreenshot(t, img, tc.r.Verdict == checks.VerdictPass)
+
+			// At 1000 CSS px the page's 24 px right padding stays blank
+			// all the way down: no table (the slice table has ten columns)
+			// or plot runs past the content's edge.
+			narrow := filepath.Join(dir, tc.name+"-1000.png")
+			runChromium(t, bin, page, "--screenshot="+narrow, "--window-size=1000,9000", "--hide-scrollbars")
+			checkRightPadding(t, narrow, 1000-24)
 			if *keep != "" {
 				raw, _ := os.ReadFile(shot)
 				os.WriteFile(filepath.Join(*keep, tc.name+".png"), raw, 0o644)
@@ -152,5 +159,29 @@ func checkScreenshot(t *testing.T, img image.Image, pass bool) {
 	}
 	if found < 1000 {
 		t.Errorf("the verdict banner's colour #%02x%02x%02x covers only %d sampled pixels at the top", want[0], want[1], want[2], found)
+	}
+}
+
+// checkRightPadding asserts that every pixel of the screenshot file right
+// of x is white.
+func checkRightPadding(t *testing.T, file string, x int) {
+	t.Helper()
+	f, err := os.Open(file)
+	if err != nil {
+		t.Fatalf("no screenshot: %v", err)
+	}
+	defer f.Close()
+	img, err := png.Decode(f)
+	if err != nil {
+		t.Fatalf("screenshot is not a PNG: %v", err)
+	}
+	b := img.Bounds()
+	for y := b.Min.Y; y < b.Max.Y; y++ {
+		for xx := x + 1; xx < b.Max.X; xx++ {
+			if r, g, bl, _ := img.At(xx, y).RGBA(); r>>8 != 0xff || g>>8 != 0xff || bl>>8 != 0xff {
+				t.Errorf("at 1000 px the page runs past its content's right edge: pixel (%d, %d) is not white", xx, y)
+				return
+			}
+		}
 	}
 }

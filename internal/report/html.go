@@ -19,7 +19,8 @@ import (
 // SVG. The page makes no request, needs no script and embeds no font: the
 // plots are laid out with Liberation Sans metrics and drawn in the first
 // of Liberation Sans, Arimo, Arial or Helvetica the reader's system has
-// (the four share those metrics), else its sans-serif. Every string from the
+// (the four share those metrics), else its sans-serif, each text squeezed
+// to its laid-out width (fitText). Every string from the
 // report is HTML-escaped. A plot that cannot be drawn is replaced by a
 // note; the error is returned only when writing fails.
 func HTML(w io.Writer, r *checks.Report) error {

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"encoding/xml"
 	"flag"
+	"fmt"
 	"io"
 	"math"
 	"os"
@@ -11,6 +12,9 @@ import (
 	"regexp"
 	"strings"
 	"testing"
+
+	"gonum.org/v1/plot/font"
+	"gonum.org/v1/plot/vg"
 
 	"github.com/modelgate/modelgate/internal/checks"
 	"github.com/modelgate/modelgate/internal/report/reporttest"
@@ -292,4 +296,31 @@ func TestCalibrationCounts(t *testing.T) {
 			t.Errorf("countLabel(%v) = %q, want %q", v, got, want)
 		}
 	}
+}
+
+// TestPlotTextFitted: every text element of every plot carries the width
+// it was laid out with (Liberation Sans metrics, gonum's own font) as its
+// textLength, so a browser drawing it in a wider fallback font (DejaVu
+// Sans on Debian) keeps it in the place the layout gave it.
+func TestPlotTextFitted(t *testing.T) {
+	var b bytes.Buffer
+	if err := HTML(&b, reporttest.Scorer()); err != nil {
+		t.Fatal(err)
+	}
+	page := b.String()
+	texts := strings.Count(page, "<text ")
+	fitted := regexp.MustCompile(`<text [^>]*textLength="([0-9.]+)" lengthAdjust="spacingAndGlyphs">([^<]+)</text>`).FindAllStringSubmatch(page, -1)
+	if texts < 50 || len(fitted) != texts {
+		t.Fatalf("%d of %d text elements fitted, want all (and 50 or more)", len(fitted), texts)
+	}
+	face := font.DefaultCache.Lookup(plotFont, vg.Points(9))
+	for _, m := range fitted {
+		if m[2] == "perfect calibration" { // a legend entry, 9 pt
+			if want := fmt.Sprintf("%.2f", face.Width(m[2]).Points()); m[1] != want {
+				t.Errorf("legend %q: textLength %s, want %s", m[2], m[1], want)
+			}
+			return
+		}
+	}
+	t.Error("no legend entry \"perfect calibration\" found")
 }

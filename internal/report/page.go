@@ -43,6 +43,7 @@ th,td{border:1px solid #c8c8c8;padding:.3rem .5rem;text-align:left;vertical-alig
 td.wrap{overflow-wrap:anywhere}
 thead th{background:#f2f4f7}
 tbody th{background:#fafafa;font-weight:600;white-space:nowrap}
+tbody th.wrap{white-space:normal}
 td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 tr.row-fail td,tr.row-fail th{background:#fff3f2}
 tr.row-warn td,tr.row-warn th{background:#fffaeb}

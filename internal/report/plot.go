@@ -7,6 +7,7 @@ import (
 	"html/template"
 	"image/color"
 	"math"
+	"regexp"
 	"strconv"
 	"strings"
 
@@ -100,7 +101,7 @@ func render(p *plot.Plot, id, title, desc string, w, h vg.Length) (fig figure) {
 		fig.Err = "no svg element in the plotter's output"
 		return fig
 	}
-	s = s[i:]
+	s = fitText(s[i:])
 	end := strings.IndexByte(s, '>')
 	// Shown at up to 1.8 CSS px per point, narrower on a narrow page.
 	head := s[:end] + fmt.Sprintf(` class="plot" style="max-width:%.0fpx" role="img" aria-labelledby="%s-t %s-d"`, 1.8*w.Points(), id, id) + ">"
@@ -108,6 +109,33 @@ func render(p *plot.Plot, id, title, desc string, w, h vg.Length) (fig figure) {
 		id, html.EscapeString(clean(title)), id, html.EscapeString(clean(desc)))
 	fig.SVG = template.HTML(head + s[end+1:])
 	return fig
+}
+
+// svgText matches a text element as vgsvg writes it: position, style
+// with the font size in points, escaped text.
+var svgText = regexp.MustCompile(`(<text x="[^"]*" y="[^"]*" transform="scale\(1, -1\)"\s*style="[^"]*font-size:([0-9.eE+-]+)px[^"]*")>([^<]*)</text>`)
+
+// fitText gives every text element the width the plot was laid out with
+// (Liberation Sans metrics) as its textLength: a reader without Liberation
+// Sans or a metric twin draws the text in another font (Debian's fallback,
+// DejaVu Sans, is about a tenth wider), which would otherwise run into the
+// legend's swatches, the data and the canvas edge. lengthAdjust squeezes
+// or stretches the glyphs to that width (SVG 1.1, section 10.5).
+func fitText(svg string) string {
+	return svgText.ReplaceAllStringFunc(svg, func(m string) string {
+		sm := svgText.FindStringSubmatch(m)
+		size, err := strconv.ParseFloat(sm[2], 64)
+		text := html.UnescapeString(sm[3])
+		if err != nil || size <= 0 || strings.TrimSpace(text) == "" {
+			return m
+		}
+		face := font.DefaultCache.Lookup(plotFont, vg.Points(size))
+		w := face.Width(text).Points()
+		if w <= 0 || !finite(w) {
+			return m
+		}
+		return fmt.Sprintf(`%s textLength="%.2f" lengthAdjust="spacingAndGlyphs">%s</text>`, sm[1], w, sm[3])
+	})
 }
 
 func finite(vs ...float64) bool {
