@@ -315,40 +315,6 @@ func TestConcurrentPushes(t *testing.T) {
 	mustMG(t, store, "verify")
 }
 
-// bigEncoder writes an encoder with a vocabulary large enough that a push
-// takes long enough to be killed part way (a few MB of tensors).
-func bigEncoder(t *testing.T, root, name string, seed uint64, vocab int) string {
-	t.Helper()
-	m := fixture.EncoderModel()
-	m.Spec.Name = name
-	in := &m.Spec.Inputs.Sparse[0]
-	in.VocabularySize = vocab
-	const width = 64
-	m.Spec.Tensors[0].Shape = []int{vocab + 1, width}
-	m.Spec.Tensors[1].Shape = []int{width}
-	m.Spec.Tensors[2].Shape = []int{vocab + 1}
-	m.Spec.Files.Probes = ""
-	m.Probes = nil
-	r := rand.New(rand.NewPCG(seed, 9))
-	fill := func(n int) []float32 {
-		v := make([]float32, n)
-		for i := range v {
-			v[i] = float32(r.NormFloat64())
-		}
-		return v
-	}
-	m.Tensors = map[string][]float32{"enc.w": fill((vocab + 1) * width), "enc.b": fill(width), "dec.b": fill(vocab + 1)}
-	m.Vocabulary = make([]string, vocab)
-	for i := range m.Vocabulary {
-		m.Vocabulary[i] = fmt.Sprintf("show-%05d", i)
-	}
-	dir := filepath.Join(root, name)
-	if err := modeldir.Write(dir, m); err != nil {
-		t.Fatal(err)
-	}
-	return dir
-}
-
 // TestCrashDuringPush kills `push` with SIGKILL at many points; afterwards
 // verify passes and the tag points at its old or its new target.
 func TestCrashDuringPush(t *testing.T) {
@@ -445,11 +411,11 @@ func TestPushLinkInsideDirectory(t *testing.T) {
 // the file system, and changes nothing.
 func TestReadOnlyStore(t *testing.T) {
 	w := newReleaseWorld(t, 0)
-	w.push(0, "tiny-encoder:prod")
-	w.push(1, "")
-	w.gate("tiny-encoder:v1")
-	mustMG(t, w.store, "promote", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita"))
-	w.push(2, "")
+	w.Push(0, "tiny-encoder:prod")
+	w.Push(1, "")
+	w.Gate("tiny-encoder:v1")
+	mustMG(t, w.Store, "promote", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("rita"))
+	w.Push(2, "")
 
 	// A folder every user may enter, holding a copy of the binary and the
 	// store (t.TempDir folders are private to the test's user).
@@ -493,7 +459,7 @@ func TestReadOnlyStore(t *testing.T) {
 
 	t.Run("no write permission", func(t *testing.T) {
 		store := filepath.Join(shared, "perm-store")
-		if out, err := exec.Command("cp", "-a", w.store, store).CombinedOutput(); err != nil {
+		if out, err := exec.Command("cp", "-a", w.Store, store).CombinedOutput(); err != nil {
 			t.Fatalf("cp: %v %s", err, out)
 		}
 		if out, err := exec.Command("chmod", "-R", "a+rX,a-w", store).CombinedOutput(); err != nil {
@@ -528,7 +494,7 @@ func TestReadOnlyStore(t *testing.T) {
 		}
 		mnt := filepath.Join(shared, "ro-mount")
 		os.Mkdir(mnt, 0o755)
-		if out, err := exec.Command("mount", "--bind", w.store, mnt).CombinedOutput(); err != nil {
+		if out, err := exec.Command("mount", "--bind", w.Store, mnt).CombinedOutput(); err != nil {
 			t.Fatalf("mount --bind: %v %s", err, out)
 		}
 		t.Cleanup(func() { exec.Command("umount", mnt).Run() })

@@ -26,15 +26,15 @@ import (
 
 // firstRelease pushes variant 0 as tiny-encoder:prod and promotes variant 1
 // over it, gated and approved by ana and ben, signed by rita: the first
-// promote binds w.policy to the tag. It returns the digests of 0 and 1.
+// promote binds w.Policy to the tag. It returns the digests of 0 and 1.
 func firstRelease(t *testing.T, w *releaseWorld) (string, string) {
 	t.Helper()
-	base := w.push(0, "tiny-encoder:prod")
-	v1 := w.push(1, "")
-	w.gate("tiny-encoder:v1")
-	wantExit(t, w.approve("tiny-encoder:v1", "ana"), 0)
-	wantExit(t, w.approve("tiny-encoder:v1", "ben"), 0)
-	wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 0, "promoted")
+	base := w.Push(0, "tiny-encoder:prod")
+	v1 := w.Push(1, "")
+	w.Gate("tiny-encoder:v1")
+	wantExit(t, w.Approve("tiny-encoder:v1", "ana"), 0)
+	wantExit(t, w.Approve("tiny-encoder:v1", "ben"), 0)
+	wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita")), 0, "promoted")
 	return base, v1
 }
 
@@ -42,7 +42,7 @@ func firstRelease(t *testing.T, w *releaseWorld) (string, string) {
 // approvals required, no report signers.
 func weakPolicy(t *testing.T, w *releaseWorld) string {
 	t.Helper()
-	p := filepath.Join(w.dir, "my-policy.yaml")
+	p := filepath.Join(w.Dir, "my-policy.yaml")
 	text := `schemaVersion: 1
 name: tiny-release
 rules:
@@ -67,29 +67,29 @@ rules:
 func TestOwnPolicyFileRefused(t *testing.T) {
 	w := newReleaseWorld(t, 2)
 	_, v1 := firstRelease(t, w)
-	w.push(2, "")
+	w.Push(2, "")
 	weak := weakPolicy(t, w)
 
-	wantExit(t, mg(t, w.store, "gate", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", weak), 4,
+	wantExit(t, mg(t, w.Store, "gate", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", weak), 4,
 		"is not the policy bound to tiny-encoder:prod", "/rules/0/approvals/required: 2 → 0", "/rules/0/approvals/reportSigners: removed")
-	wantExit(t, mg(t, w.store, "approve", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", weak, "--key", w.key("ana")), 4, "not the policy bound")
-	wantExit(t, mg(t, w.store, "promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", weak, "--key", w.key("rita")), 4, "not the policy bound")
-	if w.prod() != v1 {
-		t.Fatalf("prod moved to %s", w.prod())
+	wantExit(t, mg(t, w.Store, "approve", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", weak, "--key", w.Key("ana")), 4, "not the policy bound")
+	wantExit(t, mg(t, w.Store, "promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", weak, "--key", w.Key("rita")), 4, "not the policy bound")
+	if w.Prod() != v1 {
+		t.Fatalf("prod moved to %s", w.Prod())
 	}
-	wantExit(t, mg(t, w.store, "policy", "diff", "tiny-encoder:prod", weak), 1, "/rules/0/approvals/required: 2 → 0")
-	wantExit(t, mg(t, w.store, "policy", "diff", "tiny-encoder:prod", w.policy), 0, "is the policy bound")
+	wantExit(t, mg(t, w.Store, "policy", "diff", "tiny-encoder:prod", weak), 1, "/rules/0/approvals/required: 2 → 0")
+	wantExit(t, mg(t, w.Store, "policy", "diff", "tiny-encoder:prod", w.Policy), 0, "is the policy bound")
 
 	// The bound policy, without --policy: the real rules apply.
-	mustMG(t, w.store, "gate", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--sign-key", w.key("ci"))
-	wantExit(t, mg(t, w.store, "promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.key("rita")), 4, "0 of the 2 approvals")
-	mustMG(t, w.store, "approve", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.key("ana"))
-	mustMG(t, w.store, "approve", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.key("ben"))
-	wantExit(t, mg(t, w.store, "promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.key("rita")), 0, "2 counted, 2 required")
-	mustMG(t, w.store, "log", "tiny-encoder:prod")
-	mustMG(t, w.store, "log", "tiny-encoder:prod", "--policy", w.policy)
+	mustMG(t, w.Store, "gate", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--sign-key", w.Key("ci"))
+	wantExit(t, mg(t, w.Store, "promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.Key("rita")), 4, "0 of the 2 approvals")
+	mustMG(t, w.Store, "approve", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.Key("ana"))
+	mustMG(t, w.Store, "approve", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.Key("ben"))
+	wantExit(t, mg(t, w.Store, "promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.Key("rita")), 0, "2 counted, 2 required")
+	mustMG(t, w.Store, "log", "tiny-encoder:prod")
+	mustMG(t, w.Store, "log", "tiny-encoder:prod", "--policy", w.Policy)
 	// --policy on log stays a cross-check.
-	wantExit(t, mg(t, w.store, "log", "tiny-encoder:prod", "--policy", weak), 4, "is not the policy bound", "required: 2 → 0")
+	wantExit(t, mg(t, w.Store, "log", "tiny-encoder:prod", "--policy", weak), 4, "is not the policy bound", "required: 2 → 0")
 }
 
 // forgePromote writes, straight into the store, what a promotion with the
@@ -100,7 +100,7 @@ func TestOwnPolicyFileRefused(t *testing.T) {
 func forgePromote(t *testing.T, w *releaseWorld, to string, keyFile string) {
 	t.Helper()
 	ctx := context.Background()
-	st, err := registry.OpenLocal(w.store)
+	st, err := registry.OpenLocal(w.Store)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -189,13 +189,13 @@ func forgePromote(t *testing.T, w *releaseWorld, to string, keyFile string) {
 func TestLogJudgesEachRecordByItsPolicy(t *testing.T) {
 	w := newReleaseWorld(t, 2)
 	base, _ := firstRelease(t, w)
-	mustMG(t, w.store, "log", "tiny-encoder:prod", "--policy", w.policy)
-	forgePromote(t, w, base, w.key("rita"))
-	if w.prod() != base {
+	mustMG(t, w.Store, "log", "tiny-encoder:prod", "--policy", w.Policy)
+	forgePromote(t, w, base, w.Key("rita"))
+	if w.Prod() != base {
 		t.Fatalf("the forged release did not move the tag")
 	}
-	for _, args := range [][]string{{"--policy", w.policy}, nil} {
-		r := mg(t, w.store, append([]string{"log", "tiny-encoder:prod"}, args...)...)
+	for _, args := range [][]string{{"--policy", w.Policy}, nil} {
+		r := mg(t, w.Store, append([]string{"log", "tiny-encoder:prod"}, args...)...)
 		wantExit(t, r, 4, "0 of the 2 approvals the policy in force requires", "names no gate report", "not every record is allowed")
 	}
 }
@@ -207,29 +207,29 @@ func TestPolicyChangeIsApproved(t *testing.T) {
 	w := newReleaseWorld(t, 2)
 	firstRelease(t, w)
 	weak := weakPolicy(t, w)
-	wantExit(t, mg(t, w.store, "policy", "bind", "tiny-encoder:prod", "--policy", weak, "--key", w.key("rita")), 4, "needs 2 approval(s)", "0 count")
-	wantExit(t, mg(t, w.store, "policy", "bind", "tiny-encoder:prod", "--policy", weak, "--key", w.key("mallory")), 4, "forbids self-approval")
+	wantExit(t, mg(t, w.Store, "policy", "bind", "tiny-encoder:prod", "--policy", weak, "--key", w.Key("rita")), 4, "needs 2 approval(s)", "0 count")
+	wantExit(t, mg(t, w.Store, "policy", "bind", "tiny-encoder:prod", "--policy", weak, "--key", w.Key("mallory")), 4, "forbids self-approval")
 	for _, who := range []string{"rita", "ana", "mallory"} {
-		wantExit(t, mg(t, w.store, "policy", "approve", "tiny-encoder:prod", "--policy", weak, "--key", w.key(who)), 0, "required: 2 → 0")
+		wantExit(t, mg(t, w.Store, "policy", "approve", "tiny-encoder:prod", "--policy", weak, "--key", w.Key(who)), 0, "required: 2 → 0")
 	}
 	// rita's own approval does not count for her change; mallory is no approver.
-	wantExit(t, mg(t, w.store, "policy", "bind", "tiny-encoder:prod", "--policy", weak, "--key", w.key("rita")), 4, "1 count", "self-approval", "does not list as an approver")
-	mustMG(t, w.store, "policy", "approve", "tiny-encoder:prod", "--policy", weak, "--key", w.key("ben"))
-	wantExit(t, mg(t, w.store, "policy", "bind", "tiny-encoder:prod", "--policy", weak, "--key", w.key("rita"), "--reason", "no approvals for the tiny encoder"), 0,
+	wantExit(t, mg(t, w.Store, "policy", "bind", "tiny-encoder:prod", "--policy", weak, "--key", w.Key("rita")), 4, "1 count", "self-approval", "does not list as an approver")
+	mustMG(t, w.Store, "policy", "approve", "tiny-encoder:prod", "--policy", weak, "--key", w.Key("ben"))
+	wantExit(t, mg(t, w.Store, "policy", "bind", "tiny-encoder:prod", "--policy", weak, "--key", w.Key("rita"), "--reason", "no approvals for the tiny encoder"), 0,
 		"changed the policy of tiny-encoder:prod", "approvals: 2 counted, 2 required")
 	var shown struct{ Digest string }
-	if err := json.Unmarshal([]byte(mustMG(t, w.store, "policy", "show", "--json", "tiny-encoder:prod").stdout), &shown); err != nil || shown.Digest == "" {
+	if err := json.Unmarshal([]byte(mustMG(t, w.Store, "policy", "show", "--json", "tiny-encoder:prod").stdout), &shown); err != nil || shown.Digest == "" {
 		t.Fatalf("policy show: %v", err)
 	}
-	lg := mustMG(t, w.store, "log", "tiny-encoder:prod")
+	lg := mustMG(t, w.Store, "log", "tiny-encoder:prod")
 	if !strings.Contains(lg.stdout, "policy ") || !strings.Contains(lg.stdout, "every record, signature and link verified") {
 		t.Errorf("log after a policy change:\n%s", lg.stdout)
 	}
 	// The new policy now governs: the weak file is the bound one.
-	w.push(2, "")
-	mustMG(t, w.store, "gate", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", weak)
-	wantExit(t, mg(t, w.store, "promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.key("rita")), 0, "promoted")
-	mustMG(t, w.store, "log", "tiny-encoder:prod")
+	w.Push(2, "")
+	mustMG(t, w.Store, "gate", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", weak)
+	wantExit(t, mg(t, w.Store, "promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--key", w.Key("rita")), 0, "promoted")
+	mustMG(t, w.Store, "log", "tiny-encoder:prod")
 }
 
 // TestLegacyLogUpgrade: a tag whose release log was started before
@@ -237,8 +237,8 @@ func TestPolicyChangeIsApproved(t *testing.T) {
 // policy; then the usual rules apply.
 func TestLegacyLogUpgrade(t *testing.T) {
 	w := newReleaseWorld(t, 0)
-	base := w.push(0, "")
-	st, err := registry.OpenLocal(w.store)
+	base := w.Push(0, "")
+	st, err := registry.OpenLocal(w.Store)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -247,20 +247,20 @@ func TestLegacyLogUpgrade(t *testing.T) {
 		To: bd, User: "setup", Reason: "an older modelgate"}); err != nil {
 		t.Fatal(err)
 	}
-	w.push(1, "")
-	w.gate("tiny-encoder:v1")
-	wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 4, "from before policies were bound", "modelgate policy bind")
-	wantExit(t, mg(t, w.store, "policy", "bind", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita")), 0, "its first policy")
-	wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 0, "promoted")
-	mustMG(t, w.store, "log", "tiny-encoder:prod")
+	w.Push(1, "")
+	w.Gate("tiny-encoder:v1")
+	wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita")), 4, "from before policies were bound", "modelgate policy bind")
+	wantExit(t, mg(t, w.Store, "policy", "bind", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("rita")), 0, "its first policy")
+	wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita")), 0, "promoted")
+	mustMG(t, w.Store, "log", "tiny-encoder:prod")
 }
 
 // releasersPolicy is the world's policy with who may release: rita's
 // release key (a second key of hers) may promote, ben may roll back.
 func releasersPolicy(t *testing.T, w *releaseWorld) {
 	t.Helper()
-	mustMG(t, w.store, "keygen", "--out", filepath.Join(w.dir, "rita-release"), "--name", "rita")
-	b, err := os.ReadFile(w.policy)
+	mustMG(t, w.Store, "keygen", "--out", filepath.Join(w.Dir, "rita-release"), "--name", "rita")
+	b, err := os.ReadFile(w.Policy)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -270,7 +270,7 @@ func releasersPolicy(t *testing.T, w *releaseWorld) {
       rollback:
         - {name: ben, keyFile: ben.pub.pem}
 `
-	if err := os.WriteFile(w.policy, []byte(text), 0o644); err != nil {
+	if err := os.WriteFile(w.Policy, []byte(text), 0o644); err != nil {
 		t.Fatal(err)
 	}
 }
@@ -281,43 +281,43 @@ func releasersPolicy(t *testing.T, w *releaseWorld) {
 func TestWhoMayRelease(t *testing.T) {
 	t.Run("no releasers listed", func(t *testing.T) {
 		w := newReleaseWorld(t, 2)
-		w.push(0, "tiny-encoder:prod")
-		w.push(1, "")
-		w.gate("tiny-encoder:v1")
-		mustMG(t, w.store, "approve", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("ana"))
-		mustMG(t, w.store, "approve", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita"))
+		w.Push(0, "tiny-encoder:prod")
+		w.Push(1, "")
+		w.Gate("tiny-encoder:v1")
+		mustMG(t, w.Store, "approve", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("ana"))
+		mustMG(t, w.Store, "approve", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("rita"))
 		// rita signs with a key no policy lists: her approval would count.
-		wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("mallory")), 4, "is not listed")
-		wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 4, "1 of the 2 approvals", "self-approval")
+		wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("mallory")), 4, "is not listed")
+		wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita")), 4, "1 of the 2 approvals", "self-approval")
 	})
 	t.Run("releasers listed", func(t *testing.T) {
 		w := newReleaseWorld(t, 2)
 		releasersPolicy(t, w)
-		w.push(0, "tiny-encoder:prod")
-		v1 := w.push(1, "")
-		w.gate("tiny-encoder:v1")
+		w.Push(0, "tiny-encoder:prod")
+		v1 := w.Push(1, "")
+		w.Gate("tiny-encoder:v1")
 		for _, who := range []string{"ana", "rita"} {
-			mustMG(t, w.store, "approve", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key(who))
+			mustMG(t, w.Store, "approve", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key(who))
 		}
-		wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("mallory")), 4, "not one the policy lets sign a promote")
-		wantExit(t, w.promote("tiny-encoder:v1"), 4, "sign with --key")
-		wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("ben")), 4, "not one the policy lets sign a promote")
+		wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("mallory")), 4, "not one the policy lets sign a promote")
+		wantExit(t, w.Promote("tiny-encoder:v1"), 4, "sign with --key")
+		wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("ben")), 4, "not one the policy lets sign a promote")
 		// Her release key is another key, but the policy names it rita.
-		wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita-release")), 4, "1 of the 2 approvals", "self-approval")
-		mustMG(t, w.store, "approve", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("ben"))
-		wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita-release")), 0, "2 counted, 2 required")
-		if w.prod() != v1 {
-			t.Fatalf("prod is %s", w.prod())
+		wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita-release")), 4, "1 of the 2 approvals", "self-approval")
+		mustMG(t, w.Store, "approve", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("ben"))
+		wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita-release")), 0, "2 counted, 2 required")
+		if w.Prod() != v1 {
+			t.Fatalf("prod is %s", w.Prod())
 		}
 		for _, k := range []string{"", "mallory", "rita-release"} {
 			args := []string{"rollback", "tiny-encoder:prod", "--reason", "canary"}
 			if k != "" {
-				args = append(args, "--key", w.key(k))
+				args = append(args, "--key", w.Key(k))
 			}
-			wantExit(t, mg(t, w.store, args...), 4, "rollback of tiny-encoder:prod")
+			wantExit(t, mg(t, w.Store, args...), 4, "rollback of tiny-encoder:prod")
 		}
-		wantExit(t, mg(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "canary", "--key", w.key("ben")), 0, "rolled back")
-		mustMG(t, w.store, "log", "tiny-encoder:prod")
+		wantExit(t, mg(t, w.Store, "rollback", "tiny-encoder:prod", "--reason", "canary", "--key", w.Key("ben")), 0, "rolled back")
+		mustMG(t, w.Store, "log", "tiny-encoder:prod")
 	})
 }
 
@@ -327,19 +327,19 @@ func TestWhoMayRelease(t *testing.T) {
 func TestRollbackEndsApprovals(t *testing.T) {
 	w := newReleaseWorld(t, 2)
 	base, v1 := firstRelease(t, w)
-	mustMG(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "canary: fewer plays", "--key", w.key("rita"))
-	if w.prod() != base {
-		t.Fatalf("rollback left prod at %s", w.prod())
+	mustMG(t, w.Store, "rollback", "tiny-encoder:prod", "--reason", "canary: fewer plays", "--key", w.Key("rita"))
+	if w.Prod() != base {
+		t.Fatalf("rollback left prod at %s", w.Prod())
 	}
-	wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 4, "rolled back", "canary: fewer plays", "gate and approve it again")
-	wantExit(t, w.approve("tiny-encoder:v1", "ana"), 4, "rolled back")
-	w.gate("tiny-encoder:v1")
-	wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 4, "0 of the 2 approvals", "ended by the rollback")
-	w.approve("tiny-encoder:v1", "ana")
-	w.approve("tiny-encoder:v1", "ben")
-	wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 0, "2 counted")
-	if w.prod() != v1 {
-		t.Fatalf("prod is %s", w.prod())
+	wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita")), 4, "rolled back", "canary: fewer plays", "gate and approve it again")
+	wantExit(t, w.Approve("tiny-encoder:v1", "ana"), 4, "rolled back")
+	w.Gate("tiny-encoder:v1")
+	wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita")), 4, "0 of the 2 approvals", "ended by the rollback")
+	w.Approve("tiny-encoder:v1", "ana")
+	w.Approve("tiny-encoder:v1", "ben")
+	wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita")), 0, "2 counted")
+	if w.Prod() != v1 {
+		t.Fatalf("prod is %s", w.Prod())
 	}
-	mustMG(t, w.store, "log", "tiny-encoder:prod", "--policy", w.policy)
+	mustMG(t, w.Store, "log", "tiny-encoder:prod", "--policy", w.Policy)
 }

@@ -349,46 +349,46 @@ rules:
 	// The release store: a tiny-encoder:prod release log, a gated and
 	// approved candidate; its envelopes are damaged one case at a time.
 	w := newReleaseWorld(t, 2)
-	w.push(0, "tiny-encoder:prod")
-	w.push(1, "")
-	w.gate("tiny-encoder:v1")
-	w.approve("tiny-encoder:v1", "ana")
-	w.approve("tiny-encoder:v1", "ben")
-	mustMG(t, w.store, "promote", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita"))
-	unreleased := w.push(2, "")
+	w.Push(0, "tiny-encoder:prod")
+	w.Push(1, "")
+	w.Gate("tiny-encoder:v1")
+	w.Approve("tiny-encoder:v1", "ana")
+	w.Approve("tiny-encoder:v1", "ben")
+	mustMG(t, w.Store, "promote", "tiny-encoder:v1", "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("rita"))
+	unreleased := w.Push(2, "")
 	var gated struct{ ReportDigest string }
-	if err := json.Unmarshal([]byte(mustMG(t, w.store, "gate", "--json", "tiny-encoder:v2", "--to", "tiny-encoder:prod",
-		"--policy", w.policy, "--sign-key", w.key("ci")).stdout), &gated); err != nil {
+	if err := json.Unmarshal([]byte(mustMG(t, w.Store, "gate", "--json", "tiny-encoder:v2", "--to", "tiny-encoder:prod",
+		"--policy", w.Policy, "--sign-key", w.Key("ci")).stdout), &gated); err != nil {
 		t.Fatal(err)
 	}
 	var approval struct{ Approval string }
-	if err := json.Unmarshal([]byte(w.approve("tiny-encoder:v2", "ana", "--json").stdout), &approval); err != nil {
+	if err := json.Unmarshal([]byte(w.Approve("tiny-encoder:v2", "ana", "--json").stdout), &approval); err != nil {
 		t.Fatal(err)
 	}
-	w.approve("tiny-encoder:v2", "ben")
+	w.Approve("tiny-encoder:v2", "ben")
 	var lg struct{ Head string }
-	if err := json.Unmarshal([]byte(mustMG(t, w.store, "log", "--json", "tiny-encoder:prod").stdout), &lg); err != nil {
+	if err := json.Unmarshal([]byte(mustMG(t, w.Store, "log", "--json", "tiny-encoder:prod").stdout), &lg); err != nil {
 		t.Fatal(err)
 	}
-	promoteV2 := []string{"promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita")}
+	promoteV2 := []string{"promote", "tiny-encoder:v2", "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("rita")}
 	// A candidate approved by ben, and by ana with an approval dated two
 	// hours ahead (a clock set wrong, or a signed statement made by
 	// another tool): approve itself dates with the local clock, so it is
 	// made here through the library with that date.
-	w.push(3, "")
-	w.gate("tiny-encoder:v3")
-	w.approve("tiny-encoder:v3", "ben")
+	w.Push(3, "")
+	w.Gate("tiny-encoder:v3")
+	w.Approve("tiny-encoder:v3", "ben")
 	{
 		ctx := context.Background()
-		ls, err := registry.OpenLocal(w.store)
+		ls, err := registry.OpenLocal(w.Store)
 		if err != nil {
 			t.Fatal(err)
 		}
-		key, err := release.LoadKey(w.key("ana"))
+		key, err := release.LoadKey(w.Key("ana"))
 		if err != nil {
 			t.Fatal(err)
 		}
-		pol, err := mgpolicy.Load(w.policy)
+		pol, err := mgpolicy.Load(w.Policy)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -407,7 +407,7 @@ rules:
 			t.Fatal(err)
 		}
 	}
-	promoteV3 := []string{"promote", "tiny-encoder:v3", "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita")}
+	promoteV3 := []string{"promote", "tiny-encoder:v3", "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("rita")}
 
 	cases := []catCase{
 		// Model directories (push): schemas, tensors, small files.
@@ -504,16 +504,16 @@ rules:
 		{name: "keygen over an existing public key only", args: []string{"keygen", "--out", filepath.Join(dir, "solo")}, code: 2, want: []string{"solo.pub.pem", "exists"}, files: []string{filepath.Join(dir, "solo.pub.pem"), filepath.Join(dir, "solo.key.pem")}},
 
 		// Envelopes edited in the store: exit 5.
-		{name: "log: release record envelope edited", store: w.store, args: []string{"log", "tiny-encoder:prod"}, code: 5,
-			damage: editEnvelope(w.store, "tiny-encoder", lg.Head), want: []string{shortDigest(lg.Head)[7:]}, stdoutOK: true},
-		{name: "promote: release record envelope edited", store: w.store, args: promoteV2, code: 5,
-			damage: editEnvelope(w.store, "tiny-encoder", lg.Head), want: []string{strings.TrimPrefix(lg.Head, "sha256:")[:12]}},
-		{name: "promote: approval envelope edited", store: w.store, args: promoteV2, code: 5,
-			damage: editEnvelope(w.store, "tiny-encoder", approval.Approval), want: []string{strings.TrimPrefix(approval.Approval, "sha256:")[:12]}},
-		{name: "promote: gate report envelope edited", store: w.store, args: promoteV2, code: 5,
-			damage: editEnvelope(w.store, "tiny-encoder", gated.ReportDigest), want: []string{strings.TrimPrefix(gated.ReportDigest, "sha256:")[:12]}},
+		{name: "log: release record envelope edited", store: w.Store, args: []string{"log", "tiny-encoder:prod"}, code: 5,
+			damage: editEnvelope(w.Store, "tiny-encoder", lg.Head), want: []string{shortDigest(lg.Head)[7:]}, stdoutOK: true},
+		{name: "promote: release record envelope edited", store: w.Store, args: promoteV2, code: 5,
+			damage: editEnvelope(w.Store, "tiny-encoder", lg.Head), want: []string{strings.TrimPrefix(lg.Head, "sha256:")[:12]}},
+		{name: "promote: approval envelope edited", store: w.Store, args: promoteV2, code: 5,
+			damage: editEnvelope(w.Store, "tiny-encoder", approval.Approval), want: []string{strings.TrimPrefix(approval.Approval, "sha256:")[:12]}},
+		{name: "promote: gate report envelope edited", store: w.Store, args: promoteV2, code: 5,
+			damage: editEnvelope(w.Store, "tiny-encoder", gated.ReportDigest), want: []string{strings.TrimPrefix(gated.ReportDigest, "sha256:")[:12]}},
 
-		{name: "promote: an approval dated two hours ahead does not count", store: w.store, args: promoteV3, code: 4, want: []string{"by ana", "in the future", "1 of the 2 approvals"}},
+		{name: "promote: an approval dated two hours ahead does not count", store: w.Store, args: promoteV3, code: 4, want: []string{"by ana", "in the future", "1 of the 2 approvals"}},
 
 		// References on every command that takes one.
 		{name: "show: invalid repository name", args: []string{"show", "Tiny_Encoder:v1"}, code: 2, want: []string{"Tiny_Encoder"}},
@@ -530,11 +530,11 @@ rules:
 		{name: "gate: target with a digest", args: []string{"gate", "tiny-scorer:v1", "--to", "tiny-scorer@" + missingDigest, "--policy", policy}, code: 2, want: []string{"--to"}},
 		{name: "gate: candidate digest not in the store", args: []string{"gate", "tiny-scorer@" + missingDigest, "--to", "tiny-scorer:prod", "--policy", policy}, code: 2, want: []string{missingDigest}},
 		{name: "approve: candidate in another repository", args: []string{"approve", "tiny-encoder:v1", "--to", "tiny-scorer:prod", "--policy", policy, "--key", key("ana")}, code: 2, want: []string{"tiny-encoder", "tiny-scorer"}},
-		{name: "rollback: --to a digest never released on the tag", store: w.store, args: []string{"rollback", "tiny-encoder:prod", "--reason", "x", "--to", unreleased}, code: 2, want: []string{unreleased, "never released"}},
+		{name: "rollback: --to a digest never released on the tag", store: w.Store, args: []string{"rollback", "tiny-encoder:prod", "--reason", "x", "--to", unreleased}, code: 2, want: []string{unreleased, "never released"}},
 		{name: "rollback: malformed --to digest", args: []string{"rollback", "tiny-scorer:prod", "--reason", "x", "--to", "sha256:1234"}, code: 2, want: []string{"sha256:1234"}},
 		{name: "log: a digest instead of a tag", args: []string{"log", "tiny-scorer@" + missingDigest}, code: 2, want: []string{"NAME:TAG"}},
-		{name: "untag: a tag with a release log", store: w.store, args: []string{"untag", "tiny-encoder:prod"}, code: 4, want: []string{"tiny-encoder:prod", "release log"}},
-		{name: "untag: a release head pointer", store: w.store, args: []string{"untag", "tiny-encoder:release-prod"}, code: 2, want: []string{"release-prod", "reserved"}},
+		{name: "untag: a tag with a release log", store: w.Store, args: []string{"untag", "tiny-encoder:prod"}, code: 4, want: []string{"tiny-encoder:prod", "release log"}},
+		{name: "untag: a release head pointer", store: w.Store, args: []string{"untag", "tiny-encoder:release-prod"}, code: 2, want: []string{"release-prod", "reserved"}},
 		{name: "untag: a sha256- bookkeeping tag", args: []string{"untag", "tiny-encoder:sha256-" + strings.TrimPrefix(missingDigest, "sha256:")}, code: 2, want: []string{"sha256-", "reserved"}},
 		{name: "untag: the tag moved since --expect", args: []string{"untag", "tiny-encoder:v1", "--expect", missingDigest}, code: 3, want: []string{"tiny-encoder:v1", missingDigest}},
 		{name: "untag: malformed --expect", args: []string{"untag", "tiny-encoder:v1", "--expect", "sha256:1234"}, code: 2, want: []string{"--expect", "sha256:1234"}},
@@ -613,8 +613,8 @@ rules:
 	}
 	// Undamaged, both stores verify.
 	mustMG(t, store, "verify")
-	mustMG(t, w.store, "verify")
-	mustMG(t, w.store, "log", "tiny-encoder:prod", "--policy", w.policy)
+	mustMG(t, w.Store, "verify")
+	mustMG(t, w.Store, "log", "tiny-encoder:prod", "--policy", w.Policy)
 }
 
 // editEnvelope returns a damage step that edits, in place, one byte of the
@@ -679,36 +679,4 @@ func editEnvelope(store, repo, digest string) func(t *testing.T) func() {
 			os.Chmod(p, mode)
 		}
 	}
-}
-
-// listingDiff shows the lines of two listings that differ (file names
-// and sizes only).
-func listingDiff(a, b string) string {
-	short := func(s string) map[string]bool {
-		out := map[string]bool{}
-		for _, l := range strings.Split(s, "\n") {
-			f := strings.Fields(l)
-			if len(f) >= 2 {
-				l = f[0] + " " + f[1]
-			}
-			out[l] = true
-		}
-		return out
-	}
-	sa, sb := short(a), short(b)
-	var d []string
-	for l := range sa {
-		if !sb[l] {
-			d = append(d, "- "+l)
-		}
-	}
-	for l := range sb {
-		if !sa[l] {
-			d = append(d, "+ "+l)
-		}
-	}
-	if len(d) == 0 {
-		return "(same names and sizes; contents differ)"
-	}
-	return strings.Join(d, "\n")
 }

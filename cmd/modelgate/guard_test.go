@@ -42,59 +42,59 @@ func forceTag(t *testing.T, dir, repo, tag, digest string) {
 // push (exit 2); rollback and log keep working afterwards.
 func TestGuardedTags(t *testing.T) {
 	w := newReleaseWorld(t, 0)
-	v1 := w.push(1, "")
-	w.push(2, "")
-	w.gate("tiny-encoder:v1")
-	wantExit(t, w.promote("tiny-encoder:v1", "--key", w.key("rita")), 0, "promoted")
-	w.gate("tiny-encoder:v2")
-	wantExit(t, w.promote("tiny-encoder:v2", "--key", w.key("rita")), 0, "promoted")
-	v2 := w.prod()
+	v1 := w.Push(1, "")
+	w.Push(2, "")
+	w.Gate("tiny-encoder:v1")
+	wantExit(t, w.Promote("tiny-encoder:v1", "--key", w.Key("rita")), 0, "promoted")
+	w.Gate("tiny-encoder:v2")
+	wantExit(t, w.Promote("tiny-encoder:v2", "--key", w.Key("rita")), 0, "promoted")
+	v2 := w.Prod()
 	hold := filepath.Join(t.TempDir(), "hold.jsonl")
 	if err := os.WriteFile(hold, []byte(`{"row_id":"r1","items":[1],"values":[1],"label":1}`+"\n"), 0o644); err != nil {
 		t.Fatal(err)
 	}
 	// A source store whose tiny-encoder:prod is a plain tag on another model.
 	src := filepath.Join(t.TempDir(), "src")
-	mustMG(t, src, "push", nameVariant(t, w.dir, 3), "tiny-encoder:prod")
+	mustMG(t, src, "push", nameVariant(t, w.Dir, 3), "tiny-encoder:prod")
 
-	before := listing(t, w.store)
+	before := listing(t, w.Store)
 	for _, c := range []struct {
 		name string
 		args []string
 		code int
 		want []string
 	}{
-		{"push a model to the released tag", []string{"push", nameVariant(t, w.dir, 3), "tiny-encoder:prod"}, 4, []string{"tiny-encoder:prod", "release log", "modelgate promote", "modelgate rollback"}},
-		{"push the served model again", []string{"push", nameVariant(t, w.dir, 2), "tiny-encoder:prod"}, 4, []string{"release log"}},
+		{"push a model to the released tag", []string{"push", nameVariant(t, w.Dir, 3), "tiny-encoder:prod"}, 4, []string{"tiny-encoder:prod", "release log", "modelgate promote", "modelgate rollback"}},
+		{"push the served model again", []string{"push", nameVariant(t, w.Dir, 2), "tiny-encoder:prod"}, 4, []string{"release log"}},
 		{"push a holdout to the released tag", []string{"push", "--kind", "holdout", hold, "tiny-encoder:prod"}, 4, []string{"release log"}},
-		{"push to the head pointer", []string{"push", nameVariant(t, w.dir, 3), "tiny-encoder:release-prod"}, 2, []string{"release-prod", "reserved"}},
-		{"push to another release- tag", []string{"push", nameVariant(t, w.dir, 3), "tiny-encoder:release-canary"}, 2, []string{"reserved"}},
-		{"push to a sha256- tag", []string{"push", nameVariant(t, w.dir, 3), "tiny-encoder:sha256-" + strings.TrimPrefix(v2, "sha256:")}, 2, []string{"reserved"}},
+		{"push to the head pointer", []string{"push", nameVariant(t, w.Dir, 3), "tiny-encoder:release-prod"}, 2, []string{"release-prod", "reserved"}},
+		{"push to another release- tag", []string{"push", nameVariant(t, w.Dir, 3), "tiny-encoder:release-canary"}, 2, []string{"reserved"}},
+		{"push to a sha256- tag", []string{"push", nameVariant(t, w.Dir, 3), "tiny-encoder:sha256-" + strings.TrimPrefix(v2, "sha256:")}, 2, []string{"reserved"}},
 		{"holdout to a reserved tag", []string{"push", "--kind", "holdout", hold, "tiny-encoder:release-prod"}, 2, []string{"reserved"}},
-		{"copy a plain tag over the released one", []string{"copy", "tiny-encoder:prod", "--store", src, "--dest", w.store}, 4, []string{"release log", "promote"}},
+		{"copy a plain tag over the released one", []string{"copy", "tiny-encoder:prod", "--store", src, "--dest", w.Store}, 4, []string{"release log", "promote"}},
 	} {
 		t.Run(c.name, func(t *testing.T) {
-			wantExit(t, mg(t, w.store, c.args...), c.code, c.want...)
-			if after := listing(t, w.store); after != before {
+			wantExit(t, mg(t, w.Store, c.args...), c.code, c.want...)
+			if after := listing(t, w.Store); after != before {
 				t.Errorf("the store changed:\n%s", listingDiff(before, after))
 			}
 		})
 	}
-	if w.prod() != v2 {
-		t.Fatalf("prod moved to %s", w.prod())
+	if w.Prod() != v2 {
+		t.Fatalf("prod moved to %s", w.Prod())
 	}
 	// copy --all copies what it may and refuses the released tag.
-	wantExit(t, mg(t, src, "copy", "--all", "--dest", w.store), 4, "release log")
-	if w.prod() != v2 {
-		t.Fatalf("copy --all moved prod to %s", w.prod())
+	wantExit(t, mg(t, src, "copy", "--all", "--dest", w.Store), 4, "release log")
+	if w.Prod() != v2 {
+		t.Fatalf("copy --all moved prod to %s", w.Prod())
 	}
-	mustMG(t, w.store, "log", "tiny-encoder:prod")
-	wantExit(t, mg(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "canary"), 0, "rolled back")
-	if w.prod() != v1 {
-		t.Errorf("rollback went to %s, want %s", w.prod(), v1)
+	mustMG(t, w.Store, "log", "tiny-encoder:prod")
+	wantExit(t, mg(t, w.Store, "rollback", "tiny-encoder:prod", "--reason", "canary"), 0, "rolled back")
+	if w.Prod() != v1 {
+		t.Errorf("rollback went to %s, want %s", w.Prod(), v1)
 	}
-	mustMG(t, w.store, "log", "tiny-encoder:prod")
-	mustMG(t, w.store, "verify")
+	mustMG(t, w.Store, "log", "tiny-encoder:prod")
+	mustMG(t, w.Store, "verify")
 }
 
 // TestVerifyDuplicateTagEntries: two index.json entries for one tag — the
@@ -279,12 +279,12 @@ func TestOnCallLog(t *testing.T) {
 	w := newReleaseWorld(t, 0)
 	var ds []string
 	for i := 1; i <= 3; i++ {
-		ds = append(ds, w.push(i, ""))
+		ds = append(ds, w.Push(i, ""))
 		c := fmt.Sprintf("tiny-encoder:v%d", i)
-		w.gate(c)
-		wantExit(t, w.promote(c, "--key", w.key("rita")), 0, "promoted")
+		w.Gate(c)
+		wantExit(t, w.Promote(c, "--key", w.Key("rita")), 0, "promoted")
 	}
-	lg := mustMG(t, w.store, "log", "tiny-encoder:prod").stdout
+	lg := mustMG(t, w.Store, "log", "tiny-encoder:prod").stdout
 	for _, s := range []string{"#1 ", "#2 ", "#3 ", "tiny-encoder:v1 (", "tiny-encoder:v2 (", "tiny-encoder:prod, tiny-encoder:v3 ("} {
 		if !strings.Contains(lg, s) {
 			t.Errorf("log lacks %q:\n%s", s, lg)
@@ -297,7 +297,7 @@ func TestOnCallLog(t *testing.T) {
 		}
 		Names map[string][]string
 	}
-	if err := json.Unmarshal([]byte(mustMG(t, w.store, "log", "--json", "tiny-encoder:prod").stdout), &rep); err != nil || len(rep.Entries) != 3 {
+	if err := json.Unmarshal([]byte(mustMG(t, w.Store, "log", "--json", "tiny-encoder:prod").stdout), &rep); err != nil || len(rep.Entries) != 3 {
 		t.Fatalf("log --json: %v, %+v", err, rep)
 	}
 	for i, e := range rep.Entries {
@@ -306,33 +306,33 @@ func TestOnCallLog(t *testing.T) {
 		}
 	}
 	rb := func(to string) result {
-		return mg(t, w.store, "rollback", "tiny-encoder:prod", "--reason", "canary", "--to", to)
+		return mg(t, w.Store, "rollback", "tiny-encoder:prod", "--reason", "canary", "--to", to)
 	}
 	wantExit(t, rb("1"), 0, "rolled back")
-	if w.prod() != ds[0] {
-		t.Errorf("--to 1 went to %s, want %s", w.prod(), ds[0])
+	if w.Prod() != ds[0] {
+		t.Errorf("--to 1 went to %s, want %s", w.Prod(), ds[0])
 	}
 	wantExit(t, rb(ds[1][:19]), 0) // sha256: and 12 hex digits, as log prints it
-	if w.prod() != ds[1] {
-		t.Errorf("--to a 12-digit prefix went to %s, want %s", w.prod(), ds[1])
+	if w.Prod() != ds[1] {
+		t.Errorf("--to a 12-digit prefix went to %s, want %s", w.Prod(), ds[1])
 	}
 	wantExit(t, rb("#3"), 0)
 	wantExit(t, rb("v1"), 0)
-	if w.prod() != ds[0] {
-		t.Errorf("--to v1 went to %s, want %s", w.prod(), ds[0])
+	if w.Prod() != ds[0] {
+		t.Errorf("--to v1 went to %s, want %s", w.Prod(), ds[0])
 	}
 	wantExit(t, rb(strings.TrimPrefix(ds[2], "sha256:")[:14]), 0)
-	if w.prod() != ds[2] {
-		t.Errorf("--to a bare 14-digit prefix went to %s, want %s", w.prod(), ds[2])
+	if w.Prod() != ds[2] {
+		t.Errorf("--to a bare 14-digit prefix went to %s, want %s", w.Prod(), ds[2])
 	}
 	wantExit(t, rb(ds[1][:17]), 2, "12 hex digits")       // too short
 	wantExit(t, rb("99"), 2, "numbers its releases 1 to") // no such release
-	other := w.push(9, "tiny-encoder:v9")
+	other := w.Push(9, "tiny-encoder:v9")
 	wantExit(t, rb(other[:19]), 2, "no digest released")
-	mustMG(t, w.store, "log", "tiny-encoder:prod")
+	mustMG(t, w.Store, "log", "tiny-encoder:prod")
 
 	// Only pushed: no release log, exit 0, said plainly.
-	r := mg(t, w.store, "log", "tiny-encoder:v9")
+	r := mg(t, w.Store, "log", "tiny-encoder:v9")
 	wantExit(t, r, 0, "has no release log", "never promoted")
 	if strings.Contains(r.stdout+r.stderr, "DAMAGE") {
 		t.Errorf("log of a pushed tag reports damage:\n%s", r.stdout)

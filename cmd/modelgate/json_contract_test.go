@@ -1,54 +1,11 @@
 package main
 
 import (
-	"encoding/json"
 	"os"
 	"path/filepath"
 	"strings"
 	"testing"
-
-	"github.com/modelgate/modelgate/schemas"
 )
-
-// checkJSON validates a command's stdout against the command's output
-// schema (schemas/output-CMD.schema.json) and checks the one-document
-// contract: exactly one JSON document; an "error" member exactly when the
-// exit code is not 0, carrying that exit code.
-func checkJSON(t *testing.T, cmd string, r result) map[string]any {
-	t.Helper()
-	dec := json.NewDecoder(strings.NewReader(r.stdout))
-	var doc any
-	if err := dec.Decode(&doc); err != nil {
-		t.Fatalf("%s --json (exit %d): stdout is not JSON: %v\n%s\nstderr: %s", cmd, r.code, err, r.stdout, r.stderr)
-	}
-	if dec.More() {
-		t.Errorf("%s --json: more than one document on stdout", cmd)
-	}
-	vs, err := schemas.Validate(schemas.Output(cmd), []byte(r.stdout))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if len(vs) > 0 {
-		t.Errorf("%s --json (exit %d) breaks %s:\n%s", cmd, r.code, schemas.Output(cmd), schemas.Join("  ", vs))
-	}
-	obj, _ := doc.(map[string]any)
-	e, hasErr := obj["error"].(map[string]any)
-	switch {
-	case r.code == 0 && hasErr:
-		t.Errorf("%s --json exited 0 with an error member: %v", cmd, e)
-	case r.code != 0 && !hasErr:
-		t.Errorf("%s --json exited %d without an error member:\n%s", cmd, r.code, r.stdout)
-	case r.code != 0 && e["exitCode"] != float64(r.code):
-		t.Errorf("%s --json exited %d but error.exitCode is %v", cmd, r.code, e["exitCode"])
-	}
-	// stderr holds JSON Lines only (progress, log and error events).
-	for _, line := range strings.Split(strings.TrimSpace(r.stderr), "\n") {
-		if line != "" && !json.Valid([]byte(line)) {
-			t.Errorf("%s --json: a stderr line is not JSON: %q", cmd, line)
-		}
-	}
-	return obj
-}
 
 // TestJSONContract runs every command that ends with --json, on success
 // and on failure, and validates each document against its schema.

@@ -36,7 +36,7 @@ func (d reclaimDoc) steps() int { return len(d.Plan.Tags) + len(d.Plan.Manifests
 func reclaimWorld(t *testing.T, store string) (w *releaseWorld, released []string) {
 	t.Helper()
 	w = newReleaseWorldAt(t, 0, store)
-	f, err := os.OpenFile(w.policy, os.O_APPEND|os.O_WRONLY, 0)
+	f, err := os.OpenFile(w.Policy, os.O_APPEND|os.O_WRONLY, 0)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -44,15 +44,15 @@ func reclaimWorld(t *testing.T, store string) (w *releaseWorld, released []strin
 		t.Fatal(err)
 	}
 	f.Close()
-	w.push(0, "tiny-encoder:ci-0")
+	w.Push(0, "tiny-encoder:ci-0")
 	var d []string
 	for i := 1; i <= 5; i++ {
-		d = append(d, "tiny-encoder@"+w.push(i, "tiny-encoder:latest"))
+		d = append(d, "tiny-encoder@"+w.Push(i, "tiny-encoder:latest"))
 	}
 	for _, i := range []int{0, 1, 2} {
-		w.gate(d[i])
+		w.Gate(d[i])
 		if i != 1 {
-			wantExit(t, w.promote(d[i], "--key", w.key("rita")), 0)
+			wantExit(t, w.Promote(d[i], "--key", w.Key("rita")), 0)
 			released = append(released, d[i])
 		}
 	}
@@ -81,7 +81,7 @@ func crashReclaim(t *testing.T, store string) {
 	// The crash suite's build reads its clock from MODELGATE_TEST_NOW: a
 	// month on, everything is past the grace period.
 	t.Setenv("MODELGATE_TEST_NOW", time.Now().Add(30*24*time.Hour).UTC().Format(time.RFC3339))
-	args := []string{"reclaim", "--policy", w.policy, "--json"}
+	args := []string{"reclaim", "--policy", w.Policy, "--json"}
 	first := runCrashAt(t, store, "", args...)
 	var plan reclaimDoc
 	if err := json.Unmarshal([]byte(first.res.stdout), &plan); err != nil || first.res.code != 0 {
@@ -149,7 +149,7 @@ func TestReclaimCopyAll(t *testing.T) {
 	store := filepath.Join(t.TempDir(), "store")
 	w, _ := reclaimWorld(t, store)
 	t.Setenv("MODELGATE_TEST_NOW", time.Now().Add(30*24*time.Hour).UTC().Format(time.RFC3339))
-	k := runCrashAt(t, store, "", "reclaim", "--policy", w.policy, "--apply", "--json")
+	k := runCrashAt(t, store, "", "reclaim", "--policy", w.Policy, "--apply", "--json")
 	var doc reclaimDoc
 	if err := json.Unmarshal([]byte(k.res.stdout), &doc); err != nil || k.res.code != 0 || doc.Result == nil || doc.Result.Manifests != 3 || doc.Result.Bytes != doc.Plan.Bytes {
 		t.Fatalf("reclaim: exit %d %v\n%s%s", k.res.code, err, k.res.stdout, k.res.stderr)
@@ -211,7 +211,7 @@ func TestReclaimOnRegistry(t *testing.T) {
 	}
 	w, released := reclaimWorld(t, store)
 	t.Setenv("MODELGATE_TEST_NOW", time.Now().Add(30*24*time.Hour).UTC().Format(time.RFC3339))
-	k := runCrashAt(t, store, "", "reclaim", "--policy", w.policy, "--apply", "--json")
+	k := runCrashAt(t, store, "", "reclaim", "--policy", w.Policy, "--apply", "--json")
 	var doc struct {
 		reclaimDoc
 		Result *struct {

@@ -194,13 +194,13 @@ func TestShowOtherArtifacts(t *testing.T) {
 	}
 
 	w := newReleaseWorld(t, 0)
-	w.push(0, "tiny-encoder:prod")
-	cand := w.push(1, "")
-	w.gate("tiny-encoder:v1")
-	if r := w.promote("tiny-encoder:v1", "--key", w.key("rita")); r.code != 0 {
+	w.Push(0, "tiny-encoder:prod")
+	cand := w.Push(1, "")
+	w.Gate("tiny-encoder:v1")
+	if r := w.Promote("tiny-encoder:v1", "--key", w.Key("rita")); r.code != 0 {
 		t.Fatalf("promote: %d %s", r.code, r.stderr)
 	}
-	rec := mustMG(t, w.store, "show", "tiny-encoder:release-prod").stdout
+	rec := mustMG(t, w.Store, "show", "tiny-encoder:release-prod").stdout
 	if !strings.Contains(rec, "kind:        release") || !strings.Contains(rec, "about:       "+cand) {
 		t.Errorf("show of a release record:\n%s", rec)
 	}

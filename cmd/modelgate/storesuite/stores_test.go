@@ -1,4 +1,4 @@
-package main
+package storesuite
 
 import (
 	"encoding/json"
@@ -98,17 +98,17 @@ func TestEncoderAloneRefusedWithoutCatalog(t *testing.T) {
 	t.Cleanup(noCat.Close)
 	u := newUnitWorld(t, "oci://"+strings.TrimPrefix(noCat.URL, "http://")+"/alone")
 	lsTags := func() string {
-		return mustMG(t, u.store, "ls", "--json", "tiny-encoder").stdout + mustMG(t, u.store, "ls", "--json", "tiny-scorer").stdout
+		return mustMG(t, u.Store, "ls", "--json", "tiny-encoder").stdout + mustMG(t, u.Store, "ls", "--json", "tiny-scorer").stdout
 	}
 	_, _, promote := u.candidates()
 	alone := append([]string(nil), promote[:4]...) // promote tiny-encoder:vN --to tiny-encoder:prod
 	before := lsTags()
-	r := mg(t, u.store, append(alone, "--key", u.key("rita"))...)
+	r := mg(t, u.Store, append(alone, "--key", u.Key("rita"))...)
 	wantExit(t, r, 4, "is consumed by tiny-scorer:prod (scorer ", "--with SCORER-CANDIDATE=tiny-scorer:prod")
 	if lsTags() != before {
 		t.Fatal("the refused promote moved a tag")
 	}
-	mustMG(t, u.store, promote...)
+	mustMG(t, u.Store, promote...)
 	if lsTags() == before {
 		t.Fatal("the release of both tags moved nothing")
 	}

@@ -1,4 +1,4 @@
-package main
+package storesuite
 
 import (
 	"encoding/json"
@@ -9,7 +9,6 @@ import (
 	"sync"
 	"testing"
 
-	"github.com/modelgate/modelgate/internal/clitest"
 	"github.com/modelgate/modelgate/internal/fixture"
 	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
@@ -29,14 +28,6 @@ import (
 // unitSteps are the crash points of a release of two tags, in order.
 var unitSteps = []string{"record:1", "record:2", "claim:1", "claim:2", "move:1", "move:2", "mark:1", "mark:2"}
 
-// runCrashAt runs the crashpoints build with args, killing itself after
-// step at.
-func runCrashAt(t *testing.T, store, at string, args ...string) killed {
-	t.Helper()
-	k := clitest.RunCrashAt(t, store, at, args...)
-	return killed{finished: k.Finished, res: fromResult(k.Res)}
-}
-
 const (
 	unitEnc    = "tiny-encoder:prod"
 	unitScorer = "tiny-scorer:prod"
@@ -53,7 +44,7 @@ type unitWorld struct {
 func newUnitWorld(t *testing.T, store string) *unitWorld {
 	t.Helper()
 	u := &unitWorld{releaseWorld: newReleaseWorldAt(t, 0, store)}
-	u.spolicy = filepath.Join(u.dir, "scorer.yaml")
+	u.spolicy = filepath.Join(u.Dir, "scorer.yaml")
 	text := `schemaVersion: 1
 name: tiny-scorer-release
 rules:
@@ -74,51 +65,51 @@ rules:
 		t.Fatal(err)
 	}
 	// First releases: the encoder, then a scorer of it.
-	enc := u.push(0, "")
-	u.gate("tiny-encoder:v0")
-	mustMG(t, store, "promote", "tiny-encoder:v0", "--to", unitEnc, "--policy", u.policy, "--key", u.key("rita"))
+	enc := u.Push(0, "")
+	u.Gate("tiny-encoder:v0")
+	mustMG(t, store, "promote", "tiny-encoder:v0", "--to", unitEnc, "--policy", u.Policy, "--key", u.Key("rita"))
 	u.pushScorer(0, enc)
-	mustMG(t, store, "gate", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.key("ci"))
-	mustMG(t, store, "promote", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--key", u.key("rita"))
+	mustMG(t, store, "gate", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.Key("ci"))
+	mustMG(t, store, "promote", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--key", u.Key("rita"))
 	return u
 }
 
 // pushScorer pushes a tiny scorer of encoder digest enc as tiny-scorer:s<i>.
 func (u *unitWorld) pushScorer(i int, enc string) string {
-	u.t.Helper()
+	u.T.Helper()
 	m := fixture.ScorerModel(fixture.EncoderModel(), enc)
 	m.Spec.Name = fmt.Sprintf("tiny-promo-scorer-%02d", i)
 	m.Spec.Encoder.Name = fmt.Sprintf("tiny-encoder:v%d", i)
-	dir := filepath.Join(u.dir, m.Spec.Name)
+	dir := filepath.Join(u.Dir, m.Spec.Name)
 	if err := modeldir.Write(dir, m); err != nil {
-		u.t.Fatal(err)
+		u.T.Fatal(err)
 	}
-	return strings.TrimSpace(mustMG(u.t, u.store, "push", dir, fmt.Sprintf("tiny-scorer:s%d", i)).stdout)
+	return strings.TrimSpace(mustMG(u.T, u.Store, "push", dir, fmt.Sprintf("tiny-scorer:s%d", i)).stdout)
 }
 
 // candidates pushes and gates a new encoder and a scorer of it, each
 // against what its tag points at now (the scorer in the world after the
 // release), and returns their digests and the promote that releases both.
 func (u *unitWorld) candidates() (enc, sc string, promote []string) {
-	u.t.Helper()
+	u.T.Helper()
 	u.n++
 	n := u.n
-	enc = u.push(n, "")
+	enc = u.Push(n, "")
 	sc = u.pushScorer(n, enc)
 	ev, sv := fmt.Sprintf("tiny-encoder:v%d", n), fmt.Sprintf("tiny-scorer:s%d", n)
-	u.gate(ev)
-	mustMG(u.t, u.store, "gate", sv, "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.key("ci"), "--with", ev+"="+unitEnc)
-	return enc, sc, []string{"promote", ev, "--to", unitEnc, "--with", sv + "=" + unitScorer, "--policy", u.policy, "--policy", u.spolicy,
-		"--key", u.key("rita"), "--reason", fmt.Sprintf("unit %d", n)}
+	u.Gate(ev)
+	mustMG(u.T, u.Store, "gate", sv, "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.Key("ci"), "--with", ev+"="+unitEnc)
+	return enc, sc, []string{"promote", ev, "--to", unitEnc, "--with", sv + "=" + unitScorer, "--policy", u.Policy, "--policy", u.spolicy,
+		"--key", u.Key("rita"), "--reason", fmt.Sprintf("unit %d", n)}
 }
 
 // logOf runs log --json on target: its exit code and, for exit 5, whether
 // the one damage finding is the documented interrupted state.
 func (u *unitWorld) logOf(target string) (code int, interrupted bool, rep logReport) {
-	u.t.Helper()
-	r := mg(u.t, u.store, "log", "--json", target)
+	u.T.Helper()
+	r := mg(u.T, u.Store, "log", "--json", target)
 	if err := json.Unmarshal([]byte(r.stdout), &rep); err != nil {
-		u.t.Fatalf("log --json %s: exit %d, %v\n%s%s", target, r.code, err, r.stdout, r.stderr)
+		u.T.Fatalf("log --json %s: exit %d, %v\n%s%s", target, r.code, err, r.stdout, r.stderr)
 	}
 	var damage []string
 	for _, f := range rep.Findings {
@@ -136,10 +127,10 @@ func (u *unitWorld) logOf(target string) (code int, interrupted bool, rep logRep
 // release that moves the encoder from oldE to newE and the scorer from
 // oldS to newS; it returns whether a log shows the interrupted state.
 func (u *unitWorld) checkCrash(what string, before map[string]string, oldE, newE, oldS, newS string) bool {
-	t := u.t
+	t := u.T
 	t.Helper()
-	mustVerify(t, u.store, what)
-	after := storeTags(t, u.store)
+	mustVerify(t, u.Store, what)
+	after := storeTags(t, u.Store)
 	for k, v := range before {
 		switch k {
 		case unitEnc, unitScorer, "tiny-encoder:release-prod", "tiny-scorer:release-prod":
@@ -173,25 +164,32 @@ func (u *unitWorld) checkCrash(what string, before map[string]string, oldE, newE
 
 // logsVerify requires both logs to verify against their policies.
 func (u *unitWorld) logsVerify(what string) {
-	u.t.Helper()
-	for _, a := range [][]string{{unitEnc, u.policy}, {unitScorer, u.spolicy}} {
-		if r := mg(u.t, u.store, "log", a[0], "--policy", a[1]); r.code != 0 {
-			u.t.Fatalf("%s: log %s exit %d\n%s%s", what, a[0], r.code, r.stdout, r.stderr)
+	u.T.Helper()
+	for _, a := range [][]string{{unitEnc, u.Policy}, {unitScorer, u.spolicy}} {
+		if r := mg(u.T, u.Store, "log", a[0], "--policy", a[1]); r.code != 0 {
+			u.T.Fatalf("%s: log %s exit %d\n%s%s", what, a[0], r.code, r.stdout, r.stderr)
 		}
 	}
 }
 
 func (u *unitWorld) tags() (string, string) {
-	u.t.Helper()
-	tags := storeTags(u.t, u.store)
+	u.T.Helper()
+	tags := storeTags(u.T, u.Store)
 	return tags[unitEnc], tags[unitScorer]
 }
 
-// crashUnitRelease runs the crash suite of a release of two tags on store.
-func crashUnitRelease(t *testing.T, store string) {
+// registryUnitSteps are the crash points tried on docker-registry: one of
+// each kind (record, claim, move, mark), first and second tag alternating.
+// The in-process registry has the same tag semantics and is killed after
+// every step, as are the local store and the GCS emulator.
+var registryUnitSteps = []string{"record:2", "claim:1", "move:2", "mark:1"}
+
+// crashUnitRelease runs the crash suite of a release of two tags on store,
+// killed after each of steps.
+func crashUnitRelease(t *testing.T, store string, steps []string) {
 	u := newUnitWorld(t, store)
 	completedBy := map[string]int{}
-	for i, step := range unitSteps {
+	for i, step := range steps {
 		// promote --with, killed after step.
 		oldE, oldS := u.tags()
 		newE, newS, promote := u.candidates()
@@ -230,7 +228,7 @@ func crashUnitRelease(t *testing.T, store string) {
 					}
 				}
 			}
-			r = mustMG(t, store, "rollback", unitScorer, "--reason", "after "+what, "--key", u.key("rita"))
+			r = mustMG(t, store, "rollback", unitScorer, "--reason", "after "+what, "--key", u.Key("rita"))
 			completedBy["rollback"]++
 		}
 		if pending && !strings.Contains(r.stdout, "completed an interrupted release first") {
@@ -244,7 +242,7 @@ func crashUnitRelease(t *testing.T, store string) {
 	}
 	// A rollback of the unit, killed after each step: the next promote
 	// (of the pair it restores) or the rollback run again completes it.
-	for _, step := range unitSteps {
+	for _, step := range steps {
 		_, _, promote := u.candidates()
 		mustMG(t, store, promote...)
 		newE, newS := u.tags()
@@ -264,7 +262,7 @@ func crashUnitRelease(t *testing.T, store string) {
 		}
 		before := storeTags(t, store)
 		what := fmt.Sprintf("rollback killed after %s", step)
-		k := runCrashAt(t, store, step, "rollback", unitEnc, "--reason", what, "--key", u.key("rita"))
+		k := runCrashAt(t, store, step, "rollback", unitEnc, "--reason", what, "--key", u.Key("rita"))
 		if k.finished {
 			t.Fatalf("%s: the run was not killed (exit %d): %s%s", what, k.res.code, k.res.stdout, k.res.stderr)
 		}
@@ -273,13 +271,13 @@ func crashUnitRelease(t *testing.T, store string) {
 		pending := u.checkCrash(what, before, newE, oldE, newS, oldS)
 		if pending {
 			r := mustMG(t, store, "promote", "tiny-encoder@"+oldE, "--to", unitEnc, "--with", "tiny-scorer@"+oldS+"="+unitScorer,
-				"--policy", u.policy, "--policy", u.spolicy, "--key", u.key("rita"))
+				"--policy", u.Policy, "--policy", u.spolicy, "--key", u.Key("rita"))
 			if !strings.Contains(r.stdout, "completed an interrupted release first") || !strings.Contains(r.stdout, "nothing to do") {
 				t.Fatalf("%s: the next promote did not complete the interrupted rollback:\n%s", what, r.stdout)
 			}
 			completedBy["promote"]++
 		} else if e, _ := u.tags(); e == newE {
-			mustMG(t, store, "rollback", unitEnc, "--reason", "again after "+what, "--key", u.key("rita"))
+			mustMG(t, store, "rollback", unitEnc, "--reason", "again after "+what, "--key", u.Key("rita"))
 		}
 		if e, s := u.tags(); e != oldE || s != oldS {
 			t.Fatalf("%s: after completing, encoder %s scorer %s, want %s %s", what, e, s, oldE, oldS)
@@ -287,14 +285,16 @@ func crashUnitRelease(t *testing.T, store string) {
 		mustVerify(t, store, what+", completed")
 		u.logsVerify(what + ", completed")
 	}
-	t.Logf("%d kill points for promote --with and %d for its rollback; completed by: %v", len(unitSteps), len(unitSteps), completedBy)
+	t.Logf("%d kill points for promote --with and %d for its rollback; completed by: %v", len(steps), len(steps), completedBy)
 }
 
 // TestCrashDuringUnitRelease: the local store, the GCS emulator, an
 // in-process registry and, when MODELGATE_TEST_REGISTRY names one (CI
 // starts it with .ci/services.sh), docker-registry. A registry has no
 // compare-and-swap on tags, but one process at a time is killed here: what
-// a kill leaves must be the same states as on the other stores.
+// a kill leaves must be the same states as on the other stores. Every step
+// is killed on the first three; docker-registry, the slowest by far, gets
+// one kill of each kind of step (registryUnitSteps).
 func TestCrashDuringUnitRelease(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
@@ -303,7 +303,11 @@ func TestCrashDuringUnitRelease(t *testing.T) {
 		if k.name == "registry-no-catalog" {
 			continue // verify and ls need the repository names there; "registry" has the same tag semantics
 		}
-		t.Run(k.name, func(t *testing.T) { crashUnitRelease(t, k.loc) })
+		steps := unitSteps
+		if k.name == "docker-registry" {
+			steps = registryUnitSteps
+		}
+		t.Run(k.name, func(t *testing.T) { crashUnitRelease(t, k.loc, steps) })
 	}
 }
 
@@ -369,18 +373,18 @@ func TestUnitReleaseCLI(t *testing.T) {
 	oldE, oldS := u.tags()
 	_, _, promote := u.candidates()
 	alone := append([]string(nil), promote[:4]...) // promote tiny-encoder:vN --to tiny-encoder:prod
-	before := storeTags(t, u.store)
-	r := mg(t, u.store, append(alone, "--policy", u.policy, "--key", u.key("rita"))...)
+	before := storeTags(t, u.Store)
+	r := mg(t, u.Store, append(alone, "--policy", u.Policy, "--key", u.Key("rita"))...)
 	wantExit(t, r, 4, "is consumed by tiny-scorer:prod (scorer ", "--with SCORER-CANDIDATE=tiny-scorer:prod")
-	if after := storeTags(t, u.store); fmt.Sprint(after) != fmt.Sprint(before) {
+	if after := storeTags(t, u.Store); fmt.Sprint(after) != fmt.Sprint(before) {
 		t.Fatalf("the refused promote changed tags:\n%v\n%v", before, after)
 	}
-	r = mg(t, u.store, append(append([]string{"--json"}, alone...), "--policy", u.policy, "--key", u.key("rita"))...)
+	r = mg(t, u.Store, append(append([]string{"--json"}, alone...), "--policy", u.Policy, "--key", u.Key("rita"))...)
 	checkJSON(t, "promote", r)
 	if r.code != 4 || !strings.Contains(r.stdout, "tiny-scorer:prod") {
 		t.Fatalf("promote --json of the encoder alone: exit %d\n%s", r.code, r.stdout)
 	}
-	r = mustMG(t, u.store, append([]string{"--json"}, promote...)...)
+	r = mustMG(t, u.Store, append([]string{"--json"}, promote...)...)
 	checkJSON(t, "promote", r)
 	var out struct {
 		Result struct {
@@ -391,7 +395,7 @@ func TestUnitReleaseCLI(t *testing.T) {
 		out.Result.Members[0].Target != unitScorer || out.Result.Members[0].From != oldS || out.Result.Members[1].From != oldE {
 		t.Fatalf("promote --with --json: %v\n%s", err, r.stdout)
 	}
-	r = mustMG(t, u.store, "rollback", "--json", unitEnc, "--reason", "drill", "--key", u.key("rita"))
+	r = mustMG(t, u.Store, "rollback", "--json", unitEnc, "--reason", "drill", "--key", u.Key("rita"))
 	checkJSON(t, "rollback", r)
 	if e, s := u.tags(); e != oldE || s != oldS {
 		t.Fatalf("after the rollback of the encoder: %s %s, want %s %s", e, s, oldE, oldS)

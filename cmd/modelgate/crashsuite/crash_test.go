@@ -1,4 +1,4 @@
-package main
+package crashsuite
 
 import (
 	"bufio"
@@ -29,12 +29,6 @@ import (
 // points, spread over the measured duration of an uninterrupted run; the
 // timing only decides where the kills land, no assertion depends on it.
 
-// killed is the outcome of a modelgate process sent SIGKILL after a delay.
-type killed struct {
-	finished bool   // it exited by itself before the signal
-	res      result // its exit code and output, when finished
-}
-
 // runKilled starts modelgate with args against store and sends it SIGKILL
 // after delay, unless it has exited by then.
 func runKilled(t *testing.T, store string, delay time.Duration, args ...string) killed {
@@ -50,7 +44,7 @@ func runKilled(t *testing.T, store string, delay time.Duration, args ...string) 
 	err := cmd.Wait()
 	timer.Stop()
 	k := clitest.Outcome(t, err, so.String(), se.String(), args)
-	return killed{finished: k.Finished, res: fromResult(k.Res)}
+	return fromKilled(k)
 }
 
 // timedMG runs modelgate to completion (exit 0 required) and returns how
@@ -81,28 +75,6 @@ func releaseKillPoints(rng *rand.Rand, full time.Duration, n int) []time.Duratio
 	out := append(killPoints(rng, 0, full, n/2), killPoints(rng, full*3/5, full, n-n/2)...)
 	rng.Shuffle(n, func(i, j int) { out[i], out[j] = out[j], out[i] })
 	return out
-}
-
-// storeTags maps every NAME:TAG of the store to its digest.
-func storeTags(t *testing.T, store string) map[string]string {
-	t.Helper()
-	var rows []lsRow
-	if err := json.Unmarshal([]byte(mustMG(t, store, "ls", "--json").stdout), &rows); err != nil {
-		t.Fatal(err)
-	}
-	out := map[string]string{}
-	for _, r := range rows {
-		out[r.Repository+":"+r.Tag] = r.Digest
-	}
-	return out
-}
-
-// mustVerify runs verify; it must exit 0 (hints allowed).
-func mustVerify(t *testing.T, store, what string) {
-	t.Helper()
-	if r := mg(t, store, "verify", "--json"); r.code != 0 {
-		t.Fatalf("%s: verify exit %d\n%s%s", what, r.code, r.stdout, r.stderr)
-	}
 }
 
 // checkTags requires every tag of after to equal before, except moving,
@@ -229,22 +201,12 @@ const (
 // report.
 func (c *releaseCrash) logState() (int, logReport) {
 	c.t.Helper()
-	r := mg(c.t, c.w.store, "log", "--json", crashTarget)
+	r := mg(c.t, c.w.Store, "log", "--json", crashTarget)
 	var rep logReport
 	if err := json.Unmarshal([]byte(r.stdout), &rep); err != nil {
 		c.t.Fatalf("log --json: exit %d, %v\n%s%s", r.code, err, r.stdout, r.stderr)
 	}
 	return r.code, rep
-}
-
-type logReport struct {
-	Current string
-	Head    string
-	Entries []struct {
-		Digest string
-		Record struct{ Kind, From, To string }
-	}
-	Findings []struct{ Severity, Where, Message string }
 }
 
 func (c *releaseCrash) check(what string, before map[string]string, newTarget string, k killed) {
@@ -258,8 +220,8 @@ func (c *releaseCrash) check(what string, before map[string]string, newTarget st
 			t.Fatalf("%s: finished over an interrupted release without completing it:\n%s", what, k.res.stdout)
 		}
 	}
-	mustVerify(t, c.w.store, what)
-	after := storeTags(t, c.w.store)
+	mustVerify(t, c.w.Store, what)
+	after := storeTags(t, c.w.Store)
 	checkTags(t, what, before, after, crashTarget, []string{newTarget}, crashHead)
 	cur := after[crashTarget]
 	code, rep := c.logState()
@@ -320,15 +282,15 @@ func (c *releaseCrash) finish() {
 	// A promote of a fresh candidate completes any interrupted release and,
 	// whatever state the kill points left, gives the closing rollback an
 	// earlier release to return to.
-	c.w.push(99, "")
-	c.w.gate("tiny-encoder:v99")
-	r := mustMG(c.t, c.w.store, "promote", "tiny-encoder:v99", "--to", crashTarget, "--policy", c.w.policy, "--key", c.w.key("rita"))
+	c.w.Push(99, "")
+	c.w.Gate("tiny-encoder:v99")
+	r := mustMG(c.t, c.w.Store, "promote", "tiny-encoder:v99", "--to", crashTarget, "--policy", c.w.Policy, "--key", c.w.Key("rita"))
 	if c.pending && !strings.Contains(r.stdout, "completed an interrupted release first") {
 		c.t.Fatalf("the promote after an interrupted release did not complete it:\n%s", r.stdout)
 	}
-	mustMG(c.t, c.w.store, "rollback", crashTarget, "--reason", "after the crash suite", "--key", c.w.key("rita"))
-	mustMG(c.t, c.w.store, "log", crashTarget, "--policy", c.w.policy)
-	mustVerify(c.t, c.w.store, "after the crash suite")
+	mustMG(c.t, c.w.Store, "rollback", crashTarget, "--reason", "after the crash suite", "--key", c.w.Key("rita"))
+	mustMG(c.t, c.w.Store, "log", crashTarget, "--policy", c.w.Policy)
+	mustVerify(c.t, c.w.Store, "after the crash suite")
 }
 
 // TestCrashDuringPromote kills `promote` at 20 points, each time with a
@@ -337,12 +299,18 @@ func TestCrashDuringPromote(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
 	}
-	crashPromote(t, newReleaseWorld(t, 0))
+	crashPromote(t, newReleaseWorld(t, 0), 20)
 }
 
 // TestCrashDuringReleaseOnDockerRegistry: the timed kills of promote and
 // rollback on docker-registry, when MODELGATE_TEST_REGISTRY names one (CI
-// starts it with .ci/services.sh); skipped without it.
+// starts it with .ci/services.sh); skipped without it. Six kill points
+// each, not the local store's twenty: every step of a release is killed
+// exactly on docker-registry already (TestCrashDuringUnitRelease), and
+// the twenty timed points run on the local store; these six check that
+// kills at arbitrary instants of a registry's HTTP exchanges leave the
+// same states. A docker-registry run of twenty took most of the package's
+// CI time.
 func TestCrashDuringReleaseOnDockerRegistry(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
@@ -351,35 +319,38 @@ func TestCrashDuringReleaseOnDockerRegistry(t *testing.T) {
 		if k.name != "docker-registry" {
 			continue
 		}
-		t.Run("promote", func(t *testing.T) { crashPromote(t, newReleaseWorldAt(t, 0, k.loc+"-promote")) })
-		t.Run("rollback", func(t *testing.T) { crashRollback(t, newReleaseWorldAt(t, 0, k.loc+"-rollback")) })
+		t.Run("promote", func(t *testing.T) { crashPromote(t, newReleaseWorldAt(t, 0, k.loc+"-promote"), registryRuns) })
+		t.Run("rollback", func(t *testing.T) { crashRollback(t, newReleaseWorldAt(t, 0, k.loc+"-rollback"), registryRuns) })
 		return
 	}
 	t.Skip("MODELGATE_TEST_REGISTRY is not set (.ci/services.sh starts docker-registry and sets it)")
 }
 
-// crashPromote kills promote at 20 points in the world w.
-func crashPromote(t *testing.T, w *releaseWorld) {
-	const runs = 20
-	w.push(0, crashTarget)
+// registryRuns is the number of timed kills of promote and of rollback
+// on docker-registry.
+const registryRuns = 6
+
+// crashPromote kills promote at runs points in the world w.
+func crashPromote(t *testing.T, w *releaseWorld, runs int) {
+	w.Push(0, crashTarget)
 	var full time.Duration // the longer of two uninterrupted promotes
 	for n := 1; n <= 2; n++ {
-		w.push(n, "")
-		w.gate(fmt.Sprintf("tiny-encoder:v%d", n))
-		_, d := timedMG(t, w.store, "promote", fmt.Sprintf("tiny-encoder:v%d", n), "--to", crashTarget, "--policy", w.policy, "--key", w.key("rita"))
+		w.Push(n, "")
+		w.Gate(fmt.Sprintf("tiny-encoder:v%d", n))
+		_, d := timedMG(t, w.Store, "promote", fmt.Sprintf("tiny-encoder:v%d", n), "--to", crashTarget, "--policy", w.Policy, "--key", w.Key("rita"))
 		full = max(full, d)
 	}
 	c := &releaseCrash{t: t, w: w}
 	delays := releaseKillPoints(rand.New(rand.NewPCG(7, 2)), full, runs)
 	for i := range runs {
 		n := i + 3
-		cand := w.push(n, "")
-		w.gate(fmt.Sprintf("tiny-encoder:v%d", n))
-		before := storeTags(t, w.store)
+		cand := w.Push(n, "")
+		w.Gate(fmt.Sprintf("tiny-encoder:v%d", n))
+		before := storeTags(t, w.Store)
 		delay := delays[i]
 		what := fmt.Sprintf("promote run %d (kill after %v of %v)", i, delay, full)
-		k := runKilled(t, w.store, delay, "promote", fmt.Sprintf("tiny-encoder:v%d", n), "--to", crashTarget,
-			"--policy", w.policy, "--key", w.key("rita"), "--reason", what)
+		k := runKilled(t, w.Store, delay, "promote", fmt.Sprintf("tiny-encoder:v%d", n), "--to", crashTarget,
+			"--policy", w.Policy, "--key", w.Key("rita"), "--reason", what)
 		c.check(what, before, cand, k)
 	}
 	t.Logf("promote: %d kill points over %v: %v", runs, full, c.tally)
@@ -393,30 +364,29 @@ func TestCrashDuringRollback(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
 	}
-	crashRollback(t, newReleaseWorld(t, 0))
+	crashRollback(t, newReleaseWorld(t, 0), 20)
 }
 
-// crashRollback kills rollback at 20 points in the world w.
-func crashRollback(t *testing.T, w *releaseWorld) {
-	const runs = 20
-	released := []string{w.push(0, crashTarget)}
+// crashRollback kills rollback at runs points in the world w.
+func crashRollback(t *testing.T, w *releaseWorld, runs int) {
+	released := []string{w.Push(0, crashTarget)}
 	for i := 1; i <= 3; i++ {
-		released = append(released, w.push(i, ""))
-		w.gate(fmt.Sprintf("tiny-encoder:v%d", i))
-		mustMG(t, w.store, "promote", fmt.Sprintf("tiny-encoder:v%d", i), "--to", crashTarget, "--policy", w.policy, "--key", w.key("rita"))
+		released = append(released, w.Push(i, ""))
+		w.Gate(fmt.Sprintf("tiny-encoder:v%d", i))
+		mustMG(t, w.Store, "promote", fmt.Sprintf("tiny-encoder:v%d", i), "--to", crashTarget, "--policy", w.Policy, "--key", w.Key("rita"))
 	}
 	var full time.Duration // the longer of two uninterrupted rollbacks
 	for range 2 {
-		_, d := timedMG(t, w.store, "rollback", crashTarget, "--reason", "timing", "--key", w.key("rita"))
+		_, d := timedMG(t, w.Store, "rollback", crashTarget, "--reason", "timing", "--key", w.Key("rita"))
 		full = max(full, d)
 	}
 	c := &releaseCrash{t: t, w: w}
 	rng := rand.New(rand.NewPCG(7, 3))
 	delays := releaseKillPoints(rng, full, runs)
 	for i := range runs {
-		before := storeTags(t, w.store)
+		before := storeTags(t, w.Store)
 		cur := before[crashTarget]
-		args := []string{"rollback", crashTarget, "--key", w.key("rita")}
+		args := []string{"rollback", crashTarget, "--key", w.Key("rita")}
 		var to string
 		undo := i%3 == 2
 		if undo {
@@ -424,7 +394,7 @@ func crashRollback(t *testing.T, w *releaseWorld) {
 			// earlier kills left the tag at its first release, there is
 			// nothing earlier (exit 2, said so): roll back by --to instead.
 			var dry struct{ To string }
-			r := mg(t, w.store, "rollback", crashTarget, "--reason", "dry", "--dry-run", "--json")
+			r := mg(t, w.Store, "rollback", crashTarget, "--reason", "dry", "--dry-run", "--json")
 			switch {
 			case r.code == 2 && strings.Contains(r.stdout, "nothing earlier to roll back to"):
 				undo = false
@@ -441,7 +411,7 @@ func crashRollback(t *testing.T, w *releaseWorld) {
 		}
 		delay := delays[i]
 		what := fmt.Sprintf("rollback run %d (kill after %v of %v)", i, delay, full)
-		k := runKilled(t, w.store, delay, append(args, "--reason", what)...)
+		k := runKilled(t, w.Store, delay, append(args, "--reason", what)...)
 		c.check(what, before, to, k)
 	}
 	t.Logf("rollback: %d kill points over %v: %v", runs, full, c.tally)

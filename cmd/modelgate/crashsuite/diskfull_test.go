@@ -1,4 +1,4 @@
-package main
+package crashsuite
 
 import (
 	"encoding/json"
@@ -141,7 +141,7 @@ func TestStoreOnFullDisk(t *testing.T) {
 
 func fullDiskReleases(t *testing.T, d *fullDisk) {
 	w := newReleaseWorldAt(t, 1, d.store)
-	w.push(0, "tiny-encoder:prod")
+	w.Push(0, "tiny-encoder:prod")
 	root := t.TempDir()
 	// The room left, from none to more than any of these commands
 	// writes at once (the fixture's blobs are a few KiB).
@@ -157,9 +157,9 @@ func fullDiskReleases(t *testing.T, d *fullDisk) {
 			args []string
 		}{
 			{"push", []string{"push", bigEncoder(t, root, fmt.Sprintf("full-encoder-%d", n), uint64(n), 200+n), cand}},
-			{"gate", []string{"gate", cand, "--to", "tiny-encoder:prod", "--policy", w.policy, "--sign-key", w.key("ci")}},
-			{"approve", []string{"approve", cand, "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("ana")}},
-			{"promote", []string{"promote", cand, "--to", "tiny-encoder:prod", "--policy", w.policy, "--key", w.key("rita")}},
+			{"gate", []string{"gate", cand, "--to", "tiny-encoder:prod", "--policy", w.Policy, "--sign-key", w.Key("ci")}},
+			{"approve", []string{"approve", cand, "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("ana")}},
+			{"promote", []string{"promote", cand, "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("rita")}},
 		}
 		for _, s := range steps {
 			what := fmt.Sprintf("%s with %d bytes of room", s.what, room)
@@ -203,10 +203,10 @@ func fullDiskReleases(t *testing.T, d *fullDisk) {
 			}
 			mustVerify(t, d.store, what)
 		}
-		if got := w.prod(); got == "" || !strings.HasPrefix(got, "sha256:") {
+		if got := w.Prod(); got == "" || !strings.HasPrefix(got, "sha256:") {
 			t.Fatalf("tiny-encoder:prod after round %d: %q", n, got)
 		}
-		mustMG(t, d.store, "log", "tiny-encoder:prod", "--policy", w.policy)
+		mustMG(t, d.store, "log", "tiny-encoder:prod", "--policy", w.Policy)
 	}
 	if refused == 0 {
 		t.Fatalf("no command ran out of room: the test tested nothing")
