@@ -208,6 +208,9 @@ func TestParquetColumnarMatchesRowPath(t *testing.T) {
 		t.Run(c.name, func(t *testing.T) {
 			path := filepath.Join(dir, c.name+".parquet")
 			c.write(path)
+			if c.name == "dictionary" && !hasDictionaryPage(t, path, "items") {
+				t.Fatal("the file has no dictionary-encoded items page")
+			}
 			out := sameOnBothPaths(t, path, c.opts)
 			if out.Err != "" || len(out.Flat.RowIDs) != 300 {
 				t.Errorf("read %d rows, error %q; want 300 rows", len(out.Flat.RowIDs), out.Err)
@@ -269,6 +272,30 @@ func TestParquetColumnarErrorsMatchRowPath(t *testing.T) {
 					}
 				})
 			}
+		}
+	}
+}
+
+// hasDictionaryPage reports whether a page of the named column (a list's
+// element) in the file's first row group is dictionary-encoded.
+func hasDictionaryPage(t *testing.T, path, name string) bool {
+	t.Helper()
+	pf := openParquetFile(t, path)
+	col, err := newColumn(name, pf.Root().Column(name), shapeList, idKinds)
+	if err != nil {
+		t.Fatal(err)
+	}
+	pages := pf.RowGroups()[0].ColumnChunks()[col.index].Pages()
+	defer pages.Close()
+	for {
+		page, err := pages.ReadPage()
+		if err != nil {
+			return false
+		}
+		dict := page.Dictionary() != nil
+		parquet.Release(page)
+		if dict {
+			return true
 		}
 	}
 }
