@@ -335,6 +335,11 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 	defer stopReading()
 	// process adds a batch to the statistics (and, for an encoder, runs
 	// its forward pass); a scorer's predictions are fp.pc and fp.pb.
+	// Buffers process reuses from batch to batch.
+	var (
+		nnzBuf   []int
+		groupBuf [3][]rowGroup
+	)
 	process := func(fp *framePair) error {
 		n := fp.n
 		pc, pb := fp.pc, fp.pb
@@ -348,7 +353,10 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 		tStats := time.Now()
 		forward := 0.0
 		w = append(w[:0], fc.Weights[:n]...)
-		nnz := make([]int, n)
+		if cap(nnzBuf) < n {
+			nnzBuf = make([]int, n)
+		}
+		nnz := nnzBuf[:n]
 		for i := 0; i < n; i++ {
 			if w[i] != 1 {
 				st.Weights.HoldoutWeights = true
@@ -359,16 +367,21 @@ func accumulate(ctx context.Context, cand, base *score.Model, hold *artifact.Hol
 			}
 		}
 		lc, lb, d = grow64(lc, n), grow64(lb, n), grow64(d, n)
-		groups, err := groupRows(n, func(i int) string { return sliceOf(nnz[i]) }, slice)
+		groups, err := groupRows(n, func(i int) string { return sliceOf(nnz[i]) }, slice, groupBuf[0])
 		if err != nil {
 			return err
 		}
+		groupBuf[0] = groups
 		if segments {
-			segGroups, err := groupRows(n, func(i int) string { return segmentOf(fc.Slices[i]) }, slice)
+			segGroups, err := groupRows(n, func(i int) string { return segmentOf(fc.Slices[i]) }, slice, groupBuf[1])
 			if err != nil {
 				return err
 			}
-			groups = append(groups, segGroups...)
+			groupBuf[1] = segGroups
+			// A list of its own: the buffers' groups past their
+			// lengths keep row lists for the next batch.
+			groups = append(append(groupBuf[2][:0], groups...), segGroups...)
+			groupBuf[2] = groups
 		}
 		if encoder {
 			tf := time.Now()
@@ -757,8 +770,9 @@ func SegmentSliceName(v string) string {
 
 // groupRows groups a batch's rows by the slice nameOf gives each, in order
 // of first appearance.
-func groupRows(n int, nameOf func(i int) string, slice func(string) (*sliceAcc, error)) ([]rowGroup, error) {
-	var groups []rowGroup
+func groupRows(n int, nameOf func(i int) string, slice func(string) (*sliceAcc, error), buf []rowGroup) ([]rowGroup, error) {
+	// buf's groups, past its length, keep their row lists for reuse.
+	groups := buf[:0]
 	lastName, last := "", -1
 	for i := 0; i < n; i++ {
 		name := nameOf(i)
@@ -776,7 +790,12 @@ func groupRows(n int, nameOf func(i int) string, slice func(string) (*sliceAcc, 
 					return nil, err
 				}
 				last = len(groups)
-				groups = append(groups, rowGroup{acc: acc, rows: make([]int, 0, n)})
+				if last < cap(groups) {
+					groups = groups[:last+1]
+					groups[last].acc, groups[last].rows = acc, groups[last].rows[:0]
+				} else {
+					groups = append(groups, rowGroup{acc: acc, rows: make([]int, 0, n)})
+				}
 			}
 			lastName = name
 		}
