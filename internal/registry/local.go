@@ -427,6 +427,7 @@ func (l *Local) stage(ctx context.Context, size int64, r io.Reader) (_ *localSta
 	if n != size {
 		return nil, errkind.New(errkind.BadInput, "%w: got %d bytes, want %d", ErrDigestMismatch, n, size)
 	}
+	step(stepBlobWritten)
 	return &localStaged{l: l, f: f, tmp: f.Name(), size: size, forget: forget,
 		digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(h.Sum(nil))}}, nil
 }
@@ -489,6 +490,7 @@ func (s *localStaged) Commit(ctx context.Context) (existed bool, err error) {
 	if err := s.f.Sync(); err != nil {
 		return false, err
 	}
+	step(stepBlobSynced)
 	err = s.f.Close()
 	s.f = nil
 	if err != nil {
@@ -500,6 +502,7 @@ func (s *localStaged) Commit(ctx context.Context) (existed bool, err error) {
 	if err := os.Rename(tmp, final); err != nil {
 		return false, err
 	}
+	step(stepBlobRenamed)
 	s.forget()
 	s.state = stagedCommitted
 	if err := syncDir(filepath.Dir(final)); err != nil {

@@ -237,10 +237,12 @@ func (l *Local) writeFileAtomic(dst string, data []byte, durable, keep bool) (*o
 	if err := f.Chmod(0o644); err != nil {
 		return fail(err)
 	}
+	step(stepFileWritten)
 	if durable {
 		if err := f.Sync(); err != nil {
 			return fail(err)
 		}
+		step(stepFileSynced)
 	}
 	if !keep {
 		err := f.Close()
@@ -252,6 +254,7 @@ func (l *Local) writeFileAtomic(dst string, data []byte, durable, keep bool) (*o
 	if err := os.Rename(tmp, dst); err != nil {
 		return fail(err)
 	}
+	step(stepFileRenamed)
 	if durable {
 		if err := syncDir(filepath.Dir(dst)); err != nil {
 			if f != nil {
@@ -259,6 +262,7 @@ func (l *Local) writeFileAtomic(dst string, data []byte, durable, keep bool) (*o
 			}
 			return nil, fmt.Errorf("writing %s: %w", dst, err)
 		}
+		step(stepDirSynced)
 	}
 	return f, nil
 }

@@ -10,10 +10,10 @@ import (
 	"os/exec"
 	"path/filepath"
 	"strconv"
+	"strings"
 	"sync"
 	"syscall"
 	"testing"
-	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 
@@ -25,6 +25,7 @@ const (
 	helperStoreEnv = "MODELGATE_TEST_HELPER_STORE"
 	helperIndexEnv = "MODELGATE_TEST_HELPER_INDEX"
 	helperKillEnv  = "MODELGATE_TEST_HELPER_KILLED_STORE"
+	helperStepEnv  = "MODELGATE_TEST_HELPER_KILL_AT"
 	processes      = 16
 )
 
@@ -118,7 +119,8 @@ const killedRepo = "podcast/promo-scorer"
 
 // TestHelperKilledWriter is not a test: TestLocalKilledWriter runs the
 // test binary with this test selected; it writes release-style records
-// and moves tags until it is killed.
+// and moves tags, and sends itself SIGKILL after the step the test names
+// (STEP:N, the N-th time the store passes STEP; registry.SetStepHook).
 func TestHelperKilledWriter(t *testing.T) {
 	dir := os.Getenv(helperKillEnv)
 	if dir == "" {
@@ -128,6 +130,22 @@ func TestHelperKilledWriter(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	at, nth, _ := strings.Cut(os.Getenv(helperStepEnv), ":")
+	want, err := strconv.Atoi(nth)
+	if err != nil {
+		t.Fatalf("%s=%q: want STEP:N", helperStepEnv, os.Getenv(helperStepEnv))
+	}
+	seen := 0
+	registry.SetStepHook(func(step string) {
+		if step != at {
+			return
+		}
+		if seen++; seen == want {
+			_ = syscall.Kill(os.Getpid(), syscall.SIGKILL)
+			select {}
+		}
+	})
+	defer registry.SetStepHook(nil)
 	l, err := registry.OpenLocal(dir)
 	if err != nil {
 		t.Fatal(err)
@@ -137,7 +155,9 @@ func TestHelperKilledWriter(t *testing.T) {
 		storetest.Push(t, l, killedRepo, "", storetest.NewArtifact(600, "application/vnd.modelgate.scorer.v1", nil, nil)),
 		storetest.Push(t, l, killedRepo, "", storetest.NewArtifact(601, "application/vnd.modelgate.scorer.v1", nil, nil)),
 	}
-	for i := 0; ; i++ {
+	// Every step comes round many times in each pass; a step that never
+	// comes fails here rather than hanging the test.
+	for i := range 1000 {
 		m := models[i%2]
 		subj := m
 		subj.ArtifactType = ""
@@ -150,13 +170,21 @@ func TestHelperKilledWriter(t *testing.T) {
 			t.Fatal(err)
 		}
 	}
+	t.Fatalf("step %s came %d times in 1000 passes, never the %d-th", at, seen, want)
 }
 
-// TestLocalKilledWriter kills a writer process with SIGKILL at random
-// points (fixed seed; the points depend on timing, no assertion does):
-// afterwards the store has no damage, every tag resolves to a readable
-// manifest and every referrer listed is readable. A kill leaves at most
-// blobs, side files and temporary files that nothing names (hints).
+// killedRuns is the number of writers TestLocalKilledWriter kills: each
+// kind of step twice.
+var killedRuns = 2 * len(registry.WriteSteps)
+
+// TestLocalKilledWriter kills a writer process with SIGKILL after each
+// kind of step of a local store write (a temporary file written, synced,
+// renamed, its folder synced; blobs and small files), twice each, at the
+// N-th time the step comes (N from a fixed seed, so the same points every
+// run): afterwards the store has no damage, every tag resolves to a
+// readable manifest and every referrer listed is readable. A kill leaves
+// at most blobs, side files and temporary files that nothing names
+// (hints).
 func TestLocalKilledWriter(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash test skipped with -short")
@@ -164,50 +192,48 @@ func TestLocalKilledWriter(t *testing.T) {
 	dir := filepath.Join(t.TempDir(), "store")
 	rng := rand.New(rand.NewPCG(7, 7))
 	ctx := context.Background()
-	for run := range 12 {
+	for run := range killedRuns {
+		at := fmt.Sprintf("%s:%d", registry.WriteSteps[run%len(registry.WriteSteps)], 1+rng.IntN(40))
 		cmd := exec.Command(os.Args[0], "-test.run=^TestHelperKilledWriter$", "-test.count=1")
-		cmd.Env = append(os.Environ(), helperKillEnv+"="+dir, helperIndexEnv+"="+strconv.Itoa(run))
+		cmd.Env = append(os.Environ(), helperKillEnv+"="+dir, helperIndexEnv+"="+strconv.Itoa(run), helperStepEnv+"="+at)
 		var out bytes.Buffer
 		cmd.Stdout, cmd.Stderr = &out, &out
-		if err := cmd.Start(); err != nil {
-			t.Fatal(err)
-		}
-		time.Sleep(time.Duration(50+rng.IntN(400)) * time.Millisecond)
-		_ = cmd.Process.Signal(syscall.SIGKILL)
-		if err := cmd.Wait(); err == nil || bytes.Contains(out.Bytes(), []byte("--- FAIL")) {
-			t.Fatalf("run %d: the writer stopped before it was killed: %v\n%s", run, err, out.Bytes())
+		err := cmd.Run()
+		var ee *exec.ExitError
+		if !errors.As(err, &ee) || !ee.Sys().(syscall.WaitStatus).Signaled() {
+			t.Fatalf("run %d (kill after %s): the writer was not killed: %v\n%s", run, at, err, out.Bytes())
 		}
 
 		l, err := registry.OpenLocal(dir)
 		if err != nil {
-			t.Fatalf("run %d: %v", run, err)
+			t.Fatalf("run %d (after %s): %v", run, at, err)
 		}
 		fs := scrubFindings(t, l, nil)
 		for _, f := range fs {
 			if f.Severity != registry.SeverityHint {
-				t.Errorf("run %d: %+v", run, f)
+				t.Errorf("run %d (after %s): %+v", run, at, f)
 			}
 		}
 		tags, err := l.Tags(ctx, killedRepo)
 		if err != nil && !errors.Is(err, registry.ErrNotFound) {
-			t.Fatalf("run %d: Tags: %v", run, err)
+			t.Fatalf("run %d (after %s): Tags: %v", run, at, err)
 		}
 		for _, tag := range tags {
 			d, err := l.Resolve(ctx, killedRepo, tag)
 			if err != nil {
-				t.Errorf("run %d: Resolve(%s): %v", run, tag, err)
+				t.Errorf("run %d (after %s): Resolve(%s): %v", run, at, tag, err)
 				continue
 			}
 			if _, _, err := l.Manifest(ctx, killedRepo, d.Digest); err != nil {
-				t.Errorf("run %d: tag %s points at an unreadable manifest: %v", run, tag, err)
+				t.Errorf("run %d (after %s): tag %s points at an unreadable manifest: %v", run, at, tag, err)
 			}
 			refs, err := l.Referrers(ctx, killedRepo, d.Digest, "")
 			if err != nil {
-				t.Errorf("run %d: Referrers of %s: %v", run, tag, err)
+				t.Errorf("run %d (after %s): Referrers of %s: %v", run, at, tag, err)
 			}
 			for _, r := range refs {
 				if _, _, err := l.Manifest(ctx, killedRepo, r.Digest); err != nil {
-					t.Errorf("run %d: referrer %s of %s unreadable: %v", run, r.Digest, tag, err)
+					t.Errorf("run %d (after %s): referrer %s of %s unreadable: %v", run, at, r.Digest, tag, err)
 				}
 			}
 		}
@@ -223,5 +249,5 @@ func TestLocalKilledWriter(t *testing.T) {
 	if err != nil || len(ms) < 3 {
 		t.Fatalf("the writers recorded %d manifests (%v): the kills came before any record was written", len(ms), err)
 	}
-	t.Logf("%d manifests after 12 killed writers", len(ms))
+	t.Logf("%d manifests after %d killed writers", len(ms), killedRuns)
 }

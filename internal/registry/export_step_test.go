@@ -1,0 +1,8 @@
+package registry
+
+// SetStepHook sets the function a local store calls at each step boundary
+// of its writes (tests only; see stepHook).
+func SetStepHook(f func(step string)) { stepHook = f }
+
+// WriteSteps are the step names a local store passes to the hook.
+var WriteSteps = []string{stepBlobWritten, stepBlobSynced, stepBlobRenamed, stepFileWritten, stepFileSynced, stepFileRenamed, stepDirSynced}
