@@ -149,6 +149,16 @@ func TestReclaimCopyAll(t *testing.T) {
 	store := filepath.Join(t.TempDir(), "store")
 	w, _ := reclaimWorld(t, store)
 	t.Setenv("MODELGATE_TEST_NOW", time.Now().Add(30*24*time.Hour).UTC().Format(time.RFC3339))
+	// The dry run's text: what would go, grouped by reason, and the bytes.
+	dry := runCrashAt(t, store, "", "reclaim", "--policy", w.Policy)
+	for _, want := range []string{"would remove, by reason:", "expired-tag", "old-candidate", "referrer-of-eligible", "would reclaim", "(dry run: --apply removes them)", "kept "} {
+		if !strings.Contains(dry.res.stdout, want) {
+			t.Errorf("dry run output lacks %q:\n%s", want, dry.res.stdout)
+		}
+	}
+	if dry.res.code != 0 || !strings.Contains(dry.res.stderr, "modelgate: mark") {
+		t.Errorf("dry run: exit %d, no progress line for the mark on stderr:\n%s", dry.res.code, dry.res.stderr)
+	}
 	k := runCrashAt(t, store, "", "reclaim", "--policy", w.Policy, "--apply", "--json")
 	var doc reclaimDoc
 	if err := json.Unmarshal([]byte(k.res.stdout), &doc); err != nil || k.res.code != 0 || doc.Result == nil || doc.Result.Manifests != 3 || doc.Result.Bytes != doc.Plan.Bytes {
