@@ -10,6 +10,8 @@
 //     subject of, and every referrer of a kept artifact: so the models a
 //     release moved, their gate reports, approvals, freeze records,
 //     consumer markers, the bound policy, and the holdouts those name;
+//   - every tag a policy names (rule targets, holdouts, encoder tags) in
+//     the given policy or the policy bound to a guarded tag;
 //   - every release log head pointer (release-TAG) and every tag with a
 //     release log, and what they point at;
 //   - everything in a repository no retention entry names;
@@ -352,10 +354,22 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 			guarded[t.repo+":"+strings.TrimPrefix(t.tag, registry.ReleaseHeadPrefix)] = true
 		}
 	}
+	// Tags a policy names — the given one's, and the policy bound to each
+	// guarded tag — never expire: a gate resolves its holdout, its encoder
+	// tag and its target by them, and expiring one would stop every gate of
+	// the rule (a holdout tag removed is no longer a holdout to gate on).
+	named, err := policyTags(ctx, store, pol, guarded)
+	if err != nil {
+		return nil, err
+	}
 	for _, t := range tags {
 		n := mk.nodes[key{t.repo, t.target}]
 		if registry.IsReservedTag(t.tag) || guarded[t.repo+":"+t.tag] {
 			mk.keep(n, KeepReleaseLog)
+			continue
+		}
+		if named[t.repo+":"+t.tag] {
+			mk.keep(n, KeepPolicy)
 			continue
 		}
 		if e := n.rule.Expiry(t.tag); e != nil && n.timeKnown && mk.now.Sub(n.time) >= e.After {
@@ -408,6 +422,36 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 		plan.known[k] = true
 	}
 	return plan, nil
+}
+
+// policyTags lists ("repo:tag") the tags that pol and the policies bound
+// to the guarded tags name: rule targets, holdouts and encoder tags.
+func policyTags(ctx context.Context, store registry.Store, pol *policy.Policy, guarded map[string]bool) (map[string]bool, error) {
+	named := map[string]bool{}
+	add := func(p *policy.Policy) {
+		if p == nil {
+			return
+		}
+		for _, r := range p.Rules {
+			named[r.Target.Repository+":"+r.Target.Tag] = true
+			if h := r.HoldoutRef; h != nil && h.Tag != "" {
+				named[h.Repository+":"+h.Tag] = true
+			}
+			if e := r.Freeze.EncoderTag; e != nil && e.Tag != "" {
+				named[e.Repository+":"+e.Tag] = true
+			}
+		}
+	}
+	add(pol)
+	for g := range guarded {
+		i := strings.LastIndex(g, ":")
+		b, err := release.BoundPolicy(ctx, store, registry.Ref{Repository: g[:i], Tag: g[i+1:]})
+		if err != nil {
+			return nil, fmt.Errorf("reading the policy bound to %s: %w", g, err)
+		}
+		add(b.Policy)
+	}
+	return named, nil
 }
 
 var digestPattern = regexp.MustCompile(`sha256:[0-9a-f]{64}`)

@@ -5,6 +5,9 @@ import (
 	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"github.com/modelgate/modelgate/internal/policy"
+	"github.com/modelgate/modelgate/internal/registry"
 )
 
 const testRetention = `retention:
@@ -147,5 +150,45 @@ func TestMarkGrace(t *testing.T) {
 	// other four and their reports go.
 	if by := manifestsByReason(plan); len(by[ReasonOldCandidate]) != 4 || len(by[ReasonReferrerOfEligible]) != 4 {
 		t.Errorf("eligible %v", by)
+	}
+}
+
+// TestMarkKeepsTagsAPolicyNames: a tag the policy names (here a holdout
+// tag) does not expire, though an expireTags pattern matches it and its
+// artifact is old: removing it would stop every gate of the rule. The same
+// tag expires when no policy names it.
+func TestMarkKeepsTagsAPolicyNames(t *testing.T) {
+	s := newScene(t, "retention:\n  grace: 48h\n  repositories: [{repository: listener-encoder, keepCandidates: 0, expireTags: [{tags: '*', after: 720h}]}]\n")
+	s.history(12, 24*time.Hour, 3, 2)
+	s.store.advance(40 * 24 * time.Hour)
+	expired := func(p *Plan) map[string]bool {
+		out := map[string]bool{}
+		for _, tg := range p.Tags {
+			out[tg.Tag] = true
+		}
+		return out
+	}
+	plan, err := Mark(s.ctx, s.store, s.pol, Options{Now: s.store.clock()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if e := expired(plan); !e["ci-0"] || !e["ci-10"] || e["prod"] {
+		t.Fatalf("without a policy naming it: expired tags %v, want ci-0 and ci-10 (and never prod)", e)
+	}
+	named := *s.pol
+	named.Rules = append([]policy.Rule(nil), s.pol.Rules...)
+	named.Rules[0].HoldoutRef = &registry.Ref{Repository: encRepo, Tag: "ci-0"}
+	plan, err = Mark(s.ctx, s.store, &named, Options{Now: s.store.clock()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if e := expired(plan); e["ci-0"] || !e["ci-10"] {
+		t.Errorf("with a policy naming ci-0: expired tags %v, want ci-10 only", e)
+	}
+	ci0 := s.cands[0].String()
+	for _, m := range plan.Manifests {
+		if m.Digest == ci0 {
+			t.Errorf("the model ci-0 names is eligible (%s)", m.Reason)
+		}
 	}
 }
