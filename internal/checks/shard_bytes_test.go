@@ -29,8 +29,15 @@ import (
 // blobCounter is a reverse proxy in front of a registry that counts the
 // bytes of blob bodies it passes on, by digest.
 type blobCounter struct {
-	mu  sync.Mutex
-	out map[string]int64
+	mu   sync.Mutex
+	out  map[string]int64
+	reqs map[string]int // GET requests, by digest
+}
+
+func (c *blobCounter) requests(digest string) int {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	return c.reqs[digest]
 }
 
 func (c *blobCounter) bytes(digest string) int64 {
@@ -60,13 +67,17 @@ func countingProxy(t *testing.T, target string) (*blobCounter, string) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	c := &blobCounter{out: map[string]int64{}}
+	c := &blobCounter{out: map[string]int64{}, reqs: map[string]int{}}
 	rp := httputil.NewSingleHostReverseProxy(u)
 	rp.ErrorLog = log.New(io.Discard, "", 0)
 	rp.ModifyResponse = func(resp *http.Response) error {
 		p := resp.Request.URL.Path
 		if resp.Request.Method == http.MethodGet && strings.Contains(p, "/blobs/sha256:") {
-			resp.Body = countingBody{resp.Body, c, p[strings.LastIndex(p, "/")+1:]}
+			d := p[strings.LastIndex(p, "/")+1:]
+			c.mu.Lock()
+			c.reqs[d]++
+			c.mu.Unlock()
+			resp.Body = countingBody{resp.Body, c, d}
 		}
 		return nil
 	}
@@ -198,18 +209,20 @@ func TestHoldoutBytes(t *testing.T) {
 	// Four shards, each a fresh store without a cache (separate pods).
 	var shards []*ShardResult
 	var per []int64
+	var perReq []int
 	for i := range 4 {
-		before := counter.bytes(dg)
+		before, beforeReq := counter.bytes(dg), counter.requests(dg)
 		g.Store = open(nil)
 		r, err := RunShard(ctx, g, i, 4)
 		if err != nil {
 			t.Fatal(err)
 		}
 		per = append(per, counter.bytes(dg)-before)
+		perReq = append(perReq, counter.requests(dg)-beforeReq)
 		shards = append(shards, r)
 	}
 	total := counter.bytes(dg)
-	t.Logf("4 shards read %v bytes of the holdout blob: %d in all, %.3f× its %d bytes", per, total, float64(total)/float64(size), size)
+	t.Logf("4 shards read %v bytes of the holdout blob in %v requests: %d bytes in all, %.3f× its %d bytes", per, perReq, total, float64(total)/float64(size), size)
 	if float64(total) > 1.3*float64(size) {
 		t.Errorf("4 shards read %d bytes of a %d-byte holdout (%.2f×), want at most 1.3×", total, size, float64(total)/float64(size))
 	}

@@ -183,7 +183,16 @@ type BlobAt struct {
 	missing int
 	fetched int64
 	err     error // sticky integrity failure
+	next    int   // the block after the last fetch: a read there is sequential
+	ahead   int   // blocks fetched beyond the read: grows while reads are sequential
 }
+
+// maxReadAhead bounds the blocks fetched beyond what a read asks for (1
+// MiB at 64 KiB blocks). Our own choice: a sequential reader (a Parquet
+// column chunk read page by page) then sends one request per growing run
+// of blocks instead of one per block, and a reader that stops wastes at
+// most this much.
+const maxReadAhead = 16
 
 // OpenBlobAt opens blob dgst (size bytes) of repo for random access:
 //   - from the store's local BlobCache when it holds the blob (re-hashed
@@ -337,6 +346,20 @@ func (b *BlobAt) ensure(off, end int64) error {
 		for j+1 <= last && !b.have[j+1] {
 			j++
 		}
+		// Read ahead while the reads run on from the last fetch (or skip
+		// forward a little, as from one column chunk to the next),
+		// doubling up to maxReadAhead blocks; a jump back or far ahead
+		// starts over.
+		if b.fetched > 0 && i >= b.next && i <= b.next+maxReadAhead {
+			b.ahead = min(max(2*b.ahead, 1), maxReadAhead)
+		} else {
+			b.ahead = 0
+		}
+		if j == last {
+			for k := 0; k < b.ahead && j+1 < len(b.have) && !b.have[j+1]; k++ {
+				j++
+			}
+		}
 		err := b.fetch(i, j)
 		if errors.Is(err, ErrNoRanges) {
 			return b.fetchWhole()
@@ -347,6 +370,7 @@ func (b *BlobAt) ensure(off, end int64) error {
 			}
 			return err
 		}
+		b.next = j + 1
 		i = j + 1
 	}
 	return nil

@@ -45,7 +45,8 @@ func randomBytes(n int, seed uint64) []byte {
 type countingRegistry struct {
 	srv     *httptest.Server
 	blobOut atomic.Int64
-	flip    atomic.Bool // flip one byte of every 206 answer
+	blobGet atomic.Int64 // blob GET requests
+	flip    atomic.Bool  // flip one byte of every 206 answer
 }
 
 func newCountingRegistry(t *testing.T) *countingRegistry {
@@ -66,6 +67,7 @@ func newCountingRegistry(t *testing.T) *countingRegistry {
 			}
 			w.WriteHeader(rec.Code)
 			c.blobOut.Add(int64(len(body))) // before the client can see them
+			c.blobGet.Add(1)
 			w.Write(body)
 			return
 		}
@@ -336,5 +338,53 @@ func TestMemo(t *testing.T) {
 	}
 	if _, ok := m.(registry.TagSwapper); !ok {
 		t.Errorf("the memo store lost the registry's compare-and-swap ability")
+	}
+}
+
+// TestBlobAtReadAhead: a reader going through a blob in small pieces
+// (as a Parquet reader goes through a column chunk page by page) fetches
+// growing runs of blocks, not one block per request; a reader that stops
+// has fetched at most 16 blocks beyond what it read; a jump back or far
+// ahead fetches only the block it reads.
+func TestBlobAtReadAhead(t *testing.T) {
+	ctx := context.Background()
+	reg := newCountingRegistry(t)
+	s := reg.open(t)
+	blob := randomBytes(64<<10*100, 5) // 100 blocks
+	d := digestOf(blob)
+	if err := s.PutBlob(ctx, "r", d, int64(len(blob)), bytes.NewReader(blob)); err != nil {
+		t.Fatal(err)
+	}
+	bh := registry.NewBlockHasher(int64(len(blob)))
+	bh.Write(blob)
+	b, err := registry.OpenBlobAt(ctx, s, "r", d, int64(len(blob)), bh.Digests())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer b.Close()
+	gets := reg.blobGet.Load()
+	p := make([]byte, 4096)
+	const read = 40 << 16 // the first 40 blocks, 4 KiB at a time
+	for off := int64(0); off < read; off += int64(len(p)) {
+		if _, err := b.ReadAt(p, off); err != nil || !bytes.Equal(p, blob[off:off+int64(len(p))]) {
+			t.Fatalf("ReadAt %d: %v", off, err)
+		}
+	}
+	// Runs of 1, 2, 4, 8, 16, 16 blocks after the first: 7 requests.
+	if n := reg.blobGet.Load() - gets; n > 8 {
+		t.Errorf("40 blocks read in order took %d requests, want at most 8", n)
+	}
+	if f := b.Fetched(); f < read || f > read+16<<16 {
+		t.Errorf("fetched %d bytes for %d read, want at most 16 blocks more", f, read)
+	}
+	// Far ahead, then back: one block each.
+	for _, off := range []int64{90 << 16, 60 << 16} {
+		before := b.Fetched()
+		if _, err := b.ReadAt(p, off); err != nil || !bytes.Equal(p, blob[off:off+int64(len(p))]) {
+			t.Fatalf("ReadAt %d: %v", off, err)
+		}
+		if got := b.Fetched() - before; got != 64<<10 {
+			t.Errorf("a jump to block %d fetched %d bytes, want one block", off>>16, got)
+		}
 	}
 }
