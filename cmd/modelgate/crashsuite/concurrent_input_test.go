@@ -1,4 +1,4 @@
-package storesuite
+package crashsuite
 
 import (
 	"fmt"
