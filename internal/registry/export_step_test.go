@@ -6,3 +6,7 @@ func SetStepHook(f func(step string)) { stepHook = f }
 
 // WriteSteps are the step names a local store passes to the hook.
 var WriteSteps = []string{stepBlobWritten, stepBlobSynced, stepBlobRenamed, stepFileWritten, stepFileSynced, stepFileRenamed, stepDirSynced}
+
+// SetScrubListedHook sets the hook Scrub runs between listing the blobs
+// and reading the side files (nil removes it).
+func SetScrubListedHook(f func()) { scrubListedHook = f }
