@@ -4,18 +4,10 @@ package retain
 
 import (
 	"os"
-	"strconv"
-	"strings"
-	"sync"
-	"syscall"
 	"time"
-)
 
-// envCrashAt, in a binary built with -tags crashpoints (the crash suite's
-// own build, never a release), names the step after which the process
-// sends itself SIGKILL: STEP:N, the N-th time it passes crashPoint(STEP).
-// The same variable as the release path's crash points.
-const envCrashAt = "MODELGATE_TEST_CRASH_AT"
+	"github.com/modelgate/modelgate/internal/crashpoint"
+)
 
 // envTestNow, in the crash suite's build only, sets the collector's clock
 // (RFC 3339), so that a store written seconds ago can be collected as if
@@ -27,26 +19,6 @@ func testNow() time.Time {
 	return t
 }
 
-var crashCounts = struct {
-	sync.Mutex
-	n map[string]int
-}{n: map[string]int{}}
-
-func crashPoint(step string) {
-	name, nth, ok := strings.Cut(os.Getenv(envCrashAt), ":")
-	if !ok || name != step {
-		return
-	}
-	want, err := strconv.Atoi(nth)
-	if err != nil {
-		return
-	}
-	crashCounts.Lock()
-	crashCounts.n[step]++
-	hit := crashCounts.n[step] == want
-	crashCounts.Unlock()
-	if hit {
-		_ = syscall.Kill(os.Getpid(), syscall.SIGKILL)
-		select {}
-	}
-}
+// crashPoint marks a step of a collection that the crash suite kills the
+// process after (see package crashpoint).
+func crashPoint(step string) { crashpoint.Step(step) }
