@@ -6,7 +6,6 @@ import (
 	"fmt"
 	"sort"
 	"strings"
-	"sync"
 	"time"
 
 	"cloud.google.com/go/storage"
@@ -90,35 +89,10 @@ func (g *GCS) tagsNaming(ctx context.Context, repo string, dgst v1.Hash) ([]stri
 	if err != nil {
 		return nil, err
 	}
-	var (
-		mu    sync.Mutex
-		found []string
-		first error
-		wg    sync.WaitGroup
-		sem   = make(chan struct{}, 8)
-	)
-	for _, t := range tags {
-		wg.Add(1)
-		sem <- struct{}{}
-		go func(t string) {
-			defer func() { <-sem; wg.Done() }()
-			d, _, _, err := g.readTag(ctx, repo, t)
-			mu.Lock()
-			defer mu.Unlock()
-			switch {
-			case errors.Is(err, ErrNotFound):
-			case err != nil:
-				if first == nil {
-					first = err
-				}
-			case d.Digest == dgst:
-				found = append(found, t)
-			}
-		}(t)
-	}
-	wg.Wait()
-	sort.Strings(found)
-	return found, first
+	return tagsPointingAt(ctx, tags, dgst, func(ctx context.Context, t string) (v1.Hash, error) {
+		d, _, _, err := g.readTag(ctx, repo, t)
+		return d.Digest, err
+	})
 }
 
 // DeleteManifest removes manifest dgst of repo: its referrer link, then

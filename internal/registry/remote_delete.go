@@ -8,9 +8,7 @@ import (
 	"errors"
 	"fmt"
 	"net/http"
-	"sort"
 	"strings"
-	"sync"
 	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
@@ -122,7 +120,7 @@ func (r *Remote) deleteTagByName(ctx context.Context, full, tag string) (ok bool
 }
 
 // tagsNaming returns the tags of full (reserved ones aside, and except)
-// that point at dgst, resolving them eight at a time.
+// that point at dgst, resolving them tagResolvers at a time.
 func (r *Remote) tagsNaming(ctx context.Context, full string, dgst v1.Hash, except string) ([]string, error) {
 	all, err := r.allTags(ctx, full)
 	if errors.Is(err, ErrNotFound) {
@@ -131,38 +129,16 @@ func (r *Remote) tagsNaming(ctx context.Context, full string, dgst v1.Hash, exce
 	if err != nil {
 		return nil, err
 	}
-	var (
-		mu    sync.Mutex
-		found []string
-		first error
-		wg    sync.WaitGroup
-		sem   = make(chan struct{}, 8)
-	)
+	var tags []string
 	for _, t := range all {
-		if t == except || isReservedTag(t) || ValidateTag(t) != nil {
-			continue
+		if t != except && !isReservedTag(t) && ValidateTag(t) == nil {
+			tags = append(tags, t)
 		}
-		wg.Add(1)
-		sem <- struct{}{}
-		go func(t string) {
-			defer func() { <-sem; wg.Done() }()
-			d, err := r.head(ctx, full, t)
-			mu.Lock()
-			defer mu.Unlock()
-			switch {
-			case errors.Is(err, ErrNotFound):
-			case err != nil:
-				if first == nil {
-					first = err
-				}
-			case d.Digest == dgst:
-				found = append(found, t)
-			}
-		}(t)
 	}
-	wg.Wait()
-	sort.Strings(found)
-	return found, first
+	return tagsPointingAt(ctx, tags, dgst, func(ctx context.Context, t string) (v1.Hash, error) {
+		d, err := r.head(ctx, full, t)
+		return d.Digest, err
+	})
 }
 
 // DeleteTag removes repo:tag if it points at want: by name where the
