@@ -9,3 +9,8 @@ func threadCPU() func() time.Duration {
 	start := time.Now()
 	return func() time.Duration { return time.Since(start) }
 }
+
+// processCPU falls back to wall time since the package was loaded.
+func processCPU() time.Duration { return time.Since(loaded) }
+
+var loaded = time.Now()

@@ -1,10 +1,12 @@
 package data
 
 import (
+	"encoding/binary"
 	"errors"
 	"fmt"
 	"io"
 	"math"
+	"math/bits"
 	"strconv"
 
 	"github.com/parquet-go/parquet-go"
@@ -252,107 +254,314 @@ func (p *parquetReader) readColumnar(f *Frame, max int) (int, error) {
 }
 
 // readRows decodes the next k rows of column c into c.seg, stopping at the
-// first row with a problem or a fault.
+// first row with a problem or a fault. Runs of plain rows that lie whole
+// in the open page go through fastList and fastScalar; any other row
+// (a null, a problem, a row at the end of a page) through readRow.
 func (p *parquetReader) readRows(c *column, k int) {
 	s := &c.seg
 	s.cnt, s.ix, s.fv, s.i64, s.str, s.key = s.cnt[:0], s.ix[:0], s.fv[:0], s.i64[:0], s.str[:0], s.key[:0]
 	s.bad, s.msg, s.err, s.dropped = -1, "", nil, false
 	pg := &c.cur
-	md := byte(c.maxDef)
-	for r := 0; r < k; r++ {
+	for r := 0; r < k; {
 		if pg.lp == pg.n {
 			if err := c.loadPage(); err != nil {
 				s.bad, s.err = r, err
 				return
 			}
 		}
-		if pg.rep != nil && pg.rep[pg.lp] != 0 {
-			s.bad, s.err = r, errors.New("a row does not start where the previous one ends")
+		var n int
+		if c.list {
+			n = p.fastList(c, r, k)
+		} else {
+			n = p.fastScalar(c, r, k)
+		}
+		if r += n; r == k {
 			return
 		}
-		if !c.list {
-			// One level: a value or a null.
-			d := md
-			if pg.def != nil {
-				d = pg.def[pg.lp]
-			}
-			pg.lp++
-			if d < md {
-				s.cnt = append(s.cnt, -1)
-				if msg := p.scalarNull(c, r); msg != "" {
-					s.bad, s.msg = r, msg
-					return
-				}
+		if pg.lp == pg.n {
+			continue
+		}
+		if !p.readRow(c, r) {
+			return
+		}
+		r++
+	}
+}
+
+// fastList decodes rows r0, r0+1, ... (up to k) of a list column while
+// each is an empty list or a list without nulls that ends before the open
+// page does, and its values pass (listValues); it returns how many. It
+// finds the rows' ends a word of levels at a time.
+func (p *parquetReader) fastList(c *column, r0, k int) int {
+	s := &c.seg
+	pg := &c.cur
+	rep, def := pg.rep, pg.def
+	md, empty := byte(c.maxDef), byte(c.repDef-1)
+	lp := pg.lp
+	if rep[lp] != 0 {
+		return 0
+	}
+	c0 := len(s.cnt)
+	end := lp
+	for r := r0; r < k; r++ {
+		e := nextZero(rep, end+1)
+		if e == len(rep) {
+			break // the row may go on in the next page
+		}
+		s.cnt = append(s.cnt, int32(e-end))
+		end = e
+	}
+	cnt := s.cnt[c0:]
+	levels, vals := end-lp, end-lp
+	if !allEqual(def[lp:end], md) {
+		// Some row is an empty list, or has a null: row by row.
+		levels, vals = 0, 0
+		for j, m := range cnt {
+			at := lp + levels
+			if def[at] == md && allEqual(def[at+1:at+int(m)], md) {
+				levels, vals = levels+int(m), vals+int(m)
 				continue
 			}
+			if m == 1 && def[at] == empty {
+				cnt[j] = 0
+				levels++
+				continue
+			}
+			cnt = cnt[:j]
+			break
+		}
+	}
+	if got := p.listValues(c, pg, pg.dp, vals); got < vals {
+		// Keep the rows before the one holding the value with a problem.
+		levels, vals = 0, 0
+		j := 0
+		for ; vals+int(cnt[j]) <= got; j++ {
+			levels += max(int(cnt[j]), 1)
+			vals += int(cnt[j])
+		}
+		cnt = cnt[:j]
+		if c.role == roleItems {
+			s.ix = s.ix[:len(s.ix)-(got-vals)]
+		} else {
+			s.fv = s.fv[:len(s.fv)-(got-vals)]
+		}
+	}
+	s.cnt = s.cnt[:c0+len(cnt)]
+	pg.lp += levels
+	pg.dp += vals
+	return len(cnt)
+}
+
+// listValues takes m values of list rows from the page's non-null value
+// dp on, up to the first that has a problem (readRow then finds it), and
+// returns how many it took.
+func (p *parquetReader) listValues(c *column, pg *colPage, dp, m int) int {
+	s := &c.seg
+	if c.role != roleItems {
+		if pg.idx == nil && c.kind == parquet.Float {
+			s.fv = append(s.fv, pg.f32[dp:dp+m]...)
+			return m
+		}
+		for j := dp; j < dp+m; j++ {
+			k, ok := pg.at(j)
+			if !ok {
+				return j - dp
+			}
+			s.fv = append(s.fv, float32(c.number(pg, k)))
+		}
+		return m
+	}
+	vocab, dropped := p.l.vocab, false
+	j := dp
+	for ; j < dp+m; j++ {
+		k, ok := pg.at(j)
+		var (
+			ix   int32
+			keep bool
+			err  error
+		)
+		if ok && c.kind == parquet.ByteArray {
+			id := pg.ba[pg.off[k]:pg.off[k+1]]
+			ok = len(id) > 0
+			if ok {
+				ix, keep, err = vocab.mapBytes(id)
+			}
+		} else if ok {
+			var n int64
+			if n, ok = c.integer(pg, k); ok {
+				ix, keep, err = vocab.mapInt(n)
+			}
+		}
+		if !ok || err != nil {
+			break
+		}
+		if !keep {
+			ix, dropped = -1, true
+		}
+		s.ix = append(s.ix, ix)
+	}
+	// A dropped id of a row given back sets dropped too: appendRun then
+	// only takes the slower way.
+	s.dropped = s.dropped || dropped
+	return j - dp
+}
+
+// nextZero returns the index of the first zero byte of b at or after i,
+// or len(b), looking at a word of bytes at a time.
+func nextZero(b []byte, i int) int {
+	const ones, highs = 0x0101010101010101, 0x8080808080808080
+	for ; i+8 <= len(b); i += 8 {
+		v := binary.LittleEndian.Uint64(b[i:])
+		// The lowest high bit set marks the first zero byte exactly.
+		if z := (v - ones) &^ v & highs; z != 0 {
+			return i + bits.TrailingZeros64(z)>>3
+		}
+	}
+	for ; i < len(b); i++ {
+		if b[i] == 0 {
+			return i
+		}
+	}
+	return len(b)
+}
+
+// allEqual reports whether every byte of b is x.
+func allEqual(b []byte, x byte) bool {
+	xs := uint64(x) * 0x0101010101010101
+	var diff uint64
+	i := 0
+	for ; i+8 <= len(b); i += 8 {
+		diff |= binary.LittleEndian.Uint64(b[i:]) ^ xs
+	}
+	for ; i < len(b); i++ {
+		diff |= uint64(b[i] ^ x)
+	}
+	return diff == 0
+}
+
+// fastScalar decodes rows r0, r0+1, ... (up to k) of a scalar column
+// while they are in the open page and have no problem; it returns how
+// many.
+func (p *parquetReader) fastScalar(c *column, r0, k int) int {
+	s := &c.seg
+	pg := &c.cur
+	md := byte(c.maxDef)
+	lp, dp := pg.lp, pg.dp
+	r := r0
+	for end := r0 + min(k-r0, pg.n-lp); r < end; r++ {
+		if pg.def != nil && pg.def[lp] != md {
+			if p.scalarNull(c, r) != "" {
+				break
+			}
+			s.cnt = append(s.cnt, -1)
+			lp++
+			continue
+		}
+		j, ok := pg.at(dp)
+		if !ok || p.scalarValue(c, pg, j, r) != "" {
+			break
+		}
+		s.cnt = append(s.cnt, 1)
+		lp, dp = lp+1, dp+1
+	}
+	pg.lp, pg.dp = lp, dp
+	return r - r0
+}
+
+// readRow decodes row r (0-based in the run) of column c from the open
+// page on, loading the next pages as it needs; false when the row has a
+// problem or a fault (recorded in c.seg).
+func (p *parquetReader) readRow(c *column, r int) bool {
+	s := &c.seg
+	pg := &c.cur
+	md := byte(c.maxDef)
+	if pg.rep != nil && pg.rep[pg.lp] != 0 {
+		s.bad, s.err = r, errors.New("a row does not start where the previous one ends")
+		return false
+	}
+	if !c.list {
+		// One level: a value or a null.
+		d := md
+		if pg.def != nil {
+			d = pg.def[pg.lp]
+		}
+		pg.lp++
+		if d < md {
+			s.cnt = append(s.cnt, -1)
+			if msg := p.scalarNull(c, r); msg != "" {
+				s.bad, s.msg = r, msg
+				return false
+			}
+			return true
+		}
+		j, ok := pg.at(pg.dp)
+		pg.dp++
+		if !ok {
+			s.bad, s.err = r, errors.New("a dictionary index is out of range")
+			return false
+		}
+		s.cnt = append(s.cnt, 1)
+		if msg := p.scalarValue(c, pg, j, r); msg != "" {
+			s.bad, s.msg = r, msg
+			return false
+		}
+		return true
+	}
+	// A list: its levels up to the next row's first.
+	elems, firstNull, d0 := 0, -1, byte(0)
+	msg := ""
+	for {
+		d := pg.def[pg.lp]
+		if elems == 0 {
+			d0 = d
+		}
+		if d == md {
 			j, ok := pg.at(pg.dp)
 			pg.dp++
 			if !ok {
 				s.bad, s.err = r, errors.New("a dictionary index is out of range")
-				return
+				return false
 			}
-			s.cnt = append(s.cnt, 1)
-			if msg := p.scalarValue(c, pg, j, r); msg != "" {
-				s.bad, s.msg = r, msg
-				return
+			if firstNull < 0 && msg == "" {
+				msg = p.listValue(c, pg, j, elems)
 			}
-			continue
+		} else if firstNull < 0 && msg == "" {
+			firstNull = elems
 		}
-		// A list: its levels up to the next row's first.
-		elems, firstNull, d0 := 0, -1, byte(0)
-		msg := ""
-		for {
-			d := pg.def[pg.lp]
-			if elems == 0 {
-				d0 = d
-			}
-			if d == md {
-				j, ok := pg.at(pg.dp)
-				pg.dp++
-				if !ok {
-					s.bad, s.err = r, errors.New("a dictionary index is out of range")
-					return
-				}
-				if firstNull < 0 && msg == "" {
-					msg = p.listValue(c, pg, j, elems)
-				}
-			} else if firstNull < 0 && msg == "" {
-				firstNull = elems
-			}
-			pg.lp++
-			elems++
-			if pg.lp == pg.n {
-				if err := c.loadPage(); err == io.EOF {
-					break
-				} else if err != nil {
-					s.bad, s.err = r, err
-					return
-				}
-			}
-			if pg.rep[pg.lp] == 0 {
+		pg.lp++
+		elems++
+		if pg.lp == pg.n {
+			if err := c.loadPage(); err == io.EOF {
 				break
+			} else if err != nil {
+				s.bad, s.err = r, err
+				return false
 			}
 		}
-		if elems == 1 && int(d0) < c.repDef {
-			// No element: an empty list, or a null one.
-			if int(d0) == c.repDef-1 {
-				s.cnt = append(s.cnt, 0)
-				continue
-			}
-			s.cnt = append(s.cnt, -1)
-			s.bad, s.msg = r, p.listNull(c)
-			return
+		if pg.rep[pg.lp] == 0 {
+			break
 		}
-		if firstNull >= 0 {
-			s.bad, s.msg = r, p.elemNull(c, firstNull)
-			return
-		}
-		if msg != "" {
-			s.bad, s.msg = r, msg
-			return
-		}
-		s.cnt = append(s.cnt, int32(elems))
 	}
+	if elems == 1 && int(d0) < c.repDef {
+		// No element: an empty list, or a null one.
+		if int(d0) == c.repDef-1 {
+			s.cnt = append(s.cnt, 0)
+			return true
+		}
+		s.cnt = append(s.cnt, -1)
+		s.bad, s.msg = r, p.listNull(c)
+		return false
+	}
+	if firstNull >= 0 {
+		s.bad, s.msg = r, p.elemNull(c, firstNull)
+		return false
+	}
+	if msg != "" {
+		s.bad, s.msg = r, msg
+		return false
+	}
+	s.cnt = append(s.cnt, int32(elems))
+	return true
 }
 
 // number reads value j of a page of a number column as float64 (column.float).
@@ -527,6 +736,9 @@ func (p *parquetReader) checkRun(f *Frame, k int) error {
 			bad = c.seg.bad
 		}
 	}
+	if bad == k && p.runPasses(f, k) {
+		return nil
+	}
 	s := &p.csc
 	s.reset(len(p.dense))
 	s.itemsSet, s.valuesSet = true, true
@@ -584,6 +796,38 @@ func (p *parquetReader) checkRun(f *Frame, k int) error {
 		}
 	}
 	return nil
+}
+
+// runPasses says whether every row of a decoded run of k rows, none of
+// which had a problem while decoding, passes layout.checkRow, by checks of
+// whole columns; when it does not, checkRun goes row by row to find the
+// first failure and its message.
+func (p *parquetReader) runPasses(f *Frame, k int) bool {
+	items, values := &p.items.seg, &p.values.seg
+	for r, n := range items.cnt[:k] {
+		if n != values.cnt[r] {
+			return false
+		}
+	}
+	ok := true
+	for _, v := range values.fv {
+		ok = ok && v >= 0 && v <= math.MaxFloat32 // valueProblem
+	}
+	for i, c := range p.dense {
+		size := int32(p.l.dense[i].Size)
+		for _, n := range c.seg.cnt[:k] {
+			ok = ok && n == size
+		}
+		for _, v := range c.seg.fv {
+			ok = ok && v-v == 0 // finite
+		}
+	}
+	if p.cluster != nil {
+		for _, n := range p.cluster.seg.cnt[:k] {
+			ok = ok && n >= 0
+		}
+	}
+	return ok && int64(len(f.Indices))+int64(len(items.ix)) <= math.MaxInt32
 }
 
 func (p *parquetReader) corruptAt(c *column, row int64, err error) error {

@@ -199,6 +199,9 @@ func TestParquetColumnarMatchesRowPath(t *testing.T) {
 		}()},
 		{"dictionary-v1-pages", func(p string) { writeWith(t, p, dict, v1...) }, spec(v, denseAge)},
 		{"one-row-group", func(p string) { writeWith(t, p, dict) }, spec(v, denseAge)},
+		// Many pages to a chunk, scalar columns' too.
+		{"small-pages", func(p string) { writeWith(t, p, indep, parquet.PageBufferSize(64)) }, spec(vInts, denseAge, denseAffinity)},
+		{"small-dictionary-pages", func(p string) { writeWith(t, p, dict, parquet.PageBufferSize(64)) }, spec(v, denseAge)},
 		{"unsigned", func(p string) { writeWith(t, p, uns, small...) }, spec(vInts, denseAge)},
 		{"unsigned-v1-pages", func(p string) { writeWith(t, p, uns, v1...) }, spec(vInts, denseAge)},
 		{"independent", func(p string) { writeWith(t, p, indep, small...) }, spec(vInts, denseAge, denseAffinity)},
