@@ -1,5 +1,7 @@
 // Package kernel holds the float32 compute kernels of the reference runtime:
-// dense and sparse-by-dense matrix products fused with bias and activation.
+// dense and sparse-by-dense matrix products fused with bias and activation,
+// and a vectorised natural logarithm with a batch log loss built on it
+// (Log32, LogLoss32; see log.go).
 //
 // On amd64 the kernels run hand-written AVX-512 or AVX2+FMA assembly, chosen at
 // run time from the CPU's features; elsewhere, or on CPUs without them, a
@@ -196,6 +198,11 @@ type backend struct {
 	name   string
 	dense  func(m, n, k int, a []float32, lda int, b matrix, bias []float32, c []float32, ldc int, act Activation)
 	sparse func(indptr, idx []int32, vals, w []float32, n int, bias, c []float32, ldc int, act Activation)
+	// logBlocks and lossBlocks are the vector paths of Log32 and LogLoss32
+	// (see log.go) over n elements, n a multiple of 16; nil on the portable
+	// path, which computes element by element.
+	logBlocks  func(dst, x *float32, n int)
+	lossBlocks func(p, y *float32, n int, acc *[16]float64)
 }
 
 // checkDense validates the shapes of a dense product and reports whether there

@@ -65,8 +65,10 @@ var (
 )
 
 var (
-	avx512 = &backend{name: "avx512", dense: avx512Set.dense, sparse: avx512Set.sparseDense}
-	avx2   = &backend{name: "avx2+fma", dense: avx2Set.dense, sparse: avx2Set.sparseDense}
+	avx512 = &backend{name: "avx512", dense: avx512Set.dense, sparse: avx512Set.sparseDense,
+		logBlocks: logAVX512, lossBlocks: lossAVX512}
+	avx2 = &backend{name: "avx2+fma", dense: avx2Set.dense, sparse: avx2Set.sparseDense,
+		logBlocks: logAVX2, lossBlocks: lossAVX2}
 )
 
 // backends lists the implementations this CPU can run, fastest first.
