@@ -72,6 +72,9 @@ type colPage struct {
 	off  []uint32
 	idx  []int32
 	nv   int // values held (the dictionary's length for indexed pages)
+	// dmap is, for items of an indexed page, each dictionary entry's
+	// weight row plus 2, 1 for a dropped id, 0 while not yet mapped.
+	dmap []int32
 }
 
 // colSegment is one column's decoded run of rows.
@@ -170,6 +173,13 @@ func (c *column) setPage(page parquet.Page) error {
 	pg.nv = n
 	if pg.idx == nil && n < nonNull {
 		return fmt.Errorf("a page has %d values for %d non-null levels", n, nonNull)
+	}
+	if pg.idx != nil && c.role == roleItems {
+		if dict := page.Dictionary(); dict != c.dict || len(c.dmap) != n {
+			c.dict = dict
+			c.dmap = append(c.dmap[:0], make([]int32, n)...)
+		}
+		pg.dmap = c.dmap
 	}
 	c.cur = pg
 	return nil
@@ -371,24 +381,26 @@ func (p *parquetReader) listValues(c *column, pg *colPage, dp, m int) int {
 		}
 		return m
 	}
+	if pg.dmap != nil {
+		return p.dictItems(c, pg, dp, m)
+	}
 	vocab, dropped := p.l.vocab, false
 	j := dp
 	for ; j < dp+m; j++ {
-		k, ok := pg.at(j)
 		var (
 			ix   int32
 			keep bool
 			err  error
+			ok   bool
 		)
-		if ok && c.kind == parquet.ByteArray {
-			id := pg.ba[pg.off[k]:pg.off[k+1]]
-			ok = len(id) > 0
-			if ok {
+		if c.kind == parquet.ByteArray {
+			id := pg.ba[pg.off[j]:pg.off[j+1]]
+			if ok = len(id) > 0; ok {
 				ix, keep, err = vocab.mapBytes(id)
 			}
-		} else if ok {
+		} else {
 			var n int64
-			if n, ok = c.integer(pg, k); ok {
+			if n, ok = c.integer(pg, j); ok {
 				ix, keep, err = vocab.mapInt(n)
 			}
 		}
@@ -402,6 +414,55 @@ func (p *parquetReader) listValues(c *column, pg *colPage, dp, m int) int {
 	}
 	// A dropped id of a row given back sets dropped too: appendRun then
 	// only takes the slower way.
+	s.dropped = s.dropped || dropped
+	return j - dp
+}
+
+// dictItems is listValues for items of a dictionary-encoded page: each
+// dictionary entry is mapped through the vocabulary once per column
+// chunk, when first used (pg.dmap).
+func (p *parquetReader) dictItems(c *column, pg *colPage, dp, m int) int {
+	s := &c.seg
+	dropped := false
+	j := dp
+	for ; j < dp+m; j++ {
+		k := pg.idx[j]
+		if k < 0 || int(k) >= pg.nv {
+			break
+		}
+		e := pg.dmap[k]
+		if e == 0 {
+			var (
+				ix   int32
+				keep bool
+				err  error
+				ok   bool
+			)
+			if c.kind == parquet.ByteArray {
+				id := pg.ba[pg.off[k]:pg.off[k+1]]
+				if ok = len(id) > 0; ok {
+					ix, keep, err = p.l.vocab.mapBytes(id)
+				}
+			} else {
+				var n int64
+				if n, ok = c.integer(pg, int(k)); ok {
+					ix, keep, err = p.l.vocab.mapInt(n)
+				}
+			}
+			if !ok || err != nil {
+				break // not kept: readRow gives the problem
+			}
+			e = 1
+			if keep {
+				e = ix + 2
+			}
+			pg.dmap[k] = e
+		}
+		if e == 1 {
+			dropped = true
+		}
+		s.ix = append(s.ix, e-2) // -1 for a dropped id
+	}
 	s.dropped = s.dropped || dropped
 	return j - dp
 }

@@ -220,6 +220,22 @@ func TestParquetColumnarMatchesRowPath(t *testing.T) {
 			}
 		})
 	}
+	// Dictionary-encoded ids under the other unknown-id rules: an entry
+	// mapped once serves every row that uses it, a refused one fails the
+	// first row that uses it.
+	for _, unknown := range []string{model.UnknownDrop, model.UnknownRefuse} {
+		t.Run("dictionary/"+unknown, func(t *testing.T) {
+			path := filepath.Join(dir, "dictionary-"+unknown+".parquet")
+			writeWith(t, path, dict, small...)
+			out := sameOnBothPaths(t, path, spec(validationVocab(t, unknown), denseAge))
+			if unknown == model.UnknownRefuse && out.Err == "" {
+				t.Error("no error for an unknown id under the refuse rule")
+			}
+			if unknown == model.UnknownDrop && (out.Err != "" || len(out.Flat.RowIDs) != 300) {
+				t.Errorf("read %d rows, error %q; want 300 rows", len(out.Flat.RowIDs), out.Err)
+			}
+		})
+	}
 }
 
 // TestParquetColumnarErrorsMatchRowPath: bad rows (nulls, empty lists,

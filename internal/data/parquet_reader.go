@@ -501,6 +501,8 @@ type column struct {
 	page  parquet.Page
 	vals  parquet.ValueReader
 	cur   colPage // the page's levels and values, read column by column
+	dict  parquet.Dictionary
+	dmap  []int32 // colPage.dmap of dict, for the chunk
 	seg   colSegment
 	buf   []parquet.Value
 	pos   int
@@ -610,6 +612,7 @@ func (k kindSet) String() string {
 func (c *column) open(chunk parquet.ColumnChunk) {
 	c.close()
 	c.pages = chunk.Pages()
+	c.dict, c.dmap = nil, c.dmap[:0]
 }
 
 func (c *column) close() {

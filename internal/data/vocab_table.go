@@ -42,15 +42,31 @@ func (t *idTable) resize(capacity int) {
 	t.mask = uint64(size - 1)
 }
 
-// key returns an id's first 16 bytes as two words and its hash.
+// key returns an id's first 16 bytes as two words and its hash. It loads
+// whole words (overlapping ones for a short id) rather than copying the
+// id into a padded buffer.
 func (t *idTable) key(id []byte) (w0, w1, h uint64) {
-	var b [16]byte
-	copy(b[:], id)
-	w0, w1 = binary.LittleEndian.Uint64(b[:8]), binary.LittleEndian.Uint64(b[8:])
-	if len(id) > 16 {
-		return w0, w1, maphash.Bytes(t.seed, id)
+	n := len(id)
+	switch {
+	case n >= 16:
+		w0, w1 = binary.LittleEndian.Uint64(id), binary.LittleEndian.Uint64(id[8:])
+		if n > 16 {
+			return w0, w1, maphash.Bytes(t.seed, id)
+		}
+	case n >= 8:
+		// The last 8 bytes, shifted down past the ones the first word
+		// holds (all of them when n is 8: a shift by 64 gives 0).
+		w0 = binary.LittleEndian.Uint64(id)
+		w1 = binary.LittleEndian.Uint64(id[n-8:]) >> (8 * (16 - n))
+	case n >= 4:
+		// Two overlapping 4-byte words: the shared bytes are equal.
+		w0 = uint64(binary.LittleEndian.Uint32(id)) | uint64(binary.LittleEndian.Uint32(id[n-4:]))<<(8*(n-4))
+	default:
+		for i, b := range id {
+			w0 |= uint64(b) << (8 * i)
+		}
 	}
-	hi, lo := bits.Mul64(w0^t.k0, w1^t.k1^uint64(len(id)))
+	hi, lo := bits.Mul64(w0^t.k0, w1^t.k1^uint64(n))
 	return w0, w1, hi ^ lo
 }
 

@@ -230,3 +230,38 @@ func BenchmarkVocabularyLookup(b *testing.B) {
 		_ = sum
 	})
 }
+
+// TestIDTableKeyWords: the words key loads are an id's first 16 bytes,
+// zero-padded, little-endian (the table's definition), for every length
+// up to 24, checked against a padded copy decoded byte by byte.
+func TestIDTableKeyWords(t *testing.T) {
+	tab := newIDTable(1)
+	rng := rand.New(rand.NewPCG(3, 4))
+	for n := 0; n <= 24; n++ {
+		for range 50 {
+			id := make([]byte, n, n+8)
+			for i := range id {
+				id[i] = byte(rng.IntN(256))
+			}
+			// Bytes past the id in its array must not leak into the key.
+			full := id[:n+8]
+			for i := n; i < len(full); i++ {
+				full[i] = 0xff
+			}
+			var pad [16]byte
+			copy(pad[:], id)
+			var want0, want1 uint64
+			for i := 7; i >= 0; i-- {
+				want0 = want0<<8 | uint64(pad[i])
+				want1 = want1<<8 | uint64(pad[8+i])
+			}
+			w0, w1, h := tab.key(id)
+			if w0 != want0 || w1 != want1 {
+				t.Fatalf("%x: words %x %x, want %x %x", id, w0, w1, want0, want1)
+			}
+			if _, _, h2 := tab.key(append([]byte(nil), id...)); h2 != h {
+				t.Fatalf("%x: hash differs between two copies", id)
+			}
+		}
+	}
+}

@@ -418,7 +418,7 @@ func (s *runState) canonTile(w *worker, r0, r1 int) {
 		for _, i := range s.target.denseUsed {
 			size := s.net.dense[i].Size
 			for c, v := range s.dense[i][r*size : (r+1)*size] {
-				if math.IsNaN(float64(v)) || math.IsInf(float64(v), 0) {
+				if v-v != 0 { // NaN or ±Inf
 					w.fault = rowFault{problem: InvalidDenseValue, row: r, input: i, column: c, value: v}
 					return
 				}
@@ -492,18 +492,18 @@ func (s *runState) canonRow(w *worker, r int) rowFault {
 				return rowFault{problem: DuplicateIndex, index: ps[i].idx}
 			}
 		}
+		var f float32
 		switch sp.Transform {
 		case TransformLog1p:
-			v = math.Log1p(v)
+			f = log1p32(v)
 		case TransformBinary:
 			if v > 0 {
-				v = 1
-			} else {
-				v = 0
+				f = 1
 			}
+		default:
+			f = float32(v)
 		}
-		f := float32(v)
-		if math.IsInf(float64(f), 0) {
+		if f > math.MaxFloat32 { // v >= 0, so f is never below -MaxFloat32
 			return rowFault{problem: ValueOverflow, index: ps[i].idx}
 		}
 		if f != 0 {
@@ -515,6 +515,25 @@ func (s *runState) canonRow(w *worker, r int) rowFault {
 	}
 	s.canonCnt[r] = out - start
 	return rowFault{}
+}
+
+// log1pSmall holds float32(math.Log1p(k)) for the integers k below its
+// length: counts (episodes played) are the usual sparse values, and a
+// table entry is the very number the call gives.
+var log1pSmall = func() (t [1024]float32) {
+	for k := range t {
+		t[k] = float32(math.Log1p(float64(k)))
+	}
+	return t
+}()
+
+// log1p32 is float32(math.Log1p(v)) for v >= 0, from log1pSmall when v
+// is a small integer (-0 then gives +0; canonRow drops zeros either way).
+func log1p32(v float64) float32 {
+	if k := int(v); float64(k) == v && uint(k) < uint(len(log1pSmall)) {
+		return log1pSmall[k]
+	}
+	return float32(math.Log1p(v))
 }
 
 // plan lists the layers the job computes: the target's plan, except that

@@ -657,3 +657,19 @@ func FuzzRuntimeRows(f *testing.F) {
 		}
 	})
 }
+
+// TestLog1pTable: log1p32 gives float32(math.Log1p(v)) bit for bit, from
+// the table (small integers) and past it (fractions, large and huge
+// values, the table's edges).
+func TestLog1pTable(t *testing.T) {
+	vs := []float64{0, math.Copysign(0, -1), 0.5, 1e-30, 1023, 1023.5, 1024, 1025, 1e6, 3e38, 1e300, math.MaxFloat64}
+	for k := range 2100 {
+		vs = append(vs, float64(k), float64(k)+0.25, math.Nextafter(float64(k), 0))
+	}
+	for _, v := range vs {
+		want := float32(math.Log1p(v))
+		if got := log1p32(v); math.Float32bits(got) != math.Float32bits(want) && !(got == 0 && want == 0) {
+			t.Fatalf("log1p32(%v) = %v, math.Log1p gives %v", v, got, want)
+		}
+	}
+}
