@@ -1,7 +1,9 @@
 #!/usr/bin/env bash
 # Runs the runtime benchmark in Go and its numpy peers on the same workload,
 # interleaved, and prints rows/s side by side with the ratios, plus the dense
-# layers' GFLOP/s as a share of the FMA peak measured in the same run.
+# layers' GFLOP/s as a share of the FMA peak measured in the same run, and,
+# on one thread, the log loss over a batch in Go (kernel.LogLoss32) against
+# numpy's float32 expression.
 # Usage: bench/run.sh [ROUNDS]
 # ROUNDS (default 5): each round runs every implementation once per thread
 # count (1, then 2), one after another, and records the load average before
@@ -21,6 +23,9 @@ go test -c -o "$work/kernel.test" ./internal/model/kernel/
 echo "writing the workload for numpy (BenchmarkForward with MODELGATE_BENCH_DUMP)" >&2
 mkdir "$work/wl"
 MODELGATE_BENCH_DUMP=$work/wl "$work/model.test" -test.run '^$' -test.bench 'Forward$' -test.cpu 1 -test.benchtime 1x -test.v >"$work/dump.txt"
+echo "writing the log loss batch for numpy (BenchmarkLogLoss with MODELGATE_BENCH_DUMP)" >&2
+mkdir "$work/ll"
+MODELGATE_BENCH_DUMP=$work/ll "$work/kernel.test" -test.run '^$' -test.bench 'LogLoss$' -test.cpu 1 -test.benchtime 1x >/dev/null
 
 gobench() { # FILE BINARY ARGS...: one go benchmark run, appended to FILE
 	local f=$1 bin=$2
@@ -42,8 +47,14 @@ for r in $(seq "$rounds"); do
 		gobench "$d/peak.txt" "$work/kernel.test" -test.bench 'FMAPeak' -test.cpu "$t" -test.benchtime 300x
 		gobench "$d/kernel.txt" "$work/kernel.test" -test.bench 'DenseLayers' -test.cpu "$t" -test.benchtime 20x
 		gobench "$d/peak.txt" "$work/kernel.test" -test.bench 'FMAPeak' -test.cpu "$t" -test.benchtime 300x
+		if [ "$t" = 1 ]; then
+			# The log loss over a batch: one thread on both sides (numpy's
+			# ufuncs are single-threaded), the fastest of 300 calls on each.
+			gobench "$d/logloss.txt" "$work/kernel.test" -test.bench 'LogLoss$' -test.cpu 1 -test.benchtime 300x
+			$py bench/logloss_numpy.py "$work/ll" 300 >"$d/logloss-numpy.txt"
+		fi
 		cut -d' ' -f1-3 /proc/loadavg >"$d/load-after"
-		cat "$d/go.txt" "$d/numpy-default.txt" "$d/numpy-SkylakeX.txt" "$d/peak.txt" "$d/kernel.txt" | grep -E 'rows/s|GFLOP/s' >&2 || true
+		cat "$d/go.txt" "$d/numpy-default.txt" "$d/numpy-SkylakeX.txt" "$d/peak.txt" "$d/kernel.txt" "$d"/logloss*.txt 2>/dev/null | grep -E 'rows/s|GFLOP/s' >&2 || true
 	done
 done
 
@@ -64,6 +75,8 @@ def metric(text, name, unit):
 rows = {}   # (impl, threads) -> [per-round values]
 ratio = {}  # threads -> [per-round Go / best numpy]
 share = {}  # (layer, threads) -> [per-round GFLOP/s / peak]
+ll = {"go": [], "numpy": [], "ratio": []}  # log loss, one thread, per round
+lldiff = 0.0
 gflops = {}
 loads = []
 diff = 0.0
@@ -84,6 +97,13 @@ for r in range(1, rounds + 1):
         peaks = [float(m.group(2)) for m in re.finditer(r"^BenchmarkFMAPeak(-\d+)?\s+\d+\s+.*?([\d.]+) GFLOP/s", open(os.path.join(p, "peak.txt")).read(), re.M)]
         peak = statistics.mean(peaks) if peaks else float("nan")
         gflops.setdefault(("peak", t), []).append(peak)
+        if t == 1:
+            g = metric(open(os.path.join(p, "logloss.txt")).read(), "BenchmarkLogLoss", "rows/s")
+            f = open(os.path.join(p, "logloss-numpy.txt")).read().split()
+            ll["go"].append(g)
+            ll["numpy"].append(float(f[3]))
+            ll["ratio"].append(g / float(f[3]))
+            lldiff = max(lldiff, float(f[-1]))
         for layer in ("code-768x128", "head-144x48"):
             g = metric(ker, "BenchmarkDenseLayers/" + layer, "GFLOP/s")
             gflops.setdefault((layer, t), []).append(g)
@@ -111,6 +131,14 @@ print("%-52s %12.1f %12.1f" % ("FMA peak", med(gflops[("peak", 1)]), med(gflops[
 for layer in ("code-768x128", "head-144x48"):
     print("%-52s %12.1f %12.1f" % (layer, med(gflops[(layer, 1)]), med(gflops[(layer, 2)])))
     print("%-52s %11.0f%% %11.0f%%" % ("  share of peak (median of round shares)", 100 * med(share[(layer, 1)]), 100 * med(share[(layer, 2)])))
+print()
+llrows = os.path.getsize(os.path.join(d, "ll", "p.f32")) // 4
+print("log loss over a batch of %d rows (BenchmarkLogLoss, bench/logloss_numpy.py), one thread, rows/s, medians" % llrows)
+print("%-52s %12.0f" % ("Go kernel.LogLoss32, fastest of 300 calls", med(ll["go"])))
+print("%-52s %12.0f" % ("numpy float32, fastest of 300 calls", med(ll["numpy"])))
+print("%-52s %11.2fx" % ("Go / numpy (median of round ratios)", med(ll["ratio"])))
+print("  ratio in each round: %s" % " ".join("%.2f" % x for x in ll["ratio"]))
+print("largest |loss_numpy - loss_go| over the rounds: %.3g" % lldiff)
 print()
 print("load average (1, 5, 15 min) before and after each round's runs:")
 for r, t, a, b in loads:

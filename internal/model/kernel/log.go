@@ -89,7 +89,9 @@ func Log32(dst, x []float32) {
 // multiply-add), then summed in float64: row i is added to partial sum
 // i mod 16 in index order and the 16 partial sums are added in order, so the
 // result is the same on every path and for every CPU. y may be fractional
-// (a soft label). A NaN p gives NaN; n = 0 gives NaN (the mean of nothing).
+// (a soft label); the vector paths take one logarithm per row for a vector
+// of rows whose labels are all 0 or 1, which gives the same bits (the term
+// is then exactly log q or log(1−q)). A NaN p gives NaN; n = 0 gives NaN (the mean of nothing).
 // It panics if p and y differ in length.
 //
 // It is a runtime facility, benchmarked against numpy: the gate's reported

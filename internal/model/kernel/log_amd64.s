@@ -385,6 +385,10 @@ logAVX2_done:
 
 // func lossAVX512(p, y *float32, n int, acc *[16]float64)
 // Z10 = Eps32, Z11 = 1 - Eps32, Z14 = 1; Z12 and Z13 hold acc[0:8], acc[8:16].
+// A vector whose labels are all 0 or 1 takes one logarithm per row: with q
+// and log(1-q) finite and nonzero, fma(y, log q, (1-y)*log(1-q)) is exactly
+// log q for y = 1 and log(1-q) for y = 0, so the term is log of q or 1-q as
+// the label says, the same bits as the two-logarithm form.
 TEXT ·lossAVX512(SB), NOSPLIT, $0-32
 	MOVQ p+0(FP), SI
 	MOVQ y+8(FP), DI
@@ -400,17 +404,30 @@ TEXT ·lossAVX512(SB), NOSPLIT, $0-32
 
 lossAVX512_loop:
 	// q = min(max(p, eps), 1-eps) with p the second source (NaN stays).
-	VMOVUPS (SI), Z0
-	VMAXPS  Z0, Z10, Z0
-	VMINPS  Z0, Z11, Z0
-	VSUBPS  Z0, Z14, Z1
+	VMOVUPS     (SI), Z0
+	VMAXPS      Z0, Z10, Z0
+	VMINPS      Z0, Z11, Z0
+	VSUBPS      Z0, Z14, Z1
+	VMOVUPS     (DI), Z8
+	VCMPPS.BCST $0, logZero<>(SB), Z8, K3
+	VCMPPS      $0, Z14, Z8, K4
+	KORW        K3, K4, K5
+	KORTESTW    K5, K5
+	JCC         lossAVX512_soft
+	// Every label 0 or 1: Z1 = y == 1 ? q : 1-q, the term is its log.
+	VMOVAPS Z0, K4, Z1
+	LOG16(Z1, Z9, Z4, Z5, Z6)
+	JMP     lossAVX512_add
+
+lossAVX512_soft:
 	LOG16(Z0, Z2, Z4, Z5, Z6)
 	LOG16(Z1, Z3, Z4, Z5, Z6)
 	// term = fma(y, log q, (1-y)*log(1-q))
-	VMOVUPS       (DI), Z8
-	VSUBPS        Z8, Z14, Z9
-	VMULPS        Z3, Z9, Z9
-	VFMADD231PS   Z2, Z8, Z9
+	VSUBPS      Z8, Z14, Z9
+	VMULPS      Z3, Z9, Z9
+	VFMADD231PS Z2, Z8, Z9
+
+lossAVX512_add:
 	VCVTPS2PD     Y9, Z0
 	VEXTRACTF64X4 $1, Z9, Y1
 	VCVTPS2PD     Y1, Z1
@@ -427,21 +444,34 @@ lossAVX512_done:
 	VZEROUPPER
 	RET
 
-// LOSS8 adds the terms of the eight rows at (SI), (DI) to the partial sums
-// LO (rows 0-3) and HI (rows 4-7). Y10 = Eps32, Y11 = 1 - Eps32; Y0-Y9 scratch.
-#define LOSS8(OFF, LO, HI) \
+// LOSS8 adds the terms of the eight rows at OFF(SI), OFF(DI) to the partial
+// sums LO (rows 0-3) and HI (rows 4-7), with one logarithm per row when
+// every label is 0 or 1 (see lossAVX512). Y10 = Eps32, Y11 = 1 - Eps32;
+// Y0-Y9 and AX are scratch; SOFT and ADD are labels unique to the use.
+#define LOSS8(OFF, LO, HI, SOFT, ADD) \
 	VMOVUPS      OFF(SI), Y0 \
 	VMAXPS       Y0, Y10, Y0 \
 	VMINPS       Y0, Y11, Y0 \
 	VMOVUPS      logOne<>(SB), Y1 \
 	VSUBPS       Y0, Y1, Y1 \
+	VMOVUPS      OFF(DI), Y8 \
+	VCMPPS       $0, logZero<>(SB), Y8, Y2 \
+	VCMPPS       $0, logOne<>(SB), Y8, Y3 \
+	VORPS        Y2, Y3, Y2 \
+	VMOVMSKPS    Y2, AX \
+	CMPL         AX, $0xff \
+	JNE          SOFT \
+	VBLENDVPS    Y3, Y0, Y1, Y1 \
+	LOG8(Y1, Y9, Y4, Y5, Y6, Y7) \
+	JMP          ADD \
+SOFT: \
 	LOG8(Y0, Y2, Y4, Y5, Y6, Y7) \
 	LOG8(Y1, Y3, Y4, Y5, Y6, Y7) \
-	VMOVUPS      OFF(DI), Y8 \
 	VMOVUPS      logOne<>(SB), Y9 \
 	VSUBPS       Y8, Y9, Y9 \
 	VMULPS       Y3, Y9, Y9 \
 	VFMADD231PS  Y2, Y8, Y9 \
+ADD: \
 	VCVTPS2PD    X9, Y0 \
 	VEXTRACTF128 $1, Y9, X1 \
 	VCVTPS2PD    X1, Y1 \
@@ -464,8 +494,8 @@ TEXT ·lossAVX2(SB), NOSPLIT, $0-32
 	JZ      lossAVX2_done
 
 lossAVX2_loop:
-	LOSS8(0, Y12, Y13)
-	LOSS8(32, Y14, Y15)
+	LOSS8(0, Y12, Y13, lossAVX2_soft0, lossAVX2_add0)
+	LOSS8(32, Y14, Y15, lossAVX2_soft1, lossAVX2_add1)
 	ADDQ $64, SI
 	ADDQ $64, DI
 	DECQ CX
