@@ -132,15 +132,36 @@ func sweepLog(lo, hi, step uint64) *logStats {
 }
 
 // TestLog32AllFloat32 checks Log32 on the active path against math.Log at
-// every non-negative float32 (2^31 inputs, zero to +Inf and the NaNs). It
-// takes about a minute of CPU, so it runs only with MODELGATE_LOG32_ALL=1;
-// TestLog32Sweep runs a dense part of it every time.
+// every non-negative float32 (2^31 inputs, zero to +Inf and the NaNs), and
+// every other vector path against the active one bit for bit at all 2^32
+// bit patterns. It takes about a minute of CPU, so it runs only with
+// MODELGATE_LOG32_ALL=1; TestLog32Sweep runs a dense part of it every time.
 func TestLog32AllFloat32(t *testing.T) {
 	if os.Getenv("MODELGATE_LOG32_ALL") == "" {
 		t.Skip("set MODELGATE_LOG32_ALL=1 to check every float32 (about a minute of CPU)")
 	}
 	s := sweepLog(0, 1<<31, 1)
 	s.check(t, fmt.Sprintf("%s, every non-negative float32", active.name))
+	for _, be := range backends() {
+		if be == active || be.logBlocks == nil {
+			continue
+		}
+		const chunk = 1 << 16
+		x := make([]float32, chunk)
+		want, got := make([]float32, chunk), make([]float32, chunk)
+		for c := uint64(0); c < 1<<32; c += chunk {
+			for i := range x {
+				x[i] = math.Float32frombits(uint32(c) + uint32(i))
+			}
+			Log32(want, x)
+			saved := active
+			active = be
+			Log32(got, x)
+			active = saved
+			sameBitsOrNaN(t, be.name+" against "+active.name, x, want, got)
+		}
+		t.Logf("%s agrees with %s at all 2^32 bit patterns", be.name, active.name)
+	}
 }
 
 // forPaths runs f with each path the CPU has as the active one.
