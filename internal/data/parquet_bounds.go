@@ -133,17 +133,18 @@ func checkParquetGroup(r io.ReaderAt, size int64, f *parquet.File, g int, cols [
 func checkChunkPages(r io.ReaderAt, off, end int64, codec format.CompressionCodec, win []byte) ([]byte, error) {
 	for page := 0; off < end; page++ {
 		n := min(end-off, 4<<10)
-		var hlen int
+		var hlen, got int
 		for {
 			if int64(cap(win)) < n {
 				win = make([]byte, n)
 			}
 			win = win[:n]
-			if _, err := r.ReadAt(win, off); err != nil && !(errors.Is(err, io.EOF) && off+n == end) {
+			var err error
+			if got, err = r.ReadAt(win, off); err != nil && !(errors.Is(err, io.EOF) && off+n == end) {
 				return win, fmt.Errorf("page %d: reading its header: %w", page, err)
 			}
 			w := compactWalker{b: win}
-			err := w.structure(0)
+			err = w.structure(0)
 			if err == nil {
 				hlen = w.pos
 				break
@@ -192,13 +193,31 @@ func checkChunkPages(r io.ReaderAt, off, end int64, codec format.CompressionCode
 			}
 		}
 		if bodyLen > 0 {
-			if err := checkCompressed(r, bodyOff, bodyLen, codec); err != nil {
+			// The start of the body is most often in the window read
+			// for the header already.
+			wr := &windowAt{r: r, buf: win[:got], off: off}
+			if err := checkCompressed(wr, bodyOff, bodyLen, codec); err != nil {
 				return win, fmt.Errorf("page %d: %v data: %w", page, codec, err)
 			}
 		}
 		off += int64(hlen) + int64(h.CompressedPageSize)
 	}
 	return win, nil
+}
+
+// windowAt reads from r, serving a read that falls inside buf (r's bytes
+// from off on) from buf.
+type windowAt struct {
+	r   io.ReaderAt
+	buf []byte
+	off int64
+}
+
+func (w *windowAt) ReadAt(p []byte, off int64) (int, error) {
+	if off >= w.off && off+int64(len(p)) <= w.off+int64(len(w.buf)) {
+		return copy(p, w.buf[off-w.off:]), nil
+	}
+	return w.r.ReadAt(p, off)
 }
 
 // checkCodec refuses the codecs whose decoder in the Parquet library does

@@ -111,13 +111,7 @@ func (c *column) setPage(page parquet.Page) error {
 	}
 	nonNull := pg.n
 	if pg.def != nil {
-		nonNull = 0
-		md := byte(c.maxDef)
-		for _, d := range pg.def {
-			if d == md {
-				nonNull++
-			}
-		}
+		nonNull = countEqual(pg.def, byte(c.maxDef))
 	}
 	data := page.Data()
 	if dict := page.Dictionary(); dict != nil {
@@ -484,6 +478,25 @@ func nextZero(b []byte, i int) int {
 		}
 	}
 	return len(b)
+}
+
+// countEqual returns how many bytes of b are x, a word at a time.
+func countEqual(b []byte, x byte) int {
+	const lows, highs = 0x7f7f7f7f7f7f7f7f, 0x8080808080808080
+	xs := uint64(x) * 0x0101010101010101
+	n, i := 0, 0
+	for ; i+8 <= len(b); i += 8 {
+		v := binary.LittleEndian.Uint64(b[i:]) ^ xs
+		// A byte's high bit ends up set unless the byte is zero.
+		nz := ((v & lows) + lows | v) & highs
+		n += 8 - bits.OnesCount64(nz)
+	}
+	for ; i < len(b); i++ {
+		if b[i] == x {
+			n++
+		}
+	}
+	return n
 }
 
 // allEqual reports whether every byte of b is x.

@@ -318,3 +318,45 @@ func hasDictionaryPage(t *testing.T, path, name string) bool {
 		}
 	}
 }
+
+// TestLevelWords: the word-at-a-time level scans agree with byte loops
+// on random levels of every length up to 40 at every start.
+func TestLevelWords(t *testing.T) {
+	rng := rand.New(rand.NewPCG(5, 6))
+	for n := 0; n <= 40; n++ {
+		for range 40 {
+			b := make([]byte, n)
+			for i := range b {
+				b[i] = byte(rng.IntN(3)) // levels 0-2, a few 255s
+				if rng.IntN(50) == 0 {
+					b[i] = 255
+				}
+			}
+			for x := range byte(3) {
+				want, all := 0, true
+				for _, v := range b {
+					if v == x {
+						want++
+					} else {
+						all = false
+					}
+				}
+				if got := countEqual(b, x); got != want {
+					t.Fatalf("countEqual(%v, %d) = %d, want %d", b, x, got, want)
+				}
+				if got := allEqual(b, x); got != all {
+					t.Fatalf("allEqual(%v, %d) = %v, want %v", b, x, got, all)
+				}
+			}
+			for i := 0; i <= n; i++ {
+				want := i
+				for want < n && b[want] != 0 {
+					want++
+				}
+				if got := nextZero(b, i); got != want {
+					t.Fatalf("nextZero(%v, %d) = %d, want %d", b, i, got, want)
+				}
+			}
+		}
+	}
+}

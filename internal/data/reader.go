@@ -514,7 +514,9 @@ func (l *layout) checkRow(s *scratch, row int64, pairs int64, hasLabels bool) er
 // interner keeps one copy of each slice name, so that the few distinct
 // slices of a holdout cost no allocation per row.
 type interner struct {
-	m map[string]string
+	m      map[string]string
+	recent [4]string // the last names returned, compared before the map
+	next   int
 }
 
 const maxInterned = 4096
@@ -523,10 +525,18 @@ func (in *interner) get(b []byte) string {
 	if len(b) == 0 {
 		return ""
 	}
-	if s, ok := in.m[string(b)]; ok {
+	for _, s := range in.recent {
+		if s == string(b) {
+			return s
+		}
+	}
+	s, ok := in.m[string(b)]
+	if ok {
+		in.recent[in.next] = s
+		in.next = (in.next + 1) % len(in.recent)
 		return s
 	}
-	s := string(b)
+	s = string(b)
 	if in.m == nil {
 		in.m = make(map[string]string)
 	}
