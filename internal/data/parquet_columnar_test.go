@@ -295,6 +295,81 @@ func TestParquetColumnarErrorsMatchRowPath(t *testing.T) {
 	}
 }
 
+// TestParquetValidateMatchesRowPath: Validate, which reads column by
+// column and reads a row group with a bad row again row by row, lists the
+// same errors as reading row by row throughout: bad rows in several row
+// groups, several in one group, a group's first and last rows, and more
+// bad rows than MaxErrors.
+func TestParquetValidateMatchesRowPath(t *testing.T) {
+	str := func(s string) *string { return &s }
+	num := func(f float64) *float64 { return &f }
+	yes := true
+	good := pqNullable{Items: []*string{str("ep-0"), str("42")}, Values: []*float64{num(1), num(2)}, Age: num(0.3), Label: &yes}
+	edits := []func(r *pqNullable){
+		func(r *pqNullable) { r.Items = nil },
+		func(r *pqNullable) { r.Values = []*float64{num(1), num(-2)} },
+		func(r *pqNullable) { r.Items = []*string{str("ep-0"), str("ep-nope")} },
+		func(r *pqNullable) { r.Label = nil },
+		func(r *pqNullable) { r.Age = num(math.NaN()) },
+		func(r *pqNullable) { r.Values = []*float64{num(1)} },
+		func(r *pqNullable) { r.Items = []*string{str(""), nil} },
+	}
+	for name, bad := range map[string][]int{
+		"few":  {0, 10, 11, 12, 40, 54, 59},
+		"one":  {33},
+		"none": {},
+		"over-the-limit": func() []int {
+			var b []int
+			for i := 0; i < 260; i += 2 {
+				b = append(b, i)
+			}
+			return b
+		}(),
+	} {
+		t.Run(name, func(t *testing.T) {
+			rows := make([]pqNullable, 60)
+			if name == "over-the-limit" {
+				rows = make([]pqNullable, 260)
+			}
+			for i := range rows {
+				rows[i] = good
+				rows[i].Items = append([]*string(nil), good.Items...)
+				rows[i].Values = append([]*float64(nil), good.Values...)
+			}
+			for i, at := range bad {
+				edits[i%len(edits)](&rows[at])
+			}
+			path := filepath.Join(t.TempDir(), "bad.parquet")
+			writeWith(t, path, rows, parquet.PageBufferSize(128), parquet.MaxRowsPerRowGroup(11))
+			v := validationVocab(t, model.UnknownRefuse)
+			opts := Options{Spec: testSpec(v, denseAge), Vocab: v}
+			rowOpts := opts
+			rowOpts.rowPath = true
+			str := func(errs []error) []string {
+				var s []string
+				for _, e := range errs {
+					s = append(s, e.Error())
+				}
+				return s
+			}
+			want := str(Validate(path, rowOpts))
+			// Batches of 7 rows also start and end inside row groups.
+			defer func(n int) { collectBatch = n }(collectBatch)
+			var got []string
+			for _, batch := range []int{7, 4096} {
+				collectBatch = batch
+				got = str(Validate(path, opts))
+				if diff := cmp.Diff(want, got); diff != "" {
+					t.Fatalf("batch %d: column by column differs from row by row (-row +column):\n%s", batch, diff)
+				}
+			}
+			if wantN := min(len(bad), MaxErrors); len(got) != wantN {
+				t.Errorf("%d errors, want %d: %q", len(got), wantN, got)
+			}
+		})
+	}
+}
+
 // hasDictionaryPage reports whether a page of the named column (a list's
 // element) in the file's first row group is dictionary-encoded.
 func hasDictionaryPage(t *testing.T, path, name string) bool {

@@ -199,29 +199,82 @@ func (p *parquetReader) SkipRows(n int64) (int64, error) {
 }
 
 // collect reads every row, giving each bad row's error to sink until sink
-// returns false; it returns an error that stops reading.
+// returns false; it returns an error that stops reading. It reads column
+// by column; a row group with a bad row is read again from its start row
+// by row (collectGroup), the way that goes on past bad rows, so the errors
+// are the row path's.
 func (p *parquetReader) collect(sink func(error) bool) error {
-	p.setColumnar(false)
+	if !p.columnar {
+		for {
+			if p.groupLeft == 0 {
+				ok, err := p.openGroup()
+				if err != nil {
+					return err
+				}
+				if !ok {
+					return nil
+				}
+			}
+			if more, err := p.collectGroup(sink); !more || err != nil {
+				return err
+			}
+		}
+	}
+	var f Frame
+	for {
+		_, err := p.readColumnar(&f, collectBatch)
+		if err == io.EOF {
+			return nil
+		}
+		var re *RowError
+		if err != nil && !errors.As(err, &re) {
+			return err
+		}
+		if err == nil {
+			continue
+		}
+		// Again from the start of the row group, row by row.
+		g := p.rowGroup - 1
+		chunks := p.file.RowGroups()[g].ColumnChunks()
+		for _, c := range p.cols {
+			c.open(chunks[c.index])
+			c.columnar = false
+		}
+		rows := p.file.RowGroups()[g].NumRows()
+		p.row -= rows - p.groupLeft
+		p.groupLeft = rows
+		if more, err := p.collectGroup(sink); !more || err != nil {
+			return err
+		}
+	}
+}
+
+// collectBatch is the most rows collect reads at once (a variable for
+// tests).
+var collectBatch = 4096
+
+// collectGroup reads the rest of the open row group row by row, giving
+// each bad row's error to sink; false when sink wants no more.
+func (p *parquetReader) collectGroup(sink func(error) bool) (bool, error) {
 	var f Frame
 	f.HasLabels = p.label != nil
-	for {
-		ok, err := p.next()
+	for p.groupLeft > 0 {
+		_, err := p.next()
 		if err != nil {
 			var re *RowError
 			if !errors.As(err, &re) {
-				return err
+				return false, err
 			}
-		} else if !ok {
-			return nil
 		} else {
 			err = p.l.appendRow(&f, &p.sc, p.row, p.label != nil)
 		}
 		if err != nil && !sink(err) {
-			return nil
+			return false, nil
 		}
 		p.row++
 		f.Reset()
 	}
+	return true, nil
 }
 
 // next decodes the next row into p.sc. It returns false at the end of the
@@ -399,6 +452,7 @@ func (p *parquetReader) openGroup() (bool, error) {
 			if err := c.endChunk(); err != nil {
 				return false, p.l.fileError("row group %d: %v", p.rowGroup, err)
 			}
+			c.columnar = p.columnar // after a row group collect read row by row
 		}
 	}
 	if p.rowGroup >= len(groups) {
