@@ -211,20 +211,6 @@ func (c *column) loadPage() error {
 	}
 }
 
-func (c *column) endChunkColumnar() error {
-	if c.cur.lp < c.cur.n {
-		return fmt.Errorf("column %q has more values than rows", c.name)
-	}
-	switch err := c.loadPage(); err {
-	case nil:
-		return fmt.Errorf("column %q has more values than rows", c.name)
-	case io.EOF:
-		return nil
-	default:
-		return fmt.Errorf("column %q: %w", c.name, err)
-	}
-}
-
 // readColumnar is Read, column by column.
 func (p *parquetReader) readColumnar(f *Frame, max int) (int, error) {
 	n := 0
@@ -378,27 +364,11 @@ func (p *parquetReader) listValues(c *column, pg *colPage, dp, m int) int {
 	if pg.dmap != nil {
 		return p.dictItems(c, pg, dp, m)
 	}
-	vocab, dropped := p.l.vocab, false
+	dropped := false
 	j := dp
 	for ; j < dp+m; j++ {
-		var (
-			ix   int32
-			keep bool
-			err  error
-			ok   bool
-		)
-		if c.kind == parquet.ByteArray {
-			id := pg.ba[pg.off[j]:pg.off[j+1]]
-			if ok = len(id) > 0; ok {
-				ix, keep, err = vocab.mapBytes(id)
-			}
-		} else {
-			var n int64
-			if n, ok = c.integer(pg, j); ok {
-				ix, keep, err = vocab.mapInt(n)
-			}
-		}
-		if !ok || err != nil {
+		ix, keep, ok := p.mapItem(c, pg, j)
+		if !ok {
 			break
 		}
 		if !keep {
@@ -426,24 +396,8 @@ func (p *parquetReader) dictItems(c *column, pg *colPage, dp, m int) int {
 		}
 		e := pg.dmap[k]
 		if e == 0 {
-			var (
-				ix   int32
-				keep bool
-				err  error
-				ok   bool
-			)
-			if c.kind == parquet.ByteArray {
-				id := pg.ba[pg.off[k]:pg.off[k+1]]
-				if ok = len(id) > 0; ok {
-					ix, keep, err = p.l.vocab.mapBytes(id)
-				}
-			} else {
-				var n int64
-				if n, ok = c.integer(pg, int(k)); ok {
-					ix, keep, err = p.l.vocab.mapInt(n)
-				}
-			}
-			if !ok || err != nil {
+			ix, keep, ok := p.mapItem(c, pg, int(k))
+			if !ok {
 				break // not kept: readRow gives the problem
 			}
 			e = 1
@@ -459,6 +413,27 @@ func (p *parquetReader) dictItems(c *column, pg *colPage, dp, m int) int {
 	}
 	s.dropped = s.dropped || dropped
 	return j - dp
+}
+
+// mapItem maps value k of an items page through the vocabulary; false
+// when the id is empty, beyond the int64 range or refused (readRow then
+// gives the problem).
+func (p *parquetReader) mapItem(c *column, pg *colPage, k int) (ix int32, keep, ok bool) {
+	var err error
+	if c.kind == parquet.ByteArray {
+		id := pg.ba[pg.off[k]:pg.off[k+1]]
+		if len(id) == 0 {
+			return 0, false, false
+		}
+		ix, keep, err = p.l.vocab.mapBytes(id)
+	} else {
+		n, ok := c.integer(pg, k)
+		if !ok {
+			return 0, false, false
+		}
+		ix, keep, err = p.l.vocab.mapInt(n)
+	}
+	return ix, keep, err == nil
 }
 
 // nextZero returns the index of the first zero byte of b at or after i,

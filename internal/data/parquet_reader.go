@@ -760,13 +760,14 @@ func (c *column) next() ([]parquet.Value, error) {
 
 // endChunk checks that the chunk has no values left.
 func (c *column) endChunk() error {
+	left, next := c.pos < c.n, c.fill
 	if c.columnar {
-		return c.endChunkColumnar()
+		left, next = c.cur.lp < c.cur.n, c.loadPage
 	}
-	if c.pos < c.n {
+	if left {
 		return fmt.Errorf("column %q has more values than rows", c.name)
 	}
-	switch err := c.fill(); err {
+	switch err := next(); err {
 	case nil:
 		return fmt.Errorf("column %q has more values than rows", c.name)
 	case io.EOF:
