@@ -8,6 +8,8 @@ import (
 	"sync"
 	"sync/atomic"
 	"testing"
+
+	"github.com/modelgate/modelgate/internal/clitest"
 )
 
 // A tensor file rewritten while push reads it, and verify run while push
@@ -35,8 +37,8 @@ func TestTensorFileChangesDuringPush(t *testing.T) {
 		t.Skip("pushes several MB many times per store kind")
 	}
 	root := t.TempDir()
-	a := bigEncoder(t, root, "changing-encoder", 1, 24000)
-	b := bigEncoder(t, filepath.Join(root, "other"), "changing-encoder", 2, 24000)
+	a := clitest.BigEncoder(t, root, "changing-encoder", 1, 24000)
+	b := clitest.BigEncoder(t, filepath.Join(root, "other"), "changing-encoder", 2, 24000)
 	const file = "encoder.safetensors"
 	bytesA, err := os.ReadFile(filepath.Join(a, file))
 	if err != nil {
@@ -74,11 +76,11 @@ func TestTensorFileChangesDuringPush(t *testing.T) {
 		},
 	}
 	const runs = 6
-	for _, k := range everyStore(t, "changing") {
-		if k.name == "registry-no-catalog" {
+	for _, k := range clitest.EveryStore(t, "changing") {
+		if k.Name == "registry-no-catalog" {
 			continue // the same upload path as "registry"
 		}
-		t.Run(k.name, func(t *testing.T) {
+		t.Run(k.Name, func(t *testing.T) {
 			var pushed, refused int
 			for _, mode := range []string{"in place", "truncated"} {
 				for i := range runs {
@@ -99,44 +101,44 @@ func TestTensorFileChangesDuringPush(t *testing.T) {
 							}
 						}
 					}()
-					r := mg(t, k.loc, "push", a, tag)
+					r := clitest.MG(t, k.Loc, "push", a, tag)
 					stop.Store(true)
 					wg.Wait()
 					if werr != nil {
 						t.Fatal(werr)
 					}
-					what := fmt.Sprintf("%s, rewritten %s, run %d", k.name, mode, i)
+					what := fmt.Sprintf("%s, rewritten %s, run %d", k.Name, mode, i)
 					for _, s := range crashSigns {
-						if strings.Contains(r.stderr, s) {
-							t.Fatalf("%s: push crashed (exit %d):\n%s", what, r.code, r.stderr)
+						if strings.Contains(r.Stderr, s) {
+							t.Fatalf("%s: push crashed (exit %d):\n%s", what, r.Code, r.Stderr)
 						}
 					}
-					switch r.code {
+					switch r.Code {
 					case 0:
 						pushed++
 						out := filepath.Join(t.TempDir(), "pulled")
-						if p := mg(t, k.loc, "pull", tag, out); p.code != 0 {
-							t.Fatalf("%s: pushed with exit 0, but pull exits %d:\n%s", what, p.code, p.stderr)
+						if p := clitest.MG(t, k.Loc, "pull", tag, out); p.Code != 0 {
+							t.Fatalf("%s: pushed with exit 0, but pull exits %d:\n%s", what, p.Code, p.Stderr)
 						}
 						// The pulled directory is a model directory push
 						// accepts: its tensor file has the spec's shapes.
-						if p := mg(t, filepath.Join(t.TempDir(), "check"), "push", out, "pulled:v1"); p.code != 0 {
-							t.Fatalf("%s: the pulled model does not push again (exit %d):\n%s", what, p.code, p.stderr)
+						if p := clitest.MG(t, filepath.Join(t.TempDir(), "check"), "push", out, "pulled:v1"); p.Code != 0 {
+							t.Fatalf("%s: the pulled model does not push again (exit %d):\n%s", what, p.Code, p.Stderr)
 						}
 					case 2:
 						refused++
 						// It names the file: as changed while pushed, or as
 						// invalid (the truncated file push read).
-						if !strings.Contains(r.stderr, file) || !(strings.Contains(r.stderr, "changed while it was pushed") || strings.Contains(r.stderr, "invalid safetensors")) {
-							t.Errorf("%s: exit 2 without naming %s as changed or invalid:\n%s", what, file, r.stderr)
+						if !strings.Contains(r.Stderr, file) || !(strings.Contains(r.Stderr, "changed while it was pushed") || strings.Contains(r.Stderr, "invalid safetensors")) {
+							t.Errorf("%s: exit 2 without naming %s as changed or invalid:\n%s", what, file, r.Stderr)
 						}
 					default:
-						t.Fatalf("%s: push exit %d, want 0 or 2:\n%s", what, r.code, r.stderr)
+						t.Fatalf("%s: push exit %d, want 0 or 2:\n%s", what, r.Code, r.Stderr)
 					}
-					mustVerify(t, k.loc, what)
+					clitest.MustVerify(t, k.Loc, what)
 				}
 			}
-			t.Logf("%s: %d pushes stored what they read, %d refused the changing file", k.name, pushed, refused)
+			t.Logf("%s: %d pushes stored what they read, %d refused the changing file", k.Name, pushed, refused)
 		})
 	}
 	os.WriteFile(path, bytesA, 0o644)
@@ -150,23 +152,23 @@ func TestPushAndVerifyAtOnce(t *testing.T) {
 		t.Skip("pushes several MB while verifying")
 	}
 	root := t.TempDir()
-	for _, k := range everyStore(t, "pushverify") {
-		if k.name == "registry-no-catalog" {
+	for _, k := range clitest.EveryStore(t, "pushverify") {
+		if k.Name == "registry-no-catalog" {
 			continue // verify there needs the repository names; "registry" covers the registry
 		}
-		t.Run(k.name, func(t *testing.T) {
-			mustMG(t, k.loc, "push", bigEncoder(t, root, "verify-encoder-0-"+k.name, 100, 24000), "verify-encoder:v0")
+		t.Run(k.Name, func(t *testing.T) {
+			clitest.MustMG(t, k.Loc, "push", clitest.BigEncoder(t, root, "verify-encoder-0-"+k.Name, 100, 24000), "verify-encoder:v0")
 			var stop atomic.Bool
 			var verifies atomic.Int64
 			var wg sync.WaitGroup
-			fails := make(chan result, 1)
+			fails := make(chan clitest.Result, 1)
 			for range 2 {
 				wg.Add(1)
 				go func() {
 					defer wg.Done()
 					for !stop.Load() {
-						r := mg(t, k.loc, "verify", "--json")
-						if r.code != 0 {
+						r := clitest.MG(t, k.Loc, "verify", "--json")
+						if r.Code != 0 {
 							select {
 							case fails <- r:
 							default:
@@ -178,26 +180,26 @@ func TestPushAndVerifyAtOnce(t *testing.T) {
 				}()
 			}
 			for i := 1; i <= 4; i++ {
-				dir := bigEncoder(t, root, fmt.Sprintf("verify-encoder-%d-%s", i, k.name), uint64(100+i), 24000)
-				r := mg(t, k.loc, "push", dir, fmt.Sprintf("verify-encoder:v%d", i))
-				if r.code != 0 {
+				dir := clitest.BigEncoder(t, root, fmt.Sprintf("verify-encoder-%d-%s", i, k.Name), uint64(100+i), 24000)
+				r := clitest.MG(t, k.Loc, "push", dir, fmt.Sprintf("verify-encoder:v%d", i))
+				if r.Code != 0 {
 					stop.Store(true)
 					wg.Wait()
-					t.Fatalf("push %d while verifying: exit %d\n%s", i, r.code, r.stderr)
+					t.Fatalf("push %d while verifying: exit %d\n%s", i, r.Code, r.Stderr)
 				}
 			}
 			stop.Store(true)
 			wg.Wait()
 			select {
 			case r := <-fails:
-				t.Fatalf("verify during a push: exit %d\n%s%s", r.code, r.stdout, r.stderr)
+				t.Fatalf("verify during a push: exit %d\n%s%s", r.Code, r.Stdout, r.Stderr)
 			default:
 			}
 			if verifies.Load() == 0 {
 				t.Fatalf("no verify ran during the pushes")
 			}
-			mustVerify(t, k.loc, "after the pushes")
-			t.Logf("%s: %d verify runs during 4 pushes, all exit 0", k.name, verifies.Load())
+			clitest.MustVerify(t, k.Loc, "after the pushes")
+			t.Logf("%s: %d verify runs during 4 pushes, all exit 0", k.Name, verifies.Load())
 		})
 	}
 }

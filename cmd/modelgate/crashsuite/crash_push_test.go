@@ -29,20 +29,20 @@ func TestCrashDuringPush(t *testing.T) {
 	const runs = 24
 	dirs := make([]string, 3)
 	for i := range dirs {
-		dirs[i] = bigEncoder(t, root, fmt.Sprintf("crash-encoder-%d", i), uint64(i+1), 24000)
+		dirs[i] = clitest.BigEncoder(t, root, fmt.Sprintf("crash-encoder-%d", i), uint64(i+1), 24000)
 	}
-	old := strings.TrimSpace(mustMG(t, store, "push", dirs[0], "crash-encoder:prod").stdout)
+	old := strings.TrimSpace(clitest.MustMG(t, store, "push", dirs[0], "crash-encoder:prod").Stdout)
 	// Measure one full push to spread the kill points over it (the timing
 	// only picks kill points; no assertion depends on it).
 	start := time.Now()
 	probe := filepath.Join(t.TempDir(), "probe-store")
-	mustMG(t, probe, "push", dirs[1], "crash-encoder:prod")
+	clitest.MustMG(t, probe, "push", dirs[1], "crash-encoder:prod")
 	full := time.Since(start)
 	rng := rand.New(rand.NewPCG(42, 42))
 	targets := map[string]bool{old: true}
 	for i := 0; i < runs; i++ {
 		dir := dirs[1+i%2]
-		cmd := exec.Command(mgBinary, "push", dir, "crash-encoder:prod")
+		cmd := exec.Command(clitest.Binary, "push", dir, "crash-encoder:prod")
 		cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
 		var so bytes.Buffer
 		cmd.Stdout = &so
@@ -56,12 +56,12 @@ func TestCrashDuringPush(t *testing.T) {
 		if err == nil {
 			targets[strings.TrimSpace(so.String())] = true
 		}
-		r := mg(t, store, "verify", "--json")
-		if r.code != 0 {
-			t.Fatalf("run %d (kill after %v): verify exit %d\n%s%s", i, delay, r.code, r.stdout, r.stderr)
+		r := clitest.MG(t, store, "verify", "--json")
+		if r.Code != 0 {
+			t.Fatalf("run %d (kill after %v): verify exit %d\n%s%s", i, delay, r.Code, r.Stdout, r.Stderr)
 		}
 		var ls []clitest.LsRow
-		if err := json.Unmarshal([]byte(mustMG(t, store, "ls", "--json", "crash-encoder").stdout), &ls); err != nil {
+		if err := json.Unmarshal([]byte(clitest.MustMG(t, store, "ls", "--json", "crash-encoder").Stdout), &ls); err != nil {
 			t.Fatal(err)
 		}
 		if len(ls) != 1 {

@@ -31,9 +31,9 @@ import (
 
 // runKilled starts modelgate with args against store and sends it SIGKILL
 // after delay, unless it has exited by then.
-func runKilled(t *testing.T, store string, delay time.Duration, args ...string) killed {
+func runKilled(t *testing.T, store string, delay time.Duration, args ...string) clitest.Killed {
 	t.Helper()
-	cmd := exec.Command(mgBinary, args...)
+	cmd := exec.Command(clitest.Binary, args...)
 	cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
 	var so, se bytes.Buffer
 	cmd.Stdout, cmd.Stderr = &so, &se
@@ -43,16 +43,15 @@ func runKilled(t *testing.T, store string, delay time.Duration, args ...string) 
 	timer := time.AfterFunc(delay, func() { _ = cmd.Process.Signal(syscall.SIGKILL) })
 	err := cmd.Wait()
 	timer.Stop()
-	k := clitest.Outcome(t, err, so.String(), se.String(), args)
-	return fromKilled(k)
+	return clitest.Outcome(t, err, so.String(), se.String(), args)
 }
 
 // timedMG runs modelgate to completion (exit 0 required) and returns how
 // long it took: the span the kill points are spread over.
-func timedMG(t *testing.T, store string, args ...string) (result, time.Duration) {
+func timedMG(t *testing.T, store string, args ...string) (clitest.Result, time.Duration) {
 	t.Helper()
 	start := time.Now()
-	r := mustMG(t, store, args...)
+	r := clitest.MustMG(t, store, args...)
 	return r, time.Since(start)
 }
 
@@ -120,17 +119,17 @@ func TestCrashDuringCopy(t *testing.T) {
 	const runs = 12
 	root := t.TempDir()
 	dst := filepath.Join(root, "dst")
-	encDir, _ := fixtures(t)
-	mustMG(t, dst, "push", bigEncoder(t, root, "copy-encoder-old", 30, 24000), "crash-encoder:prod")
-	mustMG(t, dst, "push", encDir, "tiny-encoder:v1")
+	encDir, _ := clitest.Fixtures(t)
+	clitest.MustMG(t, dst, "push", clitest.BigEncoder(t, root, "copy-encoder-old", 30, 24000), "crash-encoder:prod")
+	clitest.MustMG(t, dst, "push", encDir, "tiny-encoder:v1")
 	// One source store per run, each with a model the destination lacks,
 	// so that every run has several MB to copy; two more to time a copy.
 	type source struct{ store, digest string }
 	srcs := make([]source, runs+2)
 	for i := range srcs {
 		store := filepath.Join(root, fmt.Sprintf("src-%d", i))
-		dir := bigEncoder(t, root, fmt.Sprintf("copy-encoder-%d", i), uint64(40+i), 24000)
-		srcs[i] = source{store, strings.TrimSpace(mustMG(t, store, "push", dir, "crash-encoder:prod").stdout)}
+		dir := clitest.BigEncoder(t, root, fmt.Sprintf("copy-encoder-%d", i), uint64(40+i), 24000)
+		srcs[i] = source{store, strings.TrimSpace(clitest.MustMG(t, store, "push", dir, "crash-encoder:prod").Stdout)}
 	}
 	var full time.Duration
 	for i, s := range srcs[runs:] {
@@ -141,17 +140,17 @@ func TestCrashDuringCopy(t *testing.T) {
 	var tally crashTally
 	var resume []source
 	for i, src := range srcs[:runs] {
-		before := storeTags(t, dst)
+		before := clitest.StoreTags(t, dst)
 		what := fmt.Sprintf("copy run %d (kill after %v of %v)", i, delays[i], full)
 		k := runKilled(t, src.store, delays[i], "copy", "crash-encoder:prod", "--dest", dst)
-		if k.finished && k.res.code != 0 {
-			t.Fatalf("%s: exit %d: %s", what, k.res.code, k.res.stderr)
+		if k.Finished && k.Res.Code != 0 {
+			t.Fatalf("%s: exit %d: %s", what, k.Res.Code, k.Res.Stderr)
 		}
-		mustVerify(t, dst, what)
-		after := storeTags(t, dst)
+		clitest.MustVerify(t, dst, what)
+		after := clitest.StoreTags(t, dst)
 		checkTags(t, what, before, after, "crash-encoder:prod", []string{src.digest}, "")
 		switch {
-		case k.finished:
+		case k.Finished:
 			tally.finished++
 			if after["crash-encoder:prod"] != src.digest {
 				t.Fatalf("%s: the copy finished but the tag points at %s, not %s", what, after["crash-encoder:prod"], src.digest)
@@ -167,15 +166,15 @@ func TestCrashDuringCopy(t *testing.T) {
 	// Run again, each interrupted copy completes: the tag, and the same
 	// model bytes as in its source.
 	for _, src := range resume {
-		mustMG(t, src.store, "copy", "crash-encoder:prod", "--dest", dst)
-		mustVerify(t, dst, "copy run again")
-		if got := storeTags(t, dst)["crash-encoder:prod"]; got != src.digest {
+		clitest.MustMG(t, src.store, "copy", "crash-encoder:prod", "--dest", dst)
+		clitest.MustVerify(t, dst, "copy run again")
+		if got := clitest.StoreTags(t, dst)["crash-encoder:prod"]; got != src.digest {
 			t.Fatalf("copy run again: the tag points at %s, want %s", got, src.digest)
 		}
 		a, b := filepath.Join(t.TempDir(), "a"), filepath.Join(t.TempDir(), "b")
-		mustMG(t, src.store, "pull", "crash-encoder:prod", a)
-		mustMG(t, dst, "pull", "crash-encoder:prod", b)
-		if listing(t, a) != listing(t, b) {
+		clitest.MustMG(t, src.store, "pull", "crash-encoder:prod", a)
+		clitest.MustMG(t, dst, "pull", "crash-encoder:prod", b)
+		if clitest.Listing(t, a) != clitest.Listing(t, b) {
 			t.Fatalf("the model pulled from the destination differs from its source's")
 		}
 	}
@@ -186,7 +185,7 @@ func TestCrashDuringCopy(t *testing.T) {
 // moves to, and whether an interrupted release was pending before it.
 type releaseCrash struct {
 	t       *testing.T
-	w       *releaseWorld
+	w       *clitest.World
 	pending bool   // the log reported the interrupted state after the last run
 	record  string // the record of that interrupted release
 	tally   crashTally
@@ -199,29 +198,29 @@ const (
 
 // logState runs log --json on the target and returns its exit code and
 // report.
-func (c *releaseCrash) logState() (int, logReport) {
+func (c *releaseCrash) logState() (int, clitest.LogReport) {
 	c.t.Helper()
-	r := mg(c.t, c.w.Store, "log", "--json", crashTarget)
-	var rep logReport
-	if err := json.Unmarshal([]byte(r.stdout), &rep); err != nil {
-		c.t.Fatalf("log --json: exit %d, %v\n%s%s", r.code, err, r.stdout, r.stderr)
+	r := clitest.MG(c.t, c.w.Store, "log", "--json", crashTarget)
+	var rep clitest.LogReport
+	if err := json.Unmarshal([]byte(r.Stdout), &rep); err != nil {
+		c.t.Fatalf("log --json: exit %d, %v\n%s%s", r.Code, err, r.Stdout, r.Stderr)
 	}
-	return r.code, rep
+	return r.Code, rep
 }
 
-func (c *releaseCrash) check(what string, before map[string]string, newTarget string, k killed) {
+func (c *releaseCrash) check(what string, before map[string]string, newTarget string, k clitest.Killed) {
 	t := c.t
 	t.Helper()
-	if k.finished {
-		if k.res.code != 0 {
-			t.Fatalf("%s: exit %d: %s%s", what, k.res.code, k.res.stdout, k.res.stderr)
+	if k.Finished {
+		if k.Res.Code != 0 {
+			t.Fatalf("%s: exit %d: %s%s", what, k.Res.Code, k.Res.Stdout, k.Res.Stderr)
 		}
-		if c.pending && !strings.Contains(k.res.stdout, "completed an interrupted release first") {
-			t.Fatalf("%s: finished over an interrupted release without completing it:\n%s", what, k.res.stdout)
+		if c.pending && !strings.Contains(k.Res.Stdout, "completed an interrupted release first") {
+			t.Fatalf("%s: finished over an interrupted release without completing it:\n%s", what, k.Res.Stdout)
 		}
 	}
-	mustVerify(t, c.w.Store, what)
-	after := storeTags(t, c.w.Store)
+	clitest.MustVerify(t, c.w.Store, what)
+	after := clitest.StoreTags(t, c.w.Store)
 	checkTags(t, what, before, after, crashTarget, []string{newTarget}, crashHead)
 	cur := after[crashTarget]
 	code, rep := c.logState()
@@ -250,7 +249,7 @@ func (c *releaseCrash) check(what string, before map[string]string, newTarget st
 		head := after[crashHead]
 		movedHere := cur == newTarget && (head == before[crashHead] || (c.pending && head == c.record))
 		leftAsItWas := c.pending && cur == before[crashTarget] && head == before[crashHead] && record == c.record
-		if k.finished || record == "" || !(movedHere || leftAsItWas) {
+		if k.Finished || record == "" || !(movedHere || leftAsItWas) {
 			t.Fatalf("%s: log exit 5 with findings %q; tag %s → %s (new %s), head %s → %s, pending %v %s",
 				what, damage, before[crashTarget], cur, newTarget, before[crashHead], head, c.pending, c.record)
 		}
@@ -262,7 +261,7 @@ func (c *releaseCrash) check(what string, before map[string]string, newTarget st
 		t.Fatalf("%s: log exit %d: %+v", what, code, rep.Findings)
 	}
 	switch {
-	case k.finished:
+	case k.Finished:
 		c.tally.finished++
 		if cur != newTarget {
 			t.Fatalf("%s: finished but the tag points at %s, not %s", what, cur, newTarget)
@@ -284,13 +283,13 @@ func (c *releaseCrash) finish() {
 	// earlier release to return to.
 	c.w.Push(99, "")
 	c.w.Gate("tiny-encoder:v99")
-	r := mustMG(c.t, c.w.Store, "promote", "tiny-encoder:v99", "--to", crashTarget, "--policy", c.w.Policy, "--key", c.w.Key("rita"))
-	if c.pending && !strings.Contains(r.stdout, "completed an interrupted release first") {
-		c.t.Fatalf("the promote after an interrupted release did not complete it:\n%s", r.stdout)
+	r := clitest.MustMG(c.t, c.w.Store, "promote", "tiny-encoder:v99", "--to", crashTarget, "--policy", c.w.Policy, "--key", c.w.Key("rita"))
+	if c.pending && !strings.Contains(r.Stdout, "completed an interrupted release first") {
+		c.t.Fatalf("the promote after an interrupted release did not complete it:\n%s", r.Stdout)
 	}
-	mustMG(c.t, c.w.Store, "rollback", crashTarget, "--reason", "after the crash suite", "--key", c.w.Key("rita"))
-	mustMG(c.t, c.w.Store, "log", crashTarget, "--policy", c.w.Policy)
-	mustVerify(c.t, c.w.Store, "after the crash suite")
+	clitest.MustMG(c.t, c.w.Store, "rollback", crashTarget, "--reason", "after the crash suite", "--key", c.w.Key("rita"))
+	clitest.MustMG(c.t, c.w.Store, "log", crashTarget, "--policy", c.w.Policy)
+	clitest.MustVerify(c.t, c.w.Store, "after the crash suite")
 }
 
 // TestCrashDuringPromote kills `promote` at 20 points, each time with a
@@ -299,7 +298,7 @@ func TestCrashDuringPromote(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
 	}
-	crashPromote(t, newReleaseWorld(t, 0), 20)
+	crashPromote(t, clitest.NewWorld(t, 0), 20)
 }
 
 // TestCrashDuringReleaseOnDockerRegistry: the timed kills of promote and
@@ -315,12 +314,12 @@ func TestCrashDuringReleaseOnDockerRegistry(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
 	}
-	for _, k := range everyStore(t, "timedcrash") {
-		if k.name != "docker-registry" {
+	for _, k := range clitest.EveryStore(t, "timedcrash") {
+		if k.Name != "docker-registry" {
 			continue
 		}
-		t.Run("promote", func(t *testing.T) { crashPromote(t, newReleaseWorldAt(t, 0, k.loc+"-promote"), registryRuns) })
-		t.Run("rollback", func(t *testing.T) { crashRollback(t, newReleaseWorldAt(t, 0, k.loc+"-rollback"), registryRuns) })
+		t.Run("promote", func(t *testing.T) { crashPromote(t, clitest.NewWorldAt(t, 0, k.Loc+"-promote"), registryRuns) })
+		t.Run("rollback", func(t *testing.T) { crashRollback(t, clitest.NewWorldAt(t, 0, k.Loc+"-rollback"), registryRuns) })
 		return
 	}
 	t.Skip("MODELGATE_TEST_REGISTRY is not set (.ci/services.sh starts docker-registry and sets it)")
@@ -331,7 +330,7 @@ func TestCrashDuringReleaseOnDockerRegistry(t *testing.T) {
 const registryRuns = 6
 
 // crashPromote kills promote at runs points in the world w.
-func crashPromote(t *testing.T, w *releaseWorld, runs int) {
+func crashPromote(t *testing.T, w *clitest.World, runs int) {
 	w.Push(0, crashTarget)
 	var full time.Duration // the longer of two uninterrupted promotes
 	for n := 1; n <= 2; n++ {
@@ -346,7 +345,7 @@ func crashPromote(t *testing.T, w *releaseWorld, runs int) {
 		n := i + 3
 		cand := w.Push(n, "")
 		w.Gate(fmt.Sprintf("tiny-encoder:v%d", n))
-		before := storeTags(t, w.Store)
+		before := clitest.StoreTags(t, w.Store)
 		delay := delays[i]
 		what := fmt.Sprintf("promote run %d (kill after %v of %v)", i, delay, full)
 		k := runKilled(t, w.Store, delay, "promote", fmt.Sprintf("tiny-encoder:v%d", n), "--to", crashTarget,
@@ -364,16 +363,16 @@ func TestCrashDuringRollback(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
 	}
-	crashRollback(t, newReleaseWorld(t, 0), 20)
+	crashRollback(t, clitest.NewWorld(t, 0), 20)
 }
 
 // crashRollback kills rollback at runs points in the world w.
-func crashRollback(t *testing.T, w *releaseWorld, runs int) {
+func crashRollback(t *testing.T, w *clitest.World, runs int) {
 	released := []string{w.Push(0, crashTarget)}
 	for i := 1; i <= 3; i++ {
 		released = append(released, w.Push(i, ""))
 		w.Gate(fmt.Sprintf("tiny-encoder:v%d", i))
-		mustMG(t, w.Store, "promote", fmt.Sprintf("tiny-encoder:v%d", i), "--to", crashTarget, "--policy", w.Policy, "--key", w.Key("rita"))
+		clitest.MustMG(t, w.Store, "promote", fmt.Sprintf("tiny-encoder:v%d", i), "--to", crashTarget, "--policy", w.Policy, "--key", w.Key("rita"))
 	}
 	var full time.Duration // the longer of two uninterrupted rollbacks
 	for range 2 {
@@ -384,7 +383,7 @@ func crashRollback(t *testing.T, w *releaseWorld, runs int) {
 	rng := rand.New(rand.NewPCG(7, 3))
 	delays := releaseKillPoints(rng, full, runs)
 	for i := range runs {
-		before := storeTags(t, w.Store)
+		before := clitest.StoreTags(t, w.Store)
 		cur := before[crashTarget]
 		args := []string{"rollback", crashTarget, "--key", w.Key("rita")}
 		var to string
@@ -394,12 +393,12 @@ func crashRollback(t *testing.T, w *releaseWorld, runs int) {
 			// earlier kills left the tag at its first release, there is
 			// nothing earlier (exit 2, said so): roll back by --to instead.
 			var dry struct{ To string }
-			r := mg(t, w.Store, "rollback", crashTarget, "--reason", "dry", "--dry-run", "--json")
+			r := clitest.MG(t, w.Store, "rollback", crashTarget, "--reason", "dry", "--dry-run", "--json")
 			switch {
-			case r.code == 2 && strings.Contains(r.stdout, "nothing earlier to roll back to"):
+			case r.Code == 2 && strings.Contains(r.Stdout, "nothing earlier to roll back to"):
 				undo = false
-			case r.code != 0 || json.Unmarshal([]byte(r.stdout), &dry) != nil || dry.To == "":
-				t.Fatalf("rollback --dry-run --json: exit %d, %q %q", r.code, r.stdout, r.stderr)
+			case r.Code != 0 || json.Unmarshal([]byte(r.Stdout), &dry) != nil || dry.To == "":
+				t.Fatalf("rollback --dry-run --json: exit %d, %q %q", r.Code, r.Stdout, r.Stderr)
 			default:
 				to = dry.To
 			}
@@ -424,8 +423,8 @@ func crashRollback(t *testing.T, w *releaseWorld, runs int) {
 // moves no tag. A push blocked in the wait used to ignore both signals.
 func TestInterruptedPush(t *testing.T) {
 	store := filepath.Join(t.TempDir(), "store")
-	encDir, _ := fixtures(t)
-	mustMG(t, store, "push", encDir, "tiny-encoder:v1")
+	encDir, _ := clitest.Fixtures(t)
+	clitest.MustMG(t, store, "push", encDir, "tiny-encoder:v1")
 	lock, err := os.OpenFile(filepath.Join(store, ".modelgate", "lock"), os.O_RDWR, 0)
 	if err != nil {
 		t.Fatal(err)
@@ -434,13 +433,13 @@ func TestInterruptedPush(t *testing.T) {
 	if err := syscall.Flock(int(lock.Fd()), syscall.LOCK_EX); err != nil {
 		t.Fatal(err)
 	}
-	dir := bigEncoder(t, t.TempDir(), "interrupted-encoder", 5, 24000)
+	dir := clitest.BigEncoder(t, t.TempDir(), "interrupted-encoder", 5, 24000)
 	for _, c := range []struct {
 		sig  syscall.Signal
 		code int
 	}{{syscall.SIGTERM, 143}, {syscall.SIGINT, 130}} {
-		before := storeTags(t, store)
-		cmd := exec.Command(mgBinary, "push", "--json", dir, "tiny-encoder:v2")
+		before := clitest.StoreTags(t, store)
+		cmd := exec.Command(clitest.Binary, "push", "--json", dir, "tiny-encoder:v2")
 		cmd.Env = append(os.Environ(), "MODELGATE_STORE="+store)
 		stderr, err := cmd.StderrPipe()
 		if err != nil {
@@ -478,10 +477,10 @@ func TestInterruptedPush(t *testing.T) {
 			t.Errorf("push sent %v left %d temporary files (%v)", c.sig, len(tmp), err)
 		}
 		syscall.Flock(int(lock.Fd()), syscall.LOCK_UN)
-		if after := storeTags(t, store); fmt.Sprint(after) != fmt.Sprint(before) {
+		if after := clitest.StoreTags(t, store); fmt.Sprint(after) != fmt.Sprint(before) {
 			t.Errorf("push sent %v moved tags: %v → %v", c.sig, before, after)
 		}
-		mustVerify(t, store, fmt.Sprintf("after a push sent %v", c.sig))
+		clitest.MustVerify(t, store, fmt.Sprintf("after a push sent %v", c.sig))
 		if err := syscall.Flock(int(lock.Fd()), syscall.LOCK_EX); err != nil {
 			t.Fatal(err)
 		}

@@ -10,6 +10,8 @@ import (
 	"strings"
 	"syscall"
 	"testing"
+
+	"github.com/modelgate/modelgate/internal/clitest"
 )
 
 // The local store on a full disk. Two real mechanisms, not a fake writer:
@@ -82,7 +84,7 @@ func tmpfsDisk(t *testing.T, size int64) *fullDisk {
 		}
 		return func() { os.Remove(filler) }
 	}
-	d.command = func(_ int64, args []string) (string, []string) { return mgBinary, args }
+	d.command = func(_ int64, args []string) (string, []string) { return clitest.Binary, args }
 	return d
 }
 
@@ -96,13 +98,13 @@ func fsizeDisk(t *testing.T) *fullDisk {
 		t: t, store: filepath.Join(t.TempDir(), "store"), cause: "file too large",
 		squeeze: func(int64) func() { return func() {} },
 		command: func(room int64, args []string) (string, []string) {
-			return "prlimit", append([]string{fmt.Sprintf("--fsize=%d", room), mgBinary}, args...)
+			return "prlimit", append([]string{fmt.Sprintf("--fsize=%d", room), clitest.Binary}, args...)
 		},
 	}
 }
 
 // run runs modelgate args with room bytes left.
-func (d *fullDisk) run(room int64, args ...string) result {
+func (d *fullDisk) run(room int64, args ...string) clitest.Result {
 	d.t.Helper()
 	release := d.squeeze(room)
 	defer release()
@@ -122,7 +124,7 @@ func (d *fullDisk) run(room int64, args ...string) result {
 	} else if err != nil {
 		d.t.Fatal(err)
 	}
-	return result{code, so.String(), se.String()}
+	return clitest.Result{Code: code, Stdout: so.String(), Stderr: se.String()}
 }
 
 func TestStoreOnFullDisk(t *testing.T) {
@@ -140,7 +142,7 @@ func TestStoreOnFullDisk(t *testing.T) {
 }
 
 func fullDiskReleases(t *testing.T, d *fullDisk) {
-	w := newReleaseWorldAt(t, 1, d.store)
+	w := clitest.NewWorldAt(t, 1, d.store)
 	w.Push(0, "tiny-encoder:prod")
 	root := t.TempDir()
 	// The room left, from none to more than any of these commands
@@ -156,57 +158,57 @@ func fullDiskReleases(t *testing.T, d *fullDisk) {
 			what string
 			args []string
 		}{
-			{"push", []string{"push", bigEncoder(t, root, fmt.Sprintf("full-encoder-%d", n), uint64(n), 200+n), cand}},
+			{"push", []string{"push", clitest.BigEncoder(t, root, fmt.Sprintf("full-encoder-%d", n), uint64(n), 200+n), cand}},
 			{"gate", []string{"gate", cand, "--to", "tiny-encoder:prod", "--policy", w.Policy, "--sign-key", w.Key("ci")}},
 			{"approve", []string{"approve", cand, "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("ana")}},
 			{"promote", []string{"promote", cand, "--to", "tiny-encoder:prod", "--policy", w.Policy, "--key", w.Key("rita")}},
 		}
 		for _, s := range steps {
 			what := fmt.Sprintf("%s with %d bytes of room", s.what, room)
-			before := listing(t, d.store)
+			before := clitest.Listing(t, d.store)
 			r := d.run(room, s.args...)
-			if r.code == 0 {
+			if r.Code == 0 {
 				fit = append(fit, what)
 			} else {
 				refused++
 				if !shown[s.what] {
 					shown[s.what] = true
-					t.Logf("%s: exit %d: %s", what, r.code, strings.TrimSpace(r.stderr[strings.LastIndex(strings.TrimSpace(r.stderr), "\n")+1:]))
+					t.Logf("%s: exit %d: %s", what, r.Code, strings.TrimSpace(r.Stderr[strings.LastIndex(strings.TrimSpace(r.Stderr), "\n")+1:]))
 				}
-				if !strings.Contains(r.stderr, d.cause) || !strings.Contains(r.stderr, "free space and run the command again") {
-					t.Errorf("%s: exit %d without naming the cause %q:\n%s", what, r.code, d.cause, r.stderr)
+				if !strings.Contains(r.Stderr, d.cause) || !strings.Contains(r.Stderr, "free space and run the command again") {
+					t.Errorf("%s: exit %d without naming the cause %q:\n%s", what, r.Code, d.cause, r.Stderr)
 				}
-				if r.code == 5 {
-					t.Errorf("%s: exit 5 (integrity) for a full disk:\n%s", what, r.stderr)
+				if r.Code == 5 {
+					t.Errorf("%s: exit 5 (integrity) for a full disk:\n%s", what, r.Stderr)
 				}
-				mustVerify(t, d.store, what)
-				if after := listing(t, d.store); after != before {
+				clitest.MustVerify(t, d.store, what)
+				if after := clitest.Listing(t, d.store); after != before {
 					// Not byte-identical: only the release log's documented
 					// interrupted state is allowed, which the next promote
 					// completes.
 					code, rep := logOf(t, d.store, "tiny-encoder:prod")
 					if code != 0 && !isInterrupted(rep) {
-						t.Fatalf("%s: the store changed and log exits %d: %+v\n%s", what, code, rep.Findings, listingDiff(before, after))
+						t.Fatalf("%s: the store changed and log exits %d: %+v\n%s", what, code, rep.Findings, clitest.ListingDiff(before, after))
 					}
 					changed++
-					t.Logf("%s: exit %d changed the store, which verifies:\n%s", what, r.code, listingDiff(before, after))
+					t.Logf("%s: exit %d changed the store, which verifies:\n%s", what, r.Code, clitest.ListingDiff(before, after))
 					if code != 0 {
 						interrupted++
 					}
 				}
 				// With space again the same command completes.
-				r = mg(t, d.store, s.args...)
-				if r.code != 0 {
-					t.Fatalf("%s, run again with space: exit %d\n%s%s", what, r.code, r.stdout, r.stderr)
+				r = clitest.MG(t, d.store, s.args...)
+				if r.Code != 0 {
+					t.Fatalf("%s, run again with space: exit %d\n%s%s", what, r.Code, r.Stdout, r.Stderr)
 				}
 				completed++
 			}
-			mustVerify(t, d.store, what)
+			clitest.MustVerify(t, d.store, what)
 		}
 		if got := w.Prod(); got == "" || !strings.HasPrefix(got, "sha256:") {
 			t.Fatalf("tiny-encoder:prod after round %d: %q", n, got)
 		}
-		mustMG(t, d.store, "log", "tiny-encoder:prod", "--policy", w.Policy)
+		clitest.MustMG(t, d.store, "log", "tiny-encoder:prod", "--policy", w.Policy)
 	}
 	if refused == 0 {
 		t.Fatalf("no command ran out of room: the test tested nothing")
@@ -217,19 +219,19 @@ func fullDiskReleases(t *testing.T, d *fullDisk) {
 }
 
 // logOf runs log --json on target.
-func logOf(t *testing.T, store, target string) (int, logReport) {
+func logOf(t *testing.T, store, target string) (int, clitest.LogReport) {
 	t.Helper()
-	r := mg(t, store, "log", "--json", target)
-	var rep logReport
-	if err := json.Unmarshal([]byte(r.stdout), &rep); err != nil {
-		t.Fatalf("log --json %s: exit %d, %v\n%s%s", target, r.code, err, r.stdout, r.stderr)
+	r := clitest.MG(t, store, "log", "--json", target)
+	var rep clitest.LogReport
+	if err := json.Unmarshal([]byte(r.Stdout), &rep); err != nil {
+		t.Fatalf("log --json %s: exit %d, %v\n%s%s", target, r.Code, err, r.Stdout, r.Stderr)
 	}
-	return r.code, rep
+	return r.Code, rep
 }
 
 // isInterrupted: the one damage finding is the documented interrupted
 // release.
-func isInterrupted(rep logReport) bool {
+func isInterrupted(rep clitest.LogReport) bool {
 	var damage []string
 	for _, f := range rep.Findings {
 		if f.Severity == "damage" {
