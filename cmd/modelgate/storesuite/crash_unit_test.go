@@ -9,6 +9,8 @@ import (
 	"sync"
 	"testing"
 
+	"github.com/modelgate/modelgate/internal/clitest"
+
 	"github.com/modelgate/modelgate/internal/fixture"
 	"github.com/modelgate/modelgate/internal/model/modeldir"
 )
@@ -33,17 +35,17 @@ const (
 	unitScorer = "tiny-scorer:prod"
 )
 
-// unitWorld is a releaseWorld with a scorer tag tied to tiny-encoder:prod,
+// unitWorld is a clitest.World with a scorer tag tied to tiny-encoder:prod,
 // both with a release log.
 type unitWorld struct {
-	*releaseWorld
+	*clitest.World
 	spolicy string
 	n       int
 }
 
 func newUnitWorld(t *testing.T, store string) *unitWorld {
 	t.Helper()
-	u := &unitWorld{releaseWorld: newReleaseWorldAt(t, 0, store)}
+	u := &unitWorld{World: clitest.NewWorldAt(t, 0, store)}
 	u.spolicy = filepath.Join(u.Dir, "scorer.yaml")
 	text := `schemaVersion: 1
 name: tiny-scorer-release
@@ -67,10 +69,10 @@ rules:
 	// First releases: the encoder, then a scorer of it.
 	enc := u.Push(0, "")
 	u.Gate("tiny-encoder:v0")
-	mustMG(t, store, "promote", "tiny-encoder:v0", "--to", unitEnc, "--policy", u.Policy, "--key", u.Key("rita"))
+	clitest.MustMG(t, store, "promote", "tiny-encoder:v0", "--to", unitEnc, "--policy", u.Policy, "--key", u.Key("rita"))
 	u.pushScorer(0, enc)
-	mustMG(t, store, "gate", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.Key("ci"))
-	mustMG(t, store, "promote", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--key", u.Key("rita"))
+	clitest.MustMG(t, store, "gate", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.Key("ci"))
+	clitest.MustMG(t, store, "promote", "tiny-scorer:s0", "--to", unitScorer, "--policy", u.spolicy, "--key", u.Key("rita"))
 	return u
 }
 
@@ -84,7 +86,7 @@ func (u *unitWorld) pushScorer(i int, enc string) string {
 	if err := modeldir.Write(dir, m); err != nil {
 		u.T.Fatal(err)
 	}
-	return strings.TrimSpace(mustMG(u.T, u.Store, "push", dir, fmt.Sprintf("tiny-scorer:s%d", i)).stdout)
+	return strings.TrimSpace(clitest.MustMG(u.T, u.Store, "push", dir, fmt.Sprintf("tiny-scorer:s%d", i)).Stdout)
 }
 
 // candidates pushes and gates a new encoder and a scorer of it, each
@@ -98,18 +100,18 @@ func (u *unitWorld) candidates() (enc, sc string, promote []string) {
 	sc = u.pushScorer(n, enc)
 	ev, sv := fmt.Sprintf("tiny-encoder:v%d", n), fmt.Sprintf("tiny-scorer:s%d", n)
 	u.Gate(ev)
-	mustMG(u.T, u.Store, "gate", sv, "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.Key("ci"), "--with", ev+"="+unitEnc)
+	clitest.MustMG(u.T, u.Store, "gate", sv, "--to", unitScorer, "--policy", u.spolicy, "--sign-key", u.Key("ci"), "--with", ev+"="+unitEnc)
 	return enc, sc, []string{"promote", ev, "--to", unitEnc, "--with", sv + "=" + unitScorer, "--policy", u.Policy, "--policy", u.spolicy,
 		"--key", u.Key("rita"), "--reason", fmt.Sprintf("unit %d", n)}
 }
 
 // logOf runs log --json on target: its exit code and, for exit 5, whether
 // the one damage finding is the documented interrupted state.
-func (u *unitWorld) logOf(target string) (code int, interrupted bool, rep logReport) {
+func (u *unitWorld) logOf(target string) (code int, interrupted bool, rep clitest.LogReport) {
 	u.T.Helper()
-	r := mg(u.T, u.Store, "log", "--json", target)
-	if err := json.Unmarshal([]byte(r.stdout), &rep); err != nil {
-		u.T.Fatalf("log --json %s: exit %d, %v\n%s%s", target, r.code, err, r.stdout, r.stderr)
+	r := clitest.MG(u.T, u.Store, "log", "--json", target)
+	if err := json.Unmarshal([]byte(r.Stdout), &rep); err != nil {
+		u.T.Fatalf("log --json %s: exit %d, %v\n%s%s", target, r.Code, err, r.Stdout, r.Stderr)
 	}
 	var damage []string
 	for _, f := range rep.Findings {
@@ -117,10 +119,10 @@ func (u *unitWorld) logOf(target string) (code int, interrupted bool, rep logRep
 			damage = append(damage, f.Message)
 		}
 	}
-	if r.code == 5 && len(damage) == 1 && strings.HasPrefix(damage[0], "interrupted: record ") {
+	if r.Code == 5 && len(damage) == 1 && strings.HasPrefix(damage[0], "interrupted: record ") {
 		interrupted = true
 	}
-	return r.code, interrupted, rep
+	return r.Code, interrupted, rep
 }
 
 // checkCrash checks the store after a kill (or a finished run) of a
@@ -129,8 +131,8 @@ func (u *unitWorld) logOf(target string) (code int, interrupted bool, rep logRep
 func (u *unitWorld) checkCrash(what string, before map[string]string, oldE, newE, oldS, newS string) bool {
 	t := u.T
 	t.Helper()
-	mustVerify(t, u.Store, what)
-	after := storeTags(t, u.Store)
+	clitest.MustVerify(t, u.Store, what)
+	after := clitest.StoreTags(t, u.Store)
 	for k, v := range before {
 		switch k {
 		case unitEnc, unitScorer, "tiny-encoder:release-prod", "tiny-scorer:release-prod":
@@ -166,15 +168,15 @@ func (u *unitWorld) checkCrash(what string, before map[string]string, oldE, newE
 func (u *unitWorld) logsVerify(what string) {
 	u.T.Helper()
 	for _, a := range [][]string{{unitEnc, u.Policy}, {unitScorer, u.spolicy}} {
-		if r := mg(u.T, u.Store, "log", a[0], "--policy", a[1]); r.code != 0 {
-			u.T.Fatalf("%s: log %s exit %d\n%s%s", what, a[0], r.code, r.stdout, r.stderr)
+		if r := clitest.MG(u.T, u.Store, "log", a[0], "--policy", a[1]); r.Code != 0 {
+			u.T.Fatalf("%s: log %s exit %d\n%s%s", what, a[0], r.Code, r.Stdout, r.Stderr)
 		}
 	}
 }
 
 func (u *unitWorld) tags() (string, string) {
 	u.T.Helper()
-	tags := storeTags(u.T, u.Store)
+	tags := clitest.StoreTags(u.T, u.Store)
 	return tags[unitEnc], tags[unitScorer]
 }
 
@@ -193,21 +195,21 @@ func crashUnitRelease(t *testing.T, store string, steps []string) {
 		// promote --with, killed after step.
 		oldE, oldS := u.tags()
 		newE, newS, promote := u.candidates()
-		before := storeTags(t, store)
+		before := clitest.StoreTags(t, store)
 		what := fmt.Sprintf("promote killed after %s", step)
-		k := runCrashAt(t, store, step, promote...)
-		if k.finished {
-			t.Fatalf("%s: the run was not killed (exit %d): %s%s", what, k.res.code, k.res.stdout, k.res.stderr)
+		k := clitest.RunCrashAt(t, store, step, promote...)
+		if k.Finished {
+			t.Fatalf("%s: the run was not killed (exit %d): %s%s", what, k.Res.Code, k.Res.Stdout, k.Res.Stderr)
 		}
 		pending := u.checkCrash(what, before, oldE, newE, oldS, newS)
 		// The next promote (every other step: the same command again) or
 		// rollback (the others) completes the release first.
 		e, s := u.tags()
 		tookEffect := pending || (e == newE && s == newS)
-		var r result
+		var r clitest.Result
 		want := [2]string{newE, newS}
 		if i%2 == 0 {
-			r = mustMG(t, store, promote...)
+			r = clitest.MustMG(t, store, promote...)
 			completedBy["promote"]++
 		} else {
 			if tookEffect {
@@ -217,7 +219,7 @@ func crashUnitRelease(t *testing.T, store string, steps []string) {
 				// It changed nothing visible: the rollback undoes the
 				// release before it, as its dry run says.
 				var dry struct{ With []struct{ Target, To string } }
-				if err := json.Unmarshal([]byte(mustMG(t, store, "rollback", unitScorer, "--reason", "dry", "--dry-run", "--json").stdout), &dry); err != nil || len(dry.With) != 2 {
+				if err := json.Unmarshal([]byte(clitest.MustMG(t, store, "rollback", unitScorer, "--reason", "dry", "--dry-run", "--json").Stdout), &dry); err != nil || len(dry.With) != 2 {
 					t.Fatalf("%s: rollback --dry-run --json: %v %+v", what, err, dry)
 				}
 				for _, m := range dry.With {
@@ -228,29 +230,29 @@ func crashUnitRelease(t *testing.T, store string, steps []string) {
 					}
 				}
 			}
-			r = mustMG(t, store, "rollback", unitScorer, "--reason", "after "+what, "--key", u.Key("rita"))
+			r = clitest.MustMG(t, store, "rollback", unitScorer, "--reason", "after "+what, "--key", u.Key("rita"))
 			completedBy["rollback"]++
 		}
-		if pending && !strings.Contains(r.stdout, "completed an interrupted release first") {
-			t.Fatalf("%s: the next command did not complete the interrupted release:\n%s", what, r.stdout)
+		if pending && !strings.Contains(r.Stdout, "completed an interrupted release first") {
+			t.Fatalf("%s: the next command did not complete the interrupted release:\n%s", what, r.Stdout)
 		}
 		if e, s := u.tags(); e != want[0] || s != want[1] {
 			t.Fatalf("%s: after completing, encoder %s scorer %s, want %s %s", what, e, s, want[0], want[1])
 		}
-		mustVerify(t, store, what+", completed")
+		clitest.MustVerify(t, store, what+", completed")
 		u.logsVerify(what + ", completed")
 	}
 	// A rollback of the unit, killed after each step: the next promote
 	// (of the pair it restores) or the rollback run again completes it.
 	for _, step := range steps {
 		_, _, promote := u.candidates()
-		mustMG(t, store, promote...)
+		clitest.MustMG(t, store, promote...)
 		newE, newS := u.tags()
 		oldE, oldS := "", ""
 		var dry struct {
 			With []struct{ Target, From, To string }
 		}
-		if err := json.Unmarshal([]byte(mustMG(t, store, "rollback", unitEnc, "--reason", "dry", "--dry-run", "--json").stdout), &dry); err != nil || len(dry.With) != 2 {
+		if err := json.Unmarshal([]byte(clitest.MustMG(t, store, "rollback", unitEnc, "--reason", "dry", "--dry-run", "--json").Stdout), &dry); err != nil || len(dry.With) != 2 {
 			t.Fatalf("rollback --dry-run --json: %v %+v", err, dry)
 		}
 		for _, m := range dry.With {
@@ -260,29 +262,29 @@ func crashUnitRelease(t *testing.T, store string, steps []string) {
 				oldS = m.To
 			}
 		}
-		before := storeTags(t, store)
+		before := clitest.StoreTags(t, store)
 		what := fmt.Sprintf("rollback killed after %s", step)
-		k := runCrashAt(t, store, step, "rollback", unitEnc, "--reason", what, "--key", u.Key("rita"))
-		if k.finished {
-			t.Fatalf("%s: the run was not killed (exit %d): %s%s", what, k.res.code, k.res.stdout, k.res.stderr)
+		k := clitest.RunCrashAt(t, store, step, "rollback", unitEnc, "--reason", what, "--key", u.Key("rita"))
+		if k.Finished {
+			t.Fatalf("%s: the run was not killed (exit %d): %s%s", what, k.Res.Code, k.Res.Stdout, k.Res.Stderr)
 		}
 		// The rollback moves the encoder from new to old: the same check
 		// with the roles of old and new swapped.
 		pending := u.checkCrash(what, before, newE, oldE, newS, oldS)
 		if pending {
-			r := mustMG(t, store, "promote", "tiny-encoder@"+oldE, "--to", unitEnc, "--with", "tiny-scorer@"+oldS+"="+unitScorer,
+			r := clitest.MustMG(t, store, "promote", "tiny-encoder@"+oldE, "--to", unitEnc, "--with", "tiny-scorer@"+oldS+"="+unitScorer,
 				"--policy", u.Policy, "--policy", u.spolicy, "--key", u.Key("rita"))
-			if !strings.Contains(r.stdout, "completed an interrupted release first") || !strings.Contains(r.stdout, "nothing to do") {
-				t.Fatalf("%s: the next promote did not complete the interrupted rollback:\n%s", what, r.stdout)
+			if !strings.Contains(r.Stdout, "completed an interrupted release first") || !strings.Contains(r.Stdout, "nothing to do") {
+				t.Fatalf("%s: the next promote did not complete the interrupted rollback:\n%s", what, r.Stdout)
 			}
 			completedBy["promote"]++
 		} else if e, _ := u.tags(); e == newE {
-			mustMG(t, store, "rollback", unitEnc, "--reason", "again after "+what, "--key", u.Key("rita"))
+			clitest.MustMG(t, store, "rollback", unitEnc, "--reason", "again after "+what, "--key", u.Key("rita"))
 		}
 		if e, s := u.tags(); e != oldE || s != oldS {
 			t.Fatalf("%s: after completing, encoder %s scorer %s, want %s %s", what, e, s, oldE, oldS)
 		}
-		mustVerify(t, store, what+", completed")
+		clitest.MustVerify(t, store, what+", completed")
 		u.logsVerify(what + ", completed")
 	}
 	t.Logf("%d kill points for promote --with and %d for its rollback; completed by: %v", len(steps), len(steps), completedBy)
@@ -299,15 +301,15 @@ func TestCrashDuringUnitRelease(t *testing.T) {
 	if testing.Short() {
 		t.Skip("crash suite skipped with -short")
 	}
-	for _, k := range everyStore(t, "unitcrash") {
-		if k.name == "registry-no-catalog" {
+	for _, k := range clitest.EveryStore(t, "unitcrash") {
+		if k.Name == "registry-no-catalog" {
 			continue // verify and ls need the repository names there; "registry" has the same tag semantics
 		}
 		steps := unitSteps
-		if k.name == "docker-registry" {
+		if k.Name == "docker-registry" {
 			steps = registryUnitSteps
 		}
-		t.Run(k.name, func(t *testing.T) { crashUnitRelease(t, k.loc, steps) })
+		t.Run(k.Name, func(t *testing.T) { crashUnitRelease(t, k.Loc, steps) })
 	}
 }
 
@@ -320,16 +322,16 @@ func TestUnitReleaseRace(t *testing.T) {
 	if testing.Short() {
 		t.Skip("8 release processes per store kind")
 	}
-	for _, k := range everyStore(t, "unitrace") {
-		if k.name != "local" && k.name != "gcs" {
+	for _, k := range clitest.EveryStore(t, "unitrace") {
+		if k.Name != "local" && k.Name != "gcs" {
 			continue
 		}
-		t.Run(k.name, func(t *testing.T) {
-			u := newUnitWorld(t, k.loc)
+		t.Run(k.Name, func(t *testing.T) {
+			u := newUnitWorld(t, k.Loc)
 			type racer struct {
 				enc, sc string
 				args    []string
-				res     result
+				res     clitest.Result
 			}
 			racers := make([]*racer, 8)
 			for i := range racers {
@@ -339,17 +341,17 @@ func TestUnitReleaseRace(t *testing.T) {
 			var wg sync.WaitGroup
 			for _, r := range racers {
 				wg.Add(1)
-				go func() { defer wg.Done(); r.res = mg(t, k.loc, r.args...) }()
+				go func() { defer wg.Done(); r.res = clitest.MG(t, k.Loc, r.args...) }()
 			}
 			wg.Wait()
 			var winners []*racer
 			for _, r := range racers {
-				switch r.res.code {
+				switch r.res.Code {
 				case 0:
 					winners = append(winners, r)
 				case 3:
 				default:
-					t.Fatalf("a racer exited %d: %s%s", r.res.code, r.res.stdout, r.res.stderr)
+					t.Fatalf("a racer exited %d: %s%s", r.res.Code, r.res.Stdout, r.res.Stderr)
 				}
 			}
 			if len(winners) != 1 {
@@ -358,7 +360,7 @@ func TestUnitReleaseRace(t *testing.T) {
 			if e, s := u.tags(); e != winners[0].enc || s != winners[0].sc {
 				t.Fatalf("tags %s %s, the winner released %s %s", e, s, winners[0].enc, winners[0].sc)
 			}
-			mustVerify(t, k.loc, "after the race")
+			clitest.MustVerify(t, k.Loc, "after the race")
 			u.logsVerify("after the race")
 		})
 	}
@@ -373,30 +375,30 @@ func TestUnitReleaseCLI(t *testing.T) {
 	oldE, oldS := u.tags()
 	_, _, promote := u.candidates()
 	alone := append([]string(nil), promote[:4]...) // promote tiny-encoder:vN --to tiny-encoder:prod
-	before := storeTags(t, u.Store)
-	r := mg(t, u.Store, append(alone, "--policy", u.Policy, "--key", u.Key("rita"))...)
-	wantExit(t, r, 4, "is consumed by tiny-scorer:prod (scorer ", "--with SCORER-CANDIDATE=tiny-scorer:prod")
-	if after := storeTags(t, u.Store); fmt.Sprint(after) != fmt.Sprint(before) {
+	before := clitest.StoreTags(t, u.Store)
+	r := clitest.MG(t, u.Store, append(alone, "--policy", u.Policy, "--key", u.Key("rita"))...)
+	clitest.WantExit(t, r, 4, "is consumed by tiny-scorer:prod (scorer ", "--with SCORER-CANDIDATE=tiny-scorer:prod")
+	if after := clitest.StoreTags(t, u.Store); fmt.Sprint(after) != fmt.Sprint(before) {
 		t.Fatalf("the refused promote changed tags:\n%v\n%v", before, after)
 	}
-	r = mg(t, u.Store, append(append([]string{"--json"}, alone...), "--policy", u.Policy, "--key", u.Key("rita"))...)
-	checkJSON(t, "promote", r)
-	if r.code != 4 || !strings.Contains(r.stdout, "tiny-scorer:prod") {
-		t.Fatalf("promote --json of the encoder alone: exit %d\n%s", r.code, r.stdout)
+	r = clitest.MG(t, u.Store, append(append([]string{"--json"}, alone...), "--policy", u.Policy, "--key", u.Key("rita"))...)
+	clitest.CheckJSON(t, "promote", r)
+	if r.Code != 4 || !strings.Contains(r.Stdout, "tiny-scorer:prod") {
+		t.Fatalf("promote --json of the encoder alone: exit %d\n%s", r.Code, r.Stdout)
 	}
-	r = mustMG(t, u.Store, append([]string{"--json"}, promote...)...)
-	checkJSON(t, "promote", r)
+	r = clitest.MustMG(t, u.Store, append([]string{"--json"}, promote...)...)
+	clitest.CheckJSON(t, "promote", r)
 	var out struct {
 		Result struct {
 			Members []struct{ Target, From, To string }
 		}
 	}
-	if err := json.Unmarshal([]byte(r.stdout), &out); err != nil || len(out.Result.Members) != 2 ||
+	if err := json.Unmarshal([]byte(r.Stdout), &out); err != nil || len(out.Result.Members) != 2 ||
 		out.Result.Members[0].Target != unitScorer || out.Result.Members[0].From != oldS || out.Result.Members[1].From != oldE {
-		t.Fatalf("promote --with --json: %v\n%s", err, r.stdout)
+		t.Fatalf("promote --with --json: %v\n%s", err, r.Stdout)
 	}
-	r = mustMG(t, u.Store, "rollback", "--json", unitEnc, "--reason", "drill", "--key", u.Key("rita"))
-	checkJSON(t, "rollback", r)
+	r = clitest.MustMG(t, u.Store, "rollback", "--json", unitEnc, "--reason", "drill", "--key", u.Key("rita"))
+	clitest.CheckJSON(t, "rollback", r)
 	if e, s := u.tags(); e != oldE || s != oldS {
 		t.Fatalf("after the rollback of the encoder: %s %s, want %s %s", e, s, oldE, oldS)
 	}

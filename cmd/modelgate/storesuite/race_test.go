@@ -5,6 +5,8 @@ import (
 	"fmt"
 	"sync"
 	"testing"
+
+	"github.com/modelgate/modelgate/internal/clitest"
 )
 
 // TestConcurrentPromote: 16 promote processes, each with its own gated
@@ -12,7 +14,7 @@ import (
 // store: exactly one wins, the others exit 3, and the log is linear and
 // verifies.
 func TestConcurrentPromote(t *testing.T) {
-	racePromotes(t, newReleaseWorld(t, 0), true)
+	racePromotes(t, clitest.NewWorld(t, 0), true)
 }
 
 // racePromotes races 16 promote processes of different gated candidates
@@ -23,7 +25,7 @@ func TestConcurrentPromote(t *testing.T) {
 // believed it won, `log` does not verify: the overwritten winner's record
 // carries its committed marker but is out of the chain (the race is
 // exposed, never silently lost).
-func racePromotes(t *testing.T, w *releaseWorld, exact bool) {
+func racePromotes(t *testing.T, w *clitest.World, exact bool) {
 	base := w.Push(0, "tiny-encoder:prod")
 	const n = 16
 	cands := make([]string, n)
@@ -32,7 +34,7 @@ func racePromotes(t *testing.T, w *releaseWorld, exact bool) {
 		w.Gate(fmt.Sprintf("tiny-encoder:v%d", i+1))
 	}
 	var wg sync.WaitGroup
-	results := make([]result, n)
+	results := make([]clitest.Result, n)
 	for i := range n {
 		wg.Add(1)
 		go func(i int) {
@@ -47,7 +49,7 @@ func racePromotes(t *testing.T, w *releaseWorld, exact bool) {
 	}
 	winner, winners := -1, 0
 	for i, r := range results {
-		switch r.code {
+		switch r.Code {
 		case 0:
 			winners++
 			if winner >= 0 {
@@ -56,7 +58,7 @@ func racePromotes(t *testing.T, w *releaseWorld, exact bool) {
 			winner = i
 		case 3:
 		default:
-			t.Errorf("promote %d: exit %d, want 0 or 3: %s", i, r.code, r.stderr)
+			t.Errorf("promote %d: exit %d, want 0 or 3: %s", i, r.Code, r.Stderr)
 		}
 	}
 	if winner < 0 {
@@ -70,8 +72,8 @@ func racePromotes(t *testing.T, w *releaseWorld, exact bool) {
 		Entries  []struct{ Record struct{ From, To string } }
 		Findings []struct{ Severity, Message string }
 	}
-	r := mustMG(t, w.Store, "log", "--json", "tiny-encoder:prod", "--policy", w.Policy)
-	if err := json.Unmarshal([]byte(r.stdout), &rep); err != nil {
+	r := clitest.MustMG(t, w.Store, "log", "--json", "tiny-encoder:prod", "--policy", w.Policy)
+	if err := json.Unmarshal([]byte(r.Stdout), &rep); err != nil {
 		t.Fatal(err)
 	}
 	if len(rep.Entries) != 1 || rep.Entries[0].Record.To != cands[winner] {
@@ -91,21 +93,21 @@ func racePromotes(t *testing.T, w *releaseWorld, exact bool) {
 // either the outcome is consistent — `log` verifies, exactly one promote
 // won, and the tag points at its candidate — or `log` does not verify,
 // exposing the race.
-func raceWithoutCAS(t *testing.T, w *releaseWorld, results []result, cands []string, base string) {
+func raceWithoutCAS(t *testing.T, w *clitest.World, results []clitest.Result, cands []string, base string) {
 	t.Helper()
 	winner, winners := -1, 0
 	for i, r := range results {
-		switch r.code {
+		switch r.Code {
 		case 0:
 			winner, winners = i, winners+1
 		case 3, 5:
 		default:
-			t.Errorf("promote %d: exit %d, want 0, 3 or 5: %s", i, r.code, r.stderr)
+			t.Errorf("promote %d: exit %d, want 0, 3 or 5: %s", i, r.Code, r.Stderr)
 		}
 	}
-	lg := mg(t, w.Store, "log", "tiny-encoder:prod", "--policy", w.Policy)
-	if lg.code != 0 {
-		t.Logf("%d promote(s) believed they won; log exposes the race (exit %d)", winners, lg.code)
+	lg := clitest.MG(t, w.Store, "log", "tiny-encoder:prod", "--policy", w.Policy)
+	if lg.Code != 0 {
+		t.Logf("%d promote(s) believed they won; log exposes the race (exit %d)", winners, lg.Code)
 		return
 	}
 	if winners == 0 && w.Prod() == base {

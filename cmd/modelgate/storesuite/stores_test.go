@@ -7,6 +7,8 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/modelgate/modelgate/internal/clitest"
+
 	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
 
 	"github.com/modelgate/modelgate/internal/registry/storetest"
@@ -19,46 +21,46 @@ func TestFullFlowOnEveryStore(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs the demo on every store kind")
 	}
-	for _, k := range everyStore(t, "flow") {
-		t.Run(k.name, func(t *testing.T) {
+	for _, k := range clitest.EveryStore(t, "flow") {
+		t.Run(k.Name, func(t *testing.T) {
 			work := filepath.Join(t.TempDir(), "work")
-			r := mustMG(t, k.loc, "demo", "--work", work)
+			r := clitest.MustMG(t, k.Loc, "demo", "--work", work)
 			for _, s := range []string{"promoted promo-scorer:prod", "rolled back promo-scorer:prod", "every record, signature and link verified"} {
-				if !strings.Contains(r.stdout, s) {
-					t.Errorf("%s: the demo story lacks %q", k.name, s)
+				if !strings.Contains(r.Stdout, s) {
+					t.Errorf("%s: the demo story lacks %q", k.Name, s)
 				}
 			}
-			mustMG(t, k.loc, "log", "promo-scorer:prod", "--policy", filepath.Join(work, "policies", "promo-scorer.yaml"))
+			clitest.MustMG(t, k.Loc, "log", "promo-scorer:prod", "--policy", filepath.Join(work, "policies", "promo-scorer.yaml"))
 			// Untag a candidate (docker-registry deletes tags only with
 			// their manifest: the output must say so), and refuse the
 			// released tag; verify below runs after the removal.
 			var un struct{ ManifestKept bool }
-			if err := json.Unmarshal([]byte(mustMG(t, k.loc, "untag", "promo-scorer:cand-over-budget", "--json").stdout), &un); err != nil {
+			if err := json.Unmarshal([]byte(clitest.MustMG(t, k.Loc, "untag", "promo-scorer:cand-over-budget", "--json").Stdout), &un); err != nil {
 				t.Fatal(err)
 			}
-			if un.ManifestKept == (k.name == "docker-registry") {
-				t.Errorf("%s: untag says manifestKept %v", k.name, un.ManifestKept)
+			if un.ManifestKept == (k.Name == "docker-registry") {
+				t.Errorf("%s: untag says manifestKept %v", k.Name, un.ManifestKept)
 			}
-			if r := mg(t, k.loc, "show", "promo-scorer:cand-over-budget"); r.code != 2 {
-				t.Errorf("%s: show of the removed tag: exit %d, want 2", k.name, r.code)
+			if r := clitest.MG(t, k.Loc, "show", "promo-scorer:cand-over-budget"); r.Code != 2 {
+				t.Errorf("%s: show of the removed tag: exit %d, want 2", k.Name, r.Code)
 			}
-			if r := mg(t, k.loc, "untag", "promo-scorer:prod"); r.code != 4 || !strings.Contains(r.stderr, "release log") {
-				t.Errorf("%s: untag of the released tag: exit %d, want 4\n%s", k.name, r.code, r.stderr)
+			if r := clitest.MG(t, k.Loc, "untag", "promo-scorer:prod"); r.Code != 4 || !strings.Contains(r.Stderr, "release log") {
+				t.Errorf("%s: untag of the released tag: exit %d, want 4\n%s", k.Name, r.Code, r.Stderr)
 			}
-			if k.name == "registry-no-catalog" {
-				r := mg(t, k.loc, "verify")
-				if r.code != 2 || !strings.Contains(r.stderr, "does not list repositories") || !strings.Contains(r.stderr, "modelgate verify NAME") {
-					t.Errorf("verify without names on a store without a catalog: exit %d, stderr %q; want 2, explained", r.code, r.stderr)
+			if k.Name == "registry-no-catalog" {
+				r := clitest.MG(t, k.Loc, "verify")
+				if r.Code != 2 || !strings.Contains(r.Stderr, "does not list repositories") || !strings.Contains(r.Stderr, "modelgate verify NAME") {
+					t.Errorf("verify without names on a store without a catalog: exit %d, stderr %q; want 2, explained", r.Code, r.Stderr)
 				}
-				r = mg(t, k.loc, "ls")
-				if r.code != 2 || !strings.Contains(r.stderr, "does not list repositories") || !strings.Contains(r.stderr, "modelgate ls NAME") {
-					t.Errorf("ls without a name on a store without a catalog: exit %d, stderr %q; want 2, explained", r.code, r.stderr)
+				r = clitest.MG(t, k.Loc, "ls")
+				if r.Code != 2 || !strings.Contains(r.Stderr, "does not list repositories") || !strings.Contains(r.Stderr, "modelgate ls NAME") {
+					t.Errorf("ls without a name on a store without a catalog: exit %d, stderr %q; want 2, explained", r.Code, r.Stderr)
 				}
-				mustMG(t, k.loc, "ls", "promo-scorer")
-				mustMG(t, k.loc, "verify", "promo-scorer", "listener-encoder", "promo-holdout")
+				clitest.MustMG(t, k.Loc, "ls", "promo-scorer")
+				clitest.MustMG(t, k.Loc, "verify", "promo-scorer", "listener-encoder", "promo-holdout")
 				return
 			}
-			mustMG(t, k.loc, "verify")
+			clitest.MustMG(t, k.Loc, "verify")
 		})
 	}
 }
@@ -70,19 +72,19 @@ func TestPromoteRaceOnEveryStore(t *testing.T) {
 	if testing.Short() {
 		t.Skip("16 promote processes per store kind")
 	}
-	for _, k := range everyStore(t, "race") {
-		if k.name == "local" {
+	for _, k := range clitest.EveryStore(t, "race") {
+		if k.Name == "local" {
 			continue // TestConcurrentPromote
 		}
-		if k.name == "registry-no-catalog" {
+		if k.Name == "registry-no-catalog" {
 			// The same tag semantics as "registry"; racePromotes checks the
 			// outcome with a whole-store ls, which such a registry refuses.
 			// Encoder promotes there need no scorer policy any more
 			// (TestEncoderAloneRefusedWithoutCatalog).
 			continue
 		}
-		t.Run(k.name, func(t *testing.T) {
-			racePromotes(t, newReleaseWorldAt(t, 0, k.loc), k.exact)
+		t.Run(k.Name, func(t *testing.T) {
+			racePromotes(t, clitest.NewWorldAt(t, 0, k.Loc), k.Exact)
 		})
 	}
 }
@@ -94,21 +96,21 @@ func TestPromoteRaceOnEveryStore(t *testing.T) {
 // with nothing moved; the release of both then goes through. Before the
 // markers the promote exited 2, asking for the scorers' policies.
 func TestEncoderAloneRefusedWithoutCatalog(t *testing.T) {
-	noCat := httptest.NewServer(storetest.NoCatalog(ggcrregistry.New(ggcrregistry.WithReferrersSupport(true), ggcrregistry.Logger(nopLogger()))))
+	noCat := httptest.NewServer(storetest.NoCatalog(ggcrregistry.New(ggcrregistry.WithReferrersSupport(true), ggcrregistry.Logger(clitest.NopLogger()))))
 	t.Cleanup(noCat.Close)
 	u := newUnitWorld(t, "oci://"+strings.TrimPrefix(noCat.URL, "http://")+"/alone")
 	lsTags := func() string {
-		return mustMG(t, u.Store, "ls", "--json", "tiny-encoder").stdout + mustMG(t, u.Store, "ls", "--json", "tiny-scorer").stdout
+		return clitest.MustMG(t, u.Store, "ls", "--json", "tiny-encoder").Stdout + clitest.MustMG(t, u.Store, "ls", "--json", "tiny-scorer").Stdout
 	}
 	_, _, promote := u.candidates()
 	alone := append([]string(nil), promote[:4]...) // promote tiny-encoder:vN --to tiny-encoder:prod
 	before := lsTags()
-	r := mg(t, u.Store, append(alone, "--key", u.Key("rita"))...)
-	wantExit(t, r, 4, "is consumed by tiny-scorer:prod (scorer ", "--with SCORER-CANDIDATE=tiny-scorer:prod")
+	r := clitest.MG(t, u.Store, append(alone, "--key", u.Key("rita"))...)
+	clitest.WantExit(t, r, 4, "is consumed by tiny-scorer:prod (scorer ", "--with SCORER-CANDIDATE=tiny-scorer:prod")
 	if lsTags() != before {
 		t.Fatal("the refused promote moved a tag")
 	}
-	mustMG(t, u.Store, promote...)
+	clitest.MustMG(t, u.Store, promote...)
 	if lsTags() == before {
 		t.Fatal("the release of both tags moved nothing")
 	}
