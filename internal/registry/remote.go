@@ -19,6 +19,7 @@ import (
 	"strings"
 	"sync"
 	"sync/atomic"
+	"time"
 
 	"github.com/google/go-containerregistry/pkg/authn"
 	"github.com/google/go-containerregistry/pkg/name"
@@ -129,12 +130,13 @@ type Remote struct {
 	mu      sync.Mutex
 	clients map[string]*http.Client // by repository full name; "" is the catalog
 
-	referrersAPI   atomic.Int32 // 0 unknown, 1 supported, 2 not supported
-	noFallbackTags sync.Map     // full name → true: no link or fallback tags (registry with the API)
-	present        sync.Map     // repoKey → size: blobs this process saw present
-	holders        sync.Map     // digest → full repository name that has the blob
-	tagLocks       sync.Map     // full name:tag → *sync.Mutex
-	tagDelete      atomic.Int32 // tagDeleteUnknown, tagDeleteYes, tagDeleteNo
+	referrersAPI   atomic.Int32     // 0 unknown, 1 supported, 2 not supported
+	noFallbackTags sync.Map         // full name → true: no link or fallback tags (registry with the API)
+	present        sync.Map         // repoKey → size: blobs this process saw present
+	holders        sync.Map         // digest → full repository name that has the blob
+	tagLocks       sync.Map         // full name:tag → *sync.Mutex
+	tagDelete      atomic.Int32     // tagDeleteUnknown, tagDeleteYes, tagDeleteNo
+	clock          func() time.Time // push-time tags' clock (nil: time.Now)
 }
 
 var (
@@ -550,6 +552,14 @@ func (r *Remote) PutManifest(ctx context.Context, repo string, mediaType types.M
 	if err := r.checkReferences(ctx, repo, mt, mf); err != nil {
 		return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", desc.Digest, repo, err)
 	}
+	// A release record is never collected: it needs no push time and no
+	// read-back (see remote_pushtime.go for the others).
+	collectable := !IsReleaseLogType(mf.ArtifactType)
+	if collectable {
+		if err := r.stamp(ctx, full, mt, raw, desc.Digest); err != nil {
+			return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", desc.Digest, repo, err)
+		}
+	}
 	resp, err := r.putManifest(ctx, full, keepTag(desc.Digest), mt, raw)
 	if err != nil {
 		return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", desc.Digest, repo, err)
@@ -557,9 +567,22 @@ func (r *Remote) PutManifest(ctx context.Context, repo string, mediaType types.M
 	if got := resp.Header.Get("Docker-Content-Digest"); got != "" && got != desc.Digest.String() {
 		return v1.Descriptor{}, errkind.New(errkind.Integrity, "putting manifest %s into %s: the registry stored it as %s", desc.Digest, repo, got)
 	}
+	var referrer func() error
 	if mf.Subject != nil {
-		if err := r.recordReferrer(ctx, repo, *mf.Subject, desc, mf, raw, resp.Header.Get("OCI-Subject") != ""); err != nil {
-			return v1.Descriptor{}, fmt.Errorf("recording %s as a referrer of %s: %w", desc.Digest, mf.Subject.Digest, err)
+		subjectHeader := resp.Header.Get("OCI-Subject") != ""
+		referrer = func() error {
+			if err := r.recordReferrer(ctx, repo, *mf.Subject, desc, mf, raw, subjectHeader); err != nil {
+				return fmt.Errorf("recording %s as a referrer of %s: %w", desc.Digest, mf.Subject.Digest, err)
+			}
+			return nil
+		}
+		if err := referrer(); err != nil {
+			return v1.Descriptor{}, err
+		}
+	}
+	if collectable {
+		if err := r.settle(ctx, full, mt, raw, desc.Digest, "", referrer); err != nil {
+			return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", desc.Digest, repo, err)
 		}
 	}
 	return desc, nil
@@ -650,9 +673,13 @@ func (r *Remote) Resolve(ctx context.Context, repo, tag string) (v1.Descriptor, 
 	if err := r.checkTagArgs(repo, tag); err != nil {
 		return v1.Descriptor{}, err
 	}
-	d, err := r.headOnce(ctx, fullName(r.prefix, repo), tag)
+	full := fullName(r.prefix, repo)
+	d, err := r.headOnce(ctx, full, tag)
 	if errors.Is(err, ErrNotFound) {
 		return v1.Descriptor{}, notFound("tag %s:%s", repo, tag)
+	}
+	if c := collectionOf(ctx); c != nil && err == nil {
+		c.setResolved(full, tag, d.Digest)
 	}
 	return d, err
 }
@@ -693,8 +720,20 @@ func (r *Remote) Tag(ctx context.Context, repo, tag string, desc v1.Descriptor) 
 	if err != nil {
 		return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
 	}
-	if _, err := r.putManifest(ctx, fullName(r.prefix, repo), tag, md.MediaType, raw); err != nil {
+	full := fullName(r.prefix, repo)
+	collectable := !isReleaseLogManifest(raw)
+	if collectable {
+		if err := r.stamp(ctx, full, md.MediaType, raw, md.Digest); err != nil {
+			return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
+		}
+	}
+	if _, err := r.putManifest(ctx, full, tag, md.MediaType, raw); err != nil {
 		return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
+	}
+	if collectable {
+		if err := r.settle(ctx, full, md.MediaType, raw, md.Digest, tag, nil); err != nil {
+			return fmt.Errorf("tagging %s:%s: %w", repo, tag, err)
+		}
 	}
 	return nil
 }
@@ -756,15 +795,35 @@ func (r *Remote) SwapTag(ctx context.Context, repo, tag string, old v1.Hash, des
 	case cur.Digest != old:
 		return errkind.New(errkind.Conflict, "tag %s:%s points at %s, want %s: %w", repo, tag, cur.Digest, old, ErrConflict)
 	}
+	collectable := !isReleaseLogManifest(raw)
+	if collectable {
+		if err := r.stamp(ctx, full, md.MediaType, raw, md.Digest); err != nil {
+			return fmt.Errorf("swapping %s:%s: %w%w", repo, tag, err, errSwapUntried)
+		}
+	}
 	if _, err := r.putManifest(ctx, full, tag, md.MediaType, raw); err != nil {
 		return fmt.Errorf("swapping %s:%s: %w", repo, tag, err)
 	}
 	back, err := r.head(ctx, full, tag)
+	if errors.Is(err, ErrNotFound) && collectable {
+		// Gone right after we wrote it: a collection that deleted the
+		// manifest (docker-registry deletes its tags with it) puts it
+		// back in settle; anyone else removing the tag is an error.
+		if ok, perr := r.presentByDigest(ctx, full, md.Digest); perr == nil && !ok {
+			err = nil
+			back = md
+		}
+	}
 	if err != nil {
 		return fmt.Errorf("swapping %s:%s: reading the tag back: %w", repo, tag, err)
 	}
 	if back.Digest != md.Digest {
 		return errkind.New(errkind.Conflict, "tag %s:%s points at %s right after we wrote %s: another writer moved it: %w", repo, tag, back.Digest, md.Digest, ErrConflict)
+	}
+	if collectable {
+		if err := r.settle(ctx, full, md.MediaType, raw, md.Digest, tag, nil); err != nil {
+			return fmt.Errorf("swapping %s:%s: %w", repo, tag, err)
+		}
 	}
 	return nil
 }

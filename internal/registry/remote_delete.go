@@ -9,7 +9,6 @@ import (
 	"fmt"
 	"net/http"
 	"strings"
-	"time"
 
 	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/google/go-containerregistry/pkg/v1/remote/transport"
@@ -37,8 +36,13 @@ import (
 //     only through the registry's own garbage collection of blobs no
 //     manifest references.
 //   - The store's own bookkeeping tags of a deleted manifest (its keep tag,
-//     its per-referrer link tag, its entry in the fallback referrers index
-//     of its subject) are removed after it.
+//     its push-time tags, its per-referrer link tag, its entry in the
+//     fallback referrers index of its subject) are removed after it,
+//     unless a push put the manifest back meanwhile.
+//   - No delete is conditional. The checks run right before the DELETE
+//     (DeleteTag's two reads side by side; DeleteManifest's one tag
+//     listing), and what a push racing a removal can and cannot lose is
+//     argued in remote_pushtime.go.
 
 var _ Deleter = (*Remote)(nil)
 
@@ -57,11 +61,6 @@ func (r *Remote) DeleteBlob(ctx context.Context, repo string, dgst v1.Hash) erro
 
 func (r *Remote) noBlobs() error {
 	return errkind.New(errkind.BadInput, "%s: a registry does not list its blobs; their space comes back through the registry's own garbage collection once no manifest references them: %w", r, errors.ErrUnsupported)
-}
-
-// ManifestTimes is unsupported: a registry keeps no time of a manifest.
-func (r *Remote) ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]time.Time, error) {
-	return nil, errkind.New(errkind.BadInput, "%s: a registry records no time for a manifest (read its org.opencontainers.image.created annotation): %w", r, errors.ErrUnsupported)
 }
 
 // deleteStatus classifies a refused DELETE: unsupported is true when the
@@ -119,28 +118,6 @@ func (r *Remote) deleteTagByName(ctx context.Context, full, tag string) (ok bool
 	return false, err
 }
 
-// tagsNaming returns the tags of full (reserved ones aside, and except)
-// that point at dgst, resolving them tagResolvers at a time.
-func (r *Remote) tagsNaming(ctx context.Context, full string, dgst v1.Hash, except string) ([]string, error) {
-	all, err := r.allTags(ctx, full)
-	if errors.Is(err, ErrNotFound) {
-		return nil, nil
-	}
-	if err != nil {
-		return nil, err
-	}
-	var tags []string
-	for _, t := range all {
-		if t != except && !isReservedTag(t) && ValidateTag(t) == nil {
-			tags = append(tags, t)
-		}
-	}
-	return tagsPointingAt(ctx, tags, dgst, func(ctx context.Context, t string) (v1.Hash, error) {
-		d, err := r.head(ctx, full, t)
-		return d.Digest, err
-	})
-}
-
 // DeleteTag removes repo:tag if it points at want: by name where the
 // registry deletes tags; otherwise by deleting the manifest, when no other
 // tag names it (see the comment at the top of this file). It refuses
@@ -157,26 +134,14 @@ func (r *Remote) DeleteTag(ctx context.Context, repo, tag string, want v1.Hash) 
 }
 
 func (r *Remote) deleteTag(ctx context.Context, repo, full, tag string, want v1.Hash) error {
-	if ValidateTag(HeadTag(tag)) == nil {
-		_, err := r.head(ctx, full, HeadTag(tag))
-		switch {
-		case err == nil:
-			return releasedTagError(repo, tag)
-		case !errors.Is(err, ErrNotFound):
-			return fmt.Errorf("checking whether %s:%s has a release log: %w", repo, tag, err)
-		}
-	}
-	cur, err := r.head(ctx, full, tag)
-	if errors.Is(err, ErrNotFound) {
-		return notFound("tag %s:%s", repo, tag)
-	}
-	if err != nil {
-		return err
-	}
-	if cur.Digest != want {
-		return errkind.New(errkind.Conflict, "tag %s:%s points at %s, not %s: %w", repo, tag, cur.Digest, want, ErrConflict)
-	}
 	if r.tagDelete.Load() != tagDeleteNo {
+		// The two checks (no release log, still at want) run at once,
+		// right before the DELETE: the window in which another writer
+		// can move the tag, or start its release log, and lose that to
+		// the unconditional DELETE is one round trip.
+		if err := r.checkTagAt(ctx, repo, full, tag, want); err != nil {
+			return err
+		}
 		ok, err := r.deleteTagByName(ctx, full, tag)
 		if err != nil {
 			return err
@@ -187,14 +152,17 @@ func (r *Remote) deleteTag(ctx context.Context, repo, full, tag string, want v1.
 		}
 		r.tagDelete.Store(tagDeleteNo)
 	}
-	others, err := r.tagsNaming(ctx, full, want, tag)
-	if err != nil {
-		return err
+	// A registry that deletes tags only with their manifest: the manifest
+	// goes when no other tag names it. deleteManifest makes the same
+	// checks with its last look at the tags, so a tag that moved away
+	// in the meantime is not touched: the DELETE by digest removes only
+	// tags that still name want.
+	err := r.deleteManifest(ctx, repo, full, want, tag)
+	var te *taggedErr
+	if errors.As(err, &te) {
+		return errkind.New(errkind.BadInput, "%s cannot delete a tag alone, only a manifest with every tag naming it, and %s is also tagged %s: %w", r.reg.RegistryStr(), want, strings.Join(te.tags, ", "), errors.ErrUnsupported)
 	}
-	if len(others) > 0 {
-		return errkind.New(errkind.BadInput, "%s cannot delete a tag alone, only a manifest with every tag naming it, and %s is also tagged %s: %w", r.reg.RegistryStr(), want, strings.Join(others, ", "), errors.ErrUnsupported)
-	}
-	return r.deleteManifest(ctx, repo, full, want, tag)
+	return err
 }
 
 // Whether the registry deletes tags by name, learnt on the first try.
@@ -206,8 +174,10 @@ const (
 
 // DeleteManifest deletes manifest dgst from repo, then its bookkeeping
 // tags and its entry in its subject's fallback referrers index. It
-// refuses a release record and a manifest a tag names (resolving every
-// tag of repo: one HEAD each).
+// refuses a release record and a manifest a tag names: it lists repo's
+// tags and resolves them (one HEAD each), except, under a Collection,
+// those the collection's mark resolved; there it also refuses a manifest
+// pushed or tagged again since the mark (ErrConflict).
 func (r *Remote) DeleteManifest(ctx context.Context, repo string, dgst v1.Hash) error {
 	if err := r.checkBlobArgs(repo, dgst); err != nil {
 		return err
@@ -219,7 +189,10 @@ func (r *Remote) DeleteManifest(ctx context.Context, repo string, dgst v1.Hash) 
 }
 
 // deleteManifest is DeleteManifest, with tag (the one DeleteTag removes)
-// allowed to name the manifest.
+// allowed to name the manifest; it must still point at it, and have no
+// release log, at the last look. The order, and what it guarantees
+// against a push of the same bytes running beside it, is argued in
+// remote_pushtime.go (C1 to C3).
 func (r *Remote) deleteManifest(ctx context.Context, repo, full string, dgst v1.Hash, tag string) error {
 	raw, _, err := r.getManifest(ctx, full, dgst.String())
 	gone := errors.Is(err, ErrNotFound)
@@ -229,6 +202,11 @@ func (r *Remote) deleteManifest(ctx context.Context, repo, full string, dgst v1.
 		// manifests): the keep tag still has the bytes.
 		raw, _, err = r.getManifest(ctx, full, keepTag(dgst))
 		if errors.Is(err, ErrNotFound) {
+			if tag != "" {
+				// The tag DeleteTag removes went with the manifest, or
+				// points elsewhere now: say which.
+				return r.checkTagAt(ctx, repo, full, tag, dgst)
+			}
 			return nil
 		}
 	}
@@ -245,20 +223,38 @@ func (r *Remote) deleteManifest(ctx context.Context, repo, full string, dgst v1.
 	if at := mf.ArtifactType; IsReleaseLogType(at) {
 		return releaseLogError(repo, dgst, at)
 	}
-	if !gone {
-		tags, err := r.tagsNaming(ctx, full, dgst, tag)
-		if err != nil {
+	var stamps []string
+	if gone {
+		if tag != "" {
+			// The tag DeleteTag removes went with the manifest, or
+			// points elsewhere now: say which.
+			if err := r.checkTagAt(ctx, repo, full, tag, dgst); err != nil {
+				return err
+			}
+		}
+		all, err := r.allTags(ctx, full)
+		if err != nil && !errors.Is(err, ErrNotFound) {
 			return err
 		}
-		if len(tags) > 0 {
-			return taggedError(repo, dgst, tags)
+		stamps = stampsOf(all, dgst)
+	} else {
+		// C1: the last look, then C2: the DELETE.
+		if stamps, err = r.lastLook(ctx, repo, full, dgst, tag); err != nil {
+			return err
 		}
 		if err := r.deleteManifestByDigest(ctx, full, dgst); err != nil {
 			return err
 		}
+		// C3: a push that put it back after the DELETE keeps it, with its
+		// bookkeeping.
+		if back, err := r.presentByDigest(ctx, full, dgst); err != nil {
+			return err
+		} else if back {
+			return errkind.New(errkind.Conflict, "%s@%s was put back by a push while it was being removed: %w", repo, dgst, ErrConflict)
+		}
 	}
 	// Bookkeeping: tags the registry kept, then the fallback index entry.
-	names := []string{keepTag(dgst)}
+	names := append([]string{keepTag(dgst)}, stamps...)
 	if tag != "" {
 		names = append(names, tag)
 	}
@@ -293,6 +289,10 @@ func (r *Remote) dropTag(ctx context.Context, full, tag string, dgst v1.Hash) er
 	}
 	if d.Digest != dgst {
 		return nil
+	}
+	// A push that put the manifest back meanwhile keeps its tags.
+	if back, err := r.presentByDigest(ctx, full, dgst); err != nil || back {
+		return err
 	}
 	ok, err := r.deleteTagByName(ctx, full, tag)
 	if err != nil {

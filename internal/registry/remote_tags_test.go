@@ -37,6 +37,7 @@ func bookkeeping(t *testing.T, addr, full string, auth authn.Authenticator) map[
 		"keep":  regexp.MustCompile(`^sha256-[a-f0-9]{64}\.keep$`),
 		"link":  regexp.MustCompile(`^sha256-[a-f0-9]{64}\.[a-f0-9]{56}$`),
 		"index": regexp.MustCompile(`^sha256-[a-f0-9]{64}$`),
+		"push":  regexp.MustCompile(`^sha256-[a-f0-9]{64}\.p[0-9]+\.[a-f0-9]{8}$`),
 	}
 	n := map[string]int{}
 	for _, tag := range tags {
@@ -76,13 +77,14 @@ func pushHistory(t *testing.T, s registry.Store) {
 // TestRemoteBookkeepingTags: what each kind of registry gets besides the
 // user's tag (README "Bookkeeping tags"). With the referrers API
 // (distribution spec v1.1; go-containerregistry's in-memory registry has
-// it): one keep tag per manifest, nothing else. Without it (the same
+// it): one keep tag per manifest, and one push-time tag per write (five
+// manifests put, one tagged), nothing else. Without it (the same
 // registry with the API off; Debian's docker-registry 2.8): also one link
 // tag per referrer and the spec's fallback index per subject.
 func TestRemoteBookkeepingTags(t *testing.T) {
 	want := map[string]map[string]int{
-		"referrers API": {"user": 1, "keep": 5},
-		"tag fallback":  {"user": 1, "keep": 5, "link": 4, "index": 2},
+		"referrers API": {"user": 1, "keep": 5, "push": 6},
+		"tag fallback":  {"user": 1, "keep": 5, "link": 4, "index": 2, "push": 6},
 	}
 	for _, c := range []struct {
 		name, mode string

@@ -208,10 +208,11 @@ type Deleter interface {
 	Blobs(ctx context.Context, repo string) ([]BlobInfo, error)
 
 	// ManifestTimes returns, for every manifest recorded in repo, when the
-	// store recorded it (first put into repo). A store that keeps no such
-	// time (an OCI registry) returns an error wrapping
-	// errors.ErrUnsupported; callers then fall back to the manifest's
-	// org.opencontainers.image.created annotation, which the client wrote.
+	// store recorded it (first put into repo). An OCI registry keeps no
+	// such time: there it is the newest of the manifest's push-time tags,
+	// and a manifest without one is left out (its time is unknown, and a
+	// collector keeps it). Never the manifest's created annotation: that is
+	// when it was made, not when it came into the store.
 	ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]time.Time, error)
 
 	// SharesBlobs reports whether blobs are one pool for every repository

@@ -176,6 +176,8 @@ type Plan struct {
 
 	// known are the manifests the mark read.
 	known map[key]bool
+	// collection is what a registry store read during the mark.
+	collection *registry.Collection
 }
 
 // Kept counts what a plan keeps.
@@ -260,6 +262,10 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 	if !ok {
 		return nil, errkind.New(errkind.BadInput, "store %s cannot list its manifests: nothing can be shown unreferenced there", store)
 	}
+	// The tag listings and resolutions a registry store reads now are the
+	// baseline its removals compare against (registry.Collection).
+	coll := registry.NewCollection()
+	ctx = registry.WithCollection(ctx, coll)
 	now := opts.Now
 	if now.IsZero() {
 		now = testNow()
@@ -417,6 +423,7 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 	if opts.Blobs == nil && len(plan.Blobs) > 0 {
 		plan.Notes = append(plan.Notes, "the store does not list its blobs: the blobs counted are those of eligible manifests only, and an OCI registry removes none (its own garbage collection reclaims their space once the manifests are gone)")
 	}
+	plan.collection = coll
 	plan.known = map[key]bool{}
 	for k := range mk.nodes {
 		plan.known[k] = true
@@ -473,12 +480,12 @@ func (mk *marker) read(ctx context.Context, repo string, d v1.Hash, times map[v1
 	if err := json.Unmarshal(raw, &n.m); err != nil {
 		return errkind.New(errkind.Integrity, "manifest %s is not valid JSON: %v", k, err)
 	}
+	// An item's age runs from when the store received it, never from its
+	// created annotation (when it was made: a model trained months ago
+	// and pushed today is new to the store). A store that cannot say
+	// leaves it unknown, and the item is kept.
 	if t, ok := times[d]; ok {
 		n.time, n.timeKnown = t.UTC(), true
-	} else if c := n.m.Annotations[artifact.AnnotationCreated]; c != "" {
-		if t, err := time.Parse(time.RFC3339, c); err == nil {
-			n.time, n.timeKnown = t.UTC(), true
-		}
 	}
 	mk.nodes[k] = n
 	mk.byDigest[d] = append(mk.byDigest[d], n)

@@ -76,6 +76,7 @@ func Sweep(ctx context.Context, store registry.Store, plan *Plan, opts SweepOpti
 	if plan.known == nil {
 		return nil, errkind.New(errkind.Internal, "Sweep needs a plan made by Mark in this process")
 	}
+	ctx = registry.WithCollection(ctx, plan.collection)
 	res := &Result{Groups: []Group{}, Skipped: []Skip{}}
 	groups := map[string]*Group{}
 	group := func(r string) *Group {
@@ -134,7 +135,7 @@ func Sweep(ctx context.Context, store registry.Store, plan *Plan, opts SweepOpti
 			g.Manifests++
 			g.Bytes += m.Size
 		case errors.Is(err, registry.ErrConflict):
-			res.Skipped = append(res.Skipped, Skip{where, "a tag names it since the mark"})
+			res.Skipped = append(res.Skipped, Skip{where, "a tag names it, or it was pushed again, since the mark"})
 			left[k] = true
 		default:
 			return res, fmt.Errorf("removing manifest %s: %w", where, err)

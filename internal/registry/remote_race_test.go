@@ -1,0 +1,170 @@
+package registry_test
+
+import (
+	"context"
+	"errors"
+	"io"
+	"log"
+	"net/http"
+	"net/http/httptest"
+	"net/http/httputil"
+	"net/url"
+	"strings"
+	"sync"
+	"sync/atomic"
+	"testing"
+
+	"github.com/google/go-containerregistry/pkg/authn"
+	ggcrregistry "github.com/google/go-containerregistry/pkg/registry"
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/registry/storetest"
+)
+
+// clientHeader names, on each request of the race tests, which client
+// sent it: the pusher or the collector.
+const clientHeader = "X-Modelgate-Test-Client"
+
+type labelled struct {
+	who  string
+	base http.RoundTripper
+}
+
+func (l labelled) RoundTrip(req *http.Request) (*http.Response, error) {
+	req = req.Clone(req.Context())
+	req.Header.Set(clientHeader, l.who)
+	return l.base.RoundTrip(req)
+}
+
+// deleteWindow stands between the stores and a registry and lets a push
+// run inside a collector's removal of the very manifest it pushes: when
+// the collector's DELETE of that manifest arrives (after its last look at
+// the tags), the push runs up to and including its tag write; the DELETE
+// is then served; the push's later reads of the manifest, and its
+// writes, wait until the collector's DeleteManifest has returned.
+type deleteWindow struct {
+	next      http.Handler
+	digest    string // "sha256:…" of the manifest pushed and deleted
+	tag       string // the push's tag
+	push      func() // runs the push (from the DELETE's handler)
+	pushWrote chan struct{}
+	pushDone  chan struct{}
+	deleted   chan struct{}
+	collected chan struct{}
+	once      sync.Once
+	tagPut    atomic.Bool
+	deletes   atomic.Int64
+}
+
+func (h *deleteWindow) ServeHTTP(w http.ResponseWriter, req *http.Request) {
+	who := req.Header.Get(clientHeader)
+	ref := ""
+	if i := strings.LastIndex(req.URL.Path, "/manifests/"); i >= 0 {
+		ref = req.URL.Path[i+len("/manifests/"):]
+	}
+	switch {
+	case who == "collector" && req.Method == http.MethodDelete && ref == h.digest && h.deletes.Add(1) == 1:
+		go func() { defer close(h.pushDone); h.push() }()
+		select {
+		case <-h.pushWrote:
+		case <-h.pushDone:
+		}
+		h.next.ServeHTTP(w, req)
+		close(h.deleted)
+		return
+	case who == "push" && h.tagPut.Load() && ref != "":
+		// Anything the push does after writing its tag comes after the
+		// DELETE, and its writes after the collector is done.
+		<-h.deleted
+		if req.Method == http.MethodPut || req.Method == http.MethodDelete {
+			<-h.collected
+		}
+	}
+	h.next.ServeHTTP(w, req)
+	if who == "push" && req.Method == http.MethodPut && ref == h.tag {
+		h.tagPut.Store(true)
+		h.once.Do(func() { close(h.pushWrote) })
+	}
+}
+
+// testPushInsideDeleteWindow: a push of exactly the bytes of a manifest a
+// collector is removing, which writes its manifest and its tag after the
+// collector's last look at the tags and before its DELETE, ends with its
+// manifest readable by digest, its tag on it, and the manifest listed by
+// the store: the push reads its work back after tagging and puts back what
+// the DELETE took. The collector either says the manifest came back
+// (ErrConflict) or removed it; neither is an error of the push.
+func testPushInsideDeleteWindow(t *testing.T, upstream http.Handler, prefix string, auth authn.Authenticator) {
+	ctx := context.Background()
+	const repo = "podcast/listener-encoder"
+	a := storetest.NewArtifact(300, "application/vnd.modelgate.encoder.v1", nil, nil)
+	h := &deleteWindow{next: upstream, tag: "candidate-7", pushWrote: make(chan struct{}), pushDone: make(chan struct{}),
+		deleted: make(chan struct{}), collected: make(chan struct{})}
+	srv := httptest.NewServer(h)
+	t.Cleanup(srv.Close)
+	loc := strings.TrimPrefix(srv.URL, "http://") + "/" + prefix
+	open := func(who string) *registry.Remote {
+		return openRemote(t, loc, registry.WithRemoteAuth(auth), registry.WithRemoteTransport(labelled{who, http.DefaultTransport}))
+	}
+	pusher, collector := open("push"), open("collector")
+	first := storetest.Push(t, pusher, repo, "", a)
+	h.digest = first.Digest.String()
+	var pushErr error
+	var pushed v1.Descriptor
+	h.push = func() {
+		pushed, pushErr = pusher.PutManifest(ctx, repo, first.MediaType, a.Manifest.Data)
+		if pushErr == nil {
+			pushErr = pusher.Tag(ctx, repo, h.tag, pushed)
+		}
+	}
+	err := collector.DeleteManifest(ctx, repo, first.Digest)
+	close(h.collected)
+	<-h.pushDone
+	if err != nil && !errors.Is(err, registry.ErrConflict) {
+		t.Fatalf("DeleteManifest: %v", err)
+	}
+	if pushErr != nil {
+		t.Fatalf("the push: %v", pushErr)
+	}
+	if h.deletes.Load() == 0 {
+		t.Fatal("the collector sent no DELETE")
+	}
+	// Read with a client of its own (not held by the window).
+	s := openRemote(t, strings.TrimPrefix(srv.URL, "http://")+"/"+prefix, registry.WithRemoteAuth(auth))
+	if _, _, err := s.Manifest(ctx, repo, first.Digest); err != nil {
+		t.Errorf("after a successful push, its manifest: %v", err)
+	}
+	if got, err := s.Resolve(ctx, repo, h.tag); err != nil || got.Digest != first.Digest {
+		t.Errorf("after a successful push, its tag: %v, %v", got.Digest, err)
+	}
+	ms, err := s.Manifests(ctx, repo)
+	if err != nil || len(ms) != 1 || ms[0].Digest != first.Digest {
+		t.Errorf("manifests listed after the push: %v, %v", ms, err)
+	}
+}
+
+// TestRemotePushInsideDeleteWindowMem runs it on the in-memory registry,
+// which keeps a deleted manifest's tags (the store removes its own by
+// name). Before the push read its work back this failed: the manifest
+// was gone by digest after the push had returned.
+func TestRemotePushInsideDeleteWindowMem(t *testing.T) {
+	h := ggcrregistry.New(ggcrregistry.WithReferrersSupport(false), ggcrregistry.Logger(log.New(io.Discard, "", 0)))
+	testPushInsideDeleteWindow(t, h, "podcasts", authn.Anonymous)
+}
+
+// TestRemotePushInsideDeleteWindowDockerRegistry runs it on
+// docker-registry 2.8 (.ci/services.sh), behind a reverse proxy: there the
+// DELETE removes the manifest with every tag naming it, the push's tag
+// included. Before the push read its work back this failed: the manifest
+// and the push's tag were gone after the push had returned.
+func TestRemotePushInsideDeleteWindowDockerRegistry(t *testing.T) {
+	addr, auth := serviceRegistry(t)
+	u, err := url.Parse("http://" + addr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	proxy := httputil.NewSingleHostReverseProxy(u)
+	proxy.ErrorLog = log.New(io.Discard, "", 0)
+	testPushInsideDeleteWindow(t, proxy, uniquePrefix(t), auth)
+}
