@@ -2,6 +2,7 @@ package stats
 
 import (
 	"fmt"
+	"runtime"
 	"testing"
 	"time"
 )
@@ -121,4 +122,36 @@ func BenchmarkRecon(b *testing.B) {
 		}
 	}
 	reportRows(b, rows, stop())
+}
+
+// BenchmarkReplicateSums: the bootstrap's sums over one chunk of 1,024
+// rows with the gate's 200 replicates, by the kernel replicateSums uses on
+// this CPU and by replicateSumsGo (the code before the kernel), on one
+// goroutine each (GOMAXPROCS 1 for the run: no split across cores), so
+// that the two compare per row and per draw in one run.
+func BenchmarkReplicateSums(b *testing.B) {
+	const reps = 200
+	rng := newTestRand(5)
+	keys, wv, wdv := make([]uint64, chunk), make([]float64, chunk), make([]float64, chunk)
+	for i := range keys {
+		keys[i] = rng.Uint64()
+		wv[i] = 0.25 + 1.5*rng.Float64()
+		wdv[i] = wv[i] * rng.NormFloat64()
+	}
+	acc := make([]float64, 2*reps)
+	for _, c := range []struct {
+		name string
+		f    func(keys []uint64, wv, wdv, acc []float64, reps int)
+	}{{"go", replicateSumsGo}, {"dispatch", replicateSums}} {
+		b.Run(c.name, func(b *testing.B) {
+			defer runtime.GOMAXPROCS(runtime.GOMAXPROCS(1))
+			stop := threadCPU()
+			for b.Loop() {
+				c.f(keys, wv, wdv, acc, reps)
+			}
+			cpu := stop()
+			b.ReportMetric(cpu.Seconds()*1e9/(float64(b.N)*chunk), "cpu-ns/row")
+			b.ReportMetric(cpu.Seconds()*1e9/(float64(b.N)*chunk*reps), "cpu-ns/draw")
+		})
+	}
 }

@@ -31,6 +31,12 @@
 // function says so; all arithmetic is float64. Probabilities are clipped to
 // [Eps, 1−Eps] before a logarithm is taken (see Eps).
 //
+// On amd64 CPUs with AVX-512F the Poisson bootstrap's replicate sums run
+// in an assembly kernel (16 replicates per pass over a chunk's rows) that
+// makes the same float64 operations in the same order as the Go code, so
+// results are bit-identical with or without it; the purego build tag
+// keeps the Go code.
+//
 // The package has no model or runtime dependency (only the standard
 // library, gonum and errkind). Bin and Test have the fields of
 // checks.CalibrationBin and checks.NonInferiority, so the caller converts

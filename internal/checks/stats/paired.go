@@ -207,33 +207,7 @@ func (a *Paired) addChunk(ids []int64, clusters []uint64, d []float64, w []float
 		wdv[i] = wi * x
 	}
 	acc := a.acc[:2*reps]
-	pairs := reps &^ 1
-	// The replicate pairs are independent: with more than one core, the
-	// upper half runs on another goroutine. Each replicate's sums are
-	// computed exactly as in one pass, so results do not depend on it.
-	if mid := (pairs / 2) &^ 1; mid >= 32 && runtime.GOMAXPROCS(0) > 1 {
-		var wg sync.WaitGroup
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			replicatePairs(keys, wv, wdv, acc, mid, pairs)
-		}()
-		replicatePairs(keys, wv, wdv, acc, 0, mid)
-		wg.Wait()
-	} else {
-		replicatePairs(keys, wv, wdv, acc, 0, pairs)
-	}
-	if reps%2 == 1 { // odd count: the last replicate uses a low half
-		r := reps - 1
-		step := uint64(r/2+1) * wyInc
-		var sw, swd float64
-		for i, key := range keys {
-			k := float64(int64(poisson1(wymix(key+step) & 0xffffffff)))
-			sw += wv[i] * k
-			swd += wdv[i] * k
-		}
-		acc[2*r], acc[2*r+1] = sw, swd
-	}
+	replicateSums(keys, wv, wdv, acc, reps)
 	rep := a.rep[:2*reps]
 	for j, v := range acc {
 		rep[j].add(v)
@@ -538,6 +512,51 @@ func (a *Paired) ReplicateMeans() []float64 {
 		}
 	}
 	return out
+}
+
+// replicateSums computes the sums Σw·k and Σw·k·d of bootstrap replicates
+// [0, reps) over one chunk of rows into acc (2 per replicate): with the
+// AVX-512 kernel when the CPU has it, else replicateSumsGo. Both sum each
+// replicate's terms in row order with the same float64 operations (a
+// product, then a sum; no fused multiply-add), so they agree bit for bit.
+func replicateSums(keys []uint64, wv, wdv, acc []float64, reps int) {
+	if haveBootKernel {
+		replicateSumsKernel(keys, wv, wdv, acc, reps)
+		return
+	}
+	replicateSumsGo(keys, wv, wdv, acc, reps)
+}
+
+// replicateSumsGo is replicateSums in Go: two replicates (one draw of the
+// generator) per pass over the rows.
+func replicateSumsGo(keys []uint64, wv, wdv, acc []float64, reps int) {
+	pairs := reps &^ 1
+	// The replicate pairs are independent: with more than one core, the
+	// upper half runs on another goroutine. Each replicate's sums are
+	// computed exactly as in one pass, so results do not depend on it.
+	if mid := (pairs / 2) &^ 1; mid >= 32 && runtime.GOMAXPROCS(0) > 1 {
+		var wg sync.WaitGroup
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			replicatePairs(keys, wv, wdv, acc, mid, pairs)
+		}()
+		replicatePairs(keys, wv, wdv, acc, 0, mid)
+		wg.Wait()
+	} else {
+		replicatePairs(keys, wv, wdv, acc, 0, pairs)
+	}
+	if reps%2 == 1 { // odd count: the last replicate uses a low half
+		r := reps - 1
+		step := uint64(r/2+1) * wyInc
+		var sw, swd float64
+		for i, key := range keys {
+			k := float64(int64(poisson1(wymix(key+step) & 0xffffffff)))
+			sw += wv[i] * k
+			swd += wdv[i] * k
+		}
+		acc[2*r], acc[2*r+1] = sw, swd
+	}
 }
 
 // replicatePairs computes the sums of bootstrap replicates [from, to)
