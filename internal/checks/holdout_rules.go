@@ -141,6 +141,11 @@ type repeats struct {
 	// Shift: a row is kept when its hash's top Shift bits are 0.
 	Shift  uint
 	Hashes []uint64
+
+	// Scratch of add, reused from batch to batch.
+	words []uint64 // the hashed rows' 8-byte words, row after row
+	ends  []int32  // where each hashed row's words end
+	rows  []uint64 // each hashed row's hash
 }
 
 func newRepeats(rows int64, clustered bool) *repeats {
@@ -151,7 +156,30 @@ func newRepeats(rows int64, clustered bool) *repeats {
 	return r
 }
 
-// add hashes the first n rows of f.
+// The row hash is FNV-1a 64 over each word's 8 little-endian bytes (the
+// same hash as hash/fnv's New64a fed those bytes, which shard results from
+// earlier builds carry).
+const fnvOffset64, fnvPrime64 = 14695981039346656037, 1099511628211
+
+// fnvWord feeds v's 8 little-endian bytes to the FNV-1a state h.
+func fnvWord(h, v uint64) uint64 {
+	h = (h ^ v&0xff) * fnvPrime64
+	h = (h ^ (v>>8)&0xff) * fnvPrime64
+	h = (h ^ (v>>16)&0xff) * fnvPrime64
+	h = (h ^ (v>>24)&0xff) * fnvPrime64
+	h = (h ^ (v>>32)&0xff) * fnvPrime64
+	h = (h ^ (v>>40)&0xff) * fnvPrime64
+	h = (h ^ (v>>48)&0xff) * fnvPrime64
+	return (h ^ v>>56) * fnvPrime64
+}
+
+// add hashes the first n rows of f: a row's words are its item count,
+// each (item, value bits) pair, then its dense values in name order.
+//
+// FNV-1a is one long chain of dependent multiplications per row, so the
+// rows' words are first laid out one after another and then hashed four
+// rows at a time, each in its own chain, which the processor overlaps.
+// Hashes are kept in row order.
 func (r *repeats) add(f *data.Frame, n int) error {
 	if r == nil || r.Off {
 		return nil
@@ -161,43 +189,153 @@ func (r *repeats) add(f *data.Frame, n int) error {
 		names = append(names, k)
 	}
 	slices.Sort(names)
-	// FNV-1a over each value's 8 little-endian bytes (the same hash as
-	// hash/fnv's New64a fed those bytes, which shard results from earlier
-	// builds carry), written out so that no call goes through an interface.
-	const offset64, prime64 = 14695981039346656037, 1099511628211
-	var h uint64
-	put := func(v uint64) {
-		for k := 0; k < 64; k += 8 {
-			h ^= (v >> k) & 0xff
-			h *= prime64
-		}
-	}
 	width := 0
 	for _, k := range names {
 		width += len(f.Dense[k]) / n
 	}
+	words, ends := r.words[:0], r.ends[:0]
 	for i := 0; i < n; i++ {
 		lo, hi := f.Indptr[i], f.Indptr[i+1]
 		if int(hi-lo)+width < repeatMinContent {
 			continue
 		}
-		h = offset64
-		put(uint64(hi - lo))
+		words = append(words, uint64(hi-lo))
 		for p := lo; p < hi; p++ {
-			put(uint64(uint32(f.Indices[p]))<<32 | uint64(math.Float32bits(f.Values[p])))
+			words = append(words, uint64(uint32(f.Indices[p]))<<32|uint64(math.Float32bits(f.Values[p])))
 		}
 		for _, k := range names {
 			col := f.Dense[k]
 			size := len(col) / n
 			for _, v := range col[i*size : (i+1)*size] {
-				put(uint64(math.Float32bits(v)))
+				words = append(words, uint64(math.Float32bits(v)))
 			}
 		}
-		if x := h; r.Shift == 0 || x>>(64-r.Shift) == 0 {
+		ends = append(ends, int32(len(words)))
+	}
+	r.words, r.ends = words, ends
+	hs := slices.Grow(r.rows[:0], len(ends))[:len(ends)]
+	r.rows = hs
+	hashRows(words, ends, hs)
+	for _, x := range hs {
+		if r.Shift == 0 || x>>(64-r.Shift) == 0 {
 			r.Hashes = append(r.Hashes, x)
 		}
 	}
 	return nil
+}
+
+// hashRows sets hs[j] to the FNV-1a hash of row j's words,
+// words[ends[j-1]:ends[j]] (every row has at least one word). Four lanes
+// each hash a row; a lane that finishes stores its hash and takes the next
+// row; when no row is left the other lanes finish one by one.
+func hashRows(words []uint64, ends []int32, hs []uint64) {
+	rows := len(ends)
+	start := func(j int) int {
+		if j == 0 {
+			return 0
+		}
+		return int(ends[j-1])
+	}
+	if rows < 4 {
+		for j := range rows {
+			h := uint64(fnvOffset64)
+			for _, v := range words[start(j):ends[j]] {
+				h = fnvWord(h, v)
+			}
+			hs[j] = h
+		}
+		return
+	}
+	// Lane k hashes row rk, at word pk of row end ek, state hk.
+	r0, r1, r2, r3 := 0, 1, 2, 3
+	p0, p1, p2, p3 := 0, int(ends[0]), int(ends[1]), int(ends[2])
+	e0, e1, e2, e3 := int(ends[0]), int(ends[1]), int(ends[2]), int(ends[3])
+	h0, h1, h2, h3 := uint64(fnvOffset64), uint64(fnvOffset64), uint64(fnvOffset64), uint64(fnvOffset64)
+	next := 4
+	for {
+		// fnvWord on each lane, written out: a call would not be inlined,
+		// and the four states would go through memory around it.
+		v0, v1, v2, v3 := words[p0], words[p1], words[p2], words[p3]
+		h0 = (h0 ^ v0&0xff) * fnvPrime64
+		h1 = (h1 ^ v1&0xff) * fnvPrime64
+		h2 = (h2 ^ v2&0xff) * fnvPrime64
+		h3 = (h3 ^ v3&0xff) * fnvPrime64
+		h0 = (h0 ^ (v0>>8)&0xff) * fnvPrime64
+		h1 = (h1 ^ (v1>>8)&0xff) * fnvPrime64
+		h2 = (h2 ^ (v2>>8)&0xff) * fnvPrime64
+		h3 = (h3 ^ (v3>>8)&0xff) * fnvPrime64
+		h0 = (h0 ^ (v0>>16)&0xff) * fnvPrime64
+		h1 = (h1 ^ (v1>>16)&0xff) * fnvPrime64
+		h2 = (h2 ^ (v2>>16)&0xff) * fnvPrime64
+		h3 = (h3 ^ (v3>>16)&0xff) * fnvPrime64
+		h0 = (h0 ^ (v0>>24)&0xff) * fnvPrime64
+		h1 = (h1 ^ (v1>>24)&0xff) * fnvPrime64
+		h2 = (h2 ^ (v2>>24)&0xff) * fnvPrime64
+		h3 = (h3 ^ (v3>>24)&0xff) * fnvPrime64
+		h0 = (h0 ^ (v0>>32)&0xff) * fnvPrime64
+		h1 = (h1 ^ (v1>>32)&0xff) * fnvPrime64
+		h2 = (h2 ^ (v2>>32)&0xff) * fnvPrime64
+		h3 = (h3 ^ (v3>>32)&0xff) * fnvPrime64
+		h0 = (h0 ^ (v0>>40)&0xff) * fnvPrime64
+		h1 = (h1 ^ (v1>>40)&0xff) * fnvPrime64
+		h2 = (h2 ^ (v2>>40)&0xff) * fnvPrime64
+		h3 = (h3 ^ (v3>>40)&0xff) * fnvPrime64
+		h0 = (h0 ^ (v0>>48)&0xff) * fnvPrime64
+		h1 = (h1 ^ (v1>>48)&0xff) * fnvPrime64
+		h2 = (h2 ^ (v2>>48)&0xff) * fnvPrime64
+		h3 = (h3 ^ (v3>>48)&0xff) * fnvPrime64
+		h0 = (h0 ^ v0>>56) * fnvPrime64
+		h1 = (h1 ^ v1>>56) * fnvPrime64
+		h2 = (h2 ^ v2>>56) * fnvPrime64
+		h3 = (h3 ^ v3>>56) * fnvPrime64
+		p0++
+		p1++
+		p2++
+		p3++
+		if p0 == e0 || p1 == e1 || p2 == e2 || p3 == e3 {
+			if next+4 > rows {
+				break // fewer rows left than lanes could finish: drain below
+			}
+			if p0 == e0 {
+				hs[r0], r0, h0, e0 = h0, next, fnvOffset64, int(ends[next])
+				p0 = start(next)
+				next++
+			}
+			if p1 == e1 {
+				hs[r1], r1, h1, e1 = h1, next, fnvOffset64, int(ends[next])
+				p1 = start(next)
+				next++
+			}
+			if p2 == e2 {
+				hs[r2], r2, h2, e2 = h2, next, fnvOffset64, int(ends[next])
+				p2 = start(next)
+				next++
+			}
+			if p3 == e3 {
+				hs[r3], r3, h3, e3 = h3, next, fnvOffset64, int(ends[next])
+				p3 = start(next)
+				next++
+			}
+		}
+	}
+	// Finish the four lanes' rows, then the rows no lane took.
+	for _, l := range [4]struct {
+		r, p, e int
+		h       uint64
+	}{{r0, p0, e0, h0}, {r1, p1, e1, h1}, {r2, p2, e2, h2}, {r3, p3, e3, h3}} {
+		h := l.h
+		for _, v := range words[l.p:l.e] {
+			h = fnvWord(h, v)
+		}
+		hs[l.r] = h
+	}
+	for j := next; j < rows; j++ {
+		h := uint64(fnvOffset64)
+		for _, v := range words[start(j):ends[j]] {
+			h = fnvWord(h, v)
+		}
+		hs[j] = h
+	}
 }
 
 func (r *repeats) merge(o *repeats) error {
