@@ -496,6 +496,15 @@ func (p *parquetReader) fastScalar(c *column, r0, k int) int {
 	pg := &c.cur
 	md := byte(c.maxDef)
 	lp, dp := pg.lp, pg.dp
+	if m := min(k-r0, pg.n-lp); pg.idx == nil && (pg.def == nil || allEqual(pg.def[lp:lp+m], md)) {
+		if n := p.plainScalars(c, pg, dp, m); n >= 0 {
+			for range n {
+				s.cnt = append(s.cnt, 1)
+			}
+			pg.lp, pg.dp = lp+n, dp+n
+			return n
+		}
+	}
 	r := r0
 	for end := r0 + min(k-r0, pg.n-lp); r < end; r++ {
 		if pg.def != nil && pg.def[lp] != md {
@@ -515,6 +524,45 @@ func (p *parquetReader) fastScalar(c *column, r0, k int) int {
 	}
 	pg.lp, pg.dp = lp, dp
 	return r - r0
+}
+
+// plainScalars takes up to m non-null values of a plain (not indexed)
+// page from value dp on, for the columns and types it knows, up to the
+// first with a problem; it returns how many, or -1 for a column it leaves
+// to fastScalar's general loop.
+func (p *parquetReader) plainScalars(c *column, pg *colPage, dp, m int) int {
+	s := &c.seg
+	switch {
+	case c.role == roleLabel && c.kind == parquet.Float:
+		for i, v := range pg.f32[dp : dp+m] {
+			switch v {
+			case 0:
+				s.fv = append(s.fv, 0) // also -0, as checkLabel
+			case 1:
+				s.fv = append(s.fv, 1)
+			default:
+				return i
+			}
+		}
+		return m
+	case c.role == roleWeight && c.kind == parquet.Float:
+		for i, v := range pg.f32[dp : dp+m] {
+			if !(v >= 0 && v <= math.MaxFloat32) { // checkWeight
+				return i
+			}
+			s.fv = append(s.fv, v)
+		}
+		return m
+	case c.role == roleRowID && c.kind == parquet.Int64 && !c.unsigned:
+		s.i64 = append(s.i64, pg.i64[dp:dp+m]...)
+		return m
+	case c.role == roleSlice:
+		for j := dp; j < dp+m; j++ {
+			s.str = append(s.str, p.slices.get(pg.ba[pg.off[j]:pg.off[j+1]]))
+		}
+		return m
+	}
+	return -1
 }
 
 // readRow decodes row r (0-based in the run) of column c from the open
