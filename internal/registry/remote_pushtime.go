@@ -150,19 +150,22 @@ func (r *Remote) settle(ctx context.Context, full string, mt types.MediaType, ra
 		return false, fmt.Errorf("reading %s back: %w", ref, err)
 	}
 	for try := 0; ; try++ {
-		digestGone, err := gone(dgst.String())
-		if err != nil {
-			return err
-		}
-		keepGone, err := gone(keepTag(dgst))
-		if err != nil {
-			return err
-		}
-		tagGone := false
+		// The reads go side by side, all after the writes.
+		var (
+			wg                            sync.WaitGroup
+			digestGone, keepGone, tagGone bool
+			errs                          [3]error
+		)
+		wg.Add(2)
+		go func() { defer wg.Done(); digestGone, errs[0] = gone(dgst.String()) }()
+		go func() { defer wg.Done(); keepGone, errs[1] = gone(keepTag(dgst)) }()
 		if tag != "" {
-			if tagGone, err = gone(tag); err != nil {
-				return err
-			}
+			wg.Add(1)
+			go func() { defer wg.Done(); tagGone, errs[2] = gone(tag) }()
+		}
+		wg.Wait()
+		if err := errors.Join(errs[:]...); err != nil {
+			return err
 		}
 		if !digestGone && !keepGone && !tagGone {
 			return nil

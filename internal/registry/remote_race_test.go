@@ -168,3 +168,85 @@ func TestRemotePushInsideDeleteWindowDockerRegistry(t *testing.T) {
 	proxy.ErrorLog = log.New(io.Discard, "", 0)
 	testPushInsideDeleteWindow(t, proxy, uniquePrefix(t), auth)
 }
+
+// TestRemoteUntagWindowDockerRegistry: on docker-registry 2.8 (which
+// deletes a tag only with its manifest) DeleteTag's DELETE is by the
+// manifest's digest, so what happens to other tags between its last look
+// and that DELETE is what README "Untag" states: a tag that another writer
+// moved away from the manifest in that window stays where it was moved;
+// a tag that modelgate's Tag pointed at the manifest in that window goes
+// with it and is put back by that Tag's read-back.
+func TestRemoteUntagWindowDockerRegistry(t *testing.T) {
+	addr, auth := serviceRegistry(t)
+	u, err := url.Parse("http://" + addr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	proxy := httputil.NewSingleHostReverseProxy(u)
+	proxy.ErrorLog = log.New(io.Discard, "", 0)
+	ctx := context.Background()
+	const repo = "podcast/promo-scorer"
+	a := storetest.NewArtifact(310, "application/vnd.modelgate.scorer.v1", nil, nil)
+	b := storetest.NewArtifact(311, "application/vnd.modelgate.scorer.v1", nil, nil)
+
+	t.Run("moved away", func(t *testing.T) {
+		var mover *registry.Remote
+		var moved atomic.Bool
+		var moveErr error
+		var db v1.Descriptor
+		srv := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, req *http.Request) {
+			if req.Header.Get(clientHeader) == "collector" && req.Method == http.MethodDelete && strings.Contains(req.URL.Path, "/manifests/sha256:") && moved.CompareAndSwap(false, true) {
+				moveErr = mover.Tag(ctx, repo, "candidate-1", db)
+			}
+			proxy.ServeHTTP(w, req)
+		}))
+		t.Cleanup(srv.Close)
+		loc := strings.TrimPrefix(srv.URL, "http://") + "/" + uniquePrefix(t)
+		collector := openRemote(t, loc, registry.WithRemoteAuth(auth), registry.WithRemoteTransport(labelled{"collector", http.DefaultTransport}))
+		mover = openRemote(t, loc, registry.WithRemoteAuth(auth))
+		da := storetest.Push(t, mover, repo, "candidate-1", a)
+		db = storetest.Push(t, mover, repo, "candidate-2", b)
+		if err := collector.DeleteTag(ctx, repo, "candidate-1", da.Digest); err != nil {
+			t.Fatalf("DeleteTag: %v", err)
+		}
+		if moveErr != nil || !moved.Load() {
+			t.Fatalf("the move inside the window: %v (ran: %v)", moveErr, moved.Load())
+		}
+		if got, err := mover.Resolve(ctx, repo, "candidate-1"); err != nil || got.Digest != db.Digest {
+			t.Errorf("candidate-1 after it moved away inside the window: %v, %v; want %s", got.Digest, err, db.Digest)
+		}
+		if _, _, err := mover.Manifest(ctx, repo, db.Digest); err != nil {
+			t.Errorf("the manifest it moved to: %v", err)
+		}
+		if _, _, err := mover.Manifest(ctx, repo, da.Digest); !errors.Is(err, registry.ErrNotFound) {
+			t.Errorf("the untagged manifest: %v, want it deleted", err)
+		}
+	})
+
+	t.Run("tagged onto it", func(t *testing.T) {
+		h := &deleteWindow{next: proxy, tag: "candidate-3", pushWrote: make(chan struct{}), pushDone: make(chan struct{}),
+			deleted: make(chan struct{}), collected: make(chan struct{})}
+		srv := httptest.NewServer(h)
+		t.Cleanup(srv.Close)
+		loc := strings.TrimPrefix(srv.URL, "http://") + "/" + uniquePrefix(t)
+		collector := openRemote(t, loc, registry.WithRemoteAuth(auth), registry.WithRemoteTransport(labelled{"collector", http.DefaultTransport}))
+		pusher := openRemote(t, loc, registry.WithRemoteAuth(auth), registry.WithRemoteTransport(labelled{"push", http.DefaultTransport}))
+		da := storetest.Push(t, pusher, repo, "candidate-1", a)
+		h.digest = da.Digest.String()
+		var tagErr error
+		h.push = func() { tagErr = pusher.Tag(ctx, repo, h.tag, da) }
+		err := collector.DeleteTag(ctx, repo, "candidate-1", da.Digest)
+		close(h.collected)
+		<-h.pushDone
+		if err != nil || tagErr != nil || h.deletes.Load() == 0 {
+			t.Fatalf("DeleteTag: %v; Tag inside the window: %v; DELETEs %d", err, tagErr, h.deletes.Load())
+		}
+		s := openRemote(t, loc, registry.WithRemoteAuth(auth))
+		if got, err := s.Resolve(ctx, repo, "candidate-3"); err != nil || got.Digest != da.Digest {
+			t.Errorf("the tag written inside the window: %v, %v; want it put back at %s", got.Digest, err, da.Digest)
+		}
+		if _, err := s.Resolve(ctx, repo, "candidate-1"); !errors.Is(err, registry.ErrNotFound) {
+			t.Errorf("the removed tag: %v, want it gone", err)
+		}
+	})
+}

@@ -420,6 +420,9 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 		return nil, err
 	}
 	mk.fill(plan)
+	if n := plan.Kept.Reasons[KeepAgeUnknown]; n > 0 {
+		plan.Notes = append(plan.Notes, fmt.Sprintf("%d manifests have no time the store recorded (on an OCI registry: pushed by a modelgate that wrote no push-time tags) and are kept; push or tag them again to give them one", n))
+	}
 	if opts.Blobs == nil && len(plan.Blobs) > 0 {
 		plan.Notes = append(plan.Notes, "the store does not list its blobs: the blobs counted are those of eligible manifests only, and an OCI registry removes none (its own garbage collection reclaims their space once the manifests are gone)")
 	}

@@ -1,6 +1,7 @@
 package retain
 
 import (
+	"bytes"
 	"context"
 	"io"
 	"log"
@@ -33,6 +34,7 @@ type regWorld struct {
 	ctx   context.Context
 	store *registry.Remote
 	pol   *policy.Policy
+	url   string // the registry's base URL
 	// heads counts HEAD requests of user tags (not digests, not the
 	// store's sha256- tags) since the counter was last reset.
 	heads atomic.Int64
@@ -54,6 +56,7 @@ func newRegWorld(t *testing.T, keep int, clock func() time.Time) *regWorld {
 		h.ServeHTTP(rw, req)
 	}))
 	t.Cleanup(srv.Close)
+	w.url = srv.URL
 	opts := []registry.RemoteOption{registry.WithRemoteAuth(authn.Anonymous)}
 	if clock != nil {
 		opts = append(opts, registry.WithRemoteClock(clock))
@@ -129,6 +132,26 @@ func TestRegistryAgeIsPushTime(t *testing.T) {
 	// Eight days after its push it is an old candidate.
 	if r := eligibleDigests(w.mark(pushed.Add(8 * 24 * time.Hour)))[d.Digest.String()]; r != ReasonOldCandidate {
 		t.Errorf("eight days after its push the model is %q, want %s", r, ReasonOldCandidate)
+	}
+	// A model put as a modelgate without push-time tags put it (its blobs,
+	// then the manifest under its keep tag only) has no known age: kept,
+	// and the plan says so.
+	old := encoder(5, pushed.Add(-90*24*time.Hour))
+	storetest.PushBlobs(t, w.store, encRepo, old)
+	od := old.Descriptor().Digest
+	req, err := http.NewRequest(http.MethodPut, w.url+"/v2/podcasts/"+encRepo+"/manifests/sha256-"+od.Hex+".keep", bytes.NewReader(old.Manifest.Data))
+	if err != nil {
+		t.Fatal(err)
+	}
+	req.Header.Set("Content-Type", string(types.OCIManifestSchema1))
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil || resp.StatusCode != http.StatusCreated {
+		t.Fatalf("putting the manifest by hand: %v %v", resp, err)
+	}
+	resp.Body.Close()
+	plan = w.mark(pushed.Add(365 * 24 * time.Hour))
+	if r, ok := eligibleDigests(plan)[od.String()]; ok || plan.Kept.Reasons[KeepAgeUnknown] != 1 || !strings.Contains(strings.Join(plan.Notes, "\n"), "1 manifests have no time") {
+		t.Errorf("a manifest without push time: eligible %v (%s), kept %v, notes %q", ok, r, plan.Kept.Reasons, plan.Notes)
 	}
 }
 
