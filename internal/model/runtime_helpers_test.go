@@ -13,6 +13,12 @@ type modelBuilder struct {
 	w    Weights
 }
 
+// pair is a sparse (index, value) pair.
+type pair struct {
+	idx int32
+	val float32
+}
+
 func newModel(kind, name string, sp SparseInput) *modelBuilder {
 	s := &Spec{SchemaVersion: 1, Kind: kind, Name: name, Inputs: Inputs{Sparse: []SparseInput{sp}}}
 	return &modelBuilder{spec: s, w: Weights{}}
