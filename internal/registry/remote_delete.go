@@ -252,6 +252,15 @@ func (r *Remote) deleteManifest(ctx context.Context, repo, full string, dgst v1.
 		} else if back {
 			return errkind.New(errkind.Conflict, "%s@%s was put back by a push while it was being removed: %w", repo, dgst, ErrConflict)
 		}
+		// On a registry that may keep the tags of a deleted manifest
+		// (any but one known to delete tags only with their manifest), a
+		// push-time tag written since the last look tells of a push
+		// that ran entirely before the DELETE: put the manifest back.
+		if r.tagDelete.Load() != tagDeleteNo {
+			if err := r.putBackIfPushed(ctx, repo, full, dgst, raw, stamps); err != nil {
+				return err
+			}
+		}
 	}
 	// Bookkeeping: tags the registry kept, then the fallback index entry.
 	names := append([]string{keepTag(dgst)}, stamps...)

@@ -44,8 +44,10 @@ import (
 //	C1 last look: tag listing L1, and     P2 keep tag       (PUT)
 //	   HEADs of tags not resolved at C0   P3 user tag       (PUT, by Tag)
 //	C2 DELETE by digest                   P4 read back: HEAD digest, keep
-//	C3 HEAD digest; drop bookkeeping         tag and user tag; put back what
-//	   (each drop re-checks the digest)      is missing, and read back again
+//	C3 HEAD digest; list the tags again      tag and user tag; put back what
+//	   where the registry may keep them;     is missing, and read back again
+//	   drop bookkeeping (each drop
+//	   re-checks the digest)
 //
 //   - P1 before C0: the manifest is young at the mark (its push time is
 //     within the grace period), so it is not eligible.
@@ -53,21 +55,23 @@ import (
 //     the collector refuses (ErrConflict) and the sweep leaves it. Any
 //     modelgate write that makes the manifest reachable starts with P1, so
 //     this also covers a tag moved onto it through Tag or SwapTag, which C1
-//     does not HEAD again (it reuses C0's resolutions: item 4's one
-//     reading of the tags per collection).
-//   - C1 < P1 and C2 < P4: the push reads back after the DELETE, finds the
+//     does not HEAD again (it reuses C0's resolutions: one reading of the
+//     tags per collection).
+//   - P1 after C1, P4 after C2: the push reads back after the DELETE, finds the
 //     digest (or its keep tag, or its tag) gone and puts them back, then
 //     reads back again (settleTries times at most: the collector deletes a
 //     manifest once per sweep). If the put-back lands before C3, C3 sees
 //     the digest and reports ErrConflict instead of removing bookkeeping.
 //   - C1 < P1 < P4 < C2: the whole push between the collector's last look
-//     and its DELETE. Nothing the push can read tells it, and nothing is
-//     left for the collector to see (docker-registry deletes the tags with
-//     the manifest; a registry that keeps them keeps the push-time tag,
-//     which C3 cannot tell from one written before C1). This one window —
-//     one tag listing and one DELETE — is what the API cannot close; the
-//     README says so. verify then reports a tag naming a missing manifest
-//     or a missing model, and pushing again restores it.
+//     and its DELETE. Nothing the push can read tells it. A registry that
+//     keeps the tags of a deleted manifest (the in-memory one; any that
+//     deletes tags by name) keeps the push's push-time tag: C3 lists the
+//     tags again, finds one L1 did not have, and puts the manifest back
+//     (its user tag is still there). docker-registry deletes the tags with
+//     the manifest, so nothing is left to see: this one window — one tag
+//     listing and one DELETE — is what its API cannot close; the README
+//     says so. verify then reports the missing model, and pushing again
+//     restores it.
 //
 // The same holds for the bookkeeping drops in C3 (a keep tag put back
 // between a drop's check and its DELETE goes), and for a tag moved by
@@ -423,6 +427,40 @@ func (r *Remote) lastLook(ctx context.Context, repo, full string, dgst v1.Hash, 
 		return nil, &taggedErr{named, taggedError(repo, dgst, named)}
 	}
 	return stamps, nil
+}
+
+// putBackIfPushed lists full's tags after dgst was deleted and, when dgst
+// has a push-time tag that the last look (seen) did not, puts the
+// manifest back under its keep tag and refuses (ErrConflict): a push ran
+// between the last look and the DELETE, and its tags are still there.
+func (r *Remote) putBackIfPushed(ctx context.Context, repo, full string, dgst v1.Hash, raw []byte, seen []string) error {
+	all, err := r.allTags(ctx, full)
+	if errors.Is(err, ErrNotFound) {
+		return nil
+	}
+	if err != nil {
+		return err
+	}
+	old := map[string]bool{}
+	for _, t := range seen {
+		old[t] = true
+	}
+	for _, t := range stampsOf(all, dgst) {
+		if old[t] {
+			continue
+		}
+		var mf manifestFields
+		_ = json.Unmarshal(raw, &mf)
+		mt := mf.MediaType
+		if mt == "" {
+			mt = types.OCIManifestSchema1
+		}
+		if _, err := r.putManifest(ctx, full, keepTag(dgst), mt, raw); err != nil {
+			return fmt.Errorf("putting back %s@%s, pushed while it was being removed: %w", repo, dgst, err)
+		}
+		return errkind.New(errkind.Conflict, "%s@%s was pushed while it was being removed (%s): put back: %w", repo, dgst, t, ErrConflict)
+	}
+	return nil
 }
 
 // presentByDigest reports whether full has manifest dgst now.
