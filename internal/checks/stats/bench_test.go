@@ -155,3 +155,82 @@ func BenchmarkReplicateSums(b *testing.B) {
 		})
 	}
 }
+
+// BenchmarkBinaryAddBatchWithLoss: as BenchmarkBinaryAddBatchMany, with
+// the rows' log losses known (AddBatchWithLoss, what the gate's slices
+// take): the histograms, calibration bins and sums alone.
+func BenchmarkBinaryAddBatchWithLoss(b *testing.B) {
+	r := benchScored()
+	accs := make([]*Binary, 12)
+	for i := range accs {
+		accs[i] = NewBinary()
+	}
+	loss := make([]float64, benchRows)
+	if err := NewBinary().AddBatchLoss(r.cand, r.y, r.w, loss); err != nil {
+		b.Fatal(err)
+	}
+	stop := threadCPU()
+	for b.Loop() {
+		for s := 0; s < benchRows; s += 4096 {
+			e := min(s+4096, benchRows)
+			for _, acc := range accs {
+				if err := acc.AddBatchWithLoss(r.cand[s:e], r.y[s:e], r.w[s:e], loss[s:e]); err != nil {
+					b.Fatal(err)
+				}
+			}
+		}
+	}
+	cpu := stop()
+	reportRows(b, benchRows*len(accs), cpu)
+	b.ReportMetric(cpu.Seconds()*1e9/(float64(b.N)*benchRows*float64(len(accs))), "cpu-ns/row")
+}
+
+// BenchmarkGateStatistics: the statistics a scorer's gate computes per
+// row, on 1M rows in batches of 4,096: the paired accumulator with the
+// gate's 200 bootstrap replicates, six Binary accumulators with the losses
+// known (the candidate and baseline overall and in two slices) and the
+// histogram of differences. "go" runs the bootstrap's Go loop, "kernel"
+// what replicateSums picks on this CPU; the rest is the same code.
+func BenchmarkGateStatistics(b *testing.B) {
+	r := benchScored()
+	d := r.diffs(0, benchRows)
+	loss := make([]float64, benchRows)
+	if err := NewBinary().AddBatchLoss(r.cand, r.y, r.w, loss); err != nil {
+		b.Fatal(err)
+	}
+	for _, c := range []struct {
+		name   string
+		kernel bool
+	}{{"go", false}, {"kernel", haveBootKernel}} {
+		b.Run(c.name, func(b *testing.B) {
+			defer func(k bool) { haveBootKernel = k }(haveBootKernel)
+			haveBootKernel = c.kernel
+			paired, _ := NewPaired(1, DefaultReplicates)
+			hist, _ := NewHistogram(-0.5, 0.5, 50)
+			accs := make([]*Binary, 6)
+			for i := range accs {
+				accs[i] = NewBinary()
+			}
+			stop := threadCPU()
+			for b.Loop() {
+				for s := 0; s < benchRows; s += 4096 {
+					e := min(s+4096, benchRows)
+					if err := paired.AddBatch(r.ids[s:e], d[s:e], r.w[s:e]); err != nil {
+						b.Fatal(err)
+					}
+					if err := hist.AddBatch(d[s:e], r.w[s:e]); err != nil {
+						b.Fatal(err)
+					}
+					for _, acc := range accs {
+						if err := acc.AddBatchWithLoss(r.cand[s:e], r.y[s:e], r.w[s:e], loss[s:e]); err != nil {
+							b.Fatal(err)
+						}
+					}
+				}
+			}
+			cpu := stop()
+			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/(float64(b.N)*benchRows), "ns/row")
+			b.ReportMetric(cpu.Seconds()*1e9/(float64(b.N)*benchRows), "thread-cpu-ns/row")
+		})
+	}
+}

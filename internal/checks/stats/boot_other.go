@@ -3,7 +3,7 @@
 package stats
 
 // haveBootKernel is false: replicateSums runs replicateSumsGo.
-const haveBootKernel = false
+var haveBootKernel = false
 
 func replicateSumsKernel(keys []uint64, wv, wdv, acc []float64, reps int) {
 	replicateSumsGo(keys, wv, wdv, acc, reps)
