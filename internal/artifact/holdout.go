@@ -386,7 +386,7 @@ func hashHoldout(ctx context.Context, store registry.Store, repo, path string, o
 		return nil, Blob{}, errkind.New(errkind.BadInput, "holdout %s changed while it was pushed; push again once it is written", path)
 	}
 	b := Blob{Desc: v1.Descriptor{Size: size, Digest: v1.Hash{Algorithm: "sha256", Hex: hex.EncodeToString(h.Sum(nil))}}}
-	if _, err := store.StatBlob(ctx, repo, b.Desc.Digest); err == nil {
+	if _, err := registry.ReuseBlob(ctx, store, repo, b.Desc.Digest); err == nil {
 		return info, b, nil
 	}
 	if _, err := f.Seek(0, io.SeekStart); err != nil {

@@ -577,7 +577,9 @@ func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, a
 	if err != nil {
 		return nil, err
 	}
-	if _, existing, err := store.Manifest(ctx, ref.Repository, want); err == nil {
+	// Reusing it refreshes it on a store a collection may be removing it
+	// from (registry.ReuseManifest), so the collection keeps it.
+	if existing, err := registry.ReuseManifest(ctx, store, ref.Repository, want); err == nil {
 		res.Manifest = existing
 		res.ManifestReused = true
 	} else {
@@ -603,9 +605,11 @@ func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, a
 // uploadParallel is how many blobs PushArtifact uploads at once.
 const uploadParallel = 4
 
-// uploadBlob puts b unless the store has it; written says it was put.
+// uploadBlob puts b unless the store has it; written says it was put. A
+// blob the store has is reused through registry.ReuseBlob, which keeps a
+// collection running meanwhile from removing it.
 func uploadBlob(ctx context.Context, store registry.Store, repo string, b Blob, name string, emit func(Event)) (bool, error) {
-	if _, err := store.StatBlob(ctx, repo, b.Desc.Digest); err == nil {
+	if _, err := registry.ReuseBlob(ctx, store, repo, b.Desc.Digest); err == nil {
 		emit(Event{Phase: "skip", Name: name, Done: b.Desc.Size, Total: b.Desc.Size})
 		return false, nil
 	}

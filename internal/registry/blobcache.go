@@ -302,7 +302,7 @@ func NewCached(s Store, c *BlobCache) Store {
 	sw, _ := s.(TagSwapper)
 	ml, _ := s.(ManifestLister)
 	sc, _ := s.(Scrubber)
-	var dl Deleter
+	var dl wrapDeleter
 	if _, ok := s.(Deleter); ok {
 		dl = cachedDeleter{w}
 	}

@@ -10,3 +10,11 @@ var WriteSteps = []string{stepBlobWritten, stepBlobSynced, stepBlobRenamed, step
 // SetScrubListedHook sets the hook Scrub runs between listing the blobs
 // and reading the side files (nil removes it).
 func SetScrubListedHook(f func()) { scrubListedHook = f }
+
+// SetRemovalHook sets the function a local store calls at the steps of a
+// conditional removal (nil removes it).
+func SetRemovalHook(f func(step string)) { removalHook = f }
+
+// RemovalChecked is the step after a removal's version check, before
+// anything is moved.
+const RemovalChecked = stepRemovalChecked

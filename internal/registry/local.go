@@ -370,7 +370,9 @@ func (l *Local) writeBlob(ctx context.Context, dgst v1.Hash, size int64, r io.Re
 	if err := ctx.Err(); err != nil {
 		return err
 	}
-	if fi, err := os.Lstat(l.blobPath(dgst)); err == nil && fi.Mode().IsRegular() && fi.Size() == size {
+	// Present: refreshed, so that a collection that judged it old keeps
+	// it (Refresher). A blob the refresh cannot vouch for is written again.
+	if fi, ok, err := refreshFile(l.blobPath(dgst)); err == nil && ok && fi.Size() == size {
 		return nil
 	}
 	st, err := l.stage(ctx, size, r)
@@ -475,7 +477,8 @@ func (s *localStaged) Commit(ctx context.Context) (existed bool, err error) {
 		return false, err
 	}
 	final := s.l.blobPath(s.digest)
-	if fi, err := os.Lstat(final); err == nil && fi.Mode().IsRegular() && fi.Size() == s.size {
+	if fi, ok, err := refreshFile(final); err == nil && ok && fi.Size() == s.size {
+		// Present, and refreshed (see writeBlob).
 		s.Discard()
 		s.state, s.existed = stagedCommitted, true
 		return true, nil
@@ -653,12 +656,14 @@ func (l *Local) PutManifest(ctx context.Context, repo string, mediaType types.Me
 	desc := describe(raw, mt, mf)
 	dgst := desc.Digest
 	entry := sideEntry(repo, desc, mf)
-	if l.recorded(repo, entry) {
+	// Already recorded: its side file is refreshed (Refresher), so that a
+	// collection that judged it old keeps it.
+	if _, ok, err := refreshFile(l.manifestEntryPath(repo, dgst)); err == nil && ok && l.recorded(repo, entry) {
 		if size, err := l.statBlob(dgst); err == nil && size == desc.Size {
 			return desc, nil
 		}
 	}
-	if err := l.checkReferences(repo, mt, mf); err != nil {
+	if err := l.checkReferences(ctx, repo, mt, mf); err != nil {
 		return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", dgst, repo, err)
 	}
 	if err := l.writeBlob(ctx, dgst, int64(len(raw)), bytes.NewReader(raw)); err != nil {
@@ -737,10 +742,12 @@ func parseManifest(mediaType types.MediaType, raw []byte) (manifestFields, types
 	return mf, mt, nil
 }
 
-// checkReferences applies checkRefs with the store's own lookups.
-func (l *Local) checkReferences(repo string, mt types.MediaType, mf manifestFields) error {
+// checkReferences applies checkRefs with the store's own lookups. Each
+// blob is refreshed (Refresher): a manifest is never put naming a blob a
+// collection is removing, however its writer checked for the blob.
+func (l *Local) checkReferences(ctx context.Context, repo string, mt types.MediaType, mf manifestFields) error {
 	var idx *v1.IndexManifest
-	return checkRefs(mt, mf, l.statBlob, func(d v1.Hash) error {
+	return checkRefs(mt, mf, func(d v1.Hash) (int64, error) { return l.refreshBlob(ctx, d, true) }, func(d v1.Hash) error {
 		if idx == nil {
 			var err error
 			if idx, err = l.readIndex(); err != nil {

@@ -155,7 +155,9 @@ func (l *Local) writeEntry(repo string, entry v1.Descriptor, durable bool) (bool
 	}
 	wrote := false
 	for _, p := range paths {
-		if _, err := os.Lstat(p); err == nil {
+		// Present: refreshed (Refresher); one the refresh cannot vouch
+		// for is written again, with the same content.
+		if _, ok, err := refreshFile(p); err == nil && ok {
 			continue
 		}
 		if err := mkdirAll(filepath.Dir(p), durable); err != nil {

@@ -152,7 +152,7 @@ func NewMemo(s Store, max int64) Store {
 		ml = memoLister{l}
 	}
 	sc, _ := s.(Scrubber)
-	var dl Deleter
+	var dl wrapDeleter
 	if _, ok := s.(Deleter); ok {
 		dl = memoDeleter{w}
 	}

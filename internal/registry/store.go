@@ -224,9 +224,95 @@ type Deleter interface {
 type BlobInfo struct {
 	Digest v1.Hash
 	Size   int64
-	// Modified is when the store last wrote the blob. A push that finds
-	// the blob present and skips the upload does not change it.
+	// Modified is when the store last wrote the blob, or a writer last
+	// reused it (on a Refresher: see there).
 	Modified time.Time
+	// Version changes whenever the blob is written or reused (on a
+	// VersionedDeleter; "" elsewhere): DeleteBlobIf removes the blob only
+	// while it is still this version.
+	Version string
+}
+
+// ErrInUse: a conditional removal (DeleteBlobIf, DeleteManifestIf) found
+// the item written again or reused by a writer since the collector looked
+// at it, and left it. It is reported wrapped together with ErrConflict
+// (errkind.Conflict).
+var ErrInUse = errors.New("written or reused since it was judged")
+
+// Stamp is what a store knows of an item's history: when it was written
+// or last reused (its age), and a version that changes with every write
+// or reuse.
+type Stamp struct {
+	Time    time.Time
+	Version string
+}
+
+// Refresher is a store whose collector judges age by the store's own
+// times and removes only what is still as it judged it (the local store,
+// GCS). A writer that names content already present without writing it
+// again refreshes it first: the refresh makes the item young and changes
+// its version, so a collection that judged it old no longer removes it
+// (DeleteBlobIf, DeleteManifestIf fail with ErrInUse); a refresh that
+// comes after the removal fails with ErrNotFound, and the writer then
+// writes the content again. That closes the window between a writer's
+// "present, so not uploaded" and the removal of what it found present.
+//
+// PutBlob and PutManifest of content already present refresh it too, and
+// PutManifest refreshes every blob it references (the check that they
+// are present is a refresh), so no manifest is ever put naming a blob a
+// collection is removing, whichever way its writer checked.
+type Refresher interface {
+	// RefreshBlob refreshes blob dgst and returns its size; ErrNotFound
+	// when it is absent (or was just removed).
+	RefreshBlob(ctx context.Context, repo string, dgst v1.Hash) (int64, error)
+	// RefreshManifest refreshes manifest dgst of repo and returns its
+	// descriptor; ErrNotFound when repo does not record it.
+	RefreshManifest(ctx context.Context, repo string, dgst v1.Hash) (v1.Descriptor, error)
+}
+
+// VersionedDeleter is a Deleter that removes an item only while it is the
+// version the caller saw: the collector's protection against a writer
+// that reuses, after the mark, an item the mark judged old (see
+// Refresher). Wrappers have these methods whatever they wrap; on a store
+// without them they fail with errors.ErrUnsupported, and the caller uses
+// the Deleter's own methods.
+type VersionedDeleter interface {
+	// ManifestStamps returns the stamp of every manifest recorded in repo
+	// (ManifestTimes with versions; a reused manifest is young again).
+	ManifestStamps(ctx context.Context, repo string) (map[v1.Hash]Stamp, error)
+	// DeleteManifestIf is DeleteManifest of a manifest whose stamp still
+	// has version; one written again or refreshed since stays, and the
+	// error wraps ErrInUse. A manifest that is not there is not an error.
+	DeleteManifestIf(ctx context.Context, repo string, dgst v1.Hash, version string) error
+	// DeleteBlobIf is DeleteBlob of a blob still at version (its
+	// BlobInfo's); one written again or refreshed since stays (ErrInUse).
+	DeleteBlobIf(ctx context.Context, repo string, dgst v1.Hash, version string) error
+}
+
+// ReuseBlob is how a writer checks for a blob it is about to name without
+// uploading it: on a Refresher it refreshes the blob (see there), on
+// other stores it is StatBlob. ErrNotFound means: upload it.
+func ReuseBlob(ctx context.Context, s Store, repo string, dgst v1.Hash) (int64, error) {
+	if r, ok := Ability[Refresher](s); ok {
+		return r.RefreshBlob(ctx, repo, dgst)
+	}
+	return s.StatBlob(ctx, repo, dgst)
+}
+
+// ReuseManifest is how a writer checks for a manifest it is about to
+// reuse instead of putting it: on a Refresher it refreshes the manifest,
+// on other stores it reads it. ErrNotFound means: put it.
+func ReuseManifest(ctx context.Context, s Store, repo string, dgst v1.Hash) (v1.Descriptor, error) {
+	if r, ok := Ability[Refresher](s); ok {
+		return r.RefreshManifest(ctx, repo, dgst)
+	}
+	_, desc, err := s.Manifest(ctx, repo, dgst)
+	return desc, err
+}
+
+// inUseError is the refusal of a conditional removal.
+func inUseError(what string) error {
+	return errkind.New(errkind.Conflict, "%s was written or reused since the collection judged it, and stays: %w (%w)", what, ErrInUse, ErrConflict)
 }
 
 // Artifact types of the release log (see internal/release): records and

@@ -67,13 +67,13 @@ type wrapper interface {
 // compose returns a Store made of base plus exactly the optional abilities
 // given non-nil, so that a type assertion on the result finds an ability
 // only when the wrapped store has it.
-func compose(base wrapper, sw TagSwapper, ml ManifestLister, sc Scrubber, dl Deleter) Store {
+func compose(base wrapper, sw TagSwapper, ml ManifestLister, sc Scrubber, dl wrapDeleter) Store {
 	type (
 		s  = wrapper
 		w  = TagSwapper
 		m  = ManifestLister
 		sr = Scrubber
-		d  = Deleter
+		d  = wrapDeleter
 	)
 	switch {
 	case sw != nil && ml != nil && sc != nil && dl != nil:

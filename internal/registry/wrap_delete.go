@@ -3,6 +3,7 @@ package registry
 import (
 	"context"
 	"errors"
+	"fmt"
 	"os"
 	"strings"
 	"time"
@@ -12,7 +13,24 @@ import (
 
 // The wrappers' Deleter abilities: each passes deletions through to the
 // wrapped store and does what its wrapper must for them (retry, inject
-// faults, forget what it kept of what was removed).
+// faults, forget what it kept of what was removed). A wrapper's deleter
+// has VersionedDeleter's methods too, which fail with
+// errors.ErrUnsupported when the wrapped store lacks them.
+
+// wrapDeleter is a wrapper's deleter.
+type wrapDeleter interface {
+	Deleter
+	VersionedDeleter
+}
+
+// versioned returns s's VersionedDeleter, or an error wrapping
+// errors.ErrUnsupported.
+func versioned(s Store) (VersionedDeleter, error) {
+	if v, ok := s.(VersionedDeleter); ok {
+		return v, nil
+	}
+	return nil, fmt.Errorf("store %s removes nothing conditionally: %w", s, errors.ErrUnsupported)
+}
 
 type retryDeleter struct{ r *retryStore }
 
@@ -68,6 +86,40 @@ func (w retryDeleter) ManifestTimes(ctx context.Context, repo string) (out map[v
 
 func (w retryDeleter) SharesBlobs() bool { return w.inner().SharesBlobs() }
 
+// DeleteManifestIf and DeleteBlobIf are idempotent too: a retry after an
+// attempt that landed finds nothing to remove.
+func (w retryDeleter) DeleteManifestIf(ctx context.Context, repo string, dgst v1.Hash, version string) error {
+	v, err := versioned(w.r.s)
+	if err != nil {
+		return err
+	}
+	return w.r.do(ctx, "removing manifest "+repo+"@"+dgst.String(), func() error {
+		return v.DeleteManifestIf(ctx, repo, dgst, version)
+	}, nil)
+}
+
+func (w retryDeleter) DeleteBlobIf(ctx context.Context, repo string, dgst v1.Hash, version string) error {
+	v, err := versioned(w.r.s)
+	if err != nil {
+		return err
+	}
+	return w.r.do(ctx, "removing blob "+dgst.String(), func() error {
+		return v.DeleteBlobIf(ctx, repo, dgst, version)
+	}, nil)
+}
+
+func (w retryDeleter) ManifestStamps(ctx context.Context, repo string) (out map[v1.Hash]Stamp, err error) {
+	v, err := versioned(w.r.s)
+	if err != nil {
+		return nil, err
+	}
+	err = w.r.do(ctx, "listing manifest stamps of "+repo, func() error {
+		out, err = v.ManifestStamps(ctx, repo)
+		return err
+	}, nil)
+	return out, err
+}
+
 type faultyDeleter struct{ f *faultyStore }
 
 func (w faultyDeleter) inner() Deleter { return w.f.s.(Deleter) }
@@ -109,6 +161,39 @@ func (w faultyDeleter) ManifestTimes(ctx context.Context, repo string) (map[v1.H
 
 func (w faultyDeleter) SharesBlobs() bool { return w.inner().SharesBlobs() }
 
+func (w faultyDeleter) DeleteManifestIf(ctx context.Context, repo string, dgst v1.Hash, version string) error {
+	v, err := versioned(w.f.s)
+	if err != nil {
+		return err
+	}
+	if err := w.f.fail("delete manifest"); err != nil {
+		return err
+	}
+	return v.DeleteManifestIf(ctx, repo, dgst, version)
+}
+
+func (w faultyDeleter) DeleteBlobIf(ctx context.Context, repo string, dgst v1.Hash, version string) error {
+	v, err := versioned(w.f.s)
+	if err != nil {
+		return err
+	}
+	if err := w.f.fail("delete blob"); err != nil {
+		return err
+	}
+	return v.DeleteBlobIf(ctx, repo, dgst, version)
+}
+
+func (w faultyDeleter) ManifestStamps(ctx context.Context, repo string) (map[v1.Hash]Stamp, error) {
+	v, err := versioned(w.f.s)
+	if err != nil {
+		return nil, err
+	}
+	if err := w.f.fail("manifest times"); err != nil {
+		return nil, err
+	}
+	return v.ManifestStamps(ctx, repo)
+}
+
 // memoDeleter drops the memo's copies of what it removes: a removed
 // manifest or blob must not be served from memory afterwards. For a store
 // whose blobs are shared, a blob is dropped under every repository, and
@@ -144,6 +229,36 @@ func (w memoDeleter) ManifestTimes(ctx context.Context, repo string) (map[v1.Has
 }
 
 func (w memoDeleter) SharesBlobs() bool { return w.inner().SharesBlobs() }
+
+func (w memoDeleter) DeleteManifestIf(ctx context.Context, repo string, dgst v1.Hash, version string) error {
+	v, err := versioned(w.m.Store)
+	if err != nil {
+		return err
+	}
+	w.m.forget("m ", repo, dgst, w.inner().SharesBlobs())
+	err = v.DeleteManifestIf(ctx, repo, dgst, version)
+	w.m.forget("m ", repo, dgst, w.inner().SharesBlobs())
+	return err
+}
+
+func (w memoDeleter) DeleteBlobIf(ctx context.Context, repo string, dgst v1.Hash, version string) error {
+	v, err := versioned(w.m.Store)
+	if err != nil {
+		return err
+	}
+	w.m.forget("b ", repo, dgst, w.inner().SharesBlobs())
+	err = v.DeleteBlobIf(ctx, repo, dgst, version)
+	w.m.forget("b ", repo, dgst, w.inner().SharesBlobs())
+	return err
+}
+
+func (w memoDeleter) ManifestStamps(ctx context.Context, repo string) (map[v1.Hash]Stamp, error) {
+	v, err := versioned(w.m.Store)
+	if err != nil {
+		return nil, err
+	}
+	return v.ManifestStamps(ctx, repo)
+}
 
 // forget drops the memo's item of kind ("m " or "b ") for repo@dgst, or
 // for dgst under every repository when all.
@@ -200,6 +315,34 @@ func (d cachedDeleter) ManifestTimes(ctx context.Context, repo string) (map[v1.H
 }
 
 func (d cachedDeleter) SharesBlobs() bool { return d.inner().SharesBlobs() }
+
+func (d cachedDeleter) DeleteManifestIf(ctx context.Context, repo string, dgst v1.Hash, version string) error {
+	v, err := versioned(d.w.Store)
+	if err != nil {
+		return err
+	}
+	return v.DeleteManifestIf(ctx, repo, dgst, version)
+}
+
+func (d cachedDeleter) DeleteBlobIf(ctx context.Context, repo string, dgst v1.Hash, version string) error {
+	v, err := versioned(d.w.Store)
+	if err != nil {
+		return err
+	}
+	err = v.DeleteBlobIf(ctx, repo, dgst, version)
+	if err == nil {
+		d.w.c.Forget(dgst)
+	}
+	return err
+}
+
+func (d cachedDeleter) ManifestStamps(ctx context.Context, repo string) (map[v1.Hash]Stamp, error) {
+	v, err := versioned(d.w.Store)
+	if err != nil {
+		return nil, err
+	}
+	return v.ManifestStamps(ctx, repo)
+}
 
 // Forget removes the cached copy of blob dgst, if any (after the blob was
 // removed from its store).

@@ -58,7 +58,7 @@ func NewFaulty(s Store, p FaultPlan) Store {
 	if _, ok := s.(Scrubber); ok {
 		sc = faultyScrubber{f}
 	}
-	var dl Deleter
+	var dl wrapDeleter
 	if _, ok := s.(Deleter); ok {
 		dl = faultyDeleter{f}
 	}

@@ -78,7 +78,7 @@ func NewRetry(s Store, o RetryOptions) Store {
 	if _, ok := s.(Scrubber); ok {
 		sc = retryScrubber{r}
 	}
-	var dl Deleter
+	var dl wrapDeleter
 	if _, ok := s.(Deleter); ok {
 		dl = retryDeleter{r}
 	}

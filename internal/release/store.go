@@ -50,7 +50,7 @@ func subjectOf(ctx context.Context, store registry.Store, repo string, d v1.Hash
 // blob, and one PutManifest, whatever the store holds.
 func putArtifact(ctx context.Context, store registry.Store, repo, artifactType string, layers []artifact.Blob, subject v1.Descriptor, ann map[string]string) (v1.Descriptor, error) {
 	for _, b := range append([]artifact.Blob{emptyConfig}, layers...) {
-		if _, err := store.StatBlob(ctx, repo, b.Desc.Digest); err == nil {
+		if _, err := registry.ReuseBlob(ctx, store, repo, b.Desc.Digest); err == nil {
 			continue
 		}
 		if b.Bytes == nil {

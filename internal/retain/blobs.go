@@ -40,7 +40,7 @@ func ListBlobs(ctx context.Context, store registry.Store) ([]StoredBlob, error) 
 		for _, b := range bs {
 			if !seen[b.Digest] {
 				seen[b.Digest] = true
-				out = append(out, StoredBlob{Digest: b.Digest, Size: b.Size, Modified: b.Modified})
+				out = append(out, StoredBlob{Digest: b.Digest, Size: b.Size, Modified: b.Modified, Version: b.Version})
 			}
 		}
 	}

@@ -24,8 +24,10 @@ import (
 )
 
 // clocked is a local store whose manifest times come from a fake clock:
-// each manifest is stamped with the clock's reading when first put, so a
-// test can push over simulated months in seconds.
+// each manifest is stamped with the clock's reading when put, or put again
+// or reused (a refresh, as the store itself does with its file times), so
+// a test can push over simulated months in seconds. Versions stay the
+// store's own: a reuse changes them, whatever the fake clock says.
 type clocked struct {
 	*registry.Local
 	mu        sync.Mutex
@@ -41,20 +43,41 @@ func (c *clocked) PutManifest(ctx context.Context, repo string, mt types.MediaTy
 		if c.times[repo] == nil {
 			c.times[repo] = map[v1.Hash]time.Time{}
 		}
-		if _, ok := c.times[repo][d.Digest]; !ok {
-			c.times[repo][d.Digest] = c.now
-		}
+		c.times[repo][d.Digest] = c.now
 		var m struct {
 			Config v1.Descriptor   `json:"config"`
 			Layers []v1.Descriptor `json:"layers"`
 		}
 		if json.Unmarshal(raw, &m) == nil {
 			for _, b := range append(m.Layers, m.Config) {
-				if _, ok := c.blobTimes[b.Digest]; !ok && b.Digest.Hex != "" {
+				if b.Digest.Hex != "" {
 					c.blobTimes[b.Digest] = c.now
 				}
 			}
 		}
+		c.mu.Unlock()
+	}
+	return d, err
+}
+
+func (c *clocked) RefreshBlob(ctx context.Context, repo string, dgst v1.Hash) (int64, error) {
+	n, err := c.Local.RefreshBlob(ctx, repo, dgst)
+	if err == nil {
+		c.mu.Lock()
+		c.blobTimes[dgst] = c.now
+		c.mu.Unlock()
+	}
+	return n, err
+}
+
+func (c *clocked) RefreshManifest(ctx context.Context, repo string, dgst v1.Hash) (v1.Descriptor, error) {
+	d, err := c.Local.RefreshManifest(ctx, repo, dgst)
+	if err == nil {
+		c.mu.Lock()
+		if c.times[repo] == nil {
+			c.times[repo] = map[v1.Hash]time.Time{}
+		}
+		c.times[repo][dgst] = c.now
 		c.mu.Unlock()
 	}
 	return d, err
@@ -70,8 +93,26 @@ func (c *clocked) ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]t
 	return out, nil
 }
 
-// Blobs stamps each blob with the fake time of the first manifest that
-// referenced it; a blob no manifest did keeps the store's own time.
+// ManifestStamps gives the fake times with the store's versions.
+func (c *clocked) ManifestStamps(ctx context.Context, repo string) (map[v1.Hash]registry.Stamp, error) {
+	ss, err := c.Local.ManifestStamps(ctx, repo)
+	if err != nil {
+		return nil, err
+	}
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	out := map[v1.Hash]registry.Stamp{}
+	for d, t := range c.times[repo] {
+		if st, ok := ss[d]; ok {
+			out[d] = registry.Stamp{Time: t, Version: st.Version}
+		}
+	}
+	return out, nil
+}
+
+// Blobs stamps each blob with the fake time of the last manifest put that
+// referenced it, or of its last reuse; a blob no manifest did keeps the
+// store's own time.
 func (c *clocked) Blobs(ctx context.Context, repo string) ([]registry.BlobInfo, error) {
 	bs, err := c.Local.Blobs(ctx, repo)
 	c.mu.Lock()

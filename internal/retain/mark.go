@@ -104,6 +104,8 @@ type StoredBlob struct {
 	Digest   v1.Hash
 	Size     int64
 	Modified time.Time
+	// Version is the store's version of it (registry.BlobInfo's).
+	Version string
 }
 
 // Tag is a tag the plan removes.
@@ -127,6 +129,10 @@ type Manifest struct {
 	Reason       string `json:"reason"`
 	// Time is when the store wrote it (RFC 3339), "" when unknown.
 	Time string `json:"time,omitempty"`
+
+	// version is the store's version of it when marked: Sweep removes it
+	// only while it is still that version ("": unconditionally).
+	version string
 }
 
 // Blob is a blob the plan removes.
@@ -138,6 +144,9 @@ type Blob struct {
 	Digest     string `json:"digest"`
 	Size       int64  `json:"size"`
 	Reason     string `json:"reason"`
+
+	// version is as Manifest's.
+	version string
 }
 
 // Group totals one reason.
@@ -198,6 +207,32 @@ type key struct {
 	d    v1.Hash
 }
 
+// manifestStamps returns when the store recorded each manifest of repo
+// and, where it keeps them, the versions Sweep's conditional removals
+// need (registry.VersionedDeleter); an empty map when it keeps no times.
+func manifestStamps(ctx context.Context, store registry.Store, repo string) (map[v1.Hash]registry.Stamp, error) {
+	out := map[v1.Hash]registry.Stamp{}
+	if vd, ok := store.(registry.VersionedDeleter); ok {
+		ss, err := vd.ManifestStamps(ctx, repo)
+		if err == nil {
+			return ss, nil
+		}
+		if !errors.Is(err, errors.ErrUnsupported) {
+			return nil, fmt.Errorf("reading when the manifests of %s were written: %w", repo, err)
+		}
+	}
+	if mt, ok := store.(manifestTimer); ok {
+		ts, err := mt.ManifestTimes(ctx, repo)
+		if err != nil && !errors.Is(err, errors.ErrUnsupported) {
+			return nil, fmt.Errorf("reading when the manifests of %s were written: %w", repo, err)
+		}
+		for d, t := range ts {
+			out[d] = registry.Stamp{Time: t}
+		}
+	}
+	return out, nil
+}
+
 func (k key) String() string { return k.repo + "@" + k.d.String() }
 
 // node is one manifest of the store.
@@ -207,6 +242,7 @@ type node struct {
 	m         manifestDoc
 	time      time.Time
 	timeKnown bool
+	version   string // the store's version of it ("" unknown)
 	rule      *policy.RepositoryRetention
 	kept      string // keep reason, "" while not kept
 	eligible  string // eligible reason
@@ -304,15 +340,9 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 		if err != nil {
 			return nil, fmt.Errorf("listing the manifests of %s: %w", repo, err)
 		}
-		times := map[v1.Hash]time.Time{}
-		if mt, ok := store.(manifestTimer); ok {
-			ts, err := mt.ManifestTimes(ctx, repo)
-			if err != nil && !errors.Is(err, errors.ErrUnsupported) {
-				return nil, fmt.Errorf("reading when the manifests of %s were written: %w", repo, err)
-			}
-			if ts != nil {
-				times = ts
-			}
+		times, err := manifestStamps(ctx, store, repo)
+		if err != nil {
+			return nil, err
 		}
 		rule := mk.ret.For(repo)
 		for _, d := range descs {
@@ -470,7 +500,7 @@ var digestPattern = regexp.MustCompile(`sha256:[0-9a-f]{64}`)
 const maxScan = 16 << 20
 
 // read reads repo@d into the graph.
-func (mk *marker) read(ctx context.Context, repo string, d v1.Hash, times map[v1.Hash]time.Time, rule *policy.RepositoryRetention) error {
+func (mk *marker) read(ctx context.Context, repo string, d v1.Hash, times map[v1.Hash]registry.Stamp, rule *policy.RepositoryRetention) error {
 	k := key{repo, d}
 	if mk.nodes[k] != nil {
 		return nil
@@ -488,7 +518,7 @@ func (mk *marker) read(ctx context.Context, repo string, d v1.Hash, times map[v1
 	// and pushed today is new to the store). A store that cannot say
 	// leaves it unknown, and the item is kept.
 	if t, ok := times[d]; ok {
-		n.time, n.timeKnown = t.UTC(), true
+		n.time, n.timeKnown, n.version = t.Time.UTC(), true, t.Version
 	}
 	mk.nodes[k] = n
 	mk.byDigest[d] = append(mk.byDigest[d], n)
@@ -675,6 +705,7 @@ func (mk *marker) fill(plan *Plan) {
 		if n.timeKnown {
 			m.Time = n.time.Format(time.RFC3339)
 		}
+		m.version = n.version
 		plan.Manifests = append(plan.Manifests, m)
 		g := group(n.eligible)
 		g.Manifests++
@@ -702,11 +733,11 @@ func (mk *marker) fill(plan *Plan) {
 				delete(mk.blobInfo, sb.Digest)
 				mk.blobKept[sb.Digest] = KeepBlobYoung
 			case !ofEligible && mk.ret != nil:
-				mk.blobInfo[sb.Digest] = Blob{Repository: mk.anyRepo, Digest: sb.Digest.String(), Size: sb.Size, Reason: ReasonUnreferencedBlob}
+				mk.blobInfo[sb.Digest] = Blob{Repository: mk.anyRepo, Digest: sb.Digest.String(), Size: sb.Size, Reason: ReasonUnreferencedBlob, version: sb.Version}
 			case !ofEligible:
 				mk.blobKept[sb.Digest] = KeepNoRule
 			default:
-				b.Size = sb.Size
+				b.Size, b.version = sb.Size, sb.Version
 				mk.blobInfo[sb.Digest] = b
 			}
 		}

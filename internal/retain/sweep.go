@@ -67,7 +67,10 @@ type SweepOptions struct {
 // or that has a referrer the plan did not list, is left with its blobs;
 // before the blobs go, and again every recheckEvery blobs, every manifest
 // the store holds and the plan had not seen (a push since the mark) is
-// read, and the blobs it references are left too.
+// read, and the blobs it references are left too. On a store that keeps
+// versions (registry.VersionedDeleter: local, GCS) every manifest and blob
+// is removed only while it is the version the mark saw, so one a push
+// reused since the mark (registry.Refresher) stays, listed in Skipped.
 func Sweep(ctx context.Context, store registry.Store, plan *Plan, opts SweepOptions) (*Result, error) {
 	rm, ok := store.(Remover)
 	if !ok {
@@ -126,8 +129,11 @@ func Sweep(ctx context.Context, store registry.Store, plan *Plan, opts SweepOpti
 			step("reclaim-manifest", where)
 			continue
 		}
-		err := rm.DeleteManifest(ctx, m.Repository, d)
+		err := removeManifest(ctx, store, rm, m, d)
 		switch {
+		case errors.Is(err, registry.ErrInUse):
+			res.Skipped = append(res.Skipped, Skip{where, "written or reused since the mark (a push)"})
+			left[k] = true
 		case err == nil:
 			res.Manifests++
 			res.Bytes += m.Size
@@ -167,8 +173,12 @@ func Sweep(ctx context.Context, store registry.Store, plan *Plan, opts SweepOpti
 			step("reclaim-blob", b.Digest)
 			continue
 		}
-		err := rm.DeleteBlob(ctx, b.Repository, d)
+		err := removeBlob(ctx, store, rm, b, d)
 		switch {
+		case errors.Is(err, registry.ErrInUse):
+			res.Skipped = append(res.Skipped, Skip{"blob " + b.Digest, "written or reused since the mark (a push)"})
+			step("reclaim-blob", b.Digest)
+			continue
 		case err == nil:
 			res.Blobs++
 			res.Bytes += b.Size
@@ -195,6 +205,30 @@ func Sweep(ctx context.Context, store registry.Store, plan *Plan, opts SweepOpti
 		return finish(res, groups), errkind.New(errkind.Integrity, "pushed during the collection, %s: push it again", strings.Join(lost, "; "))
 	}
 	return finish(res, groups), nil
+}
+
+// removeManifest removes m, only while it is the version the mark saw
+// when the store keeps versions (registry.VersionedDeleter): a push that
+// reused it since then keeps it (registry.ErrInUse).
+func removeManifest(ctx context.Context, store registry.Store, rm Remover, m Manifest, d v1.Hash) error {
+	if vd, ok := store.(registry.VersionedDeleter); ok && m.version != "" {
+		err := vd.DeleteManifestIf(ctx, m.Repository, d, m.version)
+		if !errors.Is(err, errors.ErrUnsupported) {
+			return err
+		}
+	}
+	return rm.DeleteManifest(ctx, m.Repository, d)
+}
+
+// removeBlob is removeManifest for a blob.
+func removeBlob(ctx context.Context, store registry.Store, rm Remover, b Blob, d v1.Hash) error {
+	if vd, ok := store.(registry.VersionedDeleter); ok && b.version != "" {
+		err := vd.DeleteBlobIf(ctx, b.Repository, d, b.version)
+		if !errors.Is(err, errors.ErrUnsupported) {
+			return err
+		}
+	}
+	return rm.DeleteBlob(ctx, b.Repository, d)
 }
 
 // lostBlobs lists the manifests the plan did not keep that are in the

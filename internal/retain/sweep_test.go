@@ -1,7 +1,9 @@
 package retain
 
 import (
+	"encoding/json"
 	"fmt"
+	"slices"
 	"testing"
 	"time"
 
@@ -162,11 +164,16 @@ func TestThousandCandidates(t *testing.T) {
 	s.check(keep)
 }
 
-// TestPushRacesCollection: in each of six rounds a pusher stores new
-// candidates (their blobs uploaded while the collection marks and
-// sweeps) and pushes again the model prod serves, under new tags, while
-// a collection runs; afterwards every model pushed is whole (every blob
-// present and re-hashing to its digest) and the store verifies.
+// TestPushRacesCollection: in each of six rounds, while a collection
+// runs, a pusher stores a new candidate (its blobs uploaded while the
+// collection marks and sweeps), pushes again exactly the bytes of two old
+// candidates the collection is removing (blobs and manifest found present
+// and reused, or gone and uploaded again, depending on where the sweep
+// is), and pushes again the model prod serves, each under a new tag;
+// afterwards every model pushed is whole (every blob present and
+// re-hashing to its digest) and the store verifies. The exact
+// interleavings are TestRePushDuringSweep's and storetest.ReuseRaces';
+// this test runs whatever the scheduler makes of it.
 func TestPushRacesCollection(t *testing.T) {
 	s := newScene(t, testRetention)
 	s.history(30, 24*time.Hour, 10, 2)
@@ -185,7 +192,13 @@ func TestPushRacesCollection(t *testing.T) {
 			for j := range 4 {
 				i := next + j
 				tag := fmt.Sprintf("race-%d-%d", round, j)
-				if j == 3 {
+				switch j {
+				case 1, 2:
+					// Old candidates of the history, neither tagged nor
+					// released, one pair a round: eligible when the
+					// collection marks.
+					i = [][2]int{{1, 2}, {3, 4}, {5, 6}, {7, 8}, {11, 12}, {13, 14}}[round][j-1]
+				case 3:
 					i = 9 // the first model promoted to prod: its content again
 				}
 				d, err := s.tryPush(i, tag)
@@ -210,5 +223,103 @@ func TestPushRacesCollection(t *testing.T) {
 		}
 		next += 4
 		s.check(keep)
+	}
+}
+
+// TestRePushDuringSweep: a push of exactly the bytes of a model the
+// collection is removing, at an exact point of a sweep (driven by the
+// sweep's progress calls, which come between its removals): while the
+// blobs go, after the sweep's look for manifests pushed since the mark.
+// The model's manifest is gone by then; the push finds its blobs present
+// and uploads nothing but the manifest, and the sweep then comes to
+// remove those blobs.
+//
+// The push reuses, so it refreshes (registry.ReuseBlob), and the sweep's
+// removals are conditional on the versions the mark saw: the model stays
+// whole. Before reuse refreshed and removals were conditional, the
+// model lost its blobs (Sweep failed: "pushed during the collection ...
+// push it again").
+func TestRePushDuringSweep(t *testing.T) {
+	for _, phase := range []string{"blobs"} {
+		t.Run(phase, func(t *testing.T) {
+			s := newScene(t, testRetention)
+			s.history(12, 24*time.Hour, 3, 2)
+			s.store.advance(40 * 24 * time.Hour)
+			keep := s.mustKeep()
+			blobs, err := ListBlobs(s.ctx, s.store)
+			if err != nil {
+				t.Fatal(err)
+			}
+			plan, err := Mark(s.ctx, s.store, s.pol, Options{Now: s.store.clock(), Blobs: blobs})
+			if err != nil {
+				t.Fatal(err)
+			}
+			// The model to push again: an old candidate the plan removes,
+			// not the first manifest (so a removal comes before it) and
+			// with blobs the plan removes, none of them the first.
+			inPlan := map[string]bool{}
+			for _, b := range plan.Blobs {
+				inPlan[b.Digest] = true
+			}
+			cand := -1
+			for k, m := range plan.Manifests {
+				if k == 0 || m.Reason != ReasonOldCandidate || cand >= 0 {
+					continue
+				}
+				i := slices.IndexFunc(s.cands, func(d v1.Hash) bool { return d.String() == m.Digest })
+				d, _ := v1.NewHash(m.Digest)
+				raw, _, err := s.store.Manifest(s.ctx, encRepo, d)
+				if err != nil || i < 0 {
+					continue
+				}
+				var doc manifestDoc
+				if err := json.Unmarshal(raw, &doc); err != nil {
+					t.Fatal(err)
+				}
+				ours, first := 0, false
+				for _, b := range doc.blobs() {
+					if inPlan[b.Digest.String()] {
+						ours++
+					}
+					first = first || b.Digest.String() == plan.Blobs[0].Digest
+				}
+				if ours > 0 && !first {
+					cand = i
+				}
+			}
+			if cand < 0 {
+				t.Fatalf("no candidate to push again in %+v", plan.Groups)
+			}
+			want := s.cands[cand]
+			var pushed v1.Hash
+			var pushErr error
+			pushes := 0
+			progress := func(phaseName, name string, done, total int64) {
+				if phaseName != "reclaim-blob" || pushes > 0 {
+					return
+				}
+				pushes++
+				pushed, pushErr = s.tryPush(cand, "again")
+			}
+			res, err := Sweep(s.ctx, s.store, plan, SweepOptions{Progress: progress})
+			if err != nil {
+				t.Fatalf("sweep: %v", err)
+			}
+			if pushes != 1 || pushErr != nil || pushed != want {
+				t.Fatalf("%d pushes; pushed %s (want the same bytes, %s): %v", pushes, pushed, want, pushErr)
+			}
+			a, err := artifact.ReadArtifact(s.ctx, s.store, registry.Ref{Repository: encRepo, Digest: pushed})
+			if err != nil {
+				t.Fatalf("the model pushed again is gone: %v", err)
+			}
+			if probs, err := artifact.CheckModel(s.ctx, s.store, a); err != nil || len(probs) > 0 {
+				t.Errorf("the model pushed again lost content: %v %v", err, probs)
+			}
+			if len(res.Skipped) == 0 {
+				t.Errorf("nothing skipped: %+v", res)
+			}
+			t.Logf("skipped: %+v", res.Skipped)
+			s.check(keep)
+		})
 	}
 }
