@@ -306,9 +306,15 @@ func (g *GCS) PutBlob(ctx context.Context, repo string, dgst v1.Hash, size int64
 	obj := g.bucket.Object(g.blobKey(dgst))
 	cond := storage.Conditions{DoesNotExist: true}
 	a, err := obj.Attrs(ctx)
+	if err == nil && a.Size == size {
+		// Present: refreshed (Refresher), unless it went meanwhile.
+		_, err = g.refreshBlob(ctx, dgst)
+		if !errors.Is(err, ErrNotFound) {
+			return err
+		}
+		err = storage.ErrObjectNotExist
+	}
 	switch {
-	case err == nil && a.Size == size:
-		return nil
 	case err == nil:
 		cond = storage.Conditions{GenerationMatch: a.Generation} // damaged: replace it
 	case !errors.Is(err, storage.ErrObjectNotExist):
@@ -363,7 +369,17 @@ func (g *GCS) PutManifest(ctx context.Context, repo string, mediaType types.Medi
 	if mf.Subject != nil {
 		meta["subject"] = mf.Subject.Digest.String()
 	}
-	err = g.writeSmall(ctx, g.manifestKey(repo, desc.Digest), raw, string(mt), meta, &storage.Conditions{DoesNotExist: true})
+	// Create-only; a manifest already there is refreshed (Refresher), and
+	// written again when it went between the two.
+	for try := 0; ; try++ {
+		err = g.writeSmall(ctx, g.manifestKey(repo, desc.Digest), raw, string(mt), meta, &storage.Conditions{DoesNotExist: true})
+		if err == nil || !isPrecondition(err) || try > 0 {
+			break
+		}
+		if _, err = g.refreshObject(ctx, g.manifestKey(repo, desc.Digest)); !errors.Is(err, ErrNotFound) {
+			break
+		}
+	}
 	if err != nil && !isPrecondition(err) {
 		return v1.Descriptor{}, fmt.Errorf("putting manifest %s into %s: %w", desc.Digest, repo, gcsErr(err))
 	}
@@ -385,7 +401,9 @@ func (g *GCS) PutManifest(ctx context.Context, repo string, mediaType types.Medi
 
 // checkReferences applies checkRefs with the bucket's lookups.
 func (g *GCS) checkReferences(ctx context.Context, repo string, mt types.MediaType, mf manifestFields) error {
-	return checkRefs(mt, mf, func(d v1.Hash) (int64, error) { return g.StatBlob(ctx, repo, d) }, func(d v1.Hash) error {
+	// Each blob is refreshed (Refresher): a manifest is never put naming a
+	// blob a collection is removing, however its writer checked for it.
+	return checkRefs(mt, mf, func(d v1.Hash) (int64, error) { return g.refreshBlob(ctx, d) }, func(d v1.Hash) error {
 		_, err := g.bucket.Object(g.manifestKey(repo, d)).Attrs(ctx)
 		if errors.Is(err, storage.ErrObjectNotExist) {
 			return notFound("manifest %s", d)

@@ -30,7 +30,13 @@ func (g *GCS) SharesBlobs() bool { return true }
 // deleteObject deletes key if its generation is gen. A missing object is
 // fine; another generation is a conflict.
 func (g *GCS) deleteObject(ctx context.Context, key string, gen int64) error {
-	err := g.bucket.Object(key).If(storage.Conditions{GenerationMatch: gen}).Delete(ctx)
+	return g.deleteObjectIf(ctx, key, storage.Conditions{GenerationMatch: gen})
+}
+
+// deleteObjectIf deletes key under cond. A missing object is fine; a
+// failed precondition is a conflict.
+func (g *GCS) deleteObjectIf(ctx context.Context, key string, cond storage.Conditions) error {
+	err := g.bucket.Object(key).If(cond).Delete(ctx)
 	switch {
 	case err == nil, errors.Is(err, storage.ErrObjectNotExist):
 		return nil
@@ -105,13 +111,15 @@ func (g *GCS) DeleteManifest(ctx context.Context, repo string, dgst v1.Hash) err
 	if err := checkDigest(dgst); err != nil {
 		return err
 	}
-	if err := g.deleteManifest(ctx, repo, dgst); err != nil {
+	if err := g.deleteManifest(ctx, repo, dgst, nil); err != nil {
 		return fmt.Errorf("removing manifest %s from %s: %w", dgst, repo, err)
 	}
 	return nil
 }
 
-func (g *GCS) deleteManifest(ctx context.Context, repo string, dgst v1.Hash) error {
+// deleteManifest removes manifest dgst of repo; when version is not nil,
+// only while the manifest object has that version (gcs_refresh.go).
+func (g *GCS) deleteManifest(ctx context.Context, repo string, dgst v1.Hash, version *string) error {
 	key := g.manifestKey(repo, dgst)
 	a, err := g.bucket.Object(key).Attrs(ctx)
 	if errors.Is(err, storage.ErrObjectNotExist) {
@@ -119,6 +127,9 @@ func (g *GCS) deleteManifest(ctx context.Context, repo string, dgst v1.Hash) err
 	}
 	if err != nil {
 		return gcsErr(err)
+	}
+	if version != nil && gcsVersion(a) != *version {
+		return inUseError(fmt.Sprintf("manifest %s of %s", dgst, repo))
 	}
 	if at := a.Metadata["artifactType"]; IsReleaseLogType(at) {
 		return releaseLogError(repo, dgst, at)
@@ -130,23 +141,49 @@ func (g *GCS) deleteManifest(ctx context.Context, repo string, dgst v1.Hash) err
 	if len(tags) > 0 {
 		return taggedError(repo, dgst, tags)
 	}
+	// The referrer link goes first (a link never names a missing
+	// manifest); when the manifest then stays (reused meanwhile), the link
+	// is written back.
+	var link string
+	var linkBytes []byte
 	if s := a.Metadata["subject"]; s != "" {
 		if subject, err := v1.NewHash(s); err == nil && checkDigest(subject) == nil {
-			link := g.referrersKey(repo, subject) + dgst.Hex
-			la, err := g.bucket.Object(link).Attrs(ctx)
+			link = g.referrersKey(repo, subject) + dgst.Hex
+			b, la, err := g.readSmall(ctx, link, maxLinkSize)
 			switch {
-			case errors.Is(err, storage.ErrObjectNotExist):
+			case errors.Is(err, ErrNotFound):
+				link = ""
 			case err != nil:
-				return gcsErr(err)
+				return err
 			default:
+				linkBytes = b
 				if err := g.deleteObject(ctx, link, la.Generation); err != nil {
 					return err
 				}
 			}
 		}
 	}
-	return g.deleteObject(ctx, key, a.Generation)
+	cond := storage.Conditions{GenerationMatch: a.Generation}
+	if version != nil {
+		cond.MetagenerationMatch = a.Metageneration
+	}
+	err = g.deleteObjectIf(ctx, key, cond)
+	if errors.Is(err, ErrConflict) {
+		if link != "" {
+			if werr := g.writeSmall(ctx, link, linkBytes, "application/json", nil, &storage.Conditions{DoesNotExist: true}); werr != nil && !isPrecondition(werr) {
+				return errors.Join(err, fmt.Errorf("writing back the referrer link of %s: %w", dgst, gcsErr(werr)))
+			}
+		}
+		if version != nil {
+			return inUseError(fmt.Sprintf("manifest %s of %s", dgst, repo))
+		}
+	}
+	return err
 }
+
+// maxLinkSize bounds a referrer link read back before its removal (a
+// descriptor with the manifest's annotations).
+const maxLinkSize = MaxManifestSize
 
 // DeleteBlob removes blob dgst (shared by every repository) with the
 // generation it has now: a blob rewritten meanwhile (ErrConflict) stays.
@@ -157,6 +194,12 @@ func (g *GCS) DeleteBlob(ctx context.Context, repo string, dgst v1.Hash) error {
 	if err := checkDigest(dgst); err != nil {
 		return err
 	}
+	return g.deleteBlob(ctx, dgst, nil)
+}
+
+// deleteBlob removes blob dgst; when version is not nil, only while the
+// object has that version (gcs_refresh.go).
+func (g *GCS) deleteBlob(ctx context.Context, dgst v1.Hash, version *string) error {
 	key := g.blobKey(dgst)
 	a, err := g.bucket.Object(key).Attrs(ctx)
 	if errors.Is(err, storage.ErrObjectNotExist) {
@@ -165,7 +208,17 @@ func (g *GCS) DeleteBlob(ctx context.Context, repo string, dgst v1.Hash) error {
 	if err != nil {
 		return fmt.Errorf("removing blob %s: %w", dgst, gcsErr(err))
 	}
-	if err := g.deleteObject(ctx, key, a.Generation); err != nil {
+	cond := storage.Conditions{GenerationMatch: a.Generation}
+	if version != nil {
+		if gcsVersion(a) != *version {
+			return inUseError("blob " + dgst.String())
+		}
+		cond.MetagenerationMatch = a.Metageneration
+	}
+	if err := g.deleteObjectIf(ctx, key, cond); err != nil {
+		if version != nil && errors.Is(err, ErrConflict) {
+			return inUseError("blob " + dgst.String())
+		}
 		return fmt.Errorf("removing blob %s: %w", dgst, err)
 	}
 	return nil
@@ -181,7 +234,7 @@ func (g *GCS) Blobs(ctx context.Context, repo string) ([]BlobInfo, error) {
 	out := []BlobInfo{}
 	err := g.eachObject(ctx, prefix, "listing blobs", func(a *storage.ObjectAttrs) error {
 		if h := strings.TrimPrefix(a.Name, prefix); hexPattern.MatchString(h) {
-			out = append(out, BlobInfo{Digest: v1.Hash{Algorithm: "sha256", Hex: h}, Size: a.Size, Modified: a.Updated})
+			out = append(out, BlobInfo{Digest: v1.Hash{Algorithm: "sha256", Hex: h}, Size: a.Size, Modified: gcsTime(a), Version: gcsVersion(a)})
 		}
 		return nil
 	})
@@ -192,7 +245,8 @@ func (g *GCS) Blobs(ctx context.Context, repo string) ([]BlobInfo, error) {
 	return out, nil
 }
 
-// ManifestTimes returns when each manifest object of repo was created.
+// ManifestTimes returns when each manifest object of repo was created or
+// last reused (gcsTime).
 func (g *GCS) ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]time.Time, error) {
 	if err := ValidateRepository(repo); err != nil {
 		return nil, err
@@ -201,7 +255,7 @@ func (g *GCS) ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]time.
 	out := map[v1.Hash]time.Time{}
 	err := g.eachObject(ctx, prefix, "listing manifests of "+repo, func(a *storage.ObjectAttrs) error {
 		if h := strings.TrimPrefix(a.Name, prefix); hexPattern.MatchString(h) {
-			out[v1.Hash{Algorithm: "sha256", Hex: h}] = a.Created
+			out[v1.Hash{Algorithm: "sha256", Hex: h}] = gcsTime(a)
 		}
 		return nil
 	})
