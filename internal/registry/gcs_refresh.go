@@ -59,8 +59,13 @@ func gcsTime(a *storage.ObjectAttrs) time.Time {
 }
 
 // refreshObject refreshes key: ErrNotFound when there is no such object.
+// A refresh is safe to repeat (a second one only moves the version
+// again), so the client library retries it on transient failures as it
+// does reads, although an update without preconditions is not one it
+// retries by default.
 func (g *GCS) refreshObject(ctx context.Context, key string) (*storage.ObjectAttrs, error) {
-	a, err := g.bucket.Object(key).Update(ctx, storage.ObjectAttrsToUpdate{
+	obj := g.bucket.Object(key).Retryer(storage.WithPolicy(storage.RetryAlways))
+	a, err := obj.Update(ctx, storage.ObjectAttrsToUpdate{
 		Metadata: map[string]string{refreshedKey: time.Now().UTC().Format(time.RFC3339Nano)},
 	})
 	if err != nil {
