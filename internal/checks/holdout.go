@@ -982,18 +982,33 @@ func reconstruct(r *model.Runner, m *score.Model, b *model.Batch, q, t []float32
 	}
 	t = t[:rows*width]
 	clear(t)
-	in := m.Loaded.Spec.Inputs.Sparse[0]
-	for i := 0; i < rows; i++ {
-		merged := map[int32]float64{}
+	reconTargets(b, m.Loaded.Spec.Inputs.Sparse[0], width, t)
+	return q, t, nil
+}
+
+// reconTargets writes each row's reconstruction targets into t (rows ×
+// width, zeroed): the row's values merged by index in file order, in
+// float64 (the first value of an index is 0 + v, a later one is added to
+// it or, under "max", kept when larger, except at the unknown bucket),
+// then the transform, capped at 1.
+func reconTargets(b *model.Batch, in model.SparseInput, width int, t []float32) {
+	merged, seen := make([]reconValue, max(width, in.Rows())), make([]int32, 0, 64)
+	for i := 0; i < b.Rows(); i++ {
+		idxs := seen[:0]
 		for p := b.Indptr[i]; p < b.Indptr[i+1]; p++ {
 			idx, v := b.Indices[p], float64(b.Values[p])
-			if old, ok := merged[idx]; ok && in.Duplicates == model.DuplicatesMax && idx != int32(in.VocabularySize) {
-				merged[idx] = math.Max(old, v)
+			if old := merged[idx]; old.seen && in.Duplicates == model.DuplicatesMax && idx != int32(in.VocabularySize) {
+				merged[idx].v = math.Max(old.v, v)
 			} else {
-				merged[idx] = old + v
+				if !old.seen {
+					idxs = append(idxs, idx)
+				}
+				merged[idx] = reconValue{old.v + v, true}
 			}
 		}
-		for idx, v := range merged {
+		for _, idx := range idxs {
+			v := merged[idx].v
+			merged[idx] = reconValue{}
 			switch in.Transform {
 			case model.TransformLog1p:
 				v = math.Log1p(v)
@@ -1004,8 +1019,15 @@ func reconstruct(r *model.Runner, m *score.Model, b *model.Batch, q, t []float32
 			}
 			t[i*width+int(idx)] = float32(math.Min(v, 1))
 		}
+		seen = idxs
 	}
-	return q, t, nil
+}
+
+// reconValue is an index's merged value in a row, while reconstruct
+// merges it.
+type reconValue struct {
+	v    float64
+	seen bool
 }
 
 // example records one encoder row's reconstruction at its nonzeros.
