@@ -552,8 +552,8 @@ func replicateSumsGo(keys []uint64, wv, wdv, acc []float64, reps int) {
 		var sw, swd float64
 		for i, key := range keys {
 			k := float64(int64(poisson1(wymix(key+step) & 0xffffffff)))
-			sw += wv[i] * k
-			swd += wdv[i] * k
+			sw += float64(wv[i] * k) // rounded product: no fused multiply-add
+			swd += float64(wdv[i] * k)
 		}
 		acc[2*r], acc[2*r+1] = sw, swd
 	}
@@ -584,10 +584,14 @@ func replicatePairs(keys []uint64, wv, wdv, acc []float64, from, to int) {
 				}
 			}
 			f0, f1 := float64(int64(k0)), float64(int64(k1))
-			sw0 += wv[i] * f0
-			swd0 += wdv[i] * f0
-			sw1 += wv[i] * f1
-			swd1 += wdv[i] * f1
+			// The conversions round each product (the Go spec's rule):
+			// a build for GOAMD64=v3 would otherwise fuse the multiply
+			// and add, and its sums would differ from other builds' and
+			// from the kernel's.
+			sw0 += float64(wv[i] * f0)
+			swd0 += float64(wdv[i] * f0)
+			sw1 += float64(wv[i] * f1)
+			swd1 += float64(wdv[i] * f1)
 		}
 		q := acc[2*r : 2*r+4 : 2*r+4]
 		q[0], q[1], q[2], q[3] = sw0, swd0, sw1, swd1
