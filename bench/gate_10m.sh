@@ -8,6 +8,8 @@
 # copy in the store and the gate's local copy take about 3 x 600 MB of disk
 # in a temporary directory, removed at the end.
 # Usage: bench/gate_10m.sh [ROWS] [LIMIT_MB]
+# With GATE_PROFILE=FILE the gate also writes a CPU profile there (--cpuprofile)
+# and the script prints the profile's top functions (go tool pprof -top).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 ROWS=${1:-10000000}
@@ -32,7 +34,9 @@ rm "$tmp/gate.parquet"
 
 echo "gate, $ROWS rows: $(load)"
 code=0
-/usr/bin/time -v "$tmp/modelgate" -q gate --json promo-scorer:cand-better --to promo-scorer:prod \
+prof=()
+[ -n "${GATE_PROFILE:-}" ] && prof=(--cpuprofile "$GATE_PROFILE")
+/usr/bin/time -v "$tmp/modelgate" "${prof[@]}" -q gate --json promo-scorer:cand-better --to promo-scorer:prod \
   --holdout promo-holdout:big --no-push \
   >"$tmp/report.json" 2>"$tmp/time.txt" || code=$?
 echo "after: $(load)"
@@ -53,6 +57,9 @@ for c in r["checks"]:
     extra = ", phases (s): " + ", ".join("%s %.2f" % kv for kv in phases.items()) if phases else ""
     print("  %-9s %7.2fs%s" % (c["name"], c["seconds"], extra))
 EOF
+if [ -n "${GATE_PROFILE:-}" ]; then
+  go tool pprof -top -nodecount=12 "$tmp/modelgate" "$GATE_PROFILE" 2>/dev/null | sed -n 1,20p
+fi
 if (( rss_kb > LIMIT_MB * 1024 )); then
   echo "peak RSS $(( rss_kb / 1024 )) MB is over the $LIMIT_MB MB limit" >&2
   exit 1
