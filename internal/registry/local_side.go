@@ -166,6 +166,16 @@ func (l *Local) writeEntry(repo string, entry v1.Descriptor, durable bool) (bool
 		if _, err := l.writeFileAtomic(p, data, durable, false); err != nil {
 			return wrote, fmt.Errorf("recording manifest %s in %s: %w", entry.Digest, repo, err)
 		}
+		// A new file's time comes from the kernel's clock, which lags
+		// time.Now (what a refresh writes, e.g. on the manifest blob this
+		// writer just reused) by up to a clock tick: stamped with
+		// time.Now too, the record is never older than the blob refresh
+		// that came before it, which removing the manifest relies on
+		// (deleteManifest keeps a blob refreshed after its record). A
+		// record moved aside meanwhile is the removal's to judge.
+		if _, _, err := refreshFile(p); err != nil {
+			return wrote, fmt.Errorf("recording manifest %s in %s: %w", entry.Digest, repo, err)
+		}
 		wrote = true
 	}
 	return wrote, nil
