@@ -492,42 +492,13 @@ func readDirNames(dir string) ([]string, error) {
 // file's modification time (side files are written once), or for a
 // manifest recorded only in index.json, its blob's.
 func (l *Local) ManifestTimes(ctx context.Context, repo string) (map[v1.Hash]time.Time, error) {
-	if err := ValidateRepository(repo); err != nil {
-		return nil, err
-	}
-	if err := ctx.Err(); err != nil {
-		return nil, err
-	}
-	out := map[v1.Hash]time.Time{}
-	dir := l.manifestsPath(repo)
-	names, err := readDirNames(dir)
+	stamps, err := l.ManifestStamps(ctx, repo)
 	if err != nil {
 		return nil, err
 	}
-	for _, n := range names {
-		if !isDigestHex(n) {
-			continue
-		}
-		fi, err := os.Lstat(filepath.Join(dir, n))
-		if errors.Is(err, fs.ErrNotExist) {
-			continue
-		}
-		if err != nil {
-			return nil, fmt.Errorf("listing manifests of %s: %w", repo, err)
-		}
-		out[v1.Hash{Algorithm: "sha256", Hex: n}] = fi.ModTime()
-	}
-	idx, err := l.readIndex()
-	if err != nil {
-		return nil, err
-	}
-	for _, d := range idx.Manifests {
-		if _, ok := out[d.Digest]; ok || d.Annotations[annotationRepository] != repo || checkDigest(d.Digest) != nil {
-			continue
-		}
-		if fi, err := os.Lstat(l.blobPath(d.Digest)); err == nil {
-			out[d.Digest] = fi.ModTime()
-		}
+	out := make(map[v1.Hash]time.Time, len(stamps))
+	for d, s := range stamps {
+		out[d] = s.Time
 	}
 	return out, nil
 }
