@@ -9,6 +9,7 @@ import (
 	"path/filepath"
 	"testing"
 
+	"github.com/modelgate/modelgate/internal/cputime"
 	"github.com/modelgate/modelgate/internal/demo/listening"
 	"github.com/modelgate/modelgate/internal/model"
 )
@@ -36,8 +37,8 @@ func readBench(b *testing.B, path string, opts Options, rows, batch int) {
 	var f Frame
 	b.ReportAllocs()
 	b.ResetTimer()
-	proc0 := processCPU()
-	stop := threadCPU()
+	proc0 := cputime.Process()
+	stop := cputime.Thread()
 	for b.Loop() {
 		r, err := Open(path, opts)
 		if err != nil {
@@ -60,7 +61,7 @@ func readBench(b *testing.B, path string, opts Options, rows, batch int) {
 		}
 	}
 	cpu := stop().Seconds()
-	proc := (processCPU() - proc0).Seconds()
+	proc := (cputime.Process() - proc0).Seconds()
 	b.ReportMetric(float64(rows)*float64(b.N)/b.Elapsed().Seconds(), "rows/s")
 	// By the thread's CPU time: steadier than wall time on a shared
 	// machine (the reader runs on the calling goroutine).

@@ -8,6 +8,7 @@ import (
 	"testing"
 	"unicode/utf8"
 
+	"github.com/modelgate/modelgate/internal/cputime"
 	"github.com/modelgate/modelgate/internal/errkind"
 	"github.com/modelgate/modelgate/internal/model"
 )
@@ -211,7 +212,7 @@ func BenchmarkVocabularyLookup(b *testing.B) {
 	}
 	b.Run("table", func(b *testing.B) {
 		var sum int32
-		stop := threadCPU()
+		stop := cputime.Thread()
 		for i := 0; b.Loop(); i++ {
 			r, _ := v.index.lookup(v.ids, probes[i&(len(probes)-1)])
 			sum += r
@@ -221,7 +222,7 @@ func BenchmarkVocabularyLookup(b *testing.B) {
 	})
 	b.Run("map", func(b *testing.B) {
 		var sum int32
-		stop := threadCPU()
+		stop := cputime.Thread()
 		for i := 0; b.Loop(); i++ {
 			r := m[string(probes[i&(len(probes)-1)])]
 			sum += r

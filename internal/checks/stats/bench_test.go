@@ -5,6 +5,8 @@ import (
 	"runtime"
 	"testing"
 	"time"
+
+	"github.com/modelgate/modelgate/internal/cputime"
 )
 
 const benchRows = 1_000_000
@@ -12,7 +14,7 @@ const benchRows = 1_000_000
 func benchScored() scoredRows { return makeScored(1, benchRows) }
 
 // reportRows reports rows/s by wall time and by the thread's CPU time
-// (cpu is what threadCPU measured over the b.Loop): the machine is shared,
+// (cpu is what cputime.Thread measured over the b.Loop): the machine is shared,
 // so wall time includes other processes' turns.
 func reportRows(b *testing.B, rows int, cpu time.Duration) {
 	b.ReportMetric(float64(rows)*float64(b.N)/b.Elapsed().Seconds(), "rows/s")
@@ -34,7 +36,7 @@ func BenchmarkBinaryAddBatch(b *testing.B) {
 		b.Run(c.name, func(b *testing.B) {
 			acc := NewBinary()
 			b.ReportAllocs()
-			stop := threadCPU()
+			stop := cputime.Thread()
 			for b.Loop() {
 				for s := 0; s < benchRows; s += 4096 {
 					e := min(s+4096, benchRows)
@@ -57,7 +59,7 @@ func BenchmarkBinaryAddBatchMany(b *testing.B) {
 	for i := range accs {
 		accs[i] = NewBinary()
 	}
-	stop := threadCPU()
+	stop := cputime.Thread()
 	for b.Loop() {
 		for s := 0; s < benchRows; s += 4096 {
 			e := min(s+4096, benchRows)
@@ -80,7 +82,7 @@ func BenchmarkPairedAddBatch(b *testing.B) {
 		b.Run(fmt.Sprintf("R=%d", reps), func(b *testing.B) {
 			acc, _ := NewPaired(1, reps)
 			b.ReportAllocs()
-			stop := threadCPU()
+			stop := cputime.Thread()
 			for b.Loop() {
 				for s := 0; s < benchRows; s += 4096 {
 					e := min(s+4096, benchRows)
@@ -115,7 +117,7 @@ func BenchmarkRecon(b *testing.B) {
 	loss := make([]float64, rows)
 	acc, _ := NewRecon(0.5, nil)
 	b.ReportAllocs()
-	stop := threadCPU()
+	stop := cputime.Thread()
 	for b.Loop() {
 		if err := acc.AddBatch(q, tg, width, loss); err != nil {
 			b.Fatal(err)
@@ -145,7 +147,7 @@ func BenchmarkReplicateSums(b *testing.B) {
 	}{{"go", replicateSumsGo}, {"dispatch", replicateSums}} {
 		b.Run(c.name, func(b *testing.B) {
 			defer runtime.GOMAXPROCS(runtime.GOMAXPROCS(1))
-			stop := threadCPU()
+			stop := cputime.Thread()
 			for b.Loop() {
 				c.f(keys, wv, wdv, acc, reps)
 			}
@@ -169,7 +171,7 @@ func BenchmarkBinaryAddBatchWithLoss(b *testing.B) {
 	if err := NewBinary().AddBatchLoss(r.cand, r.y, r.w, loss); err != nil {
 		b.Fatal(err)
 	}
-	stop := threadCPU()
+	stop := cputime.Thread()
 	for b.Loop() {
 		for s := 0; s < benchRows; s += 4096 {
 			e := min(s+4096, benchRows)
@@ -211,7 +213,7 @@ func BenchmarkGateStatistics(b *testing.B) {
 			for i := range accs {
 				accs[i] = NewBinary()
 			}
-			stop := threadCPU()
+			stop := cputime.Thread()
 			for b.Loop() {
 				for s := 0; s < benchRows; s += 4096 {
 					e := min(s+4096, benchRows)
