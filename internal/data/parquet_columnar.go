@@ -292,15 +292,8 @@ func (p *parquetReader) fastList(c *column, r0, k int) int {
 		return 0
 	}
 	c0 := len(s.cnt)
-	end := lp
-	for r := r0; r < k; r++ {
-		e := nextZero(rep, end+1)
-		if e == len(rep) {
-			break // the row may go on in the next page
-		}
-		s.cnt = append(s.cnt, int32(e-end))
-		end = e
-	}
+	var end int
+	s.cnt, end = rowLengths(rep, lp, k-r0, s.cnt)
 	cnt := s.cnt[c0:]
 	levels, vals := end-lp, end-lp
 	if !allEqual(def[lp:end], md) {
@@ -366,7 +359,16 @@ func (p *parquetReader) listValues(c *column, pg *colPage, dp, m int) int {
 	}
 	dropped := false
 	j := dp
-	for ; j < dp+m; j++ {
+	for j < dp+m {
+		if c.kind == parquet.ByteArray {
+			// Known ids in one loop; an unknown, empty or long one
+			// goes the general way below.
+			var got int
+			s.ix, got = p.l.vocab.index.lookupRun(p.l.vocab.ids, pg.ba, pg.off[j:dp+m+1], s.ix)
+			if j += got; j == dp+m {
+				break
+			}
+		}
 		ix, keep, ok := p.mapItem(c, pg, j)
 		if !ok {
 			break
@@ -375,6 +377,7 @@ func (p *parquetReader) listValues(c *column, pg *colPage, dp, m int) int {
 			ix, dropped = -1, true
 		}
 		s.ix = append(s.ix, ix)
+		j++
 	}
 	// A dropped id of a row given back sets dropped too: appendRun then
 	// only takes the slower way.
@@ -436,23 +439,35 @@ func (p *parquetReader) mapItem(c *column, pg *colPage, k int) (ix int32, keep, 
 	return ix, keep, err == nil
 }
 
-// nextZero returns the index of the first zero byte of b at or after i,
-// or len(b), looking at a word of bytes at a time.
-func nextZero(b []byte, i int) int {
-	const ones, highs = 0x0101010101010101, 0x8080808080808080
-	for ; i+8 <= len(b); i += 8 {
-		v := binary.LittleEndian.Uint64(b[i:])
-		// The lowest high bit set marks the first zero byte exactly.
-		if z := (v - ones) &^ v & highs; z != 0 {
-			return i + bits.TrailingZeros64(z)>>3
+// rowLengths appends to cnt the number of levels of each of up to k rows,
+// the first starting at rep[start] (a zero repetition level), each ending
+// where the next zero begins; a row that runs to the end of rep is not
+// counted (it may go on in the next page). It returns cnt and the start of
+// the first row not counted. It finds the zeros a word of levels at a time.
+func rowLengths(rep []byte, start, k int, cnt []int32) ([]int32, int) {
+	const lows = 0x7f7f7f7f7f7f7f7f
+	end, i := start, start+1
+	for ; k > 0 && i+8 <= len(rep); i += 8 {
+		v := binary.LittleEndian.Uint64(rep[i:])
+		// The high bit of each zero byte, exactly: (v&lows)+lows carries
+		// into a byte's high bit unless its low bits are zero, and never
+		// into the next byte.
+		z := ^((v&lows + lows) | v | lows)
+		for ; z != 0 && k > 0; z &= z - 1 {
+			e := i + bits.TrailingZeros64(z)>>3
+			cnt = append(cnt, int32(e-end))
+			end = e
+			k--
 		}
 	}
-	for ; i < len(b); i++ {
-		if b[i] == 0 {
-			return i
+	for ; k > 0 && i < len(rep); i++ {
+		if rep[i] == 0 {
+			cnt = append(cnt, int32(i-end))
+			end = i
+			k--
 		}
 	}
-	return len(b)
+	return cnt, end
 }
 
 // countEqual returns how many bytes of b are x, a word at a time.

@@ -8,6 +8,7 @@ import (
 	"math/rand/v2"
 	"os"
 	"path/filepath"
+	"slices"
 	"testing"
 
 	"github.com/google/go-cmp/cmp"
@@ -423,13 +424,25 @@ func TestLevelWords(t *testing.T) {
 					t.Fatalf("allEqual(%v, %d) = %v, want %v", b, x, got, all)
 				}
 			}
-			for i := 0; i <= n; i++ {
-				want := i
-				for want < n && b[want] != 0 {
-					want++
+			// rowLengths from every zero, for every count of rows,
+			// against a byte loop.
+			for start := 0; start < n; start++ {
+				if b[start] != 0 {
+					continue
 				}
-				if got := nextZero(b, i); got != want {
-					t.Fatalf("nextZero(%v, %d) = %d, want %d", b, i, got, want)
+				for k := 0; k <= n; k++ {
+					var want []int32
+					end := start
+					for i := start + 1; i < n && len(want) < k; i++ {
+						if b[i] == 0 {
+							want = append(want, int32(i-end))
+							end = i
+						}
+					}
+					got, gotEnd := rowLengths(b, start, k, nil)
+					if !slices.Equal(got, want) || gotEnd != end {
+						t.Fatalf("rowLengths(%v, %d, %d) = %v, %d; want %v, %d", b, start, k, got, gotEnd, want, end)
+					}
 				}
 			}
 		}

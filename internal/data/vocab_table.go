@@ -109,3 +109,52 @@ func (t *idTable) place(ids []string, row int32) {
 	}
 	t.slots[i] = idSlot{w0: w0, w1: w1, len: uint32(len(id)), row: row + 1}
 }
+
+// lookupRun appends to dst the rows of the ids ba[off[j]:off[j+1]], j = 0,
+// 1, ..., len(off)-2, in turn, up to the first id that is empty or not in
+// the table; it returns dst and how many ids it found. It is lookup over a
+// page's run of byte-array values with the key computed in the loop.
+func (t *idTable) lookupRun(ids []string, ba []byte, off []uint32, dst []int32) ([]int32, int) {
+	slots, mask, k0, k1 := t.slots, t.mask, t.k0, t.k1
+	if len(off) < 2 {
+		return dst, 0
+	}
+	m := len(off) - 1
+	for j := range m {
+		a, b := off[j], off[j+1]
+		if a >= b || int(b) > len(ba) {
+			return dst, j
+		}
+		id := ba[a:b]
+		n := len(id)
+		var w0, w1, h uint64
+		switch {
+		case n > 16:
+			return dst, j // rare: the general lookup
+		case n == 16:
+			w0, w1 = binary.LittleEndian.Uint64(id), binary.LittleEndian.Uint64(id[8:])
+		case n >= 8:
+			w0 = binary.LittleEndian.Uint64(id)
+			w1 = binary.LittleEndian.Uint64(id[n-8:]) >> (8 * (16 - n))
+		case n >= 4:
+			w0 = uint64(binary.LittleEndian.Uint32(id)) | uint64(binary.LittleEndian.Uint32(id[n-4:]))<<(8*(n-4))
+		default:
+			for i, c := range id {
+				w0 |= uint64(c) << (8 * i)
+			}
+		}
+		hi, lo := bits.Mul64(w0^k0, w1^k1^uint64(n))
+		h = hi ^ lo
+		for i := h & mask; ; i = (i + 1) & mask {
+			s := &slots[i]
+			if s.row == 0 {
+				return dst, j
+			}
+			if s.w0 == w0 && s.w1 == w1 && s.len == uint32(n) {
+				dst = append(dst, s.row-1)
+				break
+			}
+		}
+	}
+	return dst, m
+}

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"fmt"
 	"math/rand/v2"
+	"slices"
 	"strings"
 	"testing"
 	"unicode/utf8"
@@ -263,6 +264,70 @@ func TestIDTableKeyWords(t *testing.T) {
 			if _, _, h2 := tab.key(append([]byte(nil), id...)); h2 != h {
 				t.Fatalf("%x: hash differs between two copies", id)
 			}
+		}
+	}
+}
+
+// TestLookupRunAgreesWithLookup: lookupRun over a page's run of ids finds
+// the rows lookup finds, in order, and stops at the first id that is
+// empty, longer than 16 bytes or unknown (which the reader then maps the
+// general way), on random runs of ids of every length up to 24.
+func TestLookupRunAgreesWithLookup(t *testing.T) {
+	rng := rand.New(rand.NewPCG(7, 8))
+	const letters = "abcdefghijklmnopqrstuvwxyz0123456789-_"
+	word := func(n int) string {
+		b := make([]byte, n)
+		for i := range b {
+			b[i] = letters[rng.IntN(len(letters))]
+		}
+		return string(b)
+	}
+	ids := episodeIDs(2000)
+	seen := map[string]bool{}
+	for _, id := range ids {
+		seen[id] = true
+	}
+	for n := 1; n <= 24; n++ {
+		for range 20 {
+			if w := word(n); !seen[w] {
+				seen[w] = true
+				ids = append(ids, w)
+			}
+		}
+	}
+	v := testVocab(t, model.UnknownBucket, ids...)
+	for range 2000 {
+		var ba []byte
+		off := []uint32{0}
+		for range rng.IntN(12) {
+			var id string
+			switch x := rng.IntN(40); {
+			case x == 0:
+				id = "" // empty
+			case x < 4:
+				id = word(1 + rng.IntN(24)) // most likely unknown
+			default:
+				id = ids[rng.IntN(len(ids))]
+			}
+			ba = append(ba, id...)
+			off = append(off, uint32(len(ba)))
+		}
+		// The run starts after a prefix of the page, as in a page read
+		// from its middle.
+		skip := rng.IntN(len(off))
+		var want []int32
+		for j := skip; j+1 < len(off); j++ {
+			id := ba[off[j]:off[j+1]]
+			r, ok := v.index.lookup(v.ids, id)
+			if len(id) == 0 || len(id) > 16 || !ok {
+				break
+			}
+			want = append(want, r)
+		}
+		dst := []int32{-7}
+		got, n := v.index.lookupRun(v.ids, ba[:len(ba):len(ba)], off[skip:], dst)
+		if n != len(want) || !slices.Equal(got, append([]int32{-7}, want...)) {
+			t.Fatalf("page %q offsets %v from %d: lookupRun %v (%d), lookup %v", ba, off, skip, got, n, want)
 		}
 	}
 }
