@@ -101,45 +101,60 @@ func addBinaryKnown[T Float](b *Binary, p, y, w []T, loss []float64, known bool)
 		hi := min(lo+chunk, len(p))
 		var sw, swy, swl, swp float64
 		var cal [CalibrationBins][3]float64
-		for i := lo; i < hi; i++ {
-			pf, yf := float64(p[i]), float64(y[i])
+		// The chunk's rows as slices of one length, so that indexing them
+		// by i needs no bounds check in the loop.
+		pc := p[lo:hi]
+		yc := y[lo:hi][:len(pc)]
+		hx, hv := hidx[:len(pc)], hval[:len(pc)]
+		var wc []T
+		if w != nil {
+			wc = w[lo:hi][:len(pc)]
+		}
+		var lc []float64
+		if loss != nil {
+			lc = loss[lo:hi][:len(pc)]
+		}
+		for i := range pc {
+			pf, yf := float64(pc[i]), float64(yc[i])
 			wf := 1.0
-			if w != nil {
-				wf = float64(w[i])
+			if wc != nil {
+				wf = float64(wc[i])
 			}
 			var l float64
 			switch {
 			case known:
-				l = loss[i]
+				l = lc[i]
 			case binary: // the same for the whole batch: not a branch on y
 				l = binaryLoss(pf, yf)
 			default:
 				l = softLoss(pf, yf)
 			}
-			if loss != nil && !known {
-				loss[i] = l
+			if lc != nil && !known {
+				lc[i] = l
 			}
 			wy := wf * yf
 			sw += wf
 			swy += wy
 			swl += wf * l
 			swp += wf * pf
-			c := &cal[min(int(pf*CalibrationBins), CalibrationBins-1)]
+			// pf is in [0, 1] (checkRows), so the bins are in range; the
+			// masks only tell the compiler so.
+			c := &cal[min(uint(pf*CalibrationBins), CalibrationBins-1)]
 			c[0] += wf
 			c[1] += wf * pf
 			c[2] += wy
-			h := 2 * min(int(pf*AUCBins), AUCBins-1)
+			h := 2 * min(uint(pf*AUCBins), AUCBins-1)
 			if binary {
-				hidx[i-lo] = int32(h + 1 - int(yf)) // the positive sum for y = 1
-				hval[i-lo] = wf
+				hx[i] = int32(h + 1 - uint(yf)) // the positive sum for y = 1
+				hv[i] = wf
 			} else {
-				hist[h] += wy
-				hist[h+1] += wf - wy
+				hist[h&(2*AUCBins-1)] += wy
+				hist[(h+1)&(2*AUCBins-1)] += wf - wy
 			}
 		}
 		if binary {
-			for k, h := range hidx[:hi-lo] {
-				hist[h] += hval[k]
+			for k, h := range hx {
+				hist[uint32(h)&(2*AUCBins-1)] += hv[k]
 			}
 		}
 		b.w.add(sw)

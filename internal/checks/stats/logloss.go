@@ -70,9 +70,8 @@ func checkRows[T Float](p, y, w []T, what string) (binary bool, err error) {
 	if w != nil && len(w) != len(p) {
 		return false, errkind.New(errkind.BadInput, "%d weights for %d %s", len(w), len(p), what)
 	}
-	// soft sums y·(1−y) >= 0, which is 0 exactly when y is 0 or 1: no
-	// branch on the label value.
-	var soft float64
+	y = y[:len(p)]
+	soft := false // a label other than 0 and 1 (-0 counts as 0)
 	for i := range p {
 		if !(p[i] >= 0 && p[i] <= 1) {
 			return false, errkind.New(errkind.BadInput, "row %d: %s %v outside [0, 1]", i, what, p[i])
@@ -81,9 +80,11 @@ func checkRows[T Float](p, y, w []T, what string) (binary bool, err error) {
 		if !(yi >= 0 && yi <= 1) {
 			return false, errkind.New(errkind.BadInput, "row %d: label %v outside [0, 1]", i, yi)
 		}
-		soft += yi * (1 - yi)
+		if yi != 0 && yi != 1 {
+			soft = true
+		}
 	}
-	return soft == 0, checkWeights(w)
+	return !soft, checkWeights(w)
 }
 
 // checkWeights refuses a weight that is negative, NaN or infinite.
