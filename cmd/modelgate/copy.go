@@ -7,6 +7,7 @@ import (
 	"os"
 	"strings"
 
+	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/spf13/cobra"
 
 	"github.com/modelgate/modelgate/internal/artifact"
@@ -143,7 +144,14 @@ func runCopy(ctx context.Context, g *globals, o *copyOptions, args []string) err
 	if src.String() == dst.String() {
 		return usageErr("--store and --dest are the same store (%s)", src)
 	}
-	opts := registry.CopyOptions{Progress: copyProgress(g), Needs: release.CopyNeeds}
+	pt, err := release.FindPolicyTags(ctx, dst)
+	if err != nil {
+		return err
+	}
+	opts := registry.CopyOptions{Progress: copyProgress(g), Needs: release.CopyNeeds,
+		CheckTag: func(ctx context.Context, repo, tag string, target v1.Hash) error {
+			return pt.CheckTag(ctx, dst, repo, tag, target)
+		}}
 	var res *registry.CopyResult
 	if o.All {
 		res, err = registry.CopyAll(ctx, src, dst, opts)

@@ -81,10 +81,14 @@ func runFreeze(ctx context.Context, g *globals, o *freezeOptions, refStr string)
 	if err != nil {
 		return err
 	}
+	check, err := policyTagCheck(ctx, store)
+	if err != nil {
+		return err
+	}
 	g.logf("freezing %s", ref)
 	res, err := freeze.Scorer(ctx, store, ref, freeze.Options{
 		Encoder: o.Encoder, Out: out, Storage: o.Storage, MaxError: o.MaxError,
-		Holdout: o.Holdout, HoldoutRows: o.HoldoutRows, Progress: g.progress(),
+		Holdout: o.Holdout, HoldoutRows: o.HoldoutRows, Progress: g.progress(), TagCheck: check,
 	})
 	if err != nil {
 		return err

@@ -61,11 +61,15 @@ func runPush(ctx context.Context, g *globals, o *pushOptions, dir, refStr string
 	if err != nil {
 		return err
 	}
+	check, err := policyTagCheck(ctx, store)
+	if err != nil {
+		return err
+	}
 	var res *artifact.PushResult
 	if o.Kind == "holdout" {
-		res, err = artifact.PushHoldout(ctx, store, dir, ref, artifact.Options{Progress: g.progress(), ClusterColumn: o.ClusterColumn})
+		res, err = artifact.PushHoldout(ctx, store, dir, ref, artifact.Options{Progress: g.progress(), ClusterColumn: o.ClusterColumn, TagCheck: check})
 	} else {
-		res, err = artifact.PushModelDir(ctx, store, dir, ref, artifact.Options{Progress: g.progress()})
+		res, err = artifact.PushModelDir(ctx, store, dir, ref, artifact.Options{Progress: g.progress(), TagCheck: check})
 	}
 	if err != nil {
 		return err

@@ -10,6 +10,7 @@ import (
 
 	"github.com/modelgate/modelgate/internal/errkind"
 	"github.com/modelgate/modelgate/internal/registry"
+	"github.com/modelgate/modelgate/internal/release"
 )
 
 type untagOptions struct {
@@ -91,6 +92,13 @@ func runUntag(ctx context.Context, g *globals, o *untagOptions, refStr string) e
 			return err
 		}
 		want = d.Digest
+	}
+	pt, err := release.FindPolicyTags(ctx, store)
+	if err != nil {
+		return err
+	}
+	if err := pt.Check(target.Repository, target.Tag, want, v1.Hash{}); err != nil {
+		return err
 	}
 	if err := del.DeleteTag(ctx, target.Repository, target.Tag, want); err != nil {
 		return err

@@ -52,6 +52,10 @@ type Options struct {
 	// ClusterColumn (holdouts) names the column grouping rows that are not
 	// independent, for example the listener id; "" for none.
 	ClusterColumn string
+	// TagCheck, when set, is called just before the tag is written, with
+	// the manifest it is to name; an error leaves the manifest untagged
+	// (retention collects it) and is returned.
+	TagCheck func(ctx context.Context, ref registry.Ref, manifest v1.Hash) error
 }
 
 func (o Options) emit(e Event) {
@@ -594,6 +598,11 @@ func PushArtifact(ctx context.Context, store registry.Store, ref registry.Ref, a
 	}
 	res.Digest = res.Manifest.Digest.String()
 	if ref.Tag != "" {
+		if opts.TagCheck != nil {
+			if err := opts.TagCheck(ctx, ref, res.Manifest.Digest); err != nil {
+				return nil, err
+			}
+		}
 		if err := store.Tag(ctx, ref.Repository, ref.Tag, res.Manifest); err != nil {
 			return nil, fmt.Errorf("tagging %s: %w", ref, err)
 		}

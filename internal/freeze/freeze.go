@@ -80,6 +80,8 @@ type Options struct {
 	Progress func(artifact.Event)
 	// Now gives the freeze record's creation time (time.Now when nil).
 	Now func() time.Time
+	// TagCheck is artifact.Options.TagCheck for the frozen scorer's tag.
+	TagCheck func(ctx context.Context, ref registry.Ref, manifest v1.Hash) error
 }
 
 // Subject names an artifact.
@@ -355,7 +357,7 @@ func Scorer(ctx context.Context, store registry.Store, ref registry.Ref, opts Op
 		ann[AnnotationMaxError] = strconv.FormatFloat(maxErr, 'g', -1, 64)
 	}
 	push, err := artifact.PushArtifact(ctx, store, opts.Out, artifact.ArtifactType(model.KindScorer), config, layers, nil, ann,
-		artifact.Options{Progress: opts.Progress})
+		artifact.Options{Progress: opts.Progress, TagCheck: opts.TagCheck})
 	if err != nil {
 		return nil, fmt.Errorf("pushing the frozen scorer: %w", err)
 	}

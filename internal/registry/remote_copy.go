@@ -38,6 +38,10 @@ type CopyOptions struct {
 	// record); it is copied too, and it is how copy follows a release log
 	// from its head.
 	Needs func(ctx context.Context, src Store, repo string, raw []byte) (needs []Ref, previous string, err error)
+	// CheckTag, when set, is asked before anything is written whether a
+	// plain tag (one without a release log at the source) may be written
+	// at the destination, naming target; an error refuses the copy.
+	CheckTag func(ctx context.Context, repo, tag string, target v1.Hash) error
 }
 
 // CopiedManifest is one manifest Copy handled.
@@ -160,7 +164,15 @@ func (c *copier) planTag(ctx context.Context, repo, tag string, target v1.Hash) 
 		}
 	}
 	if p.head == (v1.Hash{}) {
-		return p, CheckTagWrite(ctx, c.dst, repo, tag)
+		if err := CheckTagWrite(ctx, c.dst, repo, tag); err != nil {
+			return nil, err
+		}
+		if c.o.CheckTag != nil {
+			if err := c.o.CheckTag(ctx, repo, tag, target); err != nil {
+				return nil, err
+			}
+		}
+		return p, nil
 	}
 	if _, ok := c.dst.(TagSwapper); !ok {
 		return nil, errkind.New(errkind.BadInput, "%s:%s has a release log, and %s cannot compare-and-swap tags to copy it", repo, tag, c.dst)

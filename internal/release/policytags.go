@@ -1,0 +1,122 @@
+package release
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"sort"
+	"strings"
+
+	v1 "github.com/google/go-containerregistry/pkg/v1"
+
+	"github.com/modelgate/modelgate/internal/errkind"
+	"github.com/modelgate/modelgate/internal/registry"
+)
+
+// PolicyTags are the tags the policies bound to a store's guarded tags
+// name by tag: a rule's holdout and its freeze encoder tag. The gate
+// resolves them when it runs and promote checks a report's holdout
+// against what the tag points at then, so moving one changes what a
+// candidate is judged on: such a tag moves only through a policy change
+// (naming another tag or a digest), which needs the approvals of the
+// policy in force. A plain push, copy, freeze or untag refuses it
+// (Check).
+type PolicyTags struct {
+	// Named maps "repo:tag" to the guarded tags ("repo:tag") whose bound
+	// policy names it, and how ("holdout" or "freeze encoder tag").
+	Named map[string][]string
+	// Complete is false when the store could not list its repositories
+	// (an OCI registry without a catalog): tags named by policies bound in
+	// repositories not listed are then not known.
+	Complete bool
+}
+
+// FindPolicyTags reads the policy bound to every guarded tag of store
+// (every tag with a release log) and collects the tags they name. A
+// policy named by digest pins its holdout and names no tag here.
+func FindPolicyTags(ctx context.Context, store registry.Store) (*PolicyTags, error) {
+	pt := &PolicyTags{Named: map[string][]string{}, Complete: true}
+	repos, err := store.Repositories(ctx)
+	if errors.Is(err, registry.ErrNoCatalog) {
+		pt.Complete = false
+		return pt, nil
+	}
+	if err != nil {
+		return nil, fmt.Errorf("listing repositories to find the tags bound policies name: %w", err)
+	}
+	for _, repo := range repos {
+		tags, err := store.Tags(ctx, repo)
+		if err != nil {
+			return nil, fmt.Errorf("listing the tags of %s: %w", repo, err)
+		}
+		for _, t := range tags {
+			g, ok := strings.CutPrefix(t, registry.ReleaseHeadPrefix)
+			if !ok || registry.ValidateTag(g) != nil {
+				continue
+			}
+			target := registry.Ref{Repository: repo, Tag: g}
+			b, err := BoundPolicy(ctx, store, target)
+			if err != nil {
+				return nil, fmt.Errorf("reading the policy bound to %s: %w", target, err)
+			}
+			if b.Policy == nil {
+				continue
+			}
+			for _, r := range b.Policy.Rules {
+				if h := r.HoldoutRef; h != nil && h.Tag != "" && !h.HasDigest() {
+					pt.add(h.Repository+":"+h.Tag, fmt.Sprintf("the holdout of the policy bound to %s", target))
+				}
+				if e := r.Freeze.EncoderTag; e != nil && e.Tag != "" && !e.HasDigest() {
+					pt.add(e.Repository+":"+e.Tag, fmt.Sprintf("the freeze encoder tag of the policy bound to %s", target))
+				}
+			}
+		}
+	}
+	return pt, nil
+}
+
+func (pt *PolicyTags) add(tag, why string) {
+	for _, w := range pt.Named[tag] {
+		if w == why {
+			return
+		}
+	}
+	pt.Named[tag] = append(pt.Named[tag], why)
+	sort.Strings(pt.Named[tag])
+}
+
+// ErrPolicyTag: a plain write or removal of a tag a bound policy names.
+var ErrPolicyTag = errors.New("a bound policy names the tag")
+
+// Check refuses (errkind.Unauthorized, ErrPolicyTag) to move repo:tag to
+// target, or to remove it when target is the zero hash, when a bound
+// policy names it. now is what the tag points at now (the zero hash when
+// it does not exist). Writing the digest it already names is no move;
+// creating it where it does not exist is allowed too: no gate can have
+// judged anything on a holdout that was not there (a mirror copies it
+// after the release log that names it).
+func (pt *PolicyTags) Check(repo, tag string, now, target v1.Hash) error {
+	whys := pt.Named[repo+":"+tag]
+	if len(whys) == 0 || (target != v1.Hash{} && (now == target || now == v1.Hash{})) {
+		return nil
+	}
+	return errkind.New(errkind.Unauthorized,
+		"%s:%s is %s: it moves only through a policy change (name another tag, or pin a digest, in a policy approved as the policy in force requires); push to another tag: %w",
+		repo, tag, strings.Join(whys, " and "), ErrPolicyTag)
+}
+
+// CheckTag is Check with now read from store.
+func (pt *PolicyTags) CheckTag(ctx context.Context, store registry.Store, repo, tag string, target v1.Hash) error {
+	if len(pt.Named[repo+":"+tag]) == 0 {
+		return nil
+	}
+	var now v1.Hash
+	d, err := store.Resolve(ctx, repo, tag)
+	switch {
+	case err == nil:
+		now = d.Digest
+	case !errors.Is(err, registry.ErrNotFound):
+		return err
+	}
+	return pt.Check(repo, tag, now, target)
+}
