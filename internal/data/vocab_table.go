@@ -42,32 +42,46 @@ func (t *idTable) resize(capacity int) {
 	t.mask = uint64(size - 1)
 }
 
-// key returns an id's first 16 bytes as two words and its hash. It loads
-// whole words (overlapping ones for a short id) rather than copying the
-// id into a padded buffer.
+// key returns an id's first 16 bytes as two words and its hash.
 func (t *idTable) key(id []byte) (w0, w1, h uint64) {
 	n := len(id)
-	switch {
-	case n >= 16:
+	if n > 16 {
 		w0, w1 = binary.LittleEndian.Uint64(id), binary.LittleEndian.Uint64(id[8:])
-		if n > 16 {
-			return w0, w1, maphash.Bytes(t.seed, id)
-		}
-	case n >= 8:
-		// The last 8 bytes, shifted down past the ones the first word
-		// holds (all of them when n is 8: a shift by 64 gives 0).
-		w0 = binary.LittleEndian.Uint64(id)
-		w1 = binary.LittleEndian.Uint64(id[n-8:]) >> (8 * (16 - n))
-	case n >= 4:
-		// Two overlapping 4-byte words: the shared bytes are equal.
-		w0 = uint64(binary.LittleEndian.Uint32(id)) | uint64(binary.LittleEndian.Uint32(id[n-4:]))<<(8*(n-4))
-	default:
-		for i, b := range id {
-			w0 |= uint64(b) << (8 * i)
-		}
+		return w0, w1, maphash.Bytes(t.seed, id)
 	}
+	w0, w1 = shortWords(id)
+	return w0, w1, t.shortHash(w0, w1, n)
+}
+
+// shortWords returns an id of at most 16 bytes as two words, zero-padded.
+// It loads whole words (overlapping ones for a short id) rather than
+// copying the id into a padded buffer.
+func shortWords(id []byte) (w0, w1 uint64) {
+	if n := len(id); n >= 8 {
+		// The last 8 bytes, shifted down past the ones the first word
+		// holds (all of them when n is 8: a shift by 64 gives 0; none
+		// when n is 16).
+		return binary.LittleEndian.Uint64(id), binary.LittleEndian.Uint64(id[n-8:]) >> (8 * (16 - n))
+	}
+	return smallWord(id), 0
+}
+
+// smallWord is shortWords' first word for an id of fewer than 8 bytes.
+func smallWord(id []byte) (w uint64) {
+	if n := len(id); n >= 4 {
+		// Two overlapping 4-byte words: the shared bytes are equal.
+		return uint64(binary.LittleEndian.Uint32(id)) | uint64(binary.LittleEndian.Uint32(id[n-4:]))<<(8*(n-4))
+	}
+	for i, b := range id {
+		w |= uint64(b) << (8 * i)
+	}
+	return w
+}
+
+// shortHash is the hash of an id of n <= 16 bytes with words w0, w1.
+func (t *idTable) shortHash(w0, w1 uint64, n int) uint64 {
 	hi, lo := bits.Mul64(w0^t.k0, w1^t.k1^uint64(n))
-	return w0, w1, hi ^ lo
+	return hi ^ lo
 }
 
 // lookup returns the row of id among ids (the vocabulary's ids by row).
@@ -115,37 +129,20 @@ func (t *idTable) place(ids []string, row int32) {
 // the table; it returns dst and how many ids it found. It is lookup over a
 // page's run of byte-array values with the key computed in the loop.
 func (t *idTable) lookupRun(ids []string, ba []byte, off []uint32, dst []int32) ([]int32, int) {
-	slots, mask, k0, k1 := t.slots, t.mask, t.k0, t.k1
+	slots, mask := t.slots, t.mask
 	if len(off) < 2 {
 		return dst, 0
 	}
 	m := len(off) - 1
 	for j := range m {
 		a, b := off[j], off[j+1]
-		if a >= b || int(b) > len(ba) {
-			return dst, j
+		if a >= b || int(b) > len(ba) || b-a > 16 {
+			return dst, j // empty, out of range, or long: the general lookup
 		}
 		id := ba[a:b]
 		n := len(id)
-		var w0, w1, h uint64
-		switch {
-		case n > 16:
-			return dst, j // rare: the general lookup
-		case n == 16:
-			w0, w1 = binary.LittleEndian.Uint64(id), binary.LittleEndian.Uint64(id[8:])
-		case n >= 8:
-			w0 = binary.LittleEndian.Uint64(id)
-			w1 = binary.LittleEndian.Uint64(id[n-8:]) >> (8 * (16 - n))
-		case n >= 4:
-			w0 = uint64(binary.LittleEndian.Uint32(id)) | uint64(binary.LittleEndian.Uint32(id[n-4:]))<<(8*(n-4))
-		default:
-			for i, c := range id {
-				w0 |= uint64(c) << (8 * i)
-			}
-		}
-		hi, lo := bits.Mul64(w0^k0, w1^k1^uint64(n))
-		h = hi ^ lo
-		for i := h & mask; ; i = (i + 1) & mask {
+		w0, w1 := shortWords(id)
+		for i := t.shortHash(w0, w1, n) & mask; ; i = (i + 1) & mask {
 			s := &slots[i]
 			if s.row == 0 {
 				return dst, j
