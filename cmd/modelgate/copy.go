@@ -144,7 +144,7 @@ func runCopy(ctx context.Context, g *globals, o *copyOptions, args []string) err
 	if src.String() == dst.String() {
 		return usageErr("--store and --dest are the same store (%s)", src)
 	}
-	pt, err := release.FindPolicyTags(ctx, dst)
+	pt, err := g.findPolicyTags(ctx, dst)
 	if err != nil {
 		return err
 	}

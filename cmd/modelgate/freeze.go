@@ -81,7 +81,7 @@ func runFreeze(ctx context.Context, g *globals, o *freezeOptions, refStr string)
 	if err != nil {
 		return err
 	}
-	check, err := policyTagCheck(ctx, store)
+	check, err := g.policyTagCheck(ctx, store)
 	if err != nil {
 		return err
 	}

@@ -2,6 +2,7 @@ package main
 
 import (
 	"path/filepath"
+	"strings"
 	"testing"
 )
 
@@ -56,4 +57,14 @@ func TestPolicyHoldoutTagGuarded(t *testing.T) {
 	unchanged("pushing the same holdout again")
 	// Nothing the refusals left behind damages the store.
 	mustMG(t, store, "verify")
+
+	// A release log damaged by a direct write (its head pointer moved onto
+	// a model) does not stop pushes elsewhere: the push says the bound
+	// policy cannot be read, and log reports the damage.
+	forceTag(t, store, "promo-scorer", "release-prod", before["promo-scorer:prod"])
+	r := mustMG(t, store, "push", "--kind", "holdout", listener, "promo-holdout:v3")
+	if !strings.Contains(r.stderr, "promo-scorer:prod cannot be read") {
+		t.Errorf("push beside a damaged log: no note\n%s", r.stderr)
+	}
+	wantExit(t, mg(t, store, "log", "promo-scorer:prod"), 5)
 }

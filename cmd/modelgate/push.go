@@ -61,7 +61,7 @@ func runPush(ctx context.Context, g *globals, o *pushOptions, dir, refStr string
 	if err != nil {
 		return err
 	}
-	check, err := policyTagCheck(ctx, store)
+	check, err := g.policyTagCheck(ctx, store)
 	if err != nil {
 		return err
 	}

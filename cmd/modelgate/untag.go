@@ -10,7 +10,6 @@ import (
 
 	"github.com/modelgate/modelgate/internal/errkind"
 	"github.com/modelgate/modelgate/internal/registry"
-	"github.com/modelgate/modelgate/internal/release"
 )
 
 type untagOptions struct {
@@ -93,7 +92,7 @@ func runUntag(ctx context.Context, g *globals, o *untagOptions, refStr string) e
 		}
 		want = d.Digest
 	}
-	pt, err := release.FindPolicyTags(ctx, store)
+	pt, err := g.findPolicyTags(ctx, store)
 	if err != nil {
 		return err
 	}

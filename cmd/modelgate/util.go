@@ -27,12 +27,26 @@ func warnKeyForm(g *globals, src string, k *release.Key) {
 // (release.FindPolicyTags) and returns the check to make just before ref's
 // tag is written: a named tag may only be written with what it already
 // names, or created where it does not exist.
-func policyTagCheck(ctx context.Context, store registry.Store) (func(context.Context, registry.Ref, v1.Hash) error, error) {
-	pt, err := release.FindPolicyTags(ctx, store)
+func (g *globals) policyTagCheck(ctx context.Context, store registry.Store) (func(context.Context, registry.Ref, v1.Hash) error, error) {
+	pt, err := g.findPolicyTags(ctx, store)
 	if err != nil {
 		return nil, err
 	}
 	return func(ctx context.Context, r registry.Ref, m v1.Hash) error {
 		return pt.CheckTag(ctx, store, r.Repository, r.Tag, m)
 	}, nil
+}
+
+// findPolicyTags is release.FindPolicyTags, with a note for each guarded
+// tag whose bound policy could not be read (a damaged log: what it names
+// is not guarded until log and verify are dealt with).
+func (g *globals) findPolicyTags(ctx context.Context, store registry.Store) (*release.PolicyTags, error) {
+	pt, err := release.FindPolicyTags(ctx, store)
+	if err != nil {
+		return nil, err
+	}
+	for _, u := range pt.Unreadable {
+		g.logf("note: %s; the tags it names are not guarded until its log is repaired (see modelgate log and verify)", u)
+	}
+	return pt, nil
 }

@@ -29,6 +29,11 @@ type PolicyTags struct {
 	// (an OCI registry without a catalog): tags named by policies bound in
 	// repositories not listed are then not known.
 	Complete bool
+	// Unreadable lists the guarded tags whose bound policy could not be
+	// read because their release log is damaged or incomplete (log and
+	// verify say how), each with the error: what they name is not known.
+	// A damaged log elsewhere in the store does not stop every push.
+	Unreadable []string
 }
 
 // FindPolicyTags reads the policy bound to every guarded tag of store
@@ -57,6 +62,10 @@ func FindPolicyTags(ctx context.Context, store registry.Store) (*PolicyTags, err
 			target := registry.Ref{Repository: repo, Tag: g}
 			b, err := BoundPolicy(ctx, store, target)
 			if err != nil {
+				if errors.Is(err, registry.ErrNotFound) || errkind.Of(err) == errkind.Integrity {
+					pt.Unreadable = append(pt.Unreadable, fmt.Sprintf("the policy bound to %s cannot be read: %v", target, err))
+					continue
+				}
 				return nil, fmt.Errorf("reading the policy bound to %s: %w", target, err)
 			}
 			if b.Policy == nil {
