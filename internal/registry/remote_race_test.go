@@ -178,13 +178,7 @@ func TestRemoteWholePushInsideDeleteWindowMem(t *testing.T) {
 // included. Before the push read its work back this failed: the manifest
 // and the push's tag were gone after the push had returned.
 func TestRemotePushInsideDeleteWindowDockerRegistry(t *testing.T) {
-	addr, auth := serviceRegistry(t)
-	u, err := url.Parse("http://" + addr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	proxy := httputil.NewSingleHostReverseProxy(u)
-	proxy.ErrorLog = log.New(io.Discard, "", 0)
+	proxy, auth := serviceProxy(t)
 	testPushInsideDeleteWindow(t, proxy, uniquePrefix(t), auth, false)
 }
 
@@ -196,13 +190,7 @@ func TestRemotePushInsideDeleteWindowDockerRegistry(t *testing.T) {
 // a tag that modelgate's Tag pointed at the manifest in that window goes
 // with it and is put back by that Tag's read-back.
 func TestRemoteUntagWindowDockerRegistry(t *testing.T) {
-	addr, auth := serviceRegistry(t)
-	u, err := url.Parse("http://" + addr)
-	if err != nil {
-		t.Fatal(err)
-	}
-	proxy := httputil.NewSingleHostReverseProxy(u)
-	proxy.ErrorLog = log.New(io.Discard, "", 0)
+	proxy, auth := serviceProxy(t)
 	ctx := context.Background()
 	const repo = "podcast/promo-scorer"
 	a := storetest.NewArtifact(310, "application/vnd.modelgate.scorer.v1", nil, nil)
@@ -268,4 +256,18 @@ func TestRemoteUntagWindowDockerRegistry(t *testing.T) {
 			t.Errorf("the removed tag: %v, want it gone", err)
 		}
 	})
+}
+
+// serviceProxy is a reverse proxy in front of the loopback docker-registry
+// (.ci/services.sh), and its credentials.
+func serviceProxy(t *testing.T) (*httputil.ReverseProxy, authn.Authenticator) {
+	t.Helper()
+	addr, auth := serviceRegistry(t)
+	u, err := url.Parse("http://" + addr)
+	if err != nil {
+		t.Fatal(err)
+	}
+	proxy := httputil.NewSingleHostReverseProxy(u)
+	proxy.ErrorLog = log.New(io.Discard, "", 0)
+	return proxy, auth
 }

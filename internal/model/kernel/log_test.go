@@ -445,13 +445,7 @@ print(repr(float(l64)), repr(float(l32)))
 // evaluation (log1p, pairwise float32 sum) the difference is larger;
 // 1e−6 relative is our own allowance, stated, for that comparison.
 func TestLogLoss32AgainstNumpy(t *testing.T) {
-	if out, err := exec.Command(debianPython, "-c", "import numpy").CombinedOutput(); err != nil {
-		msg := fmt.Sprintf("%s cannot import numpy: %v %s", debianPython, err, out)
-		if os.Getenv("CI") != "" {
-			t.Fatal(msg)
-		}
-		t.Skip(msg)
-	}
+	requireModules(t, "numpy")
 	for _, soft := range []bool{false, true} {
 		p, y := lossBatch(2026, 100003, soft)
 		dir := t.TempDir()

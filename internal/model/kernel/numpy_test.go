@@ -36,13 +36,7 @@ ss.expit(csr @ ws + bias2).astype("<f8").tofile(d + "/sparse")
 // CSR product (scipy.sparse.csr_matrix, scipy.special.expit), computed in float64
 // on the same float32 inputs.
 func TestAgainstNumpy(t *testing.T) {
-	if out, err := exec.Command(debianPython, "-c", "import numpy, scipy.sparse, scipy.special").CombinedOutput(); err != nil {
-		msg := fmt.Sprintf("%s cannot import numpy and scipy: %v %s", debianPython, err, out)
-		if os.Getenv("CI") != "" {
-			t.Fatal(msg)
-		}
-		t.Skip(msg)
-	}
+	requireModules(t, "numpy, scipy.sparse, scipy.special")
 	rng := rand.New(rand.NewPCG(21, 22))
 	const m, n, k = 23, 77, 130
 	const vocab, n2 = 40, 150
@@ -123,5 +117,18 @@ func writeLE(t *testing.T, path string, data any) {
 	}
 	if err := f.Close(); err != nil {
 		t.Fatal(err)
+	}
+}
+
+// requireModules skips the test, or fails it in CI (which installs them),
+// when Debian's python cannot import modules (a comma-separated list).
+func requireModules(t *testing.T, modules string) {
+	t.Helper()
+	if out, err := exec.Command(debianPython, "-c", "import "+modules).CombinedOutput(); err != nil {
+		msg := fmt.Sprintf("%s cannot import %s: %v %s", debianPython, modules, err, out)
+		if os.Getenv("CI") != "" {
+			t.Fatal(msg)
+		}
+		t.Skip(msg)
 	}
 }
