@@ -7,7 +7,6 @@ import (
 	"os"
 	"strings"
 
-	v1 "github.com/google/go-containerregistry/pkg/v1"
 	"github.com/spf13/cobra"
 
 	"github.com/modelgate/modelgate/internal/artifact"
@@ -144,14 +143,7 @@ func runCopy(ctx context.Context, g *globals, o *copyOptions, args []string) err
 	if src.String() == dst.String() {
 		return usageErr("--store and --dest are the same store (%s)", src)
 	}
-	pt, err := g.findPolicyTags(ctx, dst)
-	if err != nil {
-		return err
-	}
-	opts := registry.CopyOptions{Progress: copyProgress(g), Needs: release.CopyNeeds,
-		CheckTag: func(ctx context.Context, repo, tag string, target v1.Hash) error {
-			return pt.CheckTag(ctx, dst, repo, tag, target)
-		}}
+	opts := registry.CopyOptions{Progress: copyProgress(g), Needs: release.CopyNeeds, CheckTag: g.tagGuard(dst).Check}
 	var res *registry.CopyResult
 	if o.All {
 		res, err = registry.CopyAll(ctx, src, dst, opts)

@@ -81,10 +81,7 @@ func runFreeze(ctx context.Context, g *globals, o *freezeOptions, refStr string)
 	if err != nil {
 		return err
 	}
-	check, err := g.policyTagCheck(ctx, store)
-	if err != nil {
-		return err
-	}
+	check := g.tagCheck(store)
 	g.logf("freezing %s", ref)
 	res, err := freeze.Scorer(ctx, store, ref, freeze.Options{
 		Encoder: o.Encoder, Out: out, Storage: o.Storage, MaxError: o.MaxError,

@@ -59,10 +59,11 @@ func TestPolicyHoldoutTagGuarded(t *testing.T) {
 	mustMG(t, store, "verify")
 
 	// A release log damaged by a direct write (its head pointer moved onto
-	// a model) does not stop pushes elsewhere: the push says the bound
-	// policy cannot be read, and log reports the damage.
+	// a model) does not stop pushes elsewhere: moving another tag (which
+	// reads the bound policies) says the bound policy cannot be read, and
+	// log reports the damage.
 	forceTag(t, store, "promo-scorer", "release-prod", before["promo-scorer:prod"])
-	r := mustMG(t, store, "push", "--kind", "holdout", listener, "promo-holdout:v3")
+	r := mustMG(t, store, "push", "--kind", "holdout", promo, "promo-holdout:v2")
 	if !strings.Contains(r.stderr, "promo-scorer:prod cannot be read") {
 		t.Errorf("push beside a damaged log: no note\n%s", r.stderr)
 	}

@@ -61,10 +61,7 @@ func runPush(ctx context.Context, g *globals, o *pushOptions, dir, refStr string
 	if err != nil {
 		return err
 	}
-	check, err := g.policyTagCheck(ctx, store)
-	if err != nil {
-		return err
-	}
+	check := g.tagCheck(store)
 	var res *artifact.PushResult
 	if o.Kind == "holdout" {
 		res, err = artifact.PushHoldout(ctx, store, dir, ref, artifact.Options{Progress: g.progress(), ClusterColumn: o.ClusterColumn, TagCheck: check})

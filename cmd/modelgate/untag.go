@@ -92,11 +92,7 @@ func runUntag(ctx context.Context, g *globals, o *untagOptions, refStr string) e
 		}
 		want = d.Digest
 	}
-	pt, err := g.findPolicyTags(ctx, store)
-	if err != nil {
-		return err
-	}
-	if err := pt.Check(target.Repository, target.Tag, want, v1.Hash{}); err != nil {
+	if err := g.tagGuard(store).Check(ctx, target.Repository, target.Tag, v1.Hash{}); err != nil {
 		return err
 	}
 	if err := del.DeleteTag(ctx, target.Repository, target.Tag, want); err != nil {

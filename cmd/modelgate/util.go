@@ -23,30 +23,21 @@ func warnKeyForm(g *globals, src string, k *release.Key) {
 	}
 }
 
-// policyTagCheck reads the tags the store's bound policies name
-// (release.FindPolicyTags) and returns the check to make just before ref's
-// tag is written: a named tag may only be written with what it already
-// names, or created where it does not exist.
-func (g *globals) policyTagCheck(ctx context.Context, store registry.Store) (func(context.Context, registry.Ref, v1.Hash) error, error) {
-	pt, err := g.findPolicyTags(ctx, store)
-	if err != nil {
-		return nil, err
-	}
-	return func(ctx context.Context, r registry.Ref, m v1.Hash) error {
-		return pt.CheckTag(ctx, store, r.Repository, r.Tag, m)
-	}, nil
+// tagGuard returns the check a plain write of a tag of store passes
+// (release.TagGuard: a tag a bound policy names as holdout or encoder tag
+// does not move), noting each guarded tag whose bound policy cannot be
+// read (a damaged log: what it names is not guarded until log and verify
+// are dealt with).
+func (g *globals) tagGuard(store registry.Store) *release.TagGuard {
+	return &release.TagGuard{Store: store, Note: func(u string) {
+		g.logf("note: %s; the tags it names are not guarded until its log is repaired (see modelgate log and verify)", u)
+	}}
 }
 
-// findPolicyTags is release.FindPolicyTags, with a note for each guarded
-// tag whose bound policy could not be read (a damaged log: what it names
-// is not guarded until log and verify are dealt with).
-func (g *globals) findPolicyTags(ctx context.Context, store registry.Store) (*release.PolicyTags, error) {
-	pt, err := release.FindPolicyTags(ctx, store)
-	if err != nil {
-		return nil, err
+// tagCheck is tagGuard as artifact.Options.TagCheck.
+func (g *globals) tagCheck(store registry.Store) func(context.Context, registry.Ref, v1.Hash) error {
+	guard := g.tagGuard(store)
+	return func(ctx context.Context, r registry.Ref, m v1.Hash) error {
+		return guard.Check(ctx, r.Repository, r.Tag, m)
 	}
-	for _, u := range pt.Unreadable {
-		g.logf("note: %s; the tags it names are not guarded until its log is repaired (see modelgate log and verify)", u)
-	}
-	return pt, nil
 }

@@ -469,17 +469,8 @@ func Mark(ctx context.Context, store registry.Store, pol *policy.Policy, opts Op
 func policyTags(ctx context.Context, store registry.Store, pol *policy.Policy, guarded map[string]bool) (map[string]bool, error) {
 	named := map[string]bool{}
 	add := func(p *policy.Policy) {
-		if p == nil {
-			return
-		}
-		for _, r := range p.Rules {
-			named[r.Target.Repository+":"+r.Target.Tag] = true
-			if h := r.HoldoutRef; h != nil && h.Tag != "" {
-				named[h.Repository+":"+h.Tag] = true
-			}
-			if e := r.Freeze.EncoderTag; e != nil && e.Tag != "" {
-				named[e.Repository+":"+e.Tag] = true
-			}
+		for _, n := range release.TagsNamed(p) {
+			named[n.Ref.Repository+":"+n.Ref.Tag] = true
 		}
 	}
 	add(pol)
